@@ -1,0 +1,93 @@
+"""The command line: ``python -m forecasting COMMAND FILE [options]``.
+
+Each command lives in a module of its own in this package with two functions,
+``add_arguments(parser)`` and ``run(args) -> int``. This module holds what they
+share: the column options, loading a file from them, and turning a user-facing
+:class:`~forecasting.errors.OrderDataError` into a message on stderr and exit code 2
+(never a traceback).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+import sys
+
+from ..errors import OrderDataError
+from ..reading import DATE_ORDERS, ReadResult, read_orders
+
+# command name -> (module, one-line help)
+COMMANDS = {
+    "check": ("check", "read an order export and show what was used and what was left out"),
+    "forecast": ("forecast", "expected next-order value for every customer, written to a CSV"),
+    "evaluate": ("evaluate", "how much each method beats plain customer averages on your own data"),
+    "outlook": ("outlook", "projected revenue per cohort over a horizon, with a backtest"),
+    "tiers": ("tiers", "value tiers of customers, written to a CSV list"),
+}
+
+EXIT_OK = 0
+EXIT_DATA_ERROR = 2
+
+
+def add_column_options(parser: argparse.ArgumentParser) -> None:
+    """The options every command shares: the file and which column is which."""
+    parser.add_argument("file", help="order export: CSV, TSV, Excel (.xlsx) or Parquet")
+    columns = parser.add_argument_group("columns (guessed from the headers when not given)")
+    columns.add_argument("--customer", metavar="COL", help="column with the customer id")
+    columns.add_argument("--value", metavar="COL", help="column with the order or line amount")
+    columns.add_argument("--date", metavar="COL", help="column with the order date")
+    columns.add_argument("--order-id", metavar="COL", help="column with the order number (joins order lines)")
+    columns.add_argument("--status", metavar="COL", help="column with the order status (cancelled, refunded, test)")
+    columns.add_argument("--segment", metavar="COL", help="column with a customer group such as channel or region")
+    columns.add_argument("--currency-column", metavar="COL", help="column with the currency code")
+    reading = parser.add_argument_group("reading")
+    reading.add_argument("--currency", metavar="CODE", help="keep only amounts in this currency, e.g. EUR")
+    reading.add_argument("--date-order", choices=DATE_ORDERS, help="how to read dates like 03/04/2025")
+    reading.add_argument("--decimal", choices=[".", ","], help="decimal separator of the amounts")
+    reading.add_argument("--sheet", help="Excel sheet name (default: the first sheet)")
+
+
+def load_from_args(args: argparse.Namespace) -> ReadResult:
+    """Read the file named on the command line with the column options given."""
+    return read_orders(args.file, customer=args.customer, value=args.value, date=args.date,
+                       order_id=args.order_id, status=args.status, segment=args.segment,
+                       currency_column=args.currency_column, currency=args.currency,
+                       date_order=args.date_order, decimal=args.decimal, sheet=args.sheet)
+
+
+def print_json(payload) -> None:
+    """Print one JSON object (the machine-readable output of every command)."""
+    print(json.dumps(payload, indent=2, default=str, allow_nan=False))
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="python -m forecasting",
+        description="Forecast what each customer will spend on their next order. "
+                    "Everything runs on this machine; nothing is sent anywhere.")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for name, (module_name, summary) in COMMANDS.items():
+        try:
+            module = importlib.import_module(f"{__name__}.{module_name}")
+        except ModuleNotFoundError as missing:
+            if missing.name != f"{__name__}.{module_name}":
+                raise
+            continue
+        sub = commands.add_parser(name, help=summary, description=summary)
+        module.add_arguments(sub)
+        sub.set_defaults(run=module.run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.run(args)
+    except OrderDataError as problem:
+        print(f"error: {problem}", file=sys.stderr)
+        return EXIT_DATA_ERROR
+    except KeyboardInterrupt:
+        print("stopped", file=sys.stderr)
+        return 130

@@ -1,0 +1,32 @@
+"""``check``: read an export and show the row account (what was used, what was left out and why)."""
+
+from __future__ import annotations
+
+from . import EXIT_OK, add_column_options, load_from_args, print_json
+from ..exports import write_csv
+from ..reading import REASONS
+
+
+def add_arguments(parser) -> None:
+    add_column_options(parser)
+    parser.add_argument("--excluded-out", metavar="CSV", help="write the rows left out, with reasons, to this CSV")
+    parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+
+
+def run(args) -> int:
+    result = load_from_args(args)
+    audit = result.audit()
+    if args.excluded_out:
+        write_csv(result.excluded, args.excluded_out)
+    if args.json:
+        print_json(audit)
+        return EXIT_OK
+    print(f"{audit['file']}: {audit['rows_read']} rows read, {audit['rows_used']} used, "
+          f"{audit['rows_excluded']} left out")
+    print(f"{audit['orders']} orders from {audit['customers']} customers")
+    print("columns: " + ", ".join(f"{role}={col}" for role, col in audit["mapping"].items() if col))
+    for code, count in audit["excluded"].items():
+        print(f"  left out {count:>6}  {code:<18} {REASONS[code]}")
+    for note in audit["notes"]:
+        print(f"note: {note}")
+    return EXIT_OK
