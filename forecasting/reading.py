@@ -628,8 +628,9 @@ def parse_dates(values: pd.Series, *, date_order: str | None = None, column: str
                 pd.DataFrame({"year": year, "month": month, "day": day}), errors="coerce")
             with_time = clock != ""
             if with_time.any():
-                times = pd.to_timedelta(clock[with_time].str.extract(r"^(\d{1,2}:\d{2}(?::\d{2})?)",
-                                                                     expand=False), errors="coerce")
+                clock_text = clock[with_time].str.extract(r"^(\d{1,2}:\d{2}(?::\d{2})?)", expand=False)
+                clock_text = clock_text.where(clock_text.str.count(":") == 2, clock_text + ":00")
+                times = pd.to_timedelta(clock_text, errors="coerce")
                 built.loc[with_time] = built.loc[with_time] + times.fillna(pd.Timedelta(0))
             dates.loc[built.index] = built
         others = unread & dates.isna()

@@ -1,0 +1,45 @@
+"""The ``check`` command: its JSON contract and exit codes, run as a user runs it."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run_cli(*args):
+    return subprocess.run([sys.executable, "-m", "forecasting", *args], cwd=ROOT, capture_output=True, text=True,
+                          timeout=120)
+
+
+class TestCheckCommand:
+    def test_json_accounts_for_every_row(self, tmp_path):
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,date,amount,status\nC1,2025-01-02,10,paid\nC2,2025-01-03,5,cancelled\n"
+                        "C1,2025-02-02,12,paid\n\n")
+        done = run_cli("check", str(path), "--json")
+        assert done.returncode == 0, done.stderr
+        audit = json.loads(done.stdout)
+        assert audit["rows_read"] == 4
+        assert audit["rows_used"] == 2
+        assert audit["orders"] == 2 and audit["customers"] == 1
+        assert audit["excluded"] == {"blank_row": 1, "cancelled_order": 1}
+        assert audit["rows_used"] + sum(audit["excluded"].values()) == audit["rows_read"]
+
+    def test_a_data_error_exits_2_with_a_message_and_no_traceback(self, tmp_path):
+        path = tmp_path / "bad.csv"
+        path.write_text("x,y,z\n1,2,3\n")
+        done = run_cli("check", str(path))
+        assert done.returncode == 2
+        assert "--customer" in done.stderr
+        assert "Traceback" not in done.stderr
+
+    def test_excluded_rows_can_be_written(self, tmp_path):
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,date,amount\n=evil(),2025-01-02,oops\nC1,2025-01-02,10\n")
+        out = tmp_path / "left_out.csv"
+        done = run_cli("check", str(path), "--excluded-out", str(out))
+        assert done.returncode == 0, done.stderr
+        text = out.read_text()
+        assert "'=evil()" in text and "bad_amount" in text
