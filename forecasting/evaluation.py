@@ -1,0 +1,936 @@
+"""Evaluation: how much better than plain averages each method forecasts.
+
+In: the cleaned orders table (one row per order, see ``forecasting.reading``).
+Out: an :class:`Evaluation` with, for every method x variance model,
+
+* leave-one-out: every order of every customer with at least two orders is
+  held out in turn, everything is refitted on the remaining orders (pooled
+  variance, the amount of shrinkage, the centre) and the customer's expected
+  order value is compared with the order that was held out;
+* next-order backtest: fit on the orders before a cut-off date and score the
+  forecast against each customer's first order after it;
+* a bootstrap interval over customers for each error reduction, the gain by
+  number of past orders and by segment, and the share of held-out orders that
+  fell inside the 80% next-order range;
+* the automatic choice of method (:func:`choose_method`).
+
+The leave-one-out is exact and fast for the closed-form methods: nothing is
+refitted N times.  Removing order x from customer t changes only that
+customer's count, average and sum of squares,
+
+    n' = n - 1,  m' = (n m - x) / (n - 1),  SS' = SS - (x - m)^2 n / (n - 1),
+
+so every shop-wide sum (sum SS, sum (n - 1), sum m, sum m^2, sum n m^2, ...)
+is updated in O(1) per held-out order.  Weighted centres
+c = sum_s g_s m_s / sum_s g_s, whose weights depend on a customer only through
+the order count n_s, are evaluated by grouping customers by order count, with
+the held-out customer moved from group n to group n - 1 with the new average:
+O(N K) work for N held-out orders and K distinct order counts, vectorised in
+chunks of held-out orders so that memory stays bounded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats as _scipy_stats
+
+from forecasting.customers import customer_statistics
+from forecasting.errors import OrderDataError
+
+# Methods and variance models whose leave-one-out is exact (closed forms).
+EXACT_METHODS = ("plain", "pooled", "james-stein", "mta", "mta-minimax", "empirical-bayes")
+EXACT_VARIANCES = ("classic", "log")
+
+# Bins of "orders known before the forecast" used in the breakdown tables.
+PAST_ORDER_BINS = ((1, 1, "1"), (2, 2, "2"), (3, 3, "3"), (4, 5, "4-5"), (6, 10, "6-10"), (11, np.inf, "11+"))
+
+# Held-out orders x order-count groups evaluated at once (floats); bounds memory.
+_CHUNK_CELLS = 10_000_000
+
+_RESULT_COLUMNS = ["method", "variance", "sse", "error_reduction_pct", "ci_low", "ci_high", "coverage"]
+
+
+# ---------------------------------------------------------------------------
+# Held-out orders and O(1) updates of the shop-wide sums
+# ---------------------------------------------------------------------------
+
+
+class _Scale:
+    """Per-customer averages on one scale (money or log) and their update
+    when one order is held out.
+
+    Everything is stored relative to ``origin`` (the full-data unweighted mean
+    of the averages) so that the O(1) updates of sums of squares do not lose
+    digits to cancellation.
+    """
+
+    def __init__(self, counts, means, sum_sq, order_values, held_customer, held_values):
+        n = counts.astype(np.float64)
+        self.T = len(n)
+        self.counts = n
+        self.origin = float(means.mean()) if self.T else 0.0
+        d = means - self.origin
+        self.d = d
+        self.sum_d = float(d.sum())
+        self.sum_d2 = float(d @ d)
+        self.sum_nd = float(n @ d)
+        self.sum_nd2 = float(n @ (d * d))
+        self.N = float(n.sum())
+        self.dof = float((n - 1).sum())
+        self.total_ss = float(sum_sq.sum())
+        self.sum_inv_n = float((1.0 / n).sum()) if self.T else 0.0
+        # All order values (for the one-order-per-customer fallback variance).
+        ov = order_values - self.origin
+        self.sum_ov = float(ov.sum())
+        self.sum_ov2 = float(ov @ ov)
+
+        t = held_customer
+        self.t = t
+        nh = n[t]
+        self.n = nh
+        mh = means[t]
+        dh = d[t]
+        self.d_before = dh
+        v = held_values - self.origin
+        self.v = v  # held-out value relative to origin
+        self.value = held_values
+        step = (mh - held_values) / (nh - 1.0)
+        self.d_after = dh + step
+        self.mean_after = self.origin + self.d_after
+        # Squared deviation removed from the customer's sum of squares.
+        ss_t = sum_sq[t]
+        removed = (held_values - mh) ** 2 * nh / (nh - 1.0)
+        self.ss_removed = np.minimum(removed, ss_t)
+
+    # Sums after removing the held-out order (arrays over held-out orders).
+    def sum_d_after(self):
+        return self.sum_d + (self.d_after - self.d_before)
+
+    def unweighted_centre_after(self):
+        """Unweighted mean of the customers' averages, relative to origin."""
+        return self.sum_d_after() / self.T
+
+    def order_weighted_centre_after(self):
+        """Order-weighted mean (sum n m / sum n) relative to origin."""
+        return (self.sum_nd - self.v) / (self.N - 1.0)
+
+    def var_means_after(self):
+        """var(m, ddof=1) over customers after the removal."""
+        if self.T < 2:
+            return np.full(len(self.t), np.nan)
+        s1 = self.sum_d_after()
+        s2 = self.sum_d2 + self.d_after**2 - self.d_before**2
+        return np.maximum((s2 - s1 * s1 / self.T) / (self.T - 1.0), 0.0)
+
+    def sum_inv_n_after(self):
+        return self.sum_inv_n - 1.0 / self.n + 1.0 / (self.n - 1.0)
+
+    def classic_variance_after(self):
+        """Pooled within-customer variance sum SS / sum (n - 1) after removal,
+        with the same fallbacks as the full fit: when no customer has two
+        orders left, the sample variance of all remaining orders; when only
+        one order is left in the whole file, zero."""
+        dof = self.dof - 1.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pooled = (self.total_ss - self.ss_removed) / dof
+        if dof > 0:
+            return np.maximum(pooled, 0.0)
+        remaining = self.N - 1.0
+        if remaining < 2:
+            return np.zeros(len(self.t))
+        s1 = self.sum_ov - self.v
+        s2 = self.sum_ov2 - self.v**2
+        return np.maximum((s2 - s1 * s1 / remaining) / (remaining - 1.0), 0.0)
+
+
+def _order_count_groups(scale):
+    """Distinct order counts k with the number of customers and the sum of
+    (m - origin) in each group."""
+    ks, inverse = np.unique(scale.counts, return_inverse=True)
+    group_size = np.bincount(inverse, minlength=len(ks)).astype(np.float64)
+    group_sum = np.bincount(inverse, weights=scale.d, minlength=len(ks))
+    return ks, group_size, group_sum
+
+
+def _weighted_centre_after(scale, b):
+    """Centre c = sum g_s m_s / sum g_s with g_s = n_s / (n_s + b), after the
+    removal, for one b per held-out order (relative to origin).
+
+    b = 0 gives the unweighted mean, b = inf the order-weighted mean (the limit
+    of g_s proportional to n_s).  Cost O(N K), in chunks of held-out orders.
+    """
+    H = len(scale.t)
+    ks, group_size, group_sum = _order_count_groups(scale)
+    num = np.empty(H)
+    den = np.empty(H)
+    chunk = max(1, _CHUNK_CELLS // max(1, len(ks)))
+    finite_b = np.where(np.isfinite(b), b, 0.0)
+    for start in range(0, H, chunk):
+        stop = min(H, start + chunk)
+        bb = finite_b[start:stop, None]
+        weight = ks[None, :] / (ks[None, :] + bb)
+        num[start:stop] = weight @ group_sum
+        den[start:stop] = weight @ group_size
+    n = scale.n
+    g_old = n / (n + finite_b)
+    g_new = (n - 1.0) / (n - 1.0 + finite_b)
+    num += g_new * scale.d_after - g_old * scale.d_before
+    den += g_new - g_old
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = num / den
+    return np.where(np.isfinite(b), centre, scale.order_weighted_centre_after())
+
+
+# ---------------------------------------------------------------------------
+# Methods after the removal: estimate (relative to origin) and own weight g
+# ---------------------------------------------------------------------------
+
+
+def _own_weight(n_after, b):
+    """g = n / (n + b) = 1 / (1 + b / n) with the limits b = inf -> 0."""
+    with np.errstate(invalid="ignore"):
+        g = n_after / (n_after + b)
+    return np.where(np.isinf(b), 0.0, g)
+
+
+def _loo_plain(scale, sigma2):
+    return scale.d_after, np.ones(len(scale.t))
+
+
+def _loo_pooled(scale, sigma2):
+    return scale.order_weighted_centre_after(), np.zeros(len(scale.t))
+
+
+def _loo_james_stein(scale, sigma2):
+    """Positive-part James-Stein (Bock's form) towards the unweighted mean:
+    Q sigma2 = sum n_s (m_s - xi)^2 = sum n d^2 - 2 delta sum n d + delta^2 sum n
+    with d = m - origin and delta = xi - origin."""
+    H = len(scale.t)
+    if scale.T <= 3:
+        return scale.d_after, np.ones(H)
+    n = scale.n
+    delta = scale.unweighted_centre_after()
+    snd2 = scale.sum_nd2 - n * scale.d_before**2 + (n - 1.0) * scale.d_after**2
+    snd = scale.sum_nd - scale.v  # n d - (n-1) d' = x - origin
+    sn = scale.N - 1.0
+    spread = np.maximum(snd2 - 2.0 * delta * snd + delta * delta * sn, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = spread / sigma2
+        factor = np.maximum(0.0, 1.0 - (scale.T - 3.0) / q)
+    usable = (sigma2 > 0) & (spread > 0) & np.isfinite(q)
+    factor = np.where(usable, factor, 1.0)
+    estimate = delta + factor * (scale.d_after - delta)
+    return estimate, factor
+
+
+def _loo_weighted(scale, b):
+    """Shrink towards the weighted centre with own weight n/(n+b)."""
+    centre = _weighted_centre_after(scale, b)
+    g = _own_weight(scale.n - 1.0, b)
+    estimate = g * scale.d_after + (1.0 - g) * centre
+    return estimate, g
+
+
+def _mta_b(similarity, sigma2):
+    """b = a sigma2 so that g = 1/(1 + a sigma2/n) = n/(n + b); a = inf -> b = inf."""
+    with np.errstate(invalid="ignore"):
+        b = similarity * sigma2
+    # a = inf and sigma2 = 0: every average is equal; the estimate is that value.
+    return np.where(np.isnan(b), 0.0, b)
+
+
+def _loo_mta(scale, sigma2):
+    var_m = scale.var_means_after()
+    with np.errstate(divide="ignore"):
+        a = 1.0 / var_m
+    return _loo_weighted(scale, _mta_b(a, sigma2))
+
+
+def _loo_mta_minimax(scale, sigma2):
+    top, top_owner, top_second, bottom, bottom_owner, bottom_second = _extremes(scale.d)
+    t = scale.t
+    high_others = np.where(t == top_owner, top_second, top)
+    low_others = np.where(t == bottom_owner, bottom_second, bottom)
+    high = np.maximum(high_others, scale.d_after)
+    low = np.minimum(low_others, scale.d_after)
+    spread = high - low
+    with np.errstate(divide="ignore"):
+        a = 2.0 / (spread * spread)
+    return _loo_weighted(scale, _mta_b(a, sigma2))
+
+
+def _extremes(values):
+    """Largest and smallest value, the owner of each, and the extreme among
+    all the others (equal to the extreme itself when it is tied)."""
+    if len(values) < 2:
+        v = float(values[0]) if len(values) else np.nan
+        return v, 0, -np.inf, v, 0, np.inf
+    top_owner = int(np.argmax(values))
+    bottom_owner = int(np.argmin(values))
+    rest_top = np.delete(values, top_owner)
+    rest_bottom = np.delete(values, bottom_owner)
+    return (
+        float(values[top_owner]),
+        top_owner,
+        float(rest_top.max()),
+        float(values[bottom_owner]),
+        bottom_owner,
+        float(rest_bottom.min()),
+    )
+
+
+def _loo_empirical_bayes(scale, sigma2):
+    """Normal-normal with the moment tau2 = max(0, var(m) - mean(s)):
+    w_s = 1/(tau2 + sigma2/n_s) is proportional to n_s/(n_s + sigma2/tau2)."""
+    var_m = scale.var_means_after()
+    mean_s = sigma2 * scale.sum_inv_n_after() / scale.T
+    tau2 = np.maximum(0.0, var_m - mean_s)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        b = sigma2 / tau2
+    # tau2 = 0 -> b = inf (complete pooling); sigma2 = 0 -> b = 0 (own averages).
+    b = np.where(np.isnan(b), 0.0, b)
+    return _loo_weighted(scale, b)
+
+
+_LOO_METHODS = {
+    "plain": _loo_plain,
+    "pooled": _loo_pooled,
+    "james-stein": _loo_james_stein,
+    "mta": _loo_mta,
+    "mta-minimax": _loo_mta_minimax,
+    "empirical-bayes": _loo_empirical_bayes,
+}
+
+
+# ---------------------------------------------------------------------------
+# Leave-one-out predictions for one method x variance
+# ---------------------------------------------------------------------------
+
+
+@dataclass
+class _HeldOut:
+    """Every order of every customer with at least two orders."""
+
+    stats: pd.DataFrame
+    customer: np.ndarray  # position of the customer in stats
+    value: np.ndarray
+    money: _Scale
+    log: _Scale
+
+    @property
+    def past_orders(self):
+        return self.money.n - 1.0
+
+
+def _held_out_orders(orders, stats):
+    codes = stats.index.get_indexer(orders["customer"])
+    counts = stats["orders"].to_numpy()
+    values = orders["order_value"].to_numpy(dtype=np.float64)
+    keep = counts[codes] >= 2
+    t = codes[keep]
+    x = values[keep]
+    money = _Scale(
+        counts, stats["mean"].to_numpy(np.float64), stats["sum_sq_dev"].to_numpy(np.float64), values, t, x
+    )
+    log = _Scale(
+        counts,
+        stats["log_mean"].to_numpy(np.float64),
+        stats["log_sum_sq_dev"].to_numpy(np.float64),
+        np.log(values),
+        t,
+        np.log(x),
+    )
+    return _HeldOut(stats=stats, customer=t, value=x, money=money, log=log)
+
+
+@dataclass
+class _Predictions:
+    """Leave-one-out forecasts of the held-out orders for one method x variance."""
+
+    expected: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+    weight: np.ndarray
+
+
+def _next_order_range(expected, weight, n_after, sigma2_log, next_level):
+    """Next-order prediction range, lognormal with the shop's log spread:
+    median = expected exp(-sigma2_log/2), range median exp(+- z sqrt(sigma2_log + g sigma2_log/n))."""
+    z = _scipy_stats.norm.ppf(0.5 + next_level / 2.0)
+    spread = np.sqrt(sigma2_log + weight * sigma2_log / n_after)
+    median = expected * np.exp(-sigma2_log / 2.0)
+    return median * np.exp(-z * spread), median * np.exp(z * spread)
+
+
+def _loo_predict(held, method, variance, *, next_level=0.80):
+    """Leave-one-out expected order value for every held-out order."""
+    if method not in _LOO_METHODS or variance not in EXACT_VARIANCES:
+        raise ValueError(f"no fast leave-one-out for method {method!r} with variance {variance!r}")
+    sigma2_log = held.log.classic_variance_after()
+    n_after = held.money.n - 1.0
+    fit = _LOO_METHODS[method]
+    if variance == "classic":
+        sigma2 = held.money.classic_variance_after()
+        estimate, g = fit(held.money, sigma2)
+        expected = held.money.origin + estimate
+    else:  # log
+        estimate, g = fit(held.log, sigma2_log)
+        mu = held.log.origin + estimate
+        estimate_var = g * sigma2_log / n_after
+        expected = np.exp(mu + (sigma2_log + estimate_var) / 2.0)
+    low, high = _next_order_range(expected, g, n_after, sigma2_log, next_level)
+    return _Predictions(expected=expected, low=low, high=high, weight=g)
+
+
+# ---------------------------------------------------------------------------
+# Which method x variance pairs are evaluated
+# ---------------------------------------------------------------------------
+
+
+def _known_names():
+    """The method and variance names the forecasts accept (one list in the product)."""
+    try:
+        from forecasting.forecasts import METHODS
+    except ImportError:  # pragma: no cover - only while the forecasts module is missing
+        METHODS = EXACT_METHODS
+    try:
+        from forecasting.variance import VARIANCE_MODELS
+    except ImportError:  # pragma: no cover
+        VARIANCE_MODELS = EXACT_VARIANCES
+    return tuple(METHODS), tuple(VARIANCE_MODELS)
+
+
+def _parse_names(value, allowed, option):
+    """Accept None, a comma-separated string or a list; check every name."""
+    if value is None:
+        return None
+    if isinstance(value, str):
+        names = [part.strip() for part in value.split(",") if part.strip()]
+    else:
+        names = [str(part).strip() for part in value]
+    if not names:
+        raise OrderDataError(f"{option} is empty", value=value, fix=f"Give one or more of: {', '.join(allowed)}")
+    for name in names:
+        if name not in allowed:
+            raise OrderDataError(
+                f"unknown name for {option}", value=name, fix=f"Choose from: {', '.join(allowed)}"
+            )
+    return list(dict.fromkeys(names))
+
+
+def _combinations(methods, variances):
+    """(method, variance) pairs to evaluate, in the product's order."""
+    known_methods, known_variances = _known_names()
+    chosen_methods = _parse_names(methods, known_methods, "--methods")
+    chosen_variances = _parse_names(variances, known_variances, "--variances")
+    if chosen_methods is None:
+        chosen_methods = [m for m in known_methods if _has_fast_path(m)]
+    if chosen_variances is None:
+        chosen_variances = [v for v in known_variances if v in EXACT_VARIANCES]
+    pairs = []
+    for method in chosen_methods:
+        if not _has_fast_path(method):
+            raise OrderDataError(
+                f"method '{method}' has no leave-one-out evaluation yet",
+                value=method,
+                fix=f"Evaluate one of: {', '.join(m for m in known_methods if _has_fast_path(m))}",
+            )
+        for variance in chosen_variances:
+            if variance not in EXACT_VARIANCES:
+                raise OrderDataError(
+                    f"variance model '{variance}' has no leave-one-out evaluation yet",
+                    value=variance,
+                    fix=f"Evaluate one of: {', '.join(EXACT_VARIANCES)}",
+                )
+            pairs.append((method, variance))
+    return pairs
+
+
+def _has_fast_path(method):
+    return method in _LOO_METHODS
+
+
+# ---------------------------------------------------------------------------
+# Scoring helpers: sums per customer, bootstrap, breakdowns
+# ---------------------------------------------------------------------------
+
+
+def _reduction_pct(sse_plain, sse_method):
+    """100 (SSE_plain - SSE_method) / SSE_plain; positive = better than plain averages."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return 100.0 * (sse_plain - sse_method) / sse_plain
+
+
+def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95):
+    """Percentile interval of every error reduction, resampling customers.
+
+    ``per_customer_methods`` is customers x methods of summed squared errors.
+    Each resample draws customers with replacement (multinomial counts), so the
+    resampled SSE is counts @ per-customer SSE; the counts are drawn in blocks
+    to bound memory.
+    """
+    n_methods = per_customer_methods.shape[1]
+    T = len(per_customer_plain)
+    if resamples <= 0 or T < 2:
+        nan = np.full(n_methods, np.nan)
+        return nan, nan
+    rng = np.random.default_rng(seed)
+    block = max(1, min(resamples, _CHUNK_CELLS // (4 * T) or 1))
+    table = np.column_stack([per_customer_plain, per_customer_methods])
+    draws = []
+    done = 0
+    p = np.full(T, 1.0 / T)
+    while done < resamples:
+        size = min(block, resamples - done)
+        counts = rng.multinomial(T, p, size=size).astype(np.float64)
+        draws.append(counts @ table)
+        done += size
+    sums = np.vstack(draws)
+    reductions = _reduction_pct(sums[:, :1], sums[:, 1:])
+    tail = (1.0 - level) / 2.0 * 100.0
+    low = np.nanpercentile(reductions, tail, axis=0)
+    high = np.nanpercentile(reductions, 100.0 - tail, axis=0)
+    return low, high
+
+
+def _past_order_labels(past):
+    labels = np.empty(len(past), dtype=object)
+    for low, high, label in PAST_ORDER_BINS:
+        labels[(past >= low) & (past <= high)] = label
+    return labels
+
+
+def _breakdown(kind, group_name, groups, plain_sq, method_sq, pairs, order=None):
+    """SSE and error reduction within each group of scored orders."""
+    rows = []
+    keys = order if order is not None else sorted(pd.unique(groups))
+    for key in keys:
+        mask = groups == key
+        count = int(mask.sum())
+        if count == 0:
+            continue
+        sse_plain = float(plain_sq[mask].sum())
+        for (method, variance), sq in zip(pairs, method_sq):
+            sse = float(sq[mask].sum())
+            rows.append(
+                {
+                    "evaluation": kind,
+                    "method": method,
+                    "variance": variance,
+                    group_name: key,
+                    "held_out": count,
+                    "sse": sse,
+                    "sse_plain": sse_plain,
+                    "error_reduction_pct": _reduction_pct(sse_plain, sse),
+                }
+            )
+    return rows
+
+
+@dataclass
+class _Scored:
+    """Squared errors of one evaluation (leave-one-out or backtest)."""
+
+    kind: str
+    pairs: list
+    customer: np.ndarray  # customer position of every scored order
+    past_orders: np.ndarray
+    segment: np.ndarray | None
+    plain_sq: np.ndarray
+    method_sq: list
+    inside: list  # per pair: scored order inside the next-order range
+
+
+def _summarise(scored, *, resamples, seed):
+    """Results table (one row per method x variance) with bootstrap intervals."""
+    codes, _ = pd.factorize(scored.customer)
+    n_customers = int(codes.max()) + 1 if len(codes) else 0
+    per_plain = np.bincount(codes, weights=scored.plain_sq, minlength=n_customers)
+    per_methods = np.column_stack(
+        [np.bincount(codes, weights=sq, minlength=n_customers) for sq in scored.method_sq]
+    ) if scored.method_sq else np.zeros((n_customers, 0))
+    ci_low, ci_high = _bootstrap_intervals(per_plain, per_methods, resamples=resamples, seed=seed)
+    sse_plain = float(scored.plain_sq.sum())
+    rows = []
+    for i, ((method, variance), sq, inside) in enumerate(zip(scored.pairs, scored.method_sq, scored.inside)):
+        sse = float(sq.sum())
+        rows.append(
+            {
+                "method": method,
+                "variance": variance,
+                "sse": sse,
+                "error_reduction_pct": _reduction_pct(sse_plain, sse) if len(sq) else np.nan,
+                "ci_low": float(ci_low[i]),
+                "ci_high": float(ci_high[i]),
+                "coverage": float(np.mean(inside)) if len(inside) else np.nan,
+            }
+        )
+    return pd.DataFrame(rows, columns=_RESULT_COLUMNS)
+
+
+def _breakdowns(scored):
+    past = _past_order_labels(scored.past_orders)
+    by_past = _breakdown(
+        scored.kind, "past_orders", past, scored.plain_sq, scored.method_sq, scored.pairs,
+        order=[label for _, _, label in PAST_ORDER_BINS],
+    )
+    by_segment = []
+    if scored.segment is not None:
+        by_segment = _breakdown(
+            scored.kind, "segment", scored.segment.astype(str), scored.plain_sq, scored.method_sq, scored.pairs
+        )
+    return by_past, by_segment
+
+
+# ---------------------------------------------------------------------------
+# Leave-one-out and backtest
+# ---------------------------------------------------------------------------
+
+
+def _leave_one_out(orders, stats, pairs, *, next_level=0.80):
+    held = _held_out_orders(orders, stats)
+    x = held.value
+    plain = held.money.mean_after
+    method_sq, inside = [], []
+    for method, variance in pairs:
+        prediction = _loo_predict(held, method, variance, next_level=next_level)
+        method_sq.append((prediction.expected - x) ** 2)
+        inside.append((x >= prediction.low) & (x <= prediction.high))
+    segment = stats["segment"].to_numpy()[held.customer] if "segment" in stats.columns else None
+    return _Scored(
+        kind="leave-one-out",
+        pairs=pairs,
+        customer=held.customer,
+        past_orders=held.past_orders,
+        segment=segment,
+        plain_sq=(plain - x) ** 2,
+        method_sq=method_sq,
+        inside=inside,
+    )
+
+
+def default_cutoff(order_dates):
+    """The date that leaves the last 20% of orders on or after it.
+
+    Parameters
+    ----------
+    order_dates : array-like of datetime64
+        One date per order.
+
+    Returns
+    -------
+    pandas.Timestamp
+        Orders dated strictly before it are the past; orders on or after it are
+        scored.  With several orders on the cut-off date a little more than 20%
+        of orders can fall after it.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> default_cutoff(pd.to_datetime([f"2025-01-{d:02d}" for d in range(1, 11)]))
+    Timestamp('2025-01-09 00:00:00')
+    """
+    dates = np.sort(pd.to_datetime(pd.Series(order_dates)).to_numpy())
+    if len(dates) == 0:
+        raise OrderDataError("there are no orders to split by date")
+    position = min(len(dates) - 1, int(np.floor(0.8 * len(dates))))
+    return pd.Timestamp(dates[position])
+
+
+def _forecast(stats, method, variance, orders, next_level):
+    from forecasting.forecasts import forecast_customers
+
+    return forecast_customers(stats, method=method, variance=variance, orders=orders, next_level=next_level)
+
+
+def _backtest(orders, pairs, cutoff, *, next_level=0.80):
+    """Fit on orders before the cut-off; score each customer's first order after it."""
+    notes = []
+    if "order_date" not in orders.columns or orders["order_date"].isna().all():
+        return None, cutoff, ["no order dates, so no backtest"]
+    if cutoff is None:
+        cutoff = default_cutoff(orders["order_date"])
+    else:
+        try:
+            cutoff = pd.Timestamp(cutoff)
+        except (TypeError, ValueError):
+            raise OrderDataError("the cut-off is not a date", value=cutoff, fix="Give --cutoff as YYYY-MM-DD")
+    before_mask = (orders["order_date"] < cutoff).to_numpy()
+    before = orders.loc[before_mask]
+    after = orders.loc[~before_mask]
+    if len(before) == 0 or len(after) == 0:
+        return None, cutoff, [f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"]
+    stats_before = customer_statistics(before)
+    first_after = after.sort_values("order_date", kind="stable").groupby("customer", sort=False).first()
+    customers = stats_before.index.intersection(first_after.index)
+    if len(customers) == 0:
+        return None, cutoff, ["no customer ordered both before and after the cut-off, so no backtest"]
+    position = stats_before.index.get_indexer(customers)
+    x = first_after.loc[customers, "order_value"].to_numpy(np.float64)
+    plain = stats_before["mean"].to_numpy()[position]
+    method_sq, inside, kept = [], [], []
+    for method, variance in pairs:
+        try:
+            forecast = _forecast(stats_before, method, variance, before, next_level)
+        except OrderDataError as problem:
+            notes.append(f"backtest of {method} with {variance} variance skipped: {problem}")
+            continue
+        expected = forecast["expected_next_order"].to_numpy(np.float64)[position]
+        low = forecast["next_order_low"].to_numpy(np.float64)[position]
+        high = forecast["next_order_high"].to_numpy(np.float64)[position]
+        method_sq.append((expected - x) ** 2)
+        inside.append((x >= low) & (x <= high))
+        kept.append((method, variance))
+    segment = stats_before["segment"].to_numpy()[position] if "segment" in stats_before.columns else None
+    scored = _Scored(
+        kind="backtest",
+        pairs=kept,
+        customer=position,
+        past_orders=stats_before["orders"].to_numpy(np.float64)[position],
+        segment=segment,
+        plain_sq=(plain - x) ** 2,
+        method_sq=method_sq,
+        inside=inside,
+    )
+    return scored, cutoff, notes
+
+
+# ---------------------------------------------------------------------------
+# Automatic choice
+# ---------------------------------------------------------------------------
+
+
+def _choose(results):
+    """Lowest leave-one-out SSE among the methods, never one that loses to plain averages."""
+    candidates = results[results["method"] != "plain"].dropna(subset=["sse"])
+    candidates = candidates.sort_values("sse", kind="stable")
+    plain_rows = results[(results["method"] == "plain") & (results["variance"] == "classic")]
+    if len(candidates) == 0:
+        return {
+            "method": "plain",
+            "variance": "classic",
+            "runner_up": None,
+            "margin_pct": float("nan"),
+            "error_reduction_pct": 0.0,
+            "fell_back_to_plain": True,
+            "reason": "nothing to compare: no customer has two orders, so plain averages are used",
+        }
+    best = candidates.iloc[0]
+    runner = candidates.iloc[1] if len(candidates) > 1 else None
+    best_gain = float(best["error_reduction_pct"])
+    if not best_gain > 0:
+        return {
+            "method": "plain",
+            "variance": "classic",
+            "runner_up": {"method": str(best["method"]), "variance": str(best["variance"]),
+                          "error_reduction_pct": best_gain},
+            "margin_pct": -best_gain,
+            "error_reduction_pct": 0.0,
+            "fell_back_to_plain": True,
+            "reason": (
+                f"no method beat plain customer averages in leave-one-out (best: {best['method']} with "
+                f"{best['variance']} variance, {best_gain:+.1f}%), so plain averages are used"
+            ),
+        }
+    runner_gain = float(runner["error_reduction_pct"]) if runner is not None else 0.0
+    runner_up = (
+        {"method": str(runner["method"]), "variance": str(runner["variance"]), "error_reduction_pct": runner_gain}
+        if runner is not None
+        else {"method": "plain", "variance": "classic", "error_reduction_pct": 0.0}
+    )
+    del plain_rows
+    return {
+        "method": str(best["method"]),
+        "variance": str(best["variance"]),
+        "runner_up": runner_up,
+        "margin_pct": best_gain - runner_gain,
+        "error_reduction_pct": best_gain,
+        "fell_back_to_plain": False,
+        "reason": (
+            f"{best['method']} with {best['variance']} variance had the smallest leave-one-out error, "
+            f"{best_gain:.1f}% below plain averages, {best_gain - runner_gain:.1f} points ahead of "
+            f"{runner_up['method']} with {runner_up['variance']} variance"
+        ),
+    }
+
+
+def choose_method(orders, stats=None, *, methods=None, variances=None):
+    """Pick the method and variance model with the lowest leave-one-out error.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders (``customer``, ``order_value``, ...).
+    stats : pandas.DataFrame, optional
+        ``customer_statistics(orders)`` if already computed.
+    methods, variances : list of str or comma-separated str, optional
+        Candidates (default: every pair with a fast leave-one-out).
+
+    Returns
+    -------
+    dict
+        ``method``, ``variance``, ``runner_up`` (dict with ``method``,
+        ``variance``, ``error_reduction_pct``), ``margin_pct`` (how many
+        percentage points of the plain-average error the choice is ahead of
+        the runner-up), ``error_reduction_pct``, ``fell_back_to_plain`` and a
+        plain-words ``reason``.
+
+    Notes
+    -----
+    A method that does not beat plain customer averages is never chosen:
+    then the choice is ``plain`` with ``classic`` variance and the reason says so.
+    """
+    if orders is None:
+        raise OrderDataError(
+            "the automatic choice of method needs the order-level data",
+            fix="Pass orders=... or choose a method with --method",
+        )
+    if stats is None:
+        stats = customer_statistics(orders)
+    pairs = _combinations(methods, variances)
+    if ("plain", "classic") not in pairs:
+        pairs = [("plain", "classic")] + pairs
+    scored = _leave_one_out(orders, stats, pairs)
+    results = _summarise(scored, resamples=0, seed=0)
+    return _choose(results)
+
+
+# ---------------------------------------------------------------------------
+# Public entry point
+# ---------------------------------------------------------------------------
+
+
+@dataclass
+class Evaluation:
+    """Everything :func:`evaluate_methods` found.
+
+    Attributes
+    ----------
+    leave_one_out, backtest : pandas.DataFrame
+        One row per method x variance: ``method, variance, sse,
+        error_reduction_pct, ci_low, ci_high, coverage`` (``backtest`` is empty
+        when there are no dates or no customer on both sides of the cut-off).
+    by_past_orders, by_segment : pandas.DataFrame
+        The same comparison within groups of scored orders (column
+        ``evaluation`` says which evaluation).
+    chosen : dict
+        The automatic choice (see :func:`choose_method`).
+    orders, customers, held_out : int
+        Orders and customers in the data; orders held out in leave-one-out.
+    """
+
+    leave_one_out: pd.DataFrame
+    backtest: pd.DataFrame
+    by_past_orders: pd.DataFrame
+    by_segment: pd.DataFrame
+    chosen: dict
+    orders: int
+    customers: int
+    held_out: int
+    backtest_scored: int = 0
+    cutoff: pd.Timestamp | None = None
+    notes: list = field(default_factory=list)
+
+
+def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, bootstrap=500, seed=0,
+                     next_level=0.80):
+    """Compare every method x variance model with plain customer averages.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders: ``customer``, ``order_value`` and (for the backtest)
+        ``order_date``; ``segment`` when present.  Not changed.
+    methods, variances : list of str or comma-separated str, optional
+        What to evaluate (default: every pair with a fast leave-one-out).
+    cutoff : date-like, optional
+        Backtest cut-off (default :func:`default_cutoff`).
+    bootstrap : int
+        Resamples of customers for the 95% intervals (0 to skip).
+    seed : int
+        Seed of the bootstrap.
+    next_level : float
+        Level of the next-order range whose coverage is reported.
+
+    Returns
+    -------
+    Evaluation
+
+    Notes
+    -----
+    Leave-one-out holds out every order of every customer with at least two
+    orders, refits everything on the rest (pooled variance, the amount of
+    shrinkage, the centre) and predicts that customer's expected order value;
+    the plain baseline is the mean of the customer's remaining orders.
+    ``error_reduction_pct = 100 (SSE_plain - SSE_method) / SSE_plain``.
+    The fast computation is exact (see the module docstring).
+
+    The bootstrap resamples customers, not orders, because one customer's
+    orders are not independent of each other; intervals are percentile
+    intervals (Efron and Tibshirani 1993, ch. 13).
+
+    References
+    ----------
+    Efron, B. and Tibshirani, R. (1993). *An Introduction to the Bootstrap*.
+    Chapman & Hall.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> orders = pd.DataFrame({
+    ...     "customer": ["a", "a", "a", "b", "b", "c", "c", "c", "d", "d"],
+    ...     "order_value": [20.0, 30.0, 25.0, 80.0, 60.0, 40.0, 45.0, 35.0, 10.0, 30.0],
+    ...     "order_date": pd.date_range("2025-01-01", periods=10, freq="7D")})
+    >>> result = evaluate_methods(orders, methods="plain,mta", variances="classic", bootstrap=0)
+    >>> result.held_out
+    10
+    >>> result.leave_one_out[["method", "variance"]].values.tolist()
+    [['plain', 'classic'], ['mta', 'classic']]
+    """
+    if not isinstance(bootstrap, (int, np.integer)) or bootstrap < 0:
+        raise OrderDataError("bootstrap must be a whole number of resamples, 0 or more", value=bootstrap,
+                             fix="Use e.g. --bootstrap 500")
+    if not 0 < next_level < 1:
+        raise OrderDataError("next_level must be between 0 and 1", value=next_level)
+    pairs = _combinations(methods, variances)
+    stats = customer_statistics(orders)
+    notes = []
+    scored = _leave_one_out(orders, stats, pairs, next_level=next_level)
+    if len(scored.plain_sq) == 0:
+        notes.append("no customer has two or more orders, so there is nothing to hold out")
+    loo = _summarise(scored, resamples=bootstrap, seed=seed)
+    by_past, by_segment = _breakdowns(scored)
+
+    backtest_scored, cutoff_used, backtest_notes = _backtest(orders, pairs, cutoff, next_level=next_level)
+    notes.extend(backtest_notes)
+    if backtest_scored is not None:
+        backtest = _summarise(backtest_scored, resamples=bootstrap, seed=seed)
+        more_past, more_segment = _breakdowns(backtest_scored)
+        by_past += more_past
+        by_segment += more_segment
+        n_backtest = len(backtest_scored.plain_sq)
+    else:
+        backtest = pd.DataFrame(columns=_RESULT_COLUMNS)
+        n_backtest = 0
+
+    choice_pairs = pairs if ("plain", "classic") in pairs else [("plain", "classic")] + pairs
+    if choice_pairs == pairs:
+        chosen = _choose(loo)
+    else:
+        chosen = _choose(_summarise(_leave_one_out(orders, stats, choice_pairs), resamples=0, seed=0))
+    return Evaluation(
+        leave_one_out=loo,
+        backtest=backtest,
+        by_past_orders=pd.DataFrame(by_past),
+        by_segment=pd.DataFrame(by_segment),
+        chosen=chosen,
+        orders=int(len(orders)),
+        customers=int(len(stats)),
+        held_out=int(len(scored.plain_sq)),
+        backtest_scored=n_backtest,
+        cutoff=cutoff_used,
+        notes=notes,
+    )
