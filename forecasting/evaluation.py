@@ -461,7 +461,7 @@ def _has_fast_path(method):
 def _reduction_pct(sse_plain, sse_method):
     """100 (SSE_plain - SSE_method) / SSE_plain; positive = better than plain averages."""
     with np.errstate(invalid="ignore", divide="ignore"):
-        return 100.0 * (sse_plain - sse_method) / sse_plain
+        return 100.0 * (np.float64(sse_plain) - sse_method) / np.float64(sse_plain)
 
 
 def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95):

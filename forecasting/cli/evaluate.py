@@ -1,0 +1,85 @@
+"""``evaluate``: how much each method beats plain customer averages on the user's own orders."""
+
+from __future__ import annotations
+
+import math
+
+from . import EXIT_OK, add_column_options, load_from_args, print_json
+from ..errors import OrderDataError
+from ..evaluation import evaluate_methods
+
+_RESULT_FIELDS = ("method", "variance", "sse", "error_reduction_pct", "ci_low", "ci_high")
+
+
+def add_arguments(parser) -> None:
+    add_column_options(parser)
+    parser.add_argument("--methods", metavar="A,B,...", help="methods to compare (default: all)")
+    parser.add_argument("--variances", metavar="X,Y,...", help="variance models to compare (default: all)")
+    parser.add_argument("--cutoff", metavar="YYYY-MM-DD",
+                        help="backtest cut-off date (default: the date that leaves the last 20%% of orders after it)")
+    parser.add_argument("--bootstrap", metavar="N", type=int, default=500,
+                        help="resamples of customers for the 95%% intervals (default 500, 0 to skip)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
+
+
+def _number(value):
+    """A float for JSON, or None when it is not a number (JSON has no NaN)."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _records(table):
+    return [
+        {name: (str(row[name]) if name in ("method", "variance") else _number(row[name])) for name in _RESULT_FIELDS}
+        for _, row in table.iterrows()
+    ]
+
+
+def _format_pct(value):
+    return "    -" if value is None or not math.isfinite(value) else f"{value:+6.1f}%"
+
+
+def _print_table(title, table):
+    print(title)
+    if len(table) == 0:
+        print("  (nothing to show)")
+        return
+    print(f"  {'method':<16} {'variance':<13} {'error cut':>9}   {'95% interval':<19} {'in 80% range':>12}")
+    for _, row in table.iterrows():
+        interval = f"{_format_pct(row['ci_low'])} to {_format_pct(row['ci_high'])}"
+        coverage = row["coverage"]
+        shown = "-" if not math.isfinite(coverage) else f"{100 * coverage:.0f}%"
+        print(f"  {row['method']:<16} {row['variance']:<13} {_format_pct(row['error_reduction_pct']):>9}"
+              f"   {interval:<19} {shown:>12}")
+
+
+def run(args) -> int:
+    if args.bootstrap < 0:
+        raise OrderDataError("--bootstrap must be 0 or more", value=args.bootstrap)
+    result = load_from_args(args)
+    found = evaluate_methods(result.orders, methods=args.methods, variances=args.variances,
+                             cutoff=args.cutoff, bootstrap=args.bootstrap, seed=args.seed)
+    if args.json:
+        print_json({
+            "orders": found.orders,
+            "customers": found.customers,
+            "held_out": found.held_out,
+            "results": _records(found.leave_one_out),
+            "backtest": _records(found.backtest),
+            "chosen": {"method": found.chosen["method"], "variance": found.chosen["variance"]},
+        })
+        return EXIT_OK
+    print(f"{found.orders} orders from {found.customers} customers; "
+          f"{found.held_out} orders held out one at a time")
+    print("error cut = how much smaller the squared forecast error is than with each customer's plain average")
+    _print_table("Leave-one-out (every order of a repeat customer held out in turn):", found.leave_one_out)
+    if found.cutoff is not None:
+        _print_table(f"Next-order backtest (fitted before {found.cutoff.date()}, "
+                     f"{found.backtest_scored} customers scored on their next order):", found.backtest)
+    print(f"Chosen: {found.chosen['method']} with {found.chosen['variance']} variance: {found.chosen['reason']}.")
+    for note in found.notes:
+        print(f"note: {note}")
+    return EXIT_OK
