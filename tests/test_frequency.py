@@ -1,0 +1,404 @@
+"""Tests for the BG/NBD order-frequency model (forecasting.frequency).
+
+External references used here:
+- Fader, Hardie and Lee (2005), Marketing Science 24(2):275-284: the model
+  definition (Poisson orders while active, stop with probability p after each
+  repeat order, Gamma(r, alpha) rates, Beta(a, b) stop chances), the
+  likelihood (eq. 6), E[X(t)] (eq. 7), the conditional expectation (eq. 10) and
+  the chance of being active (eq. 11); the CDNOW estimates r = 0.243,
+  alpha = 4.414, a = 0.793, b = 2.426 (weeks).
+- scipy.integrate (dblquad/quad) integrating the model over lambda and p.
+- mpmath.hyp2f1 for the printed, untransformed formulas.
+- Monte Carlo simulation of the model (numpy, seeded).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate, optimize
+
+from forecasting.errors import OrderDataError
+from forecasting.frequency import (
+    HISTORY_COLUMNS,
+    chance_still_active,
+    expected_new_customer_orders,
+    expected_orders_ahead,
+    fit_order_frequency,
+    frequency_forecast,
+    frequency_log_likelihood,
+    frequency_log_likelihood_gradient,
+    repeat_history,
+)
+
+# CDNOW estimates in weeks (Fader, Hardie and Lee 2005, section 4).
+CDNOW_WEEKS = (0.243, 4.414, 0.793, 2.426)
+# Two parameter sets in days used throughout; the second has a < 1 and r > 1.
+PARAMS_A = (0.8, 40.0, 1.5, 4.0)
+PARAMS_B = (2.5, 100.0, 0.7, 2.0)
+
+
+def simulate_histories(params, customers, seed, *, known_low=60.0, known_high=730.0):
+    """Simulate repeat histories straight from the model's story.
+
+    Each customer orders at Poisson rate lambda ~ Gamma(r, rate alpha) and
+    stops after a Geometric(p) number of repeat orders, p ~ Beta(a, b). Seen
+    for T days, the customer shows x = min(Poisson(lambda T), stop count)
+    repeat orders; given n Poisson arrivals on [0, T], the x-th arrival is
+    T times the x-th of n uniform order statistics, i.e. T * Beta(x, n - x + 1).
+    """
+    r, alpha, a, b = params
+    rng = np.random.default_rng(seed)
+    rate = rng.gamma(r, 1.0 / alpha, customers)
+    stop = rng.beta(a, b, customers)
+    known = rng.uniform(known_low, known_high, customers)
+    arrivals = rng.poisson(rate * known)
+    stop_count = rng.geometric(stop)
+    repeat = np.minimum(arrivals, stop_count)
+    to_last = np.where(repeat > 0, known * rng.beta(np.maximum(repeat, 1), arrivals - repeat + 1), 0.0)
+    return pd.DataFrame({"repeat_orders": repeat, "days_to_last_order": to_last, "days_known": known})
+
+
+def likelihood_by_integration(params, x, t_x, age):
+    """The model's likelihood integrated numerically over lambda and p (scipy dblquad)."""
+    r, alpha, a, b = params
+    log_gamma_norm = r * math.log(alpha) - math.lgamma(r)
+    log_beta_norm = math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+    def integrand(p, lam):
+        if lam <= 0 or p <= 0 or p >= 1:
+            return 0.0
+        # Still active at T, or stopped right after the x-th repeat order.
+        value = (1 - p) ** x * math.exp(x * math.log(lam) - lam * age)
+        if x > 0:
+            value += p * (1 - p) ** (x - 1) * math.exp(x * math.log(lam) - lam * t_x)
+        prior = math.exp(log_gamma_norm + (r - 1) * math.log(lam) - alpha * lam
+                         + log_beta_norm + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+        return value * prior
+
+    value, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+    return value
+
+
+def new_customer_orders_printed(params, t):
+    """Eq. 7 exactly as printed, with mpmath's hypergeometric function."""
+    mpmath = pytest.importorskip("mpmath")
+    r, alpha, a, b = (mpmath.mpf(v) for v in params)
+    t = mpmath.mpf(t)
+    value = (a + b - 1) / (a - 1) * (1 - (alpha / (alpha + t)) ** r * mpmath.hyp2f1(r, b, a + b - 1, t / (alpha + t)))
+    return float(value)
+
+
+def orders_ahead_printed(params, x, t_x, age, t):
+    """Eq. 10 exactly as printed, with mpmath's hypergeometric function."""
+    mpmath = pytest.importorskip("mpmath")
+    r, alpha, a, b = (mpmath.mpf(v) for v in params)
+    x, t_x, age, t = (mpmath.mpf(v) for v in (x, t_x, age, t))
+    top = (a + b + x - 1) / (a - 1) * (
+        1 - ((alpha + age) / (alpha + age + t)) ** (r + x)
+        * mpmath.hyp2f1(r + x, b + x, a + b + x - 1, t / (alpha + age + t))
+    )
+    bottom = 1 + (a / (b + x - 1)) * ((alpha + age) / (alpha + t_x)) ** (r + x) if x > 0 else 1
+    return float(top / bottom)
+
+
+def future_orders_monte_carlo(rate, stop, horizon, rng):
+    """Orders in a window for customers active at its start: min(Poisson(rate h), Geometric(stop))."""
+    return np.minimum(rng.poisson(rate * horizon), rng.geometric(stop))
+
+
+class TestRepeatHistory:
+    def make_stats(self):
+        # Deliberately not sorted by date.
+        return pd.DataFrame(
+            {
+                "orders": [1, 4, 2],
+                "first_order": pd.to_datetime(["2025-06-01 12:00", "2025-01-01 00:00", "2025-03-01 00:00"]),
+                "last_order": pd.to_datetime(["2025-06-01 12:00", "2025-05-31 00:00", "2025-03-02 06:00"]),
+            },
+            index=pd.Index(["c", "a", "b"], name="customer"),
+        )
+
+    def test_counts_and_days(self):
+        history = repeat_history(self.make_stats(), as_of="2025-07-01")
+        assert list(history.columns) == HISTORY_COLUMNS
+        assert list(history.index) == ["c", "a", "b"]
+        assert history["repeat_orders"].tolist() == [0, 3, 1]
+        # Days counted by hand on a calendar.
+        np.testing.assert_allclose(history["days_to_last_order"], [0.0, 150.0, 1.25])
+        np.testing.assert_allclose(history["days_known"], [29.5, 181.0, 122.0])
+
+    def test_default_as_of_is_last_order(self):
+        history = repeat_history(self.make_stats())
+        # Latest order is 2025-06-01 12:00.
+        np.testing.assert_allclose(history["days_known"], [0.0, 151.5, 92.5])
+
+    def test_as_of_before_last_order_is_refused(self):
+        with pytest.raises(OrderDataError, match="earlier than the last order"):
+            repeat_history(self.make_stats(), as_of="2025-05-01")
+
+    def test_bad_date_is_refused(self):
+        with pytest.raises(OrderDataError, match="not a date"):
+            repeat_history(self.make_stats(), as_of="soon")
+
+    def test_input_untouched(self):
+        stats = self.make_stats()
+        before = stats.copy()
+        repeat_history(stats, as_of="2025-07-01")
+        pd.testing.assert_frame_equal(stats, before)
+
+
+class TestFrequencyLogLikelihood:
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B])
+    @pytest.mark.parametrize("x, t_x, age", [(0, 0.0, 200.0), (1, 50.0, 300.0), (4, 120.0, 150.0), (7, 600.0, 700.0)])
+    def test_equals_numerical_integration_of_the_model(self, params, x, t_x, age):
+        # Reference: scipy.integrate.dblquad over lambda in (0, inf) and p in (0, 1).
+        expected = math.log(likelihood_by_integration(params, x, t_x, age))
+        got = frequency_log_likelihood(params, [x], [t_x], [age])[0]
+        assert got == pytest.approx(expected, rel=1e-8, abs=1e-8)
+
+    def test_gradient_matches_finite_differences(self):
+        # Reference: scipy.optimize.approx_fprime on the summed log-likelihood.
+        history = simulate_histories(PARAMS_A, 300, seed=3)
+        args = [history[c].to_numpy() for c in HISTORY_COLUMNS]
+        point = np.array([0.9, 35.0, 1.3, 3.5])
+
+        def total(p):
+            return frequency_log_likelihood(p, *args).sum()
+
+        numeric = optimize.approx_fprime(point, total, epsilon=1e-6 * point)
+        analytic = frequency_log_likelihood_gradient(point, *args)
+        np.testing.assert_allclose(analytic, numeric, rtol=1e-4)
+
+    def test_extreme_histories_stay_finite(self):
+        values = frequency_log_likelihood(PARAMS_B, [0, 500, 3, 2000], [0.0, 5000.0, 0.0, 1e5], [0.0, 5000.0, 1e6, 1e5])
+        assert np.all(np.isfinite(values))
+        # A brand-new customer seen for zero days has likelihood 1.
+        assert values[0] == pytest.approx(0.0, abs=1e-12)
+
+
+class TestFitOrderFrequency:
+    def test_recovers_simulated_parameters(self):
+        # Reference: simulation from the model's own story with known parameters
+        # (the CDNOW estimates of Fader, Hardie and Lee 2005, alpha turned into days).
+        true = (CDNOW_WEEKS[0], CDNOW_WEEKS[1] * 7, CDNOW_WEEKS[2], CDNOW_WEEKS[3])
+        history = simulate_histories(true, 20000, seed=11)
+        fit = fit_order_frequency(history)
+        assert fit.converged
+        got = np.array(fit.params)
+        # Tolerance: within 4 standard errors and within 25% of the truth.
+        assert np.all(np.abs(got - true) < 4 * fit.standard_errors)
+        np.testing.assert_allclose(got, true, rtol=0.25)
+
+    def test_standard_errors_match_spread_over_repeated_samples(self):
+        # Reference: the spread of estimates over 40 independent simulated shops.
+        # The inverse-Hessian errors should describe it; z-scores should have
+        # standard deviation near 1 (tolerance 0.6-1.5 for 40 replicates).
+        z_scores = []
+        for seed in range(40):
+            fit = fit_order_frequency(simulate_histories(PARAMS_A, 2000, seed=1000 + seed))
+            errors = np.sqrt(np.diag(fit.covariance))
+            z_scores.append((np.log(fit.params) - np.log(PARAMS_A)) / errors)
+        spread = np.std(z_scores, axis=0)
+        assert np.all((spread > 0.6) & (spread < 1.5)), spread
+
+    def test_hessian_matches_second_differences_of_the_likelihood(self):
+        # Slow twin: second differences of the log-likelihood values themselves.
+        history = simulate_histories(PARAMS_B, 3000, seed=5)
+        fit = fit_order_frequency(history)
+        args = [history[c].to_numpy() for c in HISTORY_COLUMNS]
+        centre = np.log(fit.params)
+        step = 1e-3
+
+        def nll(logs):
+            return -frequency_log_likelihood(np.exp(logs), *args).sum()
+
+        hessian = np.empty((4, 4))
+        for i in range(4):
+            for j in range(4):
+                ei, ej = np.eye(4)[i] * step, np.eye(4)[j] * step
+                hessian[i, j] = (nll(centre + ei + ej) - nll(centre + ei - ej)
+                                 - nll(centre - ei + ej) + nll(centre - ei - ej)) / (4 * step * step)
+        np.testing.assert_allclose(np.linalg.inv(fit.covariance), hessian, rtol=2e-3, atol=1e-2)
+
+    def test_same_answer_from_another_start(self):
+        history = simulate_histories(PARAMS_A, 3000, seed=8)
+        default = fit_order_frequency(history)
+        other = fit_order_frequency(history, start=(3.0, 5.0, 0.3, 10.0))
+        np.testing.assert_allclose(other.params, default.params, rtol=1e-4)
+        assert other.log_likelihood == pytest.approx(default.log_likelihood, abs=1e-6)
+
+    def test_no_repeat_orders_is_refused(self):
+        history = pd.DataFrame({"repeat_orders": [0, 0], "days_to_last_order": [0.0, 0.0], "days_known": [5.0, 9.0]})
+        with pytest.raises(OrderDataError, match="more than once"):
+            fit_order_frequency(history)
+
+    def test_impossible_history_is_refused(self):
+        history = pd.DataFrame({"repeat_orders": [2, 1], "days_to_last_order": [50.0, 30.0], "days_known": [40.0, 90.0]})
+        with pytest.raises(OrderDataError, match="outside their known time"):
+            fit_order_frequency(history)
+
+
+class TestExpectedNewCustomerOrders:
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
+    @pytest.mark.parametrize("t", [0.5, 30.0, 365.0, 5000.0])
+    def test_matches_printed_formula(self, params, t):
+        # Reference: eq. 7 as printed, evaluated with mpmath.hyp2f1.
+        assert expected_new_customer_orders(params, t) == pytest.approx(new_customer_orders_printed(params, t), rel=1e-10)
+
+    def test_matches_integral_over_rates_and_stop_chances(self):
+        # Reference: E[X(t) | lambda, p] = (1 - exp(-lambda p t)) / p integrated over
+        # the Gamma and Beta mixing distributions with scipy.integrate.dblquad.
+        # a = 1 exactly is included: eq. 7 is 0/0 there.
+        for params in (PARAMS_A, (0.8, 40.0, 1.0, 4.0)):
+            r, alpha, a, b = params
+            t = 200.0
+            log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+            def integrand(p, lam):
+                if lam <= 0 or p <= 0 or p >= 1:
+                    return 0.0
+                return (-math.expm1(-lam * p * t) / p) * math.exp(
+                    log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+
+            expected, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+            assert expected_new_customer_orders(params, t) == pytest.approx(expected, rel=1e-7)
+
+    def test_matches_monte_carlo(self):
+        # Reference: seeded simulation of 400,000 new customers; tolerance 4 standard errors.
+        rng = np.random.default_rng(21)
+        r, alpha, a, b = PARAMS_B
+        n = 400_000
+        counts = future_orders_monte_carlo(rng.gamma(r, 1 / alpha, n), rng.beta(a, b, n), 365.0, rng)
+        error = counts.std() / math.sqrt(n)
+        assert abs(expected_new_customer_orders(PARAMS_B, 365.0) - counts.mean()) < 4 * error
+
+    def test_zero_days_and_growth(self):
+        values = expected_new_customer_orders(PARAMS_A, [0.0, 10.0, 100.0, 1000.0])
+        assert values[0] == 0.0
+        assert np.all(np.diff(values) > 0)
+
+    def test_negative_days_refused(self):
+        with pytest.raises(OrderDataError, match="zero or more"):
+            expected_new_customer_orders(PARAMS_A, -1.0)
+
+
+class TestExpectedOrdersAhead:
+    def test_worked_example(self):
+        # Reference (from memory): Fader, Hardie and Lee's worked example with the
+        # CDNOW estimates -- a customer with x = 2, t_x = 30.43, T = 38.86 weeks is
+        # expected to make 1.226 repeat purchases in the next 39 weeks.
+        value = expected_orders_ahead(CDNOW_WEEKS, 2, 30.43, 38.86, 39.0)
+        assert value == pytest.approx(1.226, abs=5e-4)
+
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
+    @pytest.mark.parametrize(
+        "x, t_x, age, h",
+        [(0, 0.0, 30.0, 90.0), (1, 20.0, 400.0, 365.0), (5, 300.0, 320.0, 30.0), (40, 690.0, 700.0, 2000.0)],
+    )
+    def test_matches_printed_formula(self, params, x, t_x, age, h):
+        # Reference: eq. 10 as printed, evaluated with mpmath.hyp2f1.
+        got = expected_orders_ahead(params, x, t_x, age, h)
+        assert got == pytest.approx(orders_ahead_printed(params, x, t_x, age, h), rel=1e-9)
+
+    @pytest.mark.parametrize("x, t_x, age", [(0, 0.0, 120.0), (3, 200.0, 400.0), (6, 100.0, 500.0)])
+    def test_matches_monte_carlo_of_the_posterior(self, x, t_x, age):
+        # Reference: seeded simulation. Given the history, the customer is active at T
+        # with posterior weight proportional to B(a, b+x)/(alpha+T)^(r+x) (vs
+        # B(a+1, b+x-1)/(alpha+t_x)^(r+x) for having stopped); if active,
+        # lambda ~ Gamma(r+x, alpha+T) and p ~ Beta(a, b+x) (Bayes' rule on the model);
+        # future orders are then simulated. Tolerance 4 standard errors.
+        r, alpha, a, b = PARAMS_A
+        horizon = 180.0
+        log_active = math.lgamma(a) + math.lgamma(b + x) - math.lgamma(a + b + x) - (r + x) * math.log(alpha + age)
+        if x > 0:
+            log_stopped = math.lgamma(a + 1) + math.lgamma(b + x - 1) - math.lgamma(a + b + x) - (r + x) * math.log(alpha + t_x)
+            active_share = 1 / (1 + math.exp(log_stopped - log_active))
+        else:
+            active_share = 1.0
+        rng = np.random.default_rng(99 + x)
+        n = 400_000
+        active = rng.random(n) < active_share
+        counts = future_orders_monte_carlo(rng.gamma(r + x, 1 / (alpha + age), n), rng.beta(a, b + x, n), horizon, rng)
+        counts = np.where(active, counts, 0)
+        error = counts.std() / math.sqrt(n)
+        got = expected_orders_ahead(PARAMS_A, x, t_x, age, horizon)
+        assert abs(got - counts.mean()) < 4 * error
+        assert chance_still_active(PARAMS_A, x, t_x, age) == pytest.approx(active_share, rel=1e-12)
+
+    def test_zero_horizon_gives_zero(self):
+        assert np.all(expected_orders_ahead(PARAMS_B, [0, 3], [0.0, 10.0], [5.0, 50.0], 0.0) == 0.0)
+
+    def test_endless_horizon_gives_expected_remaining_orders(self):
+        # With a > 1 an active customer's remaining orders average E[1/p] under
+        # Beta(a, b + x), i.e. (a + b + x - 1)/(a - 1) (a Beta-distribution identity).
+        r, alpha, a, b = PARAMS_A
+        x, t_x, age = 3, 80.0, 100.0
+        far = expected_orders_ahead(PARAMS_A, x, t_x, age, 1e12)
+        limit = (a + b + x - 1) / (a - 1) * chance_still_active(PARAMS_A, x, t_x, age)
+        assert far == pytest.approx(limit, rel=1e-4)
+
+    def test_regular_customers_stay_finite(self):
+        values = expected_orders_ahead(PARAMS_B, [300, 1000], [700.0, 720.0], [720.0, 720.0], 365.0)
+        assert np.all(np.isfinite(values)) and np.all(values > 0)
+
+    def test_a_equal_one_is_continuous(self):
+        near = [expected_orders_ahead((0.8, 40.0, 1.0 + d, 4.0), 2, 50.0, 90.0, 120.0) for d in (-1e-3, 1e-3)]
+        at_one = expected_orders_ahead((0.8, 40.0, 1.0, 4.0), 2, 50.0, 90.0, 120.0)
+        assert at_one == pytest.approx(np.mean(near), rel=1e-5)
+
+    def test_bad_horizon_refused(self):
+        with pytest.raises(OrderDataError, match="horizon"):
+            expected_orders_ahead(PARAMS_A, 1, 2.0, 3.0, -5)
+
+
+class TestChanceStillActive:
+    def test_no_repeat_means_still_active(self):
+        assert np.all(chance_still_active(PARAMS_B, [0, 0], [0.0, 0.0], [1.0, 900.0]) == 1.0)
+
+    def test_matches_numerical_posterior(self):
+        # Reference: scipy dblquad of the "still active" part of the likelihood over
+        # lambda and p, divided by the whole likelihood.
+        r, alpha, a, b = PARAMS_B
+        x, t_x, age = 2, 40.0, 300.0
+        log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+        def active_part(p, lam):
+            if lam <= 0 or p <= 0 or p >= 1:
+                return 0.0
+            return (1 - p) ** x * math.exp(x * math.log(lam) - lam * age + log_norm + (r - 1) * math.log(lam)
+                                           - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+
+        numerator, _ = integrate.dblquad(active_part, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+        expected = numerator / likelihood_by_integration(PARAMS_B, x, t_x, age)
+        assert chance_still_active(PARAMS_B, x, t_x, age) == pytest.approx(expected, rel=1e-7)
+
+    def test_just_ordered_versus_long_silence(self):
+        # Ordered at T: only the chance of stopping right after that order remains,
+        # 1 - E[p | Beta(a, b + x - 1)] = (b + x - 1)/(a + b + x - 1) (eq. 11 with t_x = T).
+        r, alpha, a, b = PARAMS_A
+        chances = chance_still_active(PARAMS_A, [10, 10], [700.0, 50.0], [700.0, 700.0])
+        assert chances[0] == pytest.approx((b + 9) / (a + b + 9), rel=1e-12)
+        # A regular customer silent for 650 days is very likely gone.
+        assert chances[1] < 0.01
+
+
+class TestFrequencyForecast:
+    def test_table(self):
+        history = simulate_histories(PARAMS_A, 500, seed=2)
+        history.index = pd.Index([f"C-{i:04d}" for i in range(500)], name="customer")
+        before = history.copy()
+        table = frequency_forecast(history, horizon=90)
+        pd.testing.assert_frame_equal(history, before)
+        assert list(table.columns) == HISTORY_COLUMNS + ["expected_orders", "chance_active"]
+        assert table.index.equals(history.index)
+        fit = table.attrs["fit"]
+        np.testing.assert_allclose(
+            table["expected_orders"],
+            expected_orders_ahead((fit["r"], fit["alpha_days"], fit["a"], fit["b"]),
+                                  *(history[c] for c in HISTORY_COLUMNS), 90.0),
+        )
+        assert ((table["chance_active"] > 0) & (table["chance_active"] <= 1)).all()
