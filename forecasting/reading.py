@@ -258,7 +258,6 @@ def _read_text(text: str, file_name: str, notes: list[str]) -> _RawTable:
         cells = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
                             skip_blank_lines=False, engine="c", on_bad_lines="error",
                             quoting=csv.QUOTE_MINIMAL)
-        cells = cells.astype(object)
         row_numbers = np.arange(2, len(cells) + 2)
         return _RawTable(cells, row_numbers, [], notes)
     except pd.errors.ParserError:
@@ -718,22 +717,29 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
 
     text = {role: cells[col].astype(str).str.strip() if col else None for role, col in mapping.as_dict().items()}
     long_field = np.zeros(n, dtype=bool)
+    blank = np.ones(n, dtype=bool)
     for col in cells.columns:
-        long_field |= cells[col].astype(str).str.len().to_numpy() > MAX_FIELD_CHARS
-    blank = (cells.astype(str).apply(lambda c: c.str.strip() == "")).all(axis=1).to_numpy()
+        column = cells[col].astype(str)
+        long_field |= column.str.len().to_numpy() > MAX_FIELD_CHARS
+        blank &= (column.str.strip() == "").to_numpy()
     exclude(blank, "blank_row")
     exclude(long_field, "malformed_row")
     exclude(cells.duplicated(keep="first").to_numpy() & ~blank, "duplicate_row")
     exclude(text["customer"].to_numpy() == "", "missing_customer")
     status = _status_text(cells, mapping)
-    exclude(status.str.fullmatch(_TEST_STATUS).to_numpy(), "test_order")
-    exclude(status.str.fullmatch(_CANCELLED_STATUS).to_numpy(), "cancelled_order")
+    if mapping.status:
+        exclude(status.str.fullmatch(_TEST_STATUS).to_numpy(), "test_order")
+        exclude(status.str.fullmatch(_CANCELLED_STATUS).to_numpy(), "cancelled_order")
 
     amount_text = text["value"]
     if mapping.currency:
         row_currency = text["currency"].str.upper()
     else:
-        row_currency = _currency_marks(amount_text)
+        # Only amounts written with more than digits and separators can name a currency.
+        wordy = amount_text.str.contains(r"[^0-9.,()+\-\s]", regex=True).to_numpy()
+        row_currency = pd.Series("", index=cells.index, dtype=object)
+        if wordy.any():
+            row_currency[wordy] = _currency_marks(amount_text[wordy])
     alive = reason == ""
     seen = sorted(set(row_currency[alive & (row_currency != "").to_numpy()]))
     if currency:
@@ -792,53 +798,49 @@ def _refuse_if_mostly_unreadable(unreadable: pd.Series, text: pd.Series, rows: n
 
 def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason):
     """Group surviving lines into orders, net refunds, and drop orders that net to nothing."""
-    alive = reason == ""
-    refund = alive & ((amounts.to_numpy() < 0) | status.str.fullmatch(_REFUND_STATUS).to_numpy())
-    signed = np.where(refund, -np.abs(amounts.to_numpy()), amounts.to_numpy())
+    position = np.flatnonzero(reason == "")
+    value = amounts.to_numpy()[position]
+    is_refund = value < 0
+    if mapping.status:
+        is_refund |= status.str.fullmatch(_REFUND_STATUS).to_numpy()[position]
+    signed = np.where(is_refund, -np.abs(value), value)
+    customer = text["customer"].to_numpy()[position]
+    customer_code, _ = pd.factorize(customer)
     if mapping.order_id:
-        order_key = text["order_id"].to_numpy().astype(object)
-        no_id = order_key == ""
+        order_text = text["order_id"].to_numpy()[position]
+        id_code, ids = pd.factorize(order_text)
         # A line without an order id is an order of its own.
-        order_key = np.where(no_id, np.char.add("row-", rows.astype(str)).astype(object), order_key)
+        no_id = order_text == ""
+        id_code = np.where(no_id, len(ids) + np.arange(len(position)), id_code)
+        order_code, _ = pd.factorize(customer_code.astype(np.int64) * (len(ids) + len(position) + 1) + id_code)
     else:
-        order_key = np.char.add("row-", rows.astype(str)).astype(object)
-    lines = pd.DataFrame({
-        "customer": text["customer"].to_numpy(),
-        "order_id": order_key,
-        "signed": signed,
-        "is_refund": refund,
-        "date": dates.to_numpy(),
-        "row": rows,
-        "position": np.arange(len(rows)),
+        order_text = np.char.add("row-", rows[position].astype(str))
+        order_code = np.arange(len(position))
+    n_orders = int(order_code.max()) + 1 if len(order_code) else 0
+    order_value = np.bincount(order_code, weights=signed, minlength=n_orders)
+    purchases = np.bincount(order_code, weights=~is_refund, minlength=n_orders)
+    by_order = pd.DataFrame({"date": pd.Series(dates.to_numpy()[position]).where(~is_refund).to_numpy(),
+                             "line": np.arange(len(position))}).groupby(order_code, sort=True)
+    first = by_order.agg(order_date=("date", "min"), line=("line", "min"))
+    verdict = np.where(purchases == 0, "unmatched_refund", np.where(order_value <= 0, "refunded_in_full", ""))
+    reason = reason.copy()
+    line_verdict = verdict[order_code]
+    reason[position] = np.where(line_verdict == "", reason[position], line_verdict)
+
+    kept = np.flatnonzero(verdict == "")
+    first_line = first["line"].to_numpy()[kept]
+    orders = pd.DataFrame({
+        "customer": pd.array(customer[first_line], dtype=str),
+        "order_id": pd.array(np.asarray(order_text)[first_line], dtype=str),
+        "order_date": first["order_date"].to_numpy()[kept].astype("datetime64[ns]"),
+        "order_value": order_value[kept].astype(np.float64),
+        "row": rows[position][first_line],
     })
     if mapping.segment:
-        lines["segment"] = text["segment"].to_numpy()
-    lines = lines[alive]
-    purchase_date = lines["date"].where(~lines["is_refund"])
-    lines = lines.assign(purchase_date=purchase_date)
-    grouped = lines.groupby(["customer", "order_id"], sort=False)
-    summary = grouped.agg(order_value=("signed", "sum"), order_date=("purchase_date", "min"),
-                          row=("row", "min"), has_purchase=("is_refund", lambda r: not r.all()))
-    if mapping.segment:
-        segment = lines.assign(segment=lines["segment"].where(lines["segment"] != "")) \
-            .groupby(["customer", "order_id"], sort=False)["segment"].first()
-        summary["segment"] = segment.fillna("unknown")
-    verdict = np.where(~summary["has_purchase"], "unmatched_refund",
-                       np.where(summary["order_value"] <= 0, "refunded_in_full", ""))
-    summary["verdict"] = verdict
-    line_verdict = summary["verdict"].reindex(pd.MultiIndex.from_frame(lines[["customer", "order_id"]])).to_numpy()
-    reason = reason.copy()
-    reason[lines["position"].to_numpy()] = np.where(line_verdict == "", reason[lines["position"].to_numpy()],
-                                                    line_verdict)
-    kept = summary[summary["verdict"] == ""].reset_index()
-    columns = ["customer", "order_id", "order_date", "order_value", "row"]
-    if mapping.segment:
-        columns.append("segment")
-    orders = kept[columns].sort_values(["order_date", "row"], kind="stable").reset_index(drop=True)
-    orders["order_value"] = orders["order_value"].astype(np.float64)
-    orders["order_id"] = orders["order_id"].astype(str)
-    orders["customer"] = orders["customer"].astype(str)
-    orders["order_date"] = orders["order_date"].astype("datetime64[ns]")
+        segment = pd.Series(text["segment"].to_numpy()[position])
+        first_segment = segment.where(segment != "").groupby(order_code, sort=True).first()
+        orders["segment"] = pd.array(first_segment.reindex(kept).fillna("unknown").to_numpy(), dtype=str)
+    orders = orders.sort_values(["order_date", "row"], kind="stable").reset_index(drop=True)
     return orders, reason
 
 
