@@ -804,17 +804,18 @@ def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason):
     if mapping.status:
         is_refund |= status.str.fullmatch(_REFUND_STATUS).to_numpy()[position]
     signed = np.where(is_refund, -np.abs(value), value)
-    customer = text["customer"].to_numpy()[position]
+    # Text stays in pandas' string arrays (take, factorize): no per-cell Python objects.
+    customer = text["customer"].take(position)
     customer_code, _ = pd.factorize(customer)
     if mapping.order_id:
-        order_text = text["order_id"].to_numpy()[position]
+        order_text = text["order_id"].take(position)
         id_code, ids = pd.factorize(order_text)
         # A line without an order id is an order of its own.
-        no_id = order_text == ""
+        no_id = (order_text == "").to_numpy()
         id_code = np.where(no_id, len(ids) + np.arange(len(position)), id_code)
         order_code, _ = pd.factorize(customer_code.astype(np.int64) * (len(ids) + len(position) + 1) + id_code)
     else:
-        order_text = np.char.add("row-", rows[position].astype(str))
+        order_text = None
         order_code = np.arange(len(position))
     n_orders = int(order_code.max()) + 1 if len(order_code) else 0
     order_value = np.bincount(order_code, weights=signed, minlength=n_orders)
@@ -829,17 +830,24 @@ def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason):
 
     kept = np.flatnonzero(verdict == "")
     first_line = first["line"].to_numpy()[kept]
+    order_rows = rows[position][first_line]
+    if order_text is None:
+        order_ids = pd.Series(order_rows).astype(str).radd("row-").to_numpy()
+    else:
+        order_ids = order_text.take(first_line).to_numpy()
     orders = pd.DataFrame({
-        "customer": pd.array(customer[first_line], dtype=str),
-        "order_id": pd.array(np.asarray(order_text)[first_line], dtype=str),
+        "customer": customer.take(first_line).to_numpy(),
+        "order_id": order_ids,
         "order_date": first["order_date"].to_numpy()[kept].astype("datetime64[ns]"),
         "order_value": order_value[kept].astype(np.float64),
-        "row": rows[position][first_line],
+        "row": order_rows,
     })
     if mapping.segment:
-        segment = pd.Series(text["segment"].to_numpy()[position])
+        segment = text["segment"].take(position).reset_index(drop=True)
         first_segment = segment.where(segment != "").groupby(order_code, sort=True).first()
-        orders["segment"] = pd.array(first_segment.reindex(kept).fillna("unknown").to_numpy(), dtype=str)
+        orders["segment"] = first_segment.reindex(kept).fillna("unknown").to_numpy()
+    for column in ("customer", "order_id") + (("segment",) if mapping.segment else ()):
+        orders[column] = orders[column].astype(str)
     orders = orders.sort_values(["order_date", "row"], kind="stable").reset_index(drop=True)
     return orders, reason
 
