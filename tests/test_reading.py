@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import io
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -295,3 +296,32 @@ class TestRowAccount:
         assert result.rows_read == physical_records
         assert (result.orders["order_value"] > 0).all()
         assert np.isfinite(result.orders["order_value"]).all()
+
+
+class TestShippedFiles:
+    """The demo files' expected outcomes are written down in demo_data/README.md; the reader must match them."""
+
+    DEMO = Path(__file__).resolve().parents[1] / "demo_data"
+
+    def test_messy_file_rows_end_as_documented(self):
+        result = read_orders(self.DEMO / "messy_orders.csv")
+        reasons = dict(zip(result.excluded["row"], result.excluded["reason_code"]))
+        assert reasons == {10: "missing_customer", 13: "bad_amount", 15: "blank_row", 18: "duplicate_row",
+                           20: "cancelled_order", 22: "bad_date", 28: "malformed_row"}
+        assert len(result.orders) == 32 and result.orders["customer"].nunique() == 9
+        assert result.orders["order_value"].sum() == pytest.approx(6109.64)
+        netted = result.orders.set_index("order_id").loc["INV-0114"]
+        assert netted["order_value"] == pytest.approx(42.75)
+        assert netted["order_date"] == pd.Timestamp("2025-04-30")
+        totals = result.orders.groupby("customer")["order_value"].sum()
+        assert totals["Pépinière Lefèvre"] == pytest.approx(4699.50)
+        assert_accounted(result)
+
+    def test_demo_shop_file_accounts_for_every_row(self):
+        result = read_orders(self.DEMO / "plant_shop_orders.csv")
+        assert_accounted(result)
+        reasons = dict(zip(result.excluded["row"], result.excluded["reason_code"]))
+        assert reasons[5713] == "duplicate_row"
+        assert reasons[7868] == "malformed_row"
+        assert result.excluded["reason_code"].value_counts()["test_order"] == 4
+        assert 1900 <= result.orders["customer"].nunique() <= 2100
