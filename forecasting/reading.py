@@ -49,6 +49,7 @@ MAX_FIELD_CHARS = 100_000
 REASONS = {
     "blank_row": "the row is empty",
     "malformed_row": "the row has a different number of fields than the header",
+    "oversized_field": f"a cell is longer than {MAX_FIELD_CHARS:,} characters",
     "duplicate_row": "an exact copy of an earlier row",
     "missing_customer": "no customer id",
     "test_order": "marked as a test order",
@@ -209,11 +210,16 @@ def _decode(data: bytes, file_name: str, notes: list[str]) -> str:
     if b"\x00" in head and not head.startswith((b"\xff\xfe", b"\xfe\xff")):
         raise OrderDataError("the file is not a text table (it contains binary data)", file=file_name,
                              fix="Upload a CSV, Excel (.xlsx) or Parquet export")
-    if data.startswith(b"\xef\xbb\xbf"):
-        return data[3:].decode("utf-8", errors="strict")
     if data.startswith((b"\xff\xfe", b"\xfe\xff")):
-        notes.append("The file is UTF-16 text; read as such.")
-        return data.decode("utf-16")
+        try:
+            text = data.decode("utf-16")
+            notes.append("The file is UTF-16 text; read as such.")
+            return text
+        except UnicodeDecodeError:
+            raise OrderDataError("the file says it is UTF-16 text but is not", file=file_name,
+                                 fix="Export it again as UTF-8 CSV") from None
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
     try:
         return data.decode("utf-8")
     except UnicodeDecodeError:
@@ -723,7 +729,7 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
         long_field |= column.str.len().to_numpy() > MAX_FIELD_CHARS
         blank &= (column.str.strip() == "").to_numpy()
     exclude(blank, "blank_row")
-    exclude(long_field, "malformed_row")
+    exclude(long_field, "oversized_field")
     exclude(cells.duplicated(keep="first").to_numpy() & ~blank, "duplicate_row")
     exclude(text["customer"].to_numpy() == "", "missing_customer")
     status = _status_text(cells, mapping)
