@@ -7,10 +7,17 @@ spreadsheet would run as a formula is neutralised.
 A text cell starting with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return is
 prefixed with a single quote, as the OWASP "CSV Injection" guidance advises. Number
 columns stay numbers, so a negative amount is still ``-12.5``.
+
+For sharing a list with an agency, :func:`pseudonymise` replaces customer ids by
+salted pseudonyms (HMAC-SHA256 of the id under a secret salt): the same salt gives
+the same pseudonym every time, so lists can be matched up later by whoever keeps the
+salt, and nobody without it can recover or test-guess an id.
 """
 
 from __future__ import annotations
 
+import hashlib
+import hmac
 import io
 from pathlib import Path
 
@@ -63,3 +70,37 @@ def excel_bytes(table: pd.DataFrame, *, sheet_name: str = "forecasts") -> bytes:
                                                    "strings_to_urls": False}}) as writer:
         safe_table(table).to_excel(writer, index=False, sheet_name=sheet_name)
     return buffer.getvalue()
+
+
+def pseudonymise(table: pd.DataFrame, *, salt: str, column: str = "customer") -> pd.DataFrame:
+    """A copy of ``table`` with ``column`` replaced by salted pseudonyms.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        Any export table.
+    salt : str
+        A secret of at least 8 characters; keep it to match pseudonyms later.
+    column : str
+        The column holding customer ids.
+
+    Examples
+    --------
+    >>> table = pd.DataFrame({"customer": ["C-001", "C-002", "C-001"]})
+    >>> out = pseudonymise(table, salt="fern-2026-secret")
+    >>> out["customer"].str.startswith("cust-").all(), out["customer"].nunique()
+    (True, 2)
+    """
+    if not isinstance(salt, str) or len(salt) < 8:
+        raise ValueError(f"the pseudonym salt must be a text of at least 8 characters (got {len(str(salt))})")
+    key = salt.encode("utf-8")
+
+    def pseudonym(value) -> str:
+        digest = hmac.new(key, str(value).encode("utf-8"), hashlib.sha256).hexdigest()
+        return "cust-" + digest[:16]
+
+    out = table.copy()
+    codes, uniques = pd.factorize(out[column])
+    names = [pseudonym(v) for v in uniques]
+    out[column] = pd.Series(names, dtype=object).take(codes).to_numpy()
+    return out
