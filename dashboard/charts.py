@@ -1,0 +1,123 @@
+"""Plotly figures for the dashboard, in one colour-blind-safe palette and one layout.
+
+Palette: the eight colours of Okabe and Ito (2008), "Color Universal Design",
+re-ordered here so the first pair (blue, vermilion) differs most in both hue and
+lightness. They stay distinguishable under the common forms of colour blindness.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import plotly.graph_objects as go
+
+# Okabe-Ito colours, in the order this product uses them.
+PALETTE = {
+    "blue": "#0072B2",
+    "vermilion": "#D55E00",
+    "green": "#009E73",
+    "purple": "#CC79A7",
+    "orange": "#E69F00",
+    "sky": "#56B4E9",
+    "yellow": "#F0E442",
+    "black": "#000000",
+}
+SEQUENCE = list(PALETTE.values())
+GRID = "#E6E6E6"
+INK = "#2B2B2B"
+
+
+def _layout(fig: go.Figure, *, title: str | None = None, height: int = 420) -> go.Figure:
+    """The product's own chart layout: white ground, light grid, legend above the plot."""
+    fig.update_layout(
+        title={"text": title, "x": 0.0, "xanchor": "left", "font": {"size": 15}} if title else None,
+        height=height,
+        margin={"l": 60, "r": 20, "t": 60 if title else 30, "b": 55},
+        paper_bgcolor="white",
+        plot_bgcolor="white",
+        font={"family": "Source Sans Pro, Helvetica, Arial, sans-serif", "size": 13, "color": INK},
+        colorway=SEQUENCE,
+        legend={"orientation": "h", "yanchor": "bottom", "y": 1.02, "xanchor": "right", "x": 1.0},
+        hoverlabel={"bgcolor": "white"},
+    )
+    fig.update_xaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside")
+    fig.update_yaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside")
+    return fig
+
+
+def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str | None = None) -> go.Figure:
+    """Each customer's plain average against their forecast.
+
+    Points on the diagonal kept their own average; points off it were pulled
+    toward what similar customers spend. Marker area grows with the number of
+    orders, so the customers pulled furthest are the small dots.
+    """
+    data = table[table["average_order_value"] > 0]
+    orders = data["orders"].to_numpy(dtype=float)
+    size = 5 + 16 * np.sqrt(orders / max(orders.max(), 1.0))
+    confident = ~data["low_confidence"].to_numpy(dtype=bool)
+    fig = go.Figure()
+    low = float(min(data["average_order_value"].min(), data["expected_next_order"].min()))
+    high = float(max(data["average_order_value"].max(), data["expected_next_order"].max()))
+    fig.add_trace(go.Scatter(x=[low, high], y=[low, high], mode="lines", name="forecast = own average",
+                             line={"color": "#888888", "dash": "dash", "width": 1}, hoverinfo="skip"))
+    for mask, name, colour in ((confident, "forecast", PALETTE["blue"]),
+                               (~confident, "few orders: low confidence", PALETTE["vermilion"])):
+        if not mask.any():
+            continue
+        part = data[mask]
+        fig.add_trace(go.Scatter(
+            x=part["average_order_value"], y=part["expected_next_order"], mode="markers", name=name,
+            marker={"size": size[mask], "color": colour, "opacity": 0.55, "line": {"width": 0.5, "color": "white"}},
+            customdata=np.stack([part["customer"].astype(str), part["orders"]], axis=1),
+            hovertemplate=(f"%{{customdata[0]}}<br>%{{customdata[1]}} orders<br>average {symbol}%{{x:,.2f}}"
+                           f"<br>forecast {symbol}%{{y:,.2f}}<extra></extra>"),
+        ))
+    if highlight is not None and (data["customer"] == highlight).any():
+        row = data[data["customer"] == highlight].iloc[0]
+        fig.add_trace(go.Scatter(
+            x=[row["average_order_value"]], y=[row["expected_next_order"]], mode="markers", name=str(highlight),
+            marker={"size": 16, "color": "rgba(0,0,0,0)", "line": {"width": 2.5, "color": PALETTE["black"]}},
+            hoverinfo="skip"))
+    fig.update_xaxes(type="log", title=f"Customer's own average order ({symbol.strip() or 'money'}, log scale)")
+    fig.update_yaxes(type="log", title=f"Expected next order ({symbol.strip() or 'money'}, log scale)")
+    return _layout(fig, height=460)
+
+
+def method_comparison(results: pd.DataFrame, *, title: str) -> go.Figure:
+    """Error reduction against plain averages per method, one bar per variance model, with 95% intervals."""
+    fig = go.Figure()
+    for i, (variance, part) in enumerate(results.groupby("variance", sort=False)):
+        # Plain averages with the classic spread are the baseline itself (0% by definition).
+        part = part[~((part["method"] == "plain") & (part["variance"] == "classic"))]
+        if part.empty:
+            continue
+        value = part["error_reduction_pct"].to_numpy(dtype=float)
+        upper = (part["ci_high"].to_numpy(dtype=float) - value)
+        lower = (value - part["ci_low"].to_numpy(dtype=float))
+        fig.add_trace(go.Bar(
+            x=part["method"], y=value, name=f"{variance} spread", marker_color=SEQUENCE[i % len(SEQUENCE)],
+            error_y={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
+                     "color": INK, "thickness": 1.2, "width": 4},
+            hovertemplate="%{x}: %{y:.1f}%<extra>" + f"{variance} spread</extra>",
+        ))
+    fig.add_hline(y=0, line={"color": INK, "width": 1})
+    fig.update_layout(barmode="group")
+    fig.update_yaxes(title="Smaller error than own averages (%)", ticksuffix="%")
+    fig.update_xaxes(title="Method")
+    return _layout(fig, title=title, height=400)
+
+
+def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> go.Figure:
+    """Error reduction by how many orders were known before the forecast, one bar per evaluation."""
+    fig = go.Figure()
+    for i, (kind, part) in enumerate(table.groupby("evaluation", sort=False)):
+        fig.add_trace(go.Bar(
+            x=part["past_orders"].astype(str), y=part["error_reduction_pct"], name=kind,
+            marker_color=(PALETTE["green"], PALETTE["purple"])[i % 2], customdata=part["held_out"].to_numpy(),
+            hovertemplate="%{x} past orders: %{y:.1f}% (%{customdata:,} orders scored)<extra>" + kind + "</extra>"))
+    fig.add_hline(y=0, line={"color": INK, "width": 1})
+    fig.update_layout(barmode="group")
+    fig.update_yaxes(title="Smaller error than own averages (%)", ticksuffix="%")
+    fig.update_xaxes(title="Orders known before the forecast", type="category")
+    return _layout(fig, title=title, height=380)

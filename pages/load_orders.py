@@ -1,0 +1,179 @@
+"""Load orders: the demo shop on first open, an upload, the column choices and the row account."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import streamlit as st
+
+from dashboard import layout, state
+from forecasting import csv_text
+from forecasting.reading import REASONS
+
+layout.page_header(
+    "Load orders",
+    "Start here: bring in your shop's order export, check which column is which, "
+    "and see exactly which rows were used and which were left out, and why.",
+)
+
+# ---------------------------------------------------------------------------
+# The file
+
+
+def _use_demo() -> None:
+    demo = state.demo_dataset()
+    if demo is not None:
+        state.offer(demo)
+
+
+def _drop_pending() -> None:
+    st.session_state["pending"] = None
+
+
+dataset = state.current()
+if dataset is not None and dataset.demo:
+    st.info(
+        f"The demo shop's orders are already loaded, so you can look around straight away: "
+        f"{state.DEMO_SHOP} is an invented online shop selling houseplants, pots and garden tools. "
+        "Upload your own export below to see your customers instead."
+    )
+elif dataset is None and not state.DEMO_FILE.exists():
+    st.info("The demo shop's file is not here, so there is nothing loaded yet: upload your own export below.")
+
+limit = st.get_option("server.maxUploadSize")
+upload = st.file_uploader(
+    f"Upload your order export: CSV, Excel (.xlsx) or Parquet, up to {limit} MB",
+    type=["csv", "tsv", "txt", "xlsx", "parquet"],
+    key="upload",
+    help="One row per order or per order line, with a header row. Most shop platforms' order exports work "
+         "as they are. The file is read on this computer only.",
+)
+if upload is not None and upload.file_id != st.session_state.get("upload_seen"):
+    st.session_state["upload_seen"] = upload.file_id
+    with st.spinner(f"Reading {upload.name} ..."):
+        state.offer(state.Dataset.from_bytes(upload.getvalue(), upload.name))
+
+pending = st.session_state.get("pending")
+dataset = state.current()
+if pending is not None:
+    problem = state.read_dataset(pending).problem
+    kept = f"The data loaded before ({'the demo shop' if dataset.demo else dataset.name}) is still in use." \
+        if dataset is not None else "Nothing else is loaded yet."
+    st.error(f"**{pending.name} cannot be used yet.** {problem}\n\n{kept} "
+             "Change the column boxes or the reading options below, or upload a corrected file.")
+    if dataset is not None:
+        st.button(f"Forget {pending.name} and keep the data loaded before", key="drop_pending",
+                  on_click=_drop_pending)
+elif dataset is not None and not dataset.demo:
+    st.success(f"Using **{dataset.name}**.")
+if dataset is not None and not dataset.demo and state.DEMO_FILE.exists():
+    st.button("Go back to the demo shop", key="use_demo", on_click=_use_demo)
+
+# ---------------------------------------------------------------------------
+# Which column is which (for the file being fixed, else the file in use)
+
+edited = state.being_edited()
+
+
+def _mapping_changed(role: str) -> None:
+    target = state.being_edited()
+    state.offer(target.with_override(role, st.session_state[f"map_{role}"]))
+
+
+def _option_changed(option: str) -> None:
+    target = state.being_edited()
+    value = st.session_state[f"opt_{option}"]
+    state.offer(target.with_options(**{option: value.strip() if isinstance(value, str) else value}))
+
+
+if edited is not None:
+    columns = state.file_columns(edited)
+    guessed = state.guessed_mapping(edited)
+    st.subheader("Which column is which")
+    st.caption(
+        f"For {edited.name}. The boxes show our guess from the headings and the values; change any of them "
+        "and the orders are read again straight away. Customer, order date and order amount are needed; "
+        "the rest help when your file has them."
+    )
+    if columns:
+        boxes = st.columns(4)
+        for i, (role, label) in enumerate(state.ROLE_LABELS.items()):
+            key = f"map_{role}"
+            value = guessed.get(role, "")
+            options = [""] + [c for c in columns]
+            if value not in options:
+                options.append(value)
+            st.session_state[key] = value
+            empty = "(choose a column)" if role in state.REQUIRED else "(none)"
+            boxes[i % 4].selectbox(
+                label, options, key=key, format_func=lambda c, empty=empty: c if c else empty,
+                on_change=_mapping_changed, args=(role,), help=state.ROLE_HELP[role],
+            )
+    with st.expander("Reading options: currency, dates and decimal mark", expanded=pending is not None):
+        st.caption("Usually worked out from the file. Set them when a message above asks you to.")
+        first, second, third = st.columns(3)
+        st.session_state["opt_currency"] = edited.currency
+        first.text_input("Keep only this currency", key="opt_currency", placeholder="for example EUR",
+                         on_change=_option_changed, args=("currency",),
+                         help="When one file mixes currencies, choose one (a code like USD, EUR or GBP); "
+                              "rows in other currencies are left out and listed below.")
+        st.session_state["opt_date_order"] = edited.date_order
+        second.selectbox("Dates are written", ["", "day-first", "month-first"], key="opt_date_order",
+                         format_func={"": "work it out from the dates", "day-first": "day first (31/12/2025)",
+                                      "month-first": "month first (12/31/2025)"}.get,
+                         on_change=_option_changed, args=("date_order",))
+        st.session_state["opt_decimal"] = edited.decimal
+        third.selectbox("Decimal mark", ["", ".", ","], key="opt_decimal",
+                        format_func={"": "work it out from the amounts", ".": "point (1,234.50)",
+                                     ",": "comma (1.234,50)"}.get,
+                        on_change=_option_changed, args=("decimal",))
+
+# ---------------------------------------------------------------------------
+# The row account of the data in use
+
+result = state.current_result()
+if result is not None:
+    audit = result.audit()
+    st.subheader("What was read")
+    if pending is not None:
+        st.caption(f"These numbers are for {'the demo shop' if dataset.demo else dataset.name}, still in use.")
+    cells = st.columns(5)
+    cells[0].metric("Rows read", f"{audit['rows_read']:,}")
+    cells[1].metric("Rows used", f"{audit['rows_used']:,}")
+    cells[2].metric("Rows left out", f"{audit['rows_excluded']:,}")
+    cells[3].metric("Orders", f"{audit['orders']:,}", help="Lines with the same order number count as one order.")
+    cells[4].metric("Customers", f"{audit['customers']:,}")
+    for note in audit["notes"]:
+        st.markdown(f"- {note}")
+
+    if audit["rows_excluded"]:
+        reasons = pd.DataFrame(
+            {"Why the rows were left out": [REASONS[code] for code in audit["excluded"]],
+             "Rows": list(audit["excluded"].values())}
+        )
+        st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons")
+        left_out = result.excluded
+        st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
+                    "(the header is row 1) and the reason:")
+        st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True, height=260,
+                     key="left_out_rows",
+                     column_config={"row": st.column_config.NumberColumn("Row", format="%d"),
+                                    "reason": st.column_config.TextColumn("Reason", width="medium")})
+        if len(left_out) > 1000:
+            st.caption("The first 1,000 are shown; the download has them all.")
+        st.download_button(
+            "Download the rows left out, with reasons (CSV)", data=csv_text(left_out),
+            file_name=f"{Path(dataset.name).stem}_rows_left_out.csv", mime="text/csv",
+            key="download_left_out", on_click="ignore",
+        )
+    else:
+        st.success("Every row was used.")
+    with st.expander("See the cleaned orders"):
+        shown = result.orders.rename(columns={"customer": "Customer", "order_id": "Order number",
+                                              "order_date": "Order date", "order_value": "Order amount",
+                                              "row": "First row in file", "segment": "Segment"})
+        symbol = state.money_symbol(dataset)
+        st.dataframe(shown.head(1000), hide_index=True, key="clean_orders",
+                     column_config={"Order amount": st.column_config.NumberColumn(format=layout.money_format(symbol)),
+                                    "Order date": st.column_config.DatetimeColumn(format="YYYY-MM-DD HH:mm")})
