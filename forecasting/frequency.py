@@ -40,6 +40,7 @@ __all__ = [
     "frequency_log_likelihood_gradient",
     "fit_order_frequency",
     "expected_orders_ahead",
+    "expected_orders_for_draws",
     "expected_new_customer_orders",
     "chance_still_active",
     "frequency_forecast",
@@ -278,17 +279,17 @@ def _orders_while_active(params, x, age, horizon):
     (1-z)^(C-A-B) 2F1(C-A, C-B; C; z) turns the bracket into
     1 - (1-z)^(a-1) 2F1(a+b-1-r, a-1; a+b+x-1; z), whose first two
     hypergeometric parameters do not grow with x (better conditioned for
-    regular customers).
+    regular customers). Parameters may be arrays broadcasting against x.
     """
     r, alpha, a, b = params
-    if abs(a - 1.0) < 1e-6:
+    near_one = np.abs(np.asarray(a, dtype=np.float64) - 1.0) < 1e-6
+    if np.any(near_one):
         # (a+b+x-1)/(a-1) [...] is 0/0 at a = 1; the expectation is smooth in a,
-        # so average the two sides (error of order 1e-12).
+        # so there it is the average of the two sides a = 1 +- 1e-5 (error ~1e-10).
         step = 1e-5
-        return 0.5 * (
-            _orders_while_active((r, alpha, 1.0 + step, b), x, age, horizon)
-            + _orders_while_active((r, alpha, 1.0 - step, b), x, age, horizon)
-        )
+        upper = _orders_while_active((r, alpha, np.where(near_one, 1.0 + step, a), b), x, age, horizon)
+        lower = _orders_while_active((r, alpha, np.where(near_one, 1.0 - step, a), b), x, age, horizon)
+        return np.where(near_one, 0.5 * (upper + lower), upper)
     z = horizon / (alpha + age + horizon)
     hyper = special.hyp2f1(a + b - 1.0 - r, a - 1.0, a + b + x - 1.0, z)
     bracket = 1.0 - np.exp((a - 1.0) * np.log1p(-z)) * hyper
@@ -447,6 +448,33 @@ def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known,
     params = _check_params(params)
     horizon = _check_horizon(horizon)
     x, t_x, age = (np.asarray(v, dtype=np.float64) for v in (repeat_orders, days_to_last_order, days_known))
+    active = special.expit(-_log_stop_odds(params, x, t_x, age))
+    return _orders_while_active(params, x, age, horizon) * active
+
+
+def expected_orders_for_draws(param_draws, repeat_orders, days_to_last_order, days_known, horizon) -> np.ndarray:
+    """:func:`expected_orders_ahead` for many parameter sets at once.
+
+    Parameters
+    ----------
+    param_draws : array_like, shape (D, 4)
+        Rows of ``(r, alpha, a, b)``, e.g. from :meth:`FrequencyFit.draw_parameters`.
+    repeat_orders, days_to_last_order, days_known : array_like, shape (N,)
+        x, t_x and T per customer (days).
+    horizon : float
+        Days ahead of T.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (D, N): row d is ``expected_orders_ahead(param_draws[d], ...)``.
+    """
+    draws = np.asarray(param_draws, dtype=np.float64)
+    if draws.ndim != 2 or draws.shape[1] != 4 or not np.all(np.isfinite(draws)) or np.any(draws <= 0):
+        raise OrderDataError("parameter draws must be rows of four positive numbers (r, alpha, a, b)")
+    horizon = _check_horizon(horizon)
+    x, t_x, age = (np.asarray(v, dtype=np.float64)[None, :] for v in (repeat_orders, days_to_last_order, days_known))
+    params = tuple(draws[:, [k]] for k in range(4))
     active = special.expit(-_log_stop_odds(params, x, t_x, age))
     return _orders_while_active(params, x, age, horizon) * active
 

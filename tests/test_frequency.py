@@ -27,6 +27,7 @@ from forecasting.frequency import (
     chance_still_active,
     expected_new_customer_orders,
     expected_orders_ahead,
+    expected_orders_for_draws,
     fit_order_frequency,
     frequency_forecast,
     frequency_log_likelihood,
@@ -353,6 +354,22 @@ class TestExpectedOrdersAhead:
     def test_bad_horizon_refused(self):
         with pytest.raises(OrderDataError, match="horizon"):
             expected_orders_ahead(PARAMS_A, 1, 2.0, 3.0, -5)
+
+
+class TestExpectedOrdersForDraws:
+    def test_equals_one_parameter_set_at_a_time(self):
+        # Slow twin: a loop over parameter sets calling expected_orders_ahead.
+        history = simulate_histories(PARAMS_A, 50, seed=4)
+        args = [history[c].to_numpy() for c in HISTORY_COLUMNS]
+        draws = np.array([PARAMS_A, PARAMS_B, CDNOW_WEEKS, (0.8, 40.0, 1.0, 4.0), (0.8, 40.0, 1.0 + 3e-7, 4.0)])
+        many = expected_orders_for_draws(draws, *args, 120.0)
+        assert many.shape == (5, 50)
+        for row, params in zip(many, draws):
+            np.testing.assert_allclose(row, expected_orders_ahead(tuple(params), *args, 120.0), rtol=1e-12)
+
+    def test_bad_draws_refused(self):
+        with pytest.raises(OrderDataError, match="four positive numbers"):
+            expected_orders_for_draws(np.array([[1.0, -2.0, 1.0, 1.0]]), [1], [1.0], [2.0], 10.0)
 
 
 class TestChanceStillActive:
