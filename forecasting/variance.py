@@ -391,7 +391,7 @@ def iterate_proportional(estimate: Callable, means, orders, cv2, *, tol=1e-10, m
             moved = mu - mu_before
             with np.errstate(divide="ignore", invalid="ignore"):
                 slope = np.where(moved != 0, (f - f_before) / moved, 0.0)
-            omega = np.where(slope < 0, np.clip(1.0 / (1.0 - slope), 1e-3, 1.0), 1.0)
+                omega = np.where(slope < 0, np.clip(1.0 / (1.0 - slope), 1e-3, 1.0), 1.0)
         mu_before, f_before = mu, f
         mu = mu + omega * step
     return result, s, max_iter, False
