@@ -118,7 +118,14 @@ class Outcome:
 
 
 def _problem_text(problem: OrderDataError) -> str:
-    return on_screen(str(problem))
+    """The message in screen words, without the file name (the page names the file already)."""
+    text = str(problem)
+    if problem.file is not None:
+        for prefix in (f"file '{problem.file}', ", f"file '{problem.file}': "):
+            if text.startswith(prefix):
+                text = text[len(prefix):]
+                text = text[:1].upper() + text[1:]
+    return on_screen(text)
 
 
 # ---------------------------------------------------------------------------
