@@ -1,0 +1,259 @@
+"""The forecasts table: its contract, its ranges written out by hand, and the edge cases."""
+
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from forecasting import shrinkage as sh
+from forecasting.customers import customer_statistics
+from forecasting.errors import OrderDataError
+from forecasting.forecasts import FORECAST_COLUMNS, METHODS, forecast_customers
+from forecasting.variance import VARIANCE_MODELS, pooled_variance
+
+
+def garden_orders(seed=0, customers=80, *, segments=True, unit=1.0):
+    """Orders of a shop selling houseplants, pots and garden tools (two sales channels)."""
+    rng = np.random.default_rng(seed)
+    n = rng.integers(1, 7, customers)
+    ids = np.array([f"G-{t:04d}" for t in rng.permutation(customers)])
+    channel = np.where(rng.random(customers) < 0.4, "market stall", "web")
+    level = rng.gamma(5.0, 12.0, customers) * np.where(channel == "web", 1.0, 0.6)
+    customer = np.repeat(ids, n)
+    values = unit * np.exp(np.log(np.repeat(level, n)) + rng.normal(0, 0.45, n.sum()))
+    dates = pd.Timestamp("2024-06-01") + pd.to_timedelta(rng.integers(0, 365, n.sum()), unit="D")
+    frame = pd.DataFrame({"customer": customer, "order_value": values, "order_date": dates})
+    if segments:
+        frame["segment"] = np.repeat(channel, n)
+    return frame
+
+
+ALL_PAIRS = [(m, v) for m in METHODS for v in VARIANCE_MODELS]
+
+
+class TestForecastCustomers:
+    def test_columns_rows_and_order(self):
+        orders = garden_orders(1)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, orders=orders)
+        assert list(table.columns) == FORECAST_COLUMNS
+        assert table["customer"].tolist() == st.index.tolist()
+        np.testing.assert_array_equal(table["orders"], st["orders"])
+        np.testing.assert_array_equal(table["average_order_value"], st["mean"])
+        assert (table["method"] == "mta").all() and (table["variance"] == "classic").all()
+
+    @pytest.mark.parametrize("method, variance", ALL_PAIRS)
+    def test_every_method_and_variance_gives_sane_numbers(self, method, variance):
+        orders = garden_orders(2)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method=method, variance=variance, orders=orders)
+        numbers = table[FORECAST_COLUMNS[1:9]].to_numpy(dtype=float)
+        assert np.isfinite(numbers).all()
+        assert (table["expected_low"] <= table["expected_next_order"] * (1 + 1e-12)).all()
+        assert (table["expected_next_order"] <= table["expected_high"] * (1 + 1e-12)).all()
+        assert (table["next_order_low"] > 0).all()
+        assert (table["next_order_low"] < table["next_order_high"]).all()
+        assert table["own_history_weight"].between(0, 1).all()
+        fit = table.attrs["fit"]
+        assert all(isinstance(v, (float, str, bool)) for v in fit.values())
+        assert fit["variance"] == ("gamma-model" if method == "gamma-gamma" else variance)
+
+    def test_plain_classic_ranges_written_out(self):
+        orders = garden_orders(3)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method="plain", variance="classic", level=0.9, next_level=0.8)
+        sigma2 = st["sum_sq_dev"].sum() / (st["orders"] - 1).sum()
+        s = sigma2 / st["orders"].to_numpy()
+        z90 = 1.6448536269514722  # standard normal 95th percentile (statistical tables)
+        m = st["mean"].to_numpy()
+        np.testing.assert_allclose(table["expected_low"], np.maximum(m - z90 * np.sqrt(s), 0), rtol=1e-12)
+        np.testing.assert_allclose(table["expected_high"], m + z90 * np.sqrt(s), rtol=1e-12)
+        sigma2_log = st["log_sum_sq_dev"].sum() / (st["orders"] - 1).sum()
+        z80 = 1.2815515655446004  # standard normal 90th percentile
+        spread = np.sqrt(sigma2_log + sigma2_log / st["orders"].to_numpy())
+        median = m * np.exp(-sigma2_log / 2)
+        np.testing.assert_allclose(table["next_order_low"], median * np.exp(-z80 * spread), rtol=1e-12)
+        np.testing.assert_allclose(table["next_order_high"], median * np.exp(z80 * spread), rtol=1e-12)
+
+    def test_log_variance_back_transform(self):
+        orders = garden_orders(4)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method="mta", variance="log")
+        sigma2_log = pooled_variance(st, model="log").sigma2
+        n = st["orders"].to_numpy(float)
+        shrunk = sh.mta_constant(st["log_mean"].to_numpy(), sigma2_log / n)
+        v = shrunk.weight * sigma2_log / n
+        np.testing.assert_allclose(table["expected_next_order"], np.exp(shrunk.estimate + (sigma2_log + v) / 2),
+                                   rtol=1e-12)
+        z = stats.norm.ppf(0.95)
+        np.testing.assert_allclose(table["expected_low"],
+                                   np.exp(shrunk.estimate + sigma2_log / 2 - z * np.sqrt(v)), rtol=1e-12)
+
+    def test_next_order_range_covers_about_the_stated_share(self):
+        # lognormal orders: about 80% of fresh orders fall inside the 80% next-order range
+        rng = np.random.default_rng(5)
+        orders = garden_orders(5, customers=400, segments=False)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method="empirical-bayes", variance="log").set_index("customer")
+        level = st["log_mean"]  # stand-in truth: a fresh order around each customer's own level
+        spread = np.sqrt(pooled_variance(st, model="log").sigma2)
+        fresh = np.exp(level.to_numpy() + spread * rng.standard_normal(len(st)))
+        inside = (fresh >= table["next_order_low"].to_numpy()) & (fresh <= table["next_order_high"].to_numpy())
+        assert 0.72 < inside.mean() < 0.9
+
+    def test_low_confidence_rule(self):
+        orders = garden_orders(6)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method="empirical-bayes")
+        expected = (table["own_history_weight"] < 0.5) | (table["orders"] == 1)
+        pd.testing.assert_series_equal(table["low_confidence"], expected, check_names=False)
+
+    def test_fit_scalars_are_kept(self):
+        orders = garden_orders(7)
+        st = customer_statistics(orders)
+        fit = forecast_customers(st, method="empirical-bayes", orders=orders).attrs["fit"]
+        assert fit["tau2"] == pytest.approx(max(0.0, np.var(st["mean"], ddof=1)
+                                                - np.mean(fit["sigma2"] / st["orders"])), rel=1e-12)
+        assert fit["sigma2"] == pytest.approx(pooled_variance(st).sigma2)
+        assert "tail_summary" in fit and "centre" in fit
+
+    def test_segments_come_from_the_statistics(self):
+        orders = garden_orders(8)
+        st = customer_statistics(orders)
+        table = forecast_customers(st, method="mta-segments")
+        direct = sh.mta_segments(st["mean"].to_numpy(), pooled_variance(st).sigma2 / st["orders"].to_numpy(),
+                                 segments=st["segment"].to_numpy())
+        np.testing.assert_allclose(table["expected_next_order"], direct.estimate, rtol=1e-12)
+
+    def test_input_is_not_changed(self):
+        orders = garden_orders(9)
+        st = customer_statistics(orders)
+        before_orders, before_stats = orders.copy(), st.copy()
+        forecast_customers(st, method="mta-cv", variance="robust", orders=orders)
+        pd.testing.assert_frame_equal(orders, before_orders)
+        pd.testing.assert_frame_equal(st, before_stats)
+
+
+class TestOptionChecks:
+    def test_unknown_method(self):
+        with pytest.raises(OrderDataError, match=r"--method.*'best'.*mta-segments"):
+            forecast_customers(customer_statistics(garden_orders()), method="best")
+
+    def test_unknown_variance(self):
+        with pytest.raises(OrderDataError, match=r"--variance.*'huge'.*proportional"):
+            forecast_customers(customer_statistics(garden_orders()), variance="huge")
+
+    @pytest.mark.parametrize("level", [0, 1, 1.5, -0.2, "90%"])
+    def test_bad_levels(self, level):
+        with pytest.raises(OrderDataError, match="level"):
+            forecast_customers(customer_statistics(garden_orders()), level=level)
+
+    def test_segments_needed(self):
+        with pytest.raises(OrderDataError, match="--segment"):
+            forecast_customers(customer_statistics(garden_orders(segments=False)), method="mta-segments")
+
+    @pytest.mark.parametrize("method, variance", [("mta-cv", "classic"), ("james-stein-cv", "log"),
+                                                  ("mta", "robust")])
+    def test_order_level_data_needed(self, method, variance):
+        with pytest.raises(OrderDataError, match="order-level"):
+            forecast_customers(customer_statistics(garden_orders()), method=method, variance=variance)
+
+
+class TestAutomaticChoice:
+    def test_uses_the_evaluation_choice(self):
+        from forecasting.evaluation import choose_method
+
+        orders = garden_orders(10)
+        st = customer_statistics(orders)
+        chosen = choose_method(orders, st)
+        table = forecast_customers(st, method="auto", orders=orders)
+        assert table["method"].iloc[0] == chosen["method"]
+        assert table["variance"].iloc[0] == chosen["variance"]
+        assert table.attrs["fit"]["auto_choice"].startswith(chosen["method"])
+
+    def test_falls_back_to_mta_without_the_evaluation_module(self, monkeypatch):
+        monkeypatch.setitem(sys.modules, "forecasting.evaluation", None)  # import now fails
+        orders = garden_orders(11)
+        table = forecast_customers(customer_statistics(orders), method="auto", orders=orders)
+        assert (table["method"] == "mta").all() and (table["variance"] == "classic").all()
+        assert "not available" in table.attrs["fit"]["auto_choice"]
+
+
+def stats_of(customers, values):
+    frame = pd.DataFrame({"customer": customers, "order_value": np.asarray(values, dtype=float),
+                          "order_date": pd.Timestamp("2025-04-01")})
+    return customer_statistics(frame), frame
+
+
+SIMPLE_PAIRS = [(m, v) for m in METHODS if m != "mta-segments" for v in VARIANCE_MODELS]
+
+
+class TestEdgeCases:
+    def assert_finite(self, table):
+        assert np.isfinite(table[FORECAST_COLUMNS[1:9]].to_numpy(dtype=float)).all()
+
+    @pytest.mark.parametrize("method, variance", SIMPLE_PAIRS)
+    def test_one_customer(self, method, variance):
+        st, orders = stats_of(["fern"] * 3, [20.0, 25.0, 30.0])
+        table = forecast_customers(st, method=method, variance=variance, orders=orders)
+        self.assert_finite(table)
+        expected = 25.0  # with no one to compare with, every method keeps the customer's own average
+        if variance == "log" and method != "gamma-gamma":
+            logs = np.log([20.0, 25.0, 30.0])
+            sigma2_log = np.var(logs, ddof=1)
+            v = 0.0 if method == "pooled" else sigma2_log / 3  # pooled: weight 0, so v = g s = 0
+            expected = np.exp(logs.mean() + (sigma2_log + v) / 2)
+        assert table["expected_next_order"].iloc[0] == pytest.approx(expected, rel=1e-12)
+
+    @pytest.mark.parametrize("T", [2, 3])
+    @pytest.mark.parametrize("method, variance", SIMPLE_PAIRS)
+    def test_two_and_three_customers(self, T, method, variance):
+        names = ["fern", "ivy", "moss"][:T]
+        st, orders = stats_of(np.repeat(names, 2), [20.0, 26.0, 50.0, 41.0, 8.0, 11.0][: 2 * T])
+        self.assert_finite(forecast_customers(st, method=method, variance=variance, orders=orders))
+
+    @pytest.mark.parametrize("method, variance", SIMPLE_PAIRS)
+    def test_everyone_has_one_order(self, method, variance):
+        st, orders = stats_of(["a", "b", "c", "d", "e"], [12.0, 30.0, 18.0, 55.0, 21.0])
+        table = forecast_customers(st, method=method, variance=variance, orders=orders)
+        self.assert_finite(table)
+        assert table["low_confidence"].all()
+
+    @pytest.mark.parametrize("method, variance", SIMPLE_PAIRS)
+    def test_no_spread_within_customers(self, method, variance):
+        st, orders = stats_of(np.repeat(["a", "b", "c", "d", "e"], 2), np.repeat([12.0, 30.0, 18.0, 55.0, 21.0], 2))
+        table = forecast_customers(st, method=method, variance=variance, orders=orders)
+        self.assert_finite(table)
+        if method != "pooled":  # with no noise, every average is exact
+            np.testing.assert_allclose(table["expected_next_order"], table["average_order_value"], rtol=1e-12)
+
+    @pytest.mark.parametrize("method, variance", SIMPLE_PAIRS)
+    def test_all_averages_equal(self, method, variance):
+        st, orders = stats_of(np.repeat(["a", "b", "c", "d", "e"], 2), [10.0, 30.0] * 5)
+        table = forecast_customers(st, method=method, variance=variance, orders=orders)
+        self.assert_finite(table)
+        expected = table["expected_next_order"].to_numpy()
+        np.testing.assert_allclose(expected, expected[0], rtol=1e-12)
+        if variance != "log":
+            np.testing.assert_allclose(expected, 20.0, rtol=1e-12)
+
+    @pytest.mark.parametrize("unit", [1e-6, 1e9])
+    @pytest.mark.parametrize("method, variance", ALL_PAIRS)
+    def test_tiny_and_huge_amounts(self, unit, method, variance):
+        orders = garden_orders(12, customers=30, unit=unit)
+        table = forecast_customers(customer_statistics(orders), method=method, variance=variance, orders=orders)
+        self.assert_finite(table)
+        reference = forecast_customers(customer_statistics(garden_orders(12, customers=30)), method=method,
+                                       variance=variance, orders=garden_orders(12, customers=30))
+        # money amounts scale with the unit (gamma-gamma only up to its optimiser's tolerance)
+        np.testing.assert_allclose(table["expected_next_order"] / unit, reference["expected_next_order"],
+                                   rtol=1e-4 if method == "gamma-gamma" else 1e-8)
+
+    def test_no_customers(self):
+        empty = customer_statistics(pd.DataFrame({"customer": pd.Series([], dtype=str),
+                                                  "order_value": pd.Series([], dtype=float),
+                                                  "order_date": pd.Series([], dtype="datetime64[ns]")}))
+        with pytest.raises(OrderDataError, match="no customers"):
+            forecast_customers(empty)
