@@ -257,3 +257,59 @@ class TestEdgeCases:
                                                   "order_date": pd.Series([], dtype="datetime64[ns]")}))
         with pytest.raises(OrderDataError, match="no customers"):
             forecast_customers(empty)
+
+
+class TestForecastCommand:
+    """``python -m forecasting forecast``, run as a user runs it."""
+
+    def run_cli(self, *args):
+        import subprocess
+        from pathlib import Path
+
+        root = Path(__file__).resolve().parents[1]
+        return subprocess.run([sys.executable, "-m", "forecasting", "forecast", *args], cwd=root,
+                              capture_output=True, text=True, timeout=120)
+
+    def write_export(self, path):
+        orders = garden_orders(13, customers=25)
+        frame = pd.DataFrame({"Customer": orders["customer"], "Order Date": orders["order_date"].dt.strftime("%Y-%m-%d"),
+                              "Total": orders["order_value"].round(2), "Channel": orders["segment"]})
+        frame.loc[0, "Customer"] = "=HYPERLINK(1)"  # a hostile id must reach the CSV harmless
+        frame.to_csv(path, index=False)
+        return frame
+
+    def test_json_and_csv(self, tmp_path):
+        import json
+
+        source = tmp_path / "orders.csv"
+        frame = self.write_export(source)
+        out = tmp_path / "forecast.csv"
+        done = self.run_cli(str(source), "--customer", "Customer", "--value", "Total", "--date", "Order Date",
+                            "--segment", "Channel", "--method", "mta-segments", "--out", str(out), "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert set(payload) == {"customers", "method", "variance", "fit", "forecasts_written"}
+        assert payload["customers"] == frame["Customer"].nunique()
+        assert payload["method"] == "mta-segments" and payload["variance"] == "classic"
+        assert payload["fit"]["segments"] == 2.0
+        written = pd.read_csv(out)
+        assert list(written.columns) == FORECAST_COLUMNS
+        assert len(written) == payload["customers"]
+        assert "'=HYPERLINK(1)" in written["customer"].tolist()
+
+    def test_bad_method_exits_2_with_the_allowed_names(self, tmp_path):
+        source = tmp_path / "orders.csv"
+        self.write_export(source)
+        done = self.run_cli(str(source), "--method", "guess", "--out", str(tmp_path / "f.csv"))
+        assert done.returncode == 2
+        assert "--method" in done.stderr and "empirical-bayes" in done.stderr
+        assert "Traceback" not in done.stderr
+
+    def test_text_summary(self, tmp_path):
+        source = tmp_path / "orders.csv"
+        self.write_export(source)
+        out = tmp_path / "f.csv"
+        done = self.run_cli(str(source), "--variance", "log", "--out", str(out))
+        assert done.returncode == 0, done.stderr
+        assert "method: mta, variance: log" in done.stdout
+        assert str(out) in done.stdout and out.exists()

@@ -1,0 +1,68 @@
+"""``forecast``: expected next-order value for every customer, written to a CSV.
+
+``python -m forecasting forecast FILE [column options] [--method NAME] [--variance NAME]
+[--segment COL] --out forecast.csv [--json]``
+"""
+
+from __future__ import annotations
+
+import math
+
+from . import EXIT_OK, add_column_options, load_from_args, print_json
+from ..customers import customer_statistics
+from ..exports import write_csv
+from ..forecasts import METHODS, forecast_customers
+from ..variance import VARIANCE_MODELS
+
+
+def add_arguments(parser) -> None:
+    add_column_options(parser)
+    choice = parser.add_argument_group("forecast")
+    choice.add_argument("--method", default="mta", metavar="NAME",
+                        help=f"how averages are combined: {', '.join(METHODS)} or auto (default: mta)")
+    choice.add_argument("--variance", default="classic", metavar="NAME",
+                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    choice.add_argument("--level", type=float, default=0.90, metavar="P",
+                        help="coverage of the range for a customer's average order (default 0.90)")
+    choice.add_argument("--next-level", type=float, default=0.80, metavar="P",
+                        help="coverage of the range for the next single order (default 0.80)")
+    parser.add_argument("--out", required=True, metavar="CSV", help="where to write the forecasts")
+    parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+
+
+def _plain_value(value):
+    """JSON-safe: floats that are not finite become null."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def run(args) -> int:
+    loaded = load_from_args(args)
+    orders = loaded.orders
+    stats = customer_statistics(orders)
+    table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
+                               level=args.level, next_level=args.next_level)
+    written = write_csv(table, args.out)
+    fit = {key: _plain_value(value) for key, value in table.attrs["fit"].items()}
+    method, variance = fit["method"], fit["variance"]
+    if args.json:
+        print_json({"customers": int(len(table)), "method": method, "variance": variance, "fit": fit,
+                    "forecasts_written": str(written)})
+        return EXIT_OK
+    few = int(table["low_confidence"].sum())
+    print(f"{len(table)} customers from {len(orders)} orders in {loaded.file_name}")
+    print(f"method: {method}, variance: {variance}")
+    if "auto_choice" in fit:
+        print(f"chosen automatically: {fit['auto_choice']}")
+    print(f"typical own-history weight: {table['own_history_weight'].median():.2f}; "
+          f"{few} customers marked low confidence (a single order or mostly the shop's pattern)")
+    print(f"shop-wide centre: {fit['centre']:.2f}")
+    if fit.get("tail_summary"):
+        print(fit["tail_summary"])
+    for note in loaded.notes:
+        print(f"note: {note}")
+    if fit.get("notes"):
+        print(f"note: {fit['notes']}")
+    print(f"forecasts written to {written}")
+    return EXIT_OK
