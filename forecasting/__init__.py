@@ -13,15 +13,20 @@ per customer with intervals) -> ``evaluation`` (leave-one-out and backtest proof
 from .customers import customer_statistics
 from .errors import OrderDataError
 from .exports import csv_text, excel_bytes, write_csv
+from .forecasts import METHODS, forecast_customers
 from .reading import ColumnMapping, ReadResult, read_orders
+from .variance import VARIANCE_MODELS
 
 __all__ = [
+    "METHODS",
+    "VARIANCE_MODELS",
     "ColumnMapping",
     "OrderDataError",
     "ReadResult",
     "csv_text",
     "customer_statistics",
     "excel_bytes",
+    "forecast_customers",
     "read_orders",
     "write_csv",
 ]
