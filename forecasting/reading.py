@@ -36,6 +36,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pa_compute
+import pyarrow.csv as pa_csv
 
 from .errors import OrderDataError
 
@@ -100,6 +103,11 @@ _REFUND_STATUS = re.compile(r"^(refund|refunded|return|returned|chargeback|ersta
 _CURRENCY_SYMBOLS = {"$": "USD", "€": "EUR", "£": "GBP", "¥": "JPY", "₹": "INR", "kr": "SEK"}
 _CURRENCY_CODE = re.compile(r"\b([A-Z]{3})\b")
 _MONEY_JUNK = re.compile(r"[A-Za-z$€£¥₹\s\u00a0\u202f']")
+
+
+# Cells read as text use pandas' own string type, backed by Arrow.
+_TEXT_TYPES = {pa.string(): pd.StringDtype("pyarrow", na_value=np.nan),
+               pa.large_string(): pd.StringDtype("pyarrow", na_value=np.nan)}
 
 
 @dataclass(frozen=True)
@@ -254,23 +262,32 @@ def _sniff_delimiter(text: str) -> str:
     return best
 
 
-def _read_text(text: str, file_name: str, notes: list[str]) -> _RawTable:
+def _read_text(text: str, encoded: bytes, file_name: str, notes: list[str]) -> _RawTable:
+    """Split CSV text into cells; ``encoded`` is the same text as UTF-8 bytes."""
     if not text.strip():
         raise OrderDataError("the file is empty", file=file_name, fix="Export the orders again")
     delimiter = _sniff_delimiter(text)
     if delimiter != ",":
         notes.append(f"Fields are separated by {'a tab' if delimiter == chr(9) else repr(delimiter)}.")
+    header = next(csv.reader(io.StringIO(text[:1_000_000], newline=""), delimiter=delimiter), None)
+    if not header:
+        raise OrderDataError("the file has no header row", file=file_name)
+    columns = _unique_headers(header)
     try:
-        cells = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
-                            skip_blank_lines=False, engine="c", on_bad_lines="error",
-                            quoting=csv.QUOTE_MINIMAL)
-        row_numbers = np.arange(2, len(cells) + 2)
-        return _RawTable(cells, row_numbers, [], notes)
-    except pd.errors.ParserError:
-        pass  # Some rows do not fit the header: read record by record to report them.
-    except pd.errors.EmptyDataError:
-        raise OrderDataError("the file has no header row", file=file_name) from None
-    return _read_text_by_record(text, delimiter, file_name, notes)
+        # Arrow's multi-threaded reader, every cell kept as text; a row that does not fit the header
+        # raises, and the careful record-by-record reader below then reports it.
+        table = pa_csv.read_csv(
+            io.BytesIO(encoded),
+            read_options=pa_csv.ReadOptions(column_names=columns, skip_rows=1, use_threads=True),
+            parse_options=pa_csv.ParseOptions(delimiter=delimiter, quote_char='"', double_quote=True,
+                                              escape_char=False, newlines_in_values=True,
+                                              ignore_empty_lines=False),
+            convert_options=pa_csv.ConvertOptions(column_types={c: pa.string() for c in columns},
+                                                  strings_can_be_null=False, quoted_strings_can_be_null=False))
+    except (pa.ArrowInvalid, csv.Error, ValueError):
+        return _read_text_by_record(text, delimiter, file_name, notes)
+    cells = table.to_pandas(types_mapper=_TEXT_TYPES.get)
+    return _RawTable(cells, np.arange(2, len(cells) + 2), [], notes)
 
 
 def _read_text_by_record(text: str, delimiter: str, file_name: str, notes: list[str]) -> _RawTable:
@@ -363,7 +380,10 @@ def _load_raw(data: bytes, file_name: str, sheet) -> _RawTable:
     elif kind == "parquet":
         raw = _read_parquet(data, file_name, notes)
     else:
-        raw = _read_text(_decode(data, file_name, notes), file_name, notes)
+        text = _decode(data, file_name, notes)
+        # Arrow reads UTF-8 bytes: pass the file itself when it is UTF-8, else the decoded text re-encoded.
+        plain_utf8 = not notes and not data.startswith(b"\xef\xbb\xbf")
+        raw = _read_text(text, data if plain_utf8 else text.encode("utf-8"), file_name, notes)
     if raw.cells.shape[1] > MAX_COLUMNS:
         raise OrderDataError(f"the file has {raw.cells.shape[1]} columns, more than the {MAX_COLUMNS} supported",
                              file=file_name, fix="Export only the order columns")
@@ -513,7 +533,11 @@ def parse_money(values: pd.Series, *, decimal: str | None = None, column: str = 
     if pd.api.types.is_numeric_dtype(values):
         return values.astype(np.float64).where(np.isfinite(values.astype(np.float64)))
     text = values.astype(str).str.strip()
-    numbers = pd.to_numeric(text, errors="coerce") if decimal != "," else pd.Series(np.nan, index=text.index)
+    if decimal != ",":
+        fast = _arrow_cast(text, pa.float64())
+        numbers = fast if fast is not None else pd.to_numeric(text, errors="coerce")
+    else:
+        numbers = pd.Series(np.nan, index=text.index)
     unread = numbers.isna() & (text != "")
     if decimal == "." or (decimal is None and not unread.any()):
         return numbers.where(np.isfinite(numbers))
@@ -583,7 +607,11 @@ def parse_dates(values: pd.Series, *, date_order: str | None = None, column: str
         return _drop_timezone(values)
     text = values.astype(str).str.strip()
     present = text != ""
-    dates = _drop_timezone(pd.to_datetime(text.where(present), format="ISO8601", errors="coerce", utc=True))
+    fast = _arrow_cast(text, pa.timestamp("ns"))
+    if fast is not None:
+        dates = fast
+    else:
+        dates = _drop_timezone(pd.to_datetime(text.where(present), format="ISO8601", errors="coerce", utc=True))
     unread = dates.isna() & present
     if unread.any():
         dates = dates.copy()
@@ -646,6 +674,18 @@ def parse_dates(values: pd.Series, *, date_order: str | None = None, column: str
             dates.loc[others] = _drop_timezone(loose)
     in_range = (dates >= pd.Timestamp("1970-01-01")) & (dates <= pd.Timestamp("2100-01-01"))
     return dates.where(in_range)
+
+
+def _arrow_cast(text: pd.Series, arrow_type) -> pd.Series | None:
+    """Arrow's fast conversion of a whole text column, or None when any value needs the careful path."""
+    try:
+        converted = pa_compute.cast(pa.array(text, type=pa.string()), arrow_type)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
+        return None
+    out = pd.Series(converted.to_numpy(zero_copy_only=False), index=text.index)
+    if arrow_type == pa.float64():
+        return out.where(np.isfinite(out))
+    return out.astype("datetime64[ns]")
 
 
 def _drop_timezone(dates: pd.Series) -> pd.Series:
@@ -742,7 +782,8 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
         row_currency = text["currency"].str.upper()
     else:
         # Only amounts written with more than digits and separators can name a currency.
-        wordy = amount_text.str.contains(r"[^0-9.,()+\-\s]", regex=True).to_numpy()
+        wordy = pa_compute.match_substring_regex(pa.array(amount_text, type=pa.string()),
+                                                 r"[^0-9.,()+\-\s]").to_numpy(zero_copy_only=False)
         row_currency = pd.Series("", index=cells.index, dtype=object)
         if wordy.any():
             row_currency[wordy] = _currency_marks(amount_text[wordy])
