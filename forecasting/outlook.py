@@ -1,0 +1,959 @@
+"""Revenue outlook and value tiers: what customers are likely to bring in next.
+
+Input: the cleaned orders table (``customer``, ``order_date``, ``order_value``,
+optionally ``segment``; see :mod:`forecasting.reading`).
+
+Output:
+
+* :func:`project_revenue` -- per customer, the expected number of orders in the
+  next ``horizon`` days (BG/NBD, :mod:`forecasting.frequency`) times the
+  expected value of their next order (:func:`forecasting.forecasts.forecast_customers`),
+  with an interval; and the same summed per cohort (first-order month or
+  quarter, or any customer group such as the sales channel).
+* :func:`backtest_outlook` -- the outlook fitted on orders before a cut-off
+  date, compared per cohort with the revenue that actually came in after it,
+  next to a run-rate baseline.
+* :func:`assign_tiers`, :func:`tier_summary`, :func:`export_tiers` -- customers
+  ranked by expected next-order value or by projected revenue, grouped into
+  value tiers by shares of customers or by money thresholds, with each tier's
+  size, share of projected revenue and how much its forecasts rest on the
+  customers' own history.
+
+Every function returns new tables; no input is changed.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy import sparse, stats as sps
+
+from .customers import customer_statistics
+from .errors import OrderDataError
+from .frequency import FrequencyFit, expected_orders_for_draws, fit_order_frequency, repeat_history
+
+__all__ = [
+    "COHORT_PERIODS",
+    "RANK_BY",
+    "OUTLOOK_COLUMNS",
+    "COHORT_COLUMNS",
+    "BACKTEST_COLUMNS",
+    "TIER_SUMMARY_COLUMNS",
+    "Outlook",
+    "OutlookBacktest",
+    "project_revenue",
+    "backtest_outlook",
+    "assign_tiers",
+    "tier_summary",
+    "export_tiers",
+]
+
+COHORT_PERIODS = ("month", "quarter")
+RANK_BY = ("value", "revenue")
+
+OUTLOOK_COLUMNS = [
+    "customer",
+    "cohort",
+    "orders",
+    "first_order",
+    "last_order",
+    "days_known",
+    "chance_active",
+    "expected_orders",
+    "expected_next_order",
+    "expected_low",
+    "expected_high",
+    "own_history_weight",
+    "low_confidence",
+    "mostly_shop_pattern",
+    "projected_revenue",
+    "projected_low",
+    "projected_high",
+]
+COHORT_COLUMNS = [
+    "cohort",
+    "customers",
+    "expected_orders",
+    "projected_revenue",
+    "projected_low",
+    "projected_high",
+    "share_of_projected_revenue",
+]
+BACKTEST_COLUMNS = [
+    "cohort",
+    "customers",
+    "projected_revenue",
+    "projected_low",
+    "projected_high",
+    "actual_revenue",
+    "error",
+    "error_pct",
+    "run_rate_revenue",
+    "run_rate_error",
+    "run_rate_error_pct",
+    "actual_inside_interval",
+]
+TIER_SUMMARY_COLUMNS = [
+    "tier",
+    "rule",
+    "customers",
+    "share_of_customers",
+    "lowest_figure",
+    "highest_figure",
+    "projected_revenue",
+    "share_of_projected_revenue",
+    "average_own_history_weight",
+    "mostly_shop_pattern",
+]
+
+# A forecast resting less than this on the customer's own orders is mostly the
+# shop-wide pattern (half own history, half shop: common practice for a flag).
+SHOP_PATTERN_WEIGHT = 0.5
+# Cells of the (draws x customers) matrix handled at once: bounds memory to ~50 MB.
+_CELLS_PER_CHUNK = 2_000_000
+_NO_GROUP = "(none)"
+
+
+# --------------------------------------------------------------------------- #
+# Option checks (before any heavy work)
+# --------------------------------------------------------------------------- #
+def _check_horizon(horizon, option="--horizon"):
+    try:
+        value = float(horizon)
+    except (TypeError, ValueError):
+        raise OrderDataError(f"{option} must be a number of days", value=horizon,
+                             fix=f"Use for example {option} 90") from None
+    if not math.isfinite(value) or value <= 0:
+        raise OrderDataError(f"{option} must be more than zero days", value=horizon,
+                             fix=f"Use for example {option} 90")
+    return value
+
+
+def _check_level(level):
+    try:
+        value = float(level)
+    except (TypeError, ValueError):
+        raise OrderDataError("the interval level must be a number between 0 and 1", value=level) from None
+    if not 0 < value < 1:
+        raise OrderDataError("the interval level must be between 0 and 1", value=level,
+                             fix="Use for example 0.9 for a 90% interval")
+    return value
+
+
+def _check_draws(draws):
+    if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 20:
+        raise OrderDataError("the number of draws must be a whole number of at least 20", value=draws)
+    return int(draws)
+
+
+def _check_orders(orders):
+    if not isinstance(orders, pd.DataFrame):
+        raise OrderDataError("the orders must be a table (pandas DataFrame)")
+    missing = [c for c in ("customer", "order_date", "order_value") if c not in orders.columns]
+    if missing:
+        raise OrderDataError("the orders table lacks columns", value=", ".join(missing),
+                             fix="Read the file with forecasting.read_orders")
+    if len(orders) == 0:
+        raise OrderDataError("there are no orders to work with")
+
+
+def _check_by(by, orders):
+    if by in COHORT_PERIODS:
+        return by
+    if isinstance(by, str) and by in orders.columns and by not in ("order_date", "order_value", "customer"):
+        return by
+    available = [c for c in orders.columns if c not in ("customer", "order_date", "order_value", "order_id", "row")]
+    raise OrderDataError(
+        "customers can be grouped by first-order month or quarter, or by a column of the orders",
+        column="--by",
+        value=by,
+        fix="Use --by month, --by quarter" + (f" or one of: {', '.join(available)}" if available
+                                              else " or name a group column with --segment"),
+    )
+
+
+def _parse_date(value, option):
+    try:
+        stamp = pd.Timestamp(value)
+    except (TypeError, ValueError):
+        stamp = pd.NaT
+    if pd.isna(stamp):
+        raise OrderDataError(f"{option} is not a date", value=value, fix="Give a date such as 2026-05-01")
+    return stamp
+
+
+# --------------------------------------------------------------------------- #
+# Grouping customers
+# --------------------------------------------------------------------------- #
+def _cohort_labels(first_order: pd.Series, period: str) -> np.ndarray:
+    first_order = pd.to_datetime(first_order)
+    years = first_order.dt.year.to_numpy()
+    if period == "month":
+        months = first_order.dt.month.to_numpy()
+        return np.array([f"{y:04d}-{m:02d}" for y, m in zip(years, months)], dtype=object)
+    quarters = first_order.dt.quarter.to_numpy()
+    return np.array([f"{y:04d}-Q{q}" for y, q in zip(years, quarters)], dtype=object)
+
+
+def _group_labels(stats: pd.DataFrame, orders: pd.DataFrame, by: str) -> np.ndarray:
+    """One label per customer of ``stats``: their cohort or their latest value of column ``by``."""
+    if by in COHORT_PERIODS:
+        return _cohort_labels(stats["first_order"], by)
+    latest = orders.sort_values("order_date", kind="stable").groupby("customer", sort=True)[by].last()
+    labels = latest.reindex(stats.index)
+    return np.array([_NO_GROUP if pd.isna(v) else str(v) for v in labels], dtype=object)
+
+
+# --------------------------------------------------------------------------- #
+# Projection core
+# --------------------------------------------------------------------------- #
+def _forecasts_for(stats, orders, *, method, variance, forecasts):
+    """The per-customer expected next-order values, aligned with ``stats``."""
+    if forecasts is None:
+        from .forecasts import forecast_customers  # the estimators' public door
+
+        forecasts = forecast_customers(stats, method=method, variance=variance, orders=orders)
+    needed = ["customer", "expected_next_order", "expected_low", "expected_high", "own_history_weight"]
+    missing = [c for c in needed if c not in forecasts.columns]
+    if missing:
+        raise OrderDataError("the forecast table lacks columns", value=", ".join(missing),
+                             fix="Make it with forecasting.forecasts.forecast_customers")
+    aligned = forecasts.set_index("customer").reindex(stats.index)
+    if aligned["expected_next_order"].isna().any():
+        lacking = aligned.index[aligned["expected_next_order"].isna()][0]
+        raise OrderDataError("a customer has no expected next-order value", value=lacking,
+                             fix="Make the forecasts from the same orders")
+    fit = dict(forecasts.attrs.get("fit", {}))
+    return aligned, fit
+
+
+def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n_groups, level, rng):
+    """Per-customer and per-group interval ends from joint draws.
+
+    Each draw d takes one BG/NBD parameter set (shared by every customer, so
+    cohort totals carry its correlation) and, independently per customer, a
+    next-order value from a Gamma distribution with mean value_mean and
+    standard deviation value_sd; revenue is expected orders(d) x value(d).
+    """
+    draws = params_draws.shape[0]
+    n = len(x)
+    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
+    cust_low = np.empty(n)
+    cust_high = np.empty(n)
+    group_sums = np.zeros((draws, n_groups))
+    chunk = max(1, _CELLS_PER_CHUNK // draws)
+    for start in range(0, n, chunk):
+        stop = min(n, start + chunk)
+        orders_ahead = expected_orders_for_draws(params_draws, x[start:stop], t_x[start:stop], age[start:stop],
+                                                 horizon)
+        values = _value_draws(value_mean[start:stop], value_sd[start:stop], draws, rng)
+        revenue = orders_ahead * values
+        cust_low[start:stop], cust_high[start:stop] = np.quantile(revenue, [low_q, high_q], axis=0)
+        indicator = sparse.csr_matrix(
+            (np.ones(stop - start), (np.arange(stop - start), codes[start:stop])), shape=(stop - start, n_groups))
+        group_sums += np.asarray((indicator.T @ revenue.T).T)
+    group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
+    total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
+    return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
+
+
+def _value_draws(mean, sd, draws, rng):
+    """Draws (draws x customers) of positive values with the given means and standard deviations.
+
+    Gamma with shape (mean/sd)^2 and scale sd^2/mean; exactly ``mean`` where sd = 0.
+    """
+    spread = sd > 0
+    shape = np.where(spread, (mean / np.where(spread, sd, 1.0)) ** 2, 1.0)
+    scale = np.where(spread, sd * sd / mean, 0.0)
+    values = rng.gamma(np.broadcast_to(shape, (draws, len(mean))), 1.0) * scale[None, :]
+    return np.where(spread[None, :], values, mean[None, :])
+
+
+def _value_spread(forecasts, level):
+    """Standard deviation of each expected next-order value, read off its interval.
+
+    The interval is estimate +- z sd (classic) or multiplicative (log model);
+    either way (high - low) / 2z is the spread. Intervals cut at zero lose their
+    lower half, so there the upper half-width / z is used.
+    """
+    z = float(sps.norm.ppf(0.5 + level / 2))
+    low = forecasts["expected_low"].to_numpy(dtype=np.float64)
+    high = forecasts["expected_high"].to_numpy(dtype=np.float64)
+    mean = forecasts["expected_next_order"].to_numpy(dtype=np.float64)
+    sd = np.where(low > 0, (high - low) / (2 * z), (high - mean) / z)
+    return np.where(np.isfinite(sd) & (sd > 0), sd, 0.0)
+
+
+def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, level, draws, seed):
+    """Shared work of project_revenue and backtest_outlook; returns tables and the fit."""
+    history = repeat_history(stats, as_of=as_of)
+    fit = fit_order_frequency(history)
+    aligned, forecast_fit = _forecasts_for(stats, orders, method=method, variance=variance, forecasts=forecasts)
+    x = history["repeat_orders"].to_numpy(dtype=np.float64)
+    t_x = history["days_to_last_order"].to_numpy(dtype=np.float64)
+    age = history["days_known"].to_numpy(dtype=np.float64)
+    expected_orders = fit.expected_orders(history, horizon)
+    chance = fit.chance_active(history)
+    value = aligned["expected_next_order"].to_numpy(dtype=np.float64)
+    value_sd = _value_spread(aligned, float(forecast_fit.get("level", 0.90)))
+
+    labels = _group_labels(stats, orders, by)
+    codes, group_names = pd.factorize(labels, sort=True)
+    rng = np.random.default_rng(seed)
+    params_draws = fit.draw_parameters(draws, seed=rng)
+    cust_low, cust_high, group_low, group_high, total_low, total_high = _simulate(
+        params_draws, x, t_x, age, horizon, value, value_sd, codes, len(group_names), level, rng)
+
+    projected = expected_orders * value
+    weight = aligned["own_history_weight"].to_numpy(dtype=np.float64)
+    if "low_confidence" in aligned.columns:
+        low_confidence = aligned["low_confidence"].to_numpy(dtype=bool)
+    else:
+        low_confidence = (weight < SHOP_PATTERN_WEIGHT) | (stats["orders"].to_numpy() == 1)
+    customers = pd.DataFrame(
+        {
+            "customer": stats.index.to_numpy(dtype=object),
+            "cohort": labels,
+            "orders": stats["orders"].to_numpy(dtype=np.int64),
+            "first_order": stats["first_order"].to_numpy(),
+            "last_order": stats["last_order"].to_numpy(),
+            "days_known": age,
+            "chance_active": chance,
+            "expected_orders": expected_orders,
+            "expected_next_order": value,
+            "expected_low": aligned["expected_low"].to_numpy(dtype=np.float64),
+            "expected_high": aligned["expected_high"].to_numpy(dtype=np.float64),
+            "own_history_weight": weight,
+            "low_confidence": low_confidence,
+            "mostly_shop_pattern": weight < SHOP_PATTERN_WEIGHT,
+            "projected_revenue": projected,
+            # The plug-in projection always lies inside its interval, even when
+            # the value draws are cut at zero.
+            "projected_low": np.minimum(cust_low, projected),
+            "projected_high": np.maximum(cust_high, projected),
+        }
+    )
+    group_revenue = np.bincount(codes, weights=projected, minlength=len(group_names))
+    total = float(projected.sum())
+    cohorts = pd.DataFrame(
+        {
+            "cohort": np.asarray(group_names, dtype=object),
+            "customers": np.bincount(codes, minlength=len(group_names)).astype(np.int64),
+            "expected_orders": np.bincount(codes, weights=expected_orders, minlength=len(group_names)),
+            "projected_revenue": group_revenue,
+            "projected_low": np.minimum(group_low, group_revenue),
+            "projected_high": np.maximum(group_high, group_revenue),
+            "share_of_projected_revenue": group_revenue / total if total > 0 else np.zeros(len(group_names)),
+        }
+    )
+    totals = {
+        "customers": int(len(stats)),
+        "expected_orders": float(expected_orders.sum()),
+        "projected_revenue": total,
+        "projected_low": min(total_low, total),
+        "projected_high": max(total_high, total),
+    }
+    return customers, cohorts, totals, fit, forecast_fit
+
+
+# --------------------------------------------------------------------------- #
+# Public: projection
+# --------------------------------------------------------------------------- #
+@dataclass(frozen=True)
+class Outlook:
+    """Projected revenue over a horizon, per customer and per group.
+
+    Attributes
+    ----------
+    customers : pandas.DataFrame
+        One row per customer, columns ``OUTLOOK_COLUMNS``.
+    cohorts : pandas.DataFrame
+        One row per group, columns ``COHORT_COLUMNS``.
+    total : dict
+        ``customers``, ``expected_orders``, ``projected_revenue``,
+        ``projected_low``, ``projected_high``.
+    fit : FrequencyFit
+        The order-frequency model.
+    forecast_fit : dict
+        ``attrs["fit"]`` of the next-order forecasts used.
+    horizon_days, as_of, by, level, draws, seed
+        The options the outlook was made with.
+    """
+
+    customers: pd.DataFrame
+    cohorts: pd.DataFrame
+    total: dict
+    fit: FrequencyFit
+    forecast_fit: dict = field(repr=False)
+    horizon_days: float
+    as_of: pd.Timestamp
+    by: str
+    level: float
+    draws: int
+    seed: int
+
+    def summary(self) -> dict:
+        """Plain numbers and strings, one object (for JSON and the dashboard)."""
+        return {
+            "customers": self.total["customers"],
+            "horizon_days": self.horizon_days,
+            "as_of": self.as_of.isoformat(),
+            "by": self.by,
+            "level": self.level,
+            "total": dict(self.total),
+            "cohorts": _records(self.cohorts),
+            "order_frequency": self.fit.as_dict(),
+            "method": self.forecast_fit.get("method"),
+            "variance": self.forecast_fit.get("variance"),
+        }
+
+
+def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of=None, method: str = "mta",
+                    variance: str = "classic", forecasts: pd.DataFrame | None = None, level: float = 0.90,
+                    draws: int = 400, seed: int = 0) -> Outlook:
+    """Project each customer's revenue over the next ``horizon`` days, and per group.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders (``customer``, ``order_date``, ``order_value``, optional
+        ``segment`` or other group columns).
+    horizon : float
+        Days ahead of ``as_of``.
+    by : str, default "quarter"
+        Group customers by the ``"month"`` or ``"quarter"`` of their first
+        order, or by the name of a column of ``orders`` (the customer's latest
+        value, e.g. ``"segment"``).
+    as_of : date-like, optional
+        Date the projection starts from; default the last order date.
+    method, variance : str
+        Passed to :func:`forecasting.forecasts.forecast_customers` for the
+        expected next-order values.
+    forecasts : pandas.DataFrame, optional
+        Ready-made output of ``forecast_customers`` for these customers (then
+        ``method``/``variance`` are not used).
+    level : float, default 0.90
+        Coverage of the intervals.
+    draws : int, default 400
+        Number of simulation draws for the intervals (at least 20).
+    seed : int, default 0
+        Seed of the draws; the same seed gives the same intervals.
+
+    Returns
+    -------
+    Outlook
+
+    Notes
+    -----
+    Projected revenue of a customer = E[orders in horizon | history] (BG/NBD
+    eq. 10, :func:`forecasting.frequency.expected_orders_ahead`) x expected
+    next-order value. Multiplying assumes how often a customer orders and how
+    much they spend per order are independent (the usual assumption of spend
+    models that sit on BG/NBD).
+
+    The interval is a parametric bootstrap of the *expected* revenue, not a
+    range for what will actually be spent: each draw takes BG/NBD parameters
+    from the normal approximation of their log-scale estimates (inverse
+    Hessian) and, independently per customer, a next-order value with the
+    forecast's expected value as mean and its interval's half-width / z as
+    standard deviation. The value draws are Gamma rather than normal: in a
+    shop with a heavy tail a customer with one or two orders can have a
+    standard deviation larger than the value itself, and a normal cut at zero
+    would push the draws' mean up; a Gamma keeps them positive with the mean
+    unchanged. Value draws are independent between
+    customers, which ignores that shrunk forecasts share a centre; cohort
+    intervals are therefore somewhat narrow for the value part. Actual
+    revenue also varies with chance (which customers happen to order), which
+    the interval does not include.
+
+    References
+    ----------
+    Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). "Counting your
+    customers" the easy way. Marketing Science 24(2), 275-284.
+    """
+    horizon = _check_horizon(horizon)
+    level = _check_level(level)
+    draws = _check_draws(draws)
+    _check_orders(orders)
+    by = _check_by(by, orders)
+    stats = customer_statistics(orders)
+    if as_of is None:
+        as_of_ts = pd.Timestamp(stats["last_order"].max())
+    else:
+        as_of_ts = _parse_date(as_of, "the 'as of' date")
+    customers, cohorts, totals, fit, forecast_fit = _project(
+        orders, stats, horizon=horizon, by=by, as_of=as_of_ts, method=method, variance=variance,
+        forecasts=forecasts, level=level, draws=draws, seed=seed)
+    return Outlook(customers=customers, cohorts=cohorts, total=totals, fit=fit, forecast_fit=forecast_fit,
+                   horizon_days=horizon, as_of=as_of_ts, by=by, level=level, draws=draws, seed=seed)
+
+
+# --------------------------------------------------------------------------- #
+# Public: backtest
+# --------------------------------------------------------------------------- #
+@dataclass(frozen=True)
+class OutlookBacktest:
+    """Projected against actual revenue after a cut-off date.
+
+    Attributes
+    ----------
+    cohorts : pandas.DataFrame
+        One row per group, columns ``BACKTEST_COLUMNS``.
+    total : dict
+        The same figures for all customers together, plus
+        ``cohort_abs_error`` / ``run_rate_cohort_abs_error`` (sums over groups
+        of absolute errors) and ``new_customer_revenue`` (revenue in the window
+        from customers first seen after the cut-off; not projected).
+    cutoff : pandas.Timestamp
+        Orders before it were used to fit; the window starts there.
+    window_days : float
+        Length of the compared window.
+    outlook : Outlook
+        The projection made at the cut-off.
+    """
+
+    cohorts: pd.DataFrame
+    total: dict
+    cutoff: pd.Timestamp
+    window_days: float
+    outlook: Outlook = field(repr=False)
+
+    def summary(self) -> dict:
+        """Plain numbers and strings, one object (for JSON and the dashboard)."""
+        return {
+            "cutoff": self.cutoff.isoformat(),
+            "window_days": self.window_days,
+            "by": self.outlook.by,
+            "total": dict(self.total),
+            "cohorts": _records(self.cohorts),
+            "order_frequency": self.outlook.fit.as_dict(),
+        }
+
+
+def _default_window(first, end, horizon):
+    """The backtest window: the horizon when it leaves at least half the span to fit on, else the last 20%."""
+    span_days = (end - first) / pd.Timedelta(days=1)
+    if horizon is not None and horizon <= 0.5 * span_days:
+        return float(horizon)
+    return float(max(1.0, round(0.2 * span_days)))
+
+
+def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str = "quarter",
+                     method: str = "mta", variance: str = "classic", level: float = 0.90,
+                     draws: int = 400, seed: int = 0) -> OutlookBacktest:
+    """Fit the outlook on orders before a cut-off and compare with what came after.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders.
+    horizon : float, optional
+        Length of the compared window in days. Default: the last 20% of the
+        time span. A horizon that would leave less than half the span to fit on
+        is replaced by the last 20% (see ``window_days`` of the result).
+    cutoff : date-like, optional
+        Start of the compared window. Default: the end of the last order's day
+        minus the window. With a cut-off, the window is ``horizon`` days or up
+        to the end of the data, whichever is shorter.
+    by : str, default "quarter"
+        Grouping, as in :func:`project_revenue` (groups are taken from the
+        orders before the cut-off).
+    method, variance, level, draws, seed
+        As in :func:`project_revenue`.
+
+    Returns
+    -------
+    OutlookBacktest
+
+    Notes
+    -----
+    Only customers with an order before the cut-off are projected and
+    compared; revenue from customers who first order in the window is
+    reported separately. Orders dated before the cut-off are used to fit;
+    orders from the cut-off up to ``cutoff + window`` (exclusive) are the actual
+    revenue.
+
+    The run-rate baseline projects each customer's past pace forward:
+    repeat orders / days known x window days x their plain average order
+    value (zero for one-time customers). ``error = projected - actual``;
+    ``error_pct = 100 error / actual``.
+    """
+    level = _check_level(level)
+    draws = _check_draws(draws)
+    if horizon is not None:
+        horizon = _check_horizon(horizon)
+    _check_orders(orders)
+    by = _check_by(by, orders)
+    dates = pd.to_datetime(orders["order_date"])
+    first_day = dates.min().normalize()
+    end = dates.max().normalize() + pd.Timedelta(days=1)
+    if cutoff is None:
+        window = _default_window(first_day, end, horizon)
+        cutoff_ts = end - pd.Timedelta(days=window)
+    else:
+        cutoff_ts = _parse_date(cutoff, "--cutoff")
+        if not first_day < cutoff_ts < end:
+            raise OrderDataError(
+                f"--cutoff must fall inside the orders' dates ({first_day:%Y-%m-%d} to {dates.max():%Y-%m-%d})",
+                value=cutoff, fix="Choose a date with orders on both sides")
+        room = (end - cutoff_ts) / pd.Timedelta(days=1)
+        window = float(min(horizon, room)) if horizon is not None else float(room)
+    window_end = cutoff_ts + pd.Timedelta(days=window)
+    before = orders.loc[dates < cutoff_ts]
+    after = orders.loc[(dates >= cutoff_ts) & (dates < window_end)]
+    if len(before) == 0:
+        raise OrderDataError("no orders fall before the cut-off date", value=cutoff_ts.date(),
+                             fix="Choose a later --cutoff")
+    outlook = project_revenue(before, horizon=window, by=by, as_of=cutoff_ts, method=method, variance=variance,
+                              level=level, draws=draws, seed=seed)
+    projection = outlook.customers
+    known = pd.Index(projection["customer"])
+    actual_by_customer = after.groupby("customer")["order_value"].sum()
+    actual = actual_by_customer.reindex(known, fill_value=0.0).to_numpy(dtype=np.float64)
+    new_revenue = float(actual_by_customer[~actual_by_customer.index.isin(known)].sum())
+
+    stats_before = customer_statistics(before)
+    rate = np.where(projection["days_known"] > 0,
+                    (projection["orders"] - 1) / np.maximum(projection["days_known"], 1e-300), 0.0)
+    run_rate = rate * window * stats_before["mean"].reindex(known).to_numpy(dtype=np.float64)
+
+    groups = projection["cohort"].to_numpy(dtype=object)
+    table = pd.DataFrame({"cohort": groups, "actual": actual, "run_rate": run_rate})
+    sums = table.groupby("cohort", sort=True)[["actual", "run_rate"]].sum()
+    cohorts = outlook.cohorts.set_index("cohort")
+    act = sums["actual"].reindex(cohorts.index).to_numpy()
+    base = sums["run_rate"].reindex(cohorts.index).to_numpy()
+    proj = cohorts["projected_revenue"].to_numpy()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        result = pd.DataFrame(
+            {
+                "cohort": cohorts.index.to_numpy(dtype=object),
+                "customers": cohorts["customers"].to_numpy(),
+                "projected_revenue": proj,
+                "projected_low": cohorts["projected_low"].to_numpy(),
+                "projected_high": cohorts["projected_high"].to_numpy(),
+                "actual_revenue": act,
+                "error": proj - act,
+                "error_pct": np.where(act > 0, 100 * (proj - act) / act, np.nan),
+                "run_rate_revenue": base,
+                "run_rate_error": base - act,
+                "run_rate_error_pct": np.where(act > 0, 100 * (base - act) / act, np.nan),
+                "actual_inside_interval": (cohorts["projected_low"].to_numpy() <= act)
+                & (act <= cohorts["projected_high"].to_numpy()),
+            }
+        )
+    total_actual = float(act.sum())
+    total_proj = float(outlook.total["projected_revenue"])
+    total_base = float(base.sum())
+    total = {
+        "customers": int(outlook.total["customers"]),
+        "projected_revenue": total_proj,
+        "projected_low": float(outlook.total["projected_low"]),
+        "projected_high": float(outlook.total["projected_high"]),
+        "actual_revenue": total_actual,
+        "error": total_proj - total_actual,
+        "error_pct": 100 * (total_proj - total_actual) / total_actual if total_actual > 0 else None,
+        "run_rate_revenue": total_base,
+        "run_rate_error": total_base - total_actual,
+        "run_rate_error_pct": 100 * (total_base - total_actual) / total_actual if total_actual > 0 else None,
+        "cohort_abs_error": float(np.abs(result["error"]).sum()),
+        "run_rate_cohort_abs_error": float(np.abs(result["run_rate_error"]).sum()),
+        "new_customer_revenue": new_revenue,
+        "orders_fitted": int(len(before)),
+        "orders_in_window": int(len(after)),
+    }
+    return OutlookBacktest(cohorts=result, total=total, cutoff=cutoff_ts, window_days=window, outlook=outlook)
+
+
+# --------------------------------------------------------------------------- #
+# Public: value tiers
+# --------------------------------------------------------------------------- #
+_DEFAULT_TIER_NAMES = {
+    1: ("all customers",),
+    2: ("top customers", "everyone else"),
+    3: ("top customers", "regulars", "occasional"),
+    4: ("top customers", "loyal", "regulars", "occasional"),
+}
+_RANK_COLUMN = {"value": "expected_next_order", "revenue": "projected_revenue"}
+
+
+def _check_tier_options(rank, shares, thresholds, names):
+    if rank not in RANK_BY:
+        raise OrderDataError("customers can be ranked by next-order value or by projected revenue",
+                             column="--rank", value=rank, fix="Use --rank value or --rank revenue")
+    if shares is not None and thresholds is not None:
+        raise OrderDataError("give either shares of customers or money thresholds for the tiers, not both",
+                             column="--quantiles", fix="Drop --quantiles or --thresholds")
+    if thresholds is not None:
+        values = _as_floats(thresholds, "--thresholds")
+        if any(not math.isfinite(v) or v <= 0 for v in values):
+            raise OrderDataError("tier thresholds must be positive amounts", column="--thresholds",
+                                 value=",".join(str(v) for v in values), fix="Use for example --thresholds 50,200")
+        if len(set(values)) != len(values):
+            raise OrderDataError("tier thresholds must all differ", column="--thresholds",
+                                 value=",".join(str(v) for v in values))
+        cuts = sorted(values, reverse=True)
+        kind = "thresholds"
+    else:
+        values = _as_floats((0.10, 0.30) if shares is None else shares, "--quantiles")
+        if any(not math.isfinite(v) or not 0 < v < 1 for v in values) or sum(values) > 1 + 1e-12:
+            raise OrderDataError(
+                "tier shares must each be between 0 and 1 and add up to at most 1",
+                column="--quantiles", value=",".join(str(v) for v in values),
+                fix="Use for example --quantiles 0.1,0.3 for the top 10%, the next 30% and the rest")
+        cuts = values
+        kind = "shares"
+    count = len(cuts) + 1
+    if kind == "shares" and abs(sum(cuts) - 1) <= 1e-12:
+        count = len(cuts)
+    if names is None:
+        names = _DEFAULT_TIER_NAMES.get(count, tuple(f"tier {k}" for k in range(1, count + 1)))
+    else:
+        names = tuple(str(n) for n in names)
+        if len(names) != count or len(set(names)) != count:
+            raise OrderDataError(f"give {count} different tier names", column="names", value=", ".join(names))
+    return kind, cuts, names
+
+
+def _as_floats(values, option):
+    if isinstance(values, str):
+        values = [v for v in values.split(",") if v.strip()]
+    try:
+        out = [float(v) for v in values]
+    except (TypeError, ValueError):
+        raise OrderDataError("expected numbers separated by commas", column=option, value=values) from None
+    if not out:
+        raise OrderDataError("expected at least one number", column=option)
+    return out
+
+
+def _money(v):
+    return f"{v:,.2f}"
+
+
+def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, thresholds=None,
+                 names=None) -> pd.DataFrame:
+    """Rank customers and put each into a value tier.
+
+    Parameters
+    ----------
+    customers : pandas.DataFrame
+        Per-customer table with ``customer``, ``expected_next_order``,
+        ``own_history_weight`` and, for ``rank="revenue"``,
+        ``projected_revenue`` -- e.g. ``project_revenue(...).customers`` or
+        the output of ``forecast_customers``.
+    rank : {"value", "revenue"}, default "value"
+        Rank by expected next-order value or by projected revenue in the horizon.
+    shares : sequence of float, optional
+        Shares of customers in each tier from the top; the rest form the last
+        tier. Default ``(0.10, 0.30)``: top 10%, next 30%, the rest.
+    thresholds : sequence of float, optional
+        Money amounts instead of shares: ``(50, 200)`` gives 200 and above,
+        50 to under 200, under 50.
+    names : sequence of str, optional
+        Tier names from the top; by default plain shop words
+        ("top customers", "regulars", "occasional" for three tiers).
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy sorted from the top, with ``rank`` (1 = highest; ties share a
+        rank), ``tier``, ``tier_rule`` and ``mostly_shop_pattern``
+        (own-history weight below 0.5) added. ``attrs["tiers"]`` lists the
+        tier names and rules in order.
+
+    Notes
+    -----
+    With shares, the tier boundary is the figure of the customer at that
+    position (e.g. the 200th of 2,000 for the top 10%); customers tied with
+    it join the higher tier, so a tier can be slightly larger than its
+    share, and two customers with the same figure are never split.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> table = pd.DataFrame({"customer": list("abcde"),
+    ...                       "expected_next_order": [10.0, 80.0, 40.0, 40.0, 5.0],
+    ...                       "own_history_weight": [0.9, 0.8, 0.3, 0.6, 0.2]})
+    >>> assign_tiers(table, shares=(0.2, 0.4))[["customer", "rank", "tier"]]
+      customer  rank           tier
+    0        b     1  top customers
+    1        c     2       regulars
+    2        d     2       regulars
+    3        a     4     occasional
+    4        e     5     occasional
+    """
+    kind, cuts, names = _check_tier_options(rank, shares, thresholds, names)
+    column = _RANK_COLUMN[rank]
+    needed = ["customer", column, "own_history_weight"]
+    missing = [c for c in needed if c not in customers.columns]
+    if missing:
+        fix = ("Rank by revenue after projecting revenue (project_revenue / the outlook command)"
+               if column == "projected_revenue" else "Make the table with forecast_customers or project_revenue")
+        raise OrderDataError("the customer table lacks columns needed for tiers", value=", ".join(missing), fix=fix)
+    if len(customers) == 0:
+        raise OrderDataError("there are no customers to put into tiers")
+    figures = customers[column].to_numpy(dtype=np.float64)
+    if not np.all(np.isfinite(figures)):
+        raise OrderDataError("some customers have no figure to rank by", column=column)
+
+    order = np.lexsort((customers["customer"].astype(str).to_numpy(), -figures))
+    table = customers.iloc[order].reset_index(drop=True).copy()
+    sorted_figures = figures[order]
+    n = len(table)
+    if kind == "shares":
+        positions = [min(n, max(1, math.ceil(s * n - 1e-9))) for s in np.cumsum(cuts)]
+        boundaries = [sorted_figures[p - 1] for p in positions]
+        rules = []
+        cumulative = 0.0
+        for s in cuts:
+            rules.append(f"top {100 * s:g}%" if cumulative == 0 else f"next {100 * s:g}%")
+            cumulative += s
+        if len(names) > len(cuts):
+            rules.append("the rest")
+        # Shares adding up to 1: the last boundary is the lowest figure, nobody falls below it.
+    else:
+        boundaries = list(cuts)
+        rules = [f"{_money(cuts[0])} and above"]
+        rules += [f"{_money(lo)} to under {_money(hi)}" for hi, lo in zip(cuts[:-1], cuts[1:])]
+        rules.append(f"under {_money(cuts[-1])}")
+    # Tier index = how many boundaries the figure falls below (boundaries go down).
+    tier_index = np.zeros(n, dtype=np.int64)
+    for boundary in boundaries:
+        tier_index += sorted_figures < boundary
+    tier_index = np.minimum(tier_index, len(names) - 1)
+    ranks = pd.Series(-sorted_figures).rank(method="min").astype(np.int64).to_numpy()
+    weight = table["own_history_weight"].to_numpy(dtype=np.float64)
+    table.insert(1, "rank", ranks)
+    table.insert(2, "tier", np.asarray(names, dtype=object)[tier_index])
+    table.insert(3, "tier_rule", np.asarray(rules, dtype=object)[tier_index])
+    table["mostly_shop_pattern"] = weight < SHOP_PATTERN_WEIGHT
+    table.attrs = {"tiers": [{"tier": t, "rule": r} for t, r in zip(names, rules)], "rank": rank,
+                   "rank_column": column}
+    return table
+
+
+def tier_summary(tiered: pd.DataFrame) -> pd.DataFrame:
+    """One row per tier: size, figures, share of projected revenue, confidence.
+
+    Parameters
+    ----------
+    tiered : pandas.DataFrame
+        Output of :func:`assign_tiers`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``TIER_SUMMARY_COLUMNS``, tiers from the top (empty tiers
+        included with zero customers). ``lowest_figure``/``highest_figure`` are
+        the ranked figure's range in the tier; ``projected_revenue`` and its
+        share are NaN when the table has no projected revenue;
+        ``average_own_history_weight`` is the plain average of the customers'
+        own-history weights; ``mostly_shop_pattern`` counts customers whose
+        forecast rests mostly on the shop-wide pattern.
+    """
+    if "tier" not in tiered.columns or "tiers" not in tiered.attrs:
+        raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
+    column = tiered.attrs["rank_column"]
+    has_revenue = "projected_revenue" in tiered.columns
+    total_revenue = float(tiered["projected_revenue"].sum()) if has_revenue else float("nan")
+    rows = []
+    n = len(tiered)
+    for spec in tiered.attrs["tiers"]:
+        part = tiered.loc[tiered["tier"] == spec["tier"]]
+        revenue = float(part["projected_revenue"].sum()) if has_revenue else float("nan")
+        rows.append(
+            {
+                "tier": spec["tier"],
+                "rule": spec["rule"],
+                "customers": int(len(part)),
+                "share_of_customers": len(part) / n,
+                "lowest_figure": float(part[column].min()) if len(part) else float("nan"),
+                "highest_figure": float(part[column].max()) if len(part) else float("nan"),
+                "projected_revenue": revenue,
+                "share_of_projected_revenue": revenue / total_revenue if has_revenue and total_revenue > 0
+                else float("nan"),
+                "average_own_history_weight": float(part["own_history_weight"].mean()) if len(part)
+                else float("nan"),
+                "mostly_shop_pattern": int(part["mostly_shop_pattern"].sum()),
+            }
+        )
+    return pd.DataFrame(rows, columns=TIER_SUMMARY_COLUMNS)
+
+
+_EXPORT_COLUMNS = [
+    "customer", "tier", "rank", "tier_rule", "orders", "expected_next_order", "expected_low", "expected_high",
+    "expected_orders", "chance_active", "projected_revenue", "projected_low", "projected_high",
+    "own_history_weight", "low_confidence", "mostly_shop_pattern", "cohort",
+]
+
+
+def _slug(name: str) -> str:
+    return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "tier"
+
+
+def export_tiers(tiered: pd.DataFrame, path) -> dict:
+    """Write all customers and each tier as CSV lists (formula-safe).
+
+    Parameters
+    ----------
+    tiered : pandas.DataFrame
+        Output of :func:`assign_tiers`.
+    path : str or pathlib.Path
+        The file for the whole list; each tier also gets its own file beside
+        it, named ``<stem>-<tier>.csv`` (e.g. ``tiers-top-customers.csv``).
+
+    Returns
+    -------
+    dict
+        ``{"all": Path, <tier name>: Path, ...}``.
+
+    Notes
+    -----
+    Written with :func:`forecasting.exports.write_csv`, which neutralises text
+    that a spreadsheet would run as a formula. Money figures are rounded to
+    cents, weights and chances to three decimals.
+    """
+    from .exports import write_csv
+
+    if "tiers" not in tiered.attrs:
+        raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
+    path = Path(path)
+    columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
+    table = tiered[columns].copy()
+    for name in ("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
+                 "projected_high"):
+        if name in table.columns:
+            table[name] = table[name].round(2)
+    for name in ("own_history_weight", "chance_active", "expected_orders"):
+        if name in table.columns:
+            table[name] = table[name].round(3)
+    written = {"all": write_csv(table, path)}
+    suffix = path.suffix or ".csv"
+    for spec in tiered.attrs["tiers"]:
+        part = table.loc[table["tier"] == spec["tier"]]
+        written[spec["tier"]] = write_csv(part, path.with_name(f"{path.stem}-{_slug(spec['tier'])}{suffix}"))
+    return written
+
+
+def _records(table: pd.DataFrame) -> list:
+    """Rows as plain dicts of Python scalars (NaN -> None) for JSON."""
+    out = []
+    for row in table.to_dict(orient="records"):
+        clean = {}
+        for key, value in row.items():
+            if isinstance(value, (np.bool_, bool)):
+                clean[key] = bool(value)
+            elif isinstance(value, (np.integer,)):
+                clean[key] = int(value)
+            elif isinstance(value, (float, np.floating)):
+                clean[key] = None if not math.isfinite(float(value)) else float(value)
+            else:
+                clean[key] = value
+        out.append(clean)
+    return out
