@@ -1,0 +1,510 @@
+"""The duckdb engine: order files in, per-customer statistics out, computed in SQL out of core.
+
+In: one or more CSV or Parquet files (a path, a glob pattern or a list), read by an embedded
+duckdb database with a memory limit, a spill directory and a number of threads.
+Out: the per-customer statistics table of :func:`forecasting.customers.customer_statistics`
+(same columns, same index, same types) and the row account of
+:meth:`forecasting.reading.ReadResult.audit` (rows read, used and excluded by reason code).
+
+Every cell is read as text (``all_varchar``) and converted with ``TRY_CAST`` after the
+rules below decided what it is: nothing is left to type guessing on a sample of the file,
+which would lose the cents of amounts that only appear late in a file.
+
+The cleaning rules are the pandas reader's, for plain exports (see
+:mod:`forecasting.engines.rules` for what "plain" means and what stops a run).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..customers import STATISTICS_COLUMNS
+from ..errors import OrderDataError
+from ..reading import REASONS
+from . import rules
+from .sources import OrderFiles, open_order_files
+
+__all__ = ["customer_statistics_duckdb"]
+
+
+def _quote_identifier(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def _literal(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _strip(expression: str) -> str:
+    """SQL for Python's ``str.strip()`` of ``expression``."""
+    return f"trim({expression}, {_literal(rules.WHITESPACE)})"
+
+
+def _status_word(expression: str) -> str:
+    return f"regexp_replace(lower({expression}), '[^a-z]', '', 'g')"
+
+
+def _connect(directory: str, *, memory_limit: str, threads: int | None):
+    import duckdb
+
+    connection = duckdb.connect(os.path.join(directory, "orders.duckdb"))
+    connection.execute(f"SET memory_limit = {_literal(memory_limit)}")
+    connection.execute(f"SET temp_directory = {_literal(os.path.join(directory, 'spill'))}")
+    connection.execute("SET preserve_insertion_order = true")
+    connection.execute("SET TimeZone = 'UTC'")
+    if threads is not None:
+        connection.execute(f"SET threads = {int(threads)}")
+    return connection
+
+
+def _load_raw(connection, files: OrderFiles) -> None:
+    """Table ``raw``: one row per record, every cell as text ('' for empty), in file order."""
+    paths = "[" + ", ".join(_literal(p) for p in files.paths) + "]"
+    if files.kind == "csv":
+        names = "[" + ", ".join(_literal(n) for n in files.columns) + "]"
+        reader = (f"read_csv({paths}, all_varchar = true, header = true, names = {names}, "
+                  f"delim = {_literal(files.delimiter)}, quote = '\"', escape = '\"', comment = '', skip = 0, "
+                  "strict_mode = true, allow_quoted_nulls = false, encoding = 'utf-8', filename = true)")
+        cells = [f"coalesce({_quote_identifier(n)}, '') AS c{i}" for i, n in enumerate(files.columns)]
+        position = "NULL::BIGINT"
+    else:
+        reader = f"read_parquet({paths}, filename = true, file_row_number = true)"
+        types = {row[0]: row[1] for row in connection.execute(f"DESCRIBE SELECT * FROM {reader}").fetchall()}
+        cells = []
+        for i, name in enumerate(files.columns):
+            column = _quote_identifier(name)
+            kind = str(types[name]).upper()
+            if kind.startswith("TIMESTAMP"):
+                text = f"strftime({column}, '%Y-%m-%d %H:%M:%S')"
+            elif kind in ("DOUBLE", "FLOAT", "REAL"):
+                text = f"CASE WHEN isnan({column}) THEN NULL ELSE CAST({column} AS VARCHAR) END"
+            elif kind == "BOOLEAN":
+                text = f"CASE WHEN {column} THEN 'True' ELSE 'False' END"
+            else:
+                text = f"CAST({column} AS VARCHAR)"
+            cells.append(f"coalesce({text}, '') AS c{i}")
+        position = "file_row_number"
+    try:
+        connection.execute(f"CREATE TABLE raw AS SELECT filename AS file, {position} AS file_position, "
+                           f"{', '.join(cells)} FROM {reader}")
+    except Exception as problem:  # duckdb.Error and its subclasses
+        _raise_read_problem(problem, files)
+
+
+def _raise_read_problem(problem: Exception, files: OrderFiles):
+    text = str(problem)
+    where = files.display_name
+    for path in files.paths:
+        if path in text or Path(path).name in text:
+            where = files.file_label(path)
+    if "utf-8" in text.lower() or "unicode" in text.lower():
+        raise OrderDataError("the file is not UTF-8 text", file=where,
+                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
+                                 "or save the export as UTF-8 CSV") from None
+    if files.kind == "csv":
+        line = ""
+        if "Line:" in text:
+            line = " near line " + text.split("Line:", 1)[1].split()[0]
+        raise OrderDataError(f"some rows do not split into the header's fields{line}", file=where,
+                             fix="Use --engine pandas, which lists each such row with its number") from None
+    raise OrderDataError(f"the Parquet files could not be read ({type(problem).__name__})", file=where) from None
+
+
+def _number_positions(connection, files: OrderFiles) -> None:
+    """Table ``numbered``: ``line`` orders all records (file order, then record order);
+    ``file_position`` is the record's 0-based place among the records read from its file."""
+    cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
+    if files.kind == "csv":
+        connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM raw GROUP BY file")
+        connection.execute(f"CREATE TABLE numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
+                           f"AS file_position, {cells} FROM raw r JOIN file_start s USING (file)")
+    else:
+        connection.execute(f"CREATE TABLE numbered AS SELECT rowid AS line, file, file_position, {cells} FROM raw")
+
+
+def _row_of(files: OrderFiles, file: str, position) -> int | None:
+    if position is None or (isinstance(position, float) and np.isnan(position)):
+        return None
+    return files.spreadsheet_row(file, int(position))
+
+
+def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
+    """Tables ``kept`` (rows that are not blank, over-long or duplicates) and ``classified``."""
+    cells = [f"c{i}" for i in range(len(files.columns))]
+    blank = " AND ".join(f"{_strip(c)} = ''" for c in cells)
+    too_long = " OR ".join(f"length({c}) > {rules.MAX_FIELD_CHARS}" for c in cells)
+    connection.execute(f"CREATE TABLE marked AS SELECT *, ({blank}) AS blank, "
+                       f"({too_long}) AS too_long FROM numbered")
+    # Exact copies of an earlier row: one group per distinct row, the earliest copy kept.
+    connection.execute(
+        "CREATE TABLE kept AS SELECT min(line) AS line, arg_min(file, line) AS file, "
+        f"arg_min(file_position, line) AS file_position, count(*) - 1 AS copies, {', '.join(cells)} "
+        f"FROM marked WHERE NOT blank AND NOT too_long GROUP BY {', '.join(cells)}")
+
+    index = {name: i for i, name in enumerate(files.columns)}
+    mapping = files.mapping
+
+    def cell(role):
+        column = getattr(mapping, role)
+        return f"c{index[column]}" if column else None
+
+    customer = _strip(cell("customer"))
+    amount = _strip(cell("value"))
+    date = _strip(cell("date"))
+    status = _status_word(cell("status")) if mapping.status else "''"
+    order_text = _strip(cell("order_id")) if mapping.order_id else "''"
+    segment = _strip(cell("segment")) if mapping.segment else "''"
+    if mapping.currency:
+        row_currency = f"upper({_strip(cell('currency'))})"
+    else:
+        # The currency an amount names (the pandas reader's rule): a three-letter code, else a symbol.
+        symbols = " ".join(f"WHEN contains(amount_text, {_literal(s)}) THEN {_literal(iso)}"
+                           for s, iso in rules.CURRENCY_SYMBOLS.items())
+        row_currency = (f"CASE WHEN NOT regexp_matches(amount_text, {_literal(rules.wordy_pattern_sql())}) "
+                        "THEN '' WHEN regexp_matches(upper(amount_text), '\\b[A-Z]{3}\\b') "
+                        "THEN regexp_extract(upper(amount_text), '\\b([A-Z]{3})\\b', 1) "
+                        f"{symbols} ELSE '' END")
+    early = ["WHEN customer = '' THEN 'missing_customer'"]
+    if mapping.status:
+        early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.TEST_PATTERN)}) THEN 'test_order'")
+        early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.CANCELLED_PATTERN)}) "
+                     "THEN 'cancelled_order'")
+    if currency:
+        wanted = currency.strip().upper()
+        wanted = rules.CURRENCY_SYMBOLS.get(wanted, wanted)
+        early.append(f"WHEN row_currency <> '' AND row_currency <> {_literal(wanted)} THEN 'other_currency'")
+    refund = "false"
+    if mapping.status:
+        refund = f"regexp_full_match({status}, {_literal(rules.REFUND_PATTERN)})"
+    connection.execute(f"""
+        CREATE TABLE staged AS
+        SELECT *, {row_currency} AS row_currency
+        FROM (SELECT line, file, file_position, copies,
+                     {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
+                     {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
+                     {status} AS status_word
+              FROM kept)""")
+    connection.execute(f"""
+        CREATE TABLE classified AS
+        SELECT *,
+               CASE WHEN early_reason <> '' THEN early_reason
+                    WHEN amount_kind = 'missing' THEN 'missing_amount'
+                    WHEN amount_kind = 'formatted' THEN 'formatted_amount'
+                    WHEN amount_kind = 'unreadable' THEN 'bad_amount'
+                    WHEN date_kind = 'missing' THEN 'missing_date'
+                    WHEN date_kind = 'other' THEN 'other_date'
+                    WHEN date_kind = 'unreadable' THEN 'bad_date'
+                    ELSE '' END AS reason
+        FROM (
+            SELECT *,
+                   CASE {' '.join(early)} ELSE '' END AS early_reason,
+                   CASE WHEN amount_text = '' THEN 'missing'
+                        WHEN regexp_full_match(amount_text, {_literal(rules.PLAIN_NUMBER)})
+                             THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'unreadable' END
+                        WHEN regexp_matches(amount_text, '\\p{{Nd}}') THEN 'formatted'
+                        ELSE 'unreadable' END AS amount_kind,
+                   CASE WHEN date_text = '' THEN 'missing'
+                        WHEN regexp_full_match(date_text, {_literal(rules.ISO_DATE)})
+                             THEN CASE WHEN order_date IS NULL THEN 'other'
+                                       WHEN order_date < TIMESTAMP '{rules.FIRST_DATE}'
+                                         OR order_date > TIMESTAMP '{rules.LAST_DATE}' THEN 'unreadable'
+                                       ELSE 'iso' END
+                        WHEN regexp_matches(date_text, '[\\pL\\pN]') THEN 'other'
+                        ELSE 'unreadable' END AS date_kind
+            FROM (SELECT *, TRY_CAST(amount_text AS DOUBLE) AS amount,
+                            TRY_CAST(date_text AS TIMESTAMP) AS order_date FROM staged))""")
+
+
+def _first(connection, where: str, column: str):
+    found = connection.execute(f"SELECT file, file_position, {column} FROM classified WHERE {where} "
+                               "ORDER BY line LIMIT 1").fetchone()
+    return found
+
+
+def _raw_cell(connection, files: OrderFiles, line: int, role: str):
+    column = getattr(files.mapping, role)
+    index = files.columns.index(column)
+    return connection.execute(f"SELECT c{index} FROM raw WHERE line = ?", [line]).fetchone()[0]
+
+
+def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None) -> None:
+    """The rules that look at a whole column, as the pandas reader applies them."""
+    mapping = files.mapping
+    if not currency:
+        seen = [r[0] for r in connection.execute(
+            "SELECT DISTINCT row_currency FROM classified WHERE early_reason = '' AND row_currency <> '' "
+            "ORDER BY row_currency").fetchall()]
+        if len(seen) > 1:
+            line, file, position = connection.execute(
+                "SELECT line, file, file_position FROM classified WHERE early_reason = '' AND row_currency = ? "
+                "ORDER BY line LIMIT 1", [seen[1]]).fetchone()
+            role = "currency" if mapping.currency else "value"
+            raise OrderDataError(
+                f"the amounts are in several currencies ({', '.join(seen)})", file=files.file_label(file),
+                row=_row_of(files, file, position), column=mapping.currency or mapping.value,
+                value=_raw_cell(connection, files, line, role),
+                fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
+    for kind, column, option, what, reading_rule, unreadable, values in (
+        ("formatted_amount", mapping.value, "--value", "amounts", "plain numbers such as 1234.50",
+         "reason = 'bad_amount'",
+         "early_reason = '' AND amount_kind <> 'missing'"),
+        ("other_date", mapping.date, "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30",
+         "reason = 'bad_date'",
+         "early_reason = '' AND amount_kind = 'plain' AND date_kind <> 'missing'"),
+    ):
+        found = _first(connection, f"reason = '{kind}'", "amount_text" if kind == "formatted_amount" else "date_text")
+        if found is not None:
+            file, position, value = found
+            raise OrderDataError(
+                f"the duckdb engine reads {reading_rule}; this value needs the pandas reader",
+                file=files.file_label(file), row=_row_of(files, file, position), column=column, value=value,
+                fix="Use --engine pandas for formatted exports")
+        total, bad = connection.execute(
+            f"SELECT count(*), count(*) FILTER (WHERE {unreadable}) FROM classified WHERE {values}").fetchone()
+        if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
+            file, position, value = _first(connection, unreadable,
+                                           "amount_text" if what == "amounts" else "date_text")
+            raise OrderDataError(f"most {what} in this column cannot be read", file=files.file_label(file),
+                                 row=_row_of(files, file, position), column=column, value=value,
+                                 fix=f"Pick the right column with {option}, or check the format")
+
+
+def _build_orders(connection, files: OrderFiles) -> None:
+    """Tables ``order_lines`` and ``orders``: lines summed by order id, refunds netted."""
+    connection.execute("""
+        CREATE TABLE order_lines AS
+        SELECT line, file, file_position, customer, order_text, segment_text, order_date,
+               (amount < 0 OR refund_status) AS is_refund,
+               CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed
+        FROM classified WHERE reason = ''""")
+    if files.mapping.order_id:
+        # Lines sharing a customer and an order id are one order; a line without an id is its own.
+        connection.execute("""
+            CREATE TABLE orders AS
+            SELECT customer, min(line) AS first_line, count(*) AS lines,
+                   sum(signed ORDER BY line) AS order_value,
+                   count(*) FILTER (WHERE NOT is_refund) AS purchases,
+                   min(order_date) FILTER (WHERE NOT is_refund) AS order_date,
+                   coalesce(first(segment_text ORDER BY line) FILTER (WHERE segment_text <> ''), 'unknown')
+                       AS segment
+            FROM order_lines
+            GROUP BY customer, order_text, CASE WHEN order_text = '' THEN line END""")
+    else:
+        connection.execute("""
+            CREATE TABLE orders AS
+            SELECT customer, line AS first_line, 1 AS lines, signed AS order_value,
+                   CASE WHEN is_refund THEN 0 ELSE 1 END AS purchases,
+                   CASE WHEN is_refund THEN NULL ELSE order_date END AS order_date,
+                   CASE WHEN segment_text = '' THEN 'unknown' ELSE segment_text END AS segment
+            FROM order_lines""")
+
+
+_STATISTICS_SQL = """
+    WITH kept_orders AS (
+        SELECT customer, first_line, order_value, ln(order_value) AS log_value, order_date, segment
+        FROM orders WHERE purchases > 0 AND order_value > 0),
+    sums AS (
+        SELECT customer, count(*) AS orders, sum(order_value) AS total, sum(log_value) AS log_total,
+               min(order_date) AS first_order, max(order_date) AS last_order,
+               arg_max(segment, {'day': order_date, 'line': first_line}) AS segment
+        FROM kept_orders GROUP BY customer),
+    means AS (
+        SELECT *, total / orders AS mean, log_total / orders AS log_mean FROM sums)
+    -- Second pass: squared deviations from the customer's own mean (exact for values of any size).
+    SELECT m.customer, m.orders, m.total, m.mean,
+           sum((o.order_value - m.mean) * (o.order_value - m.mean)) AS sum_sq_dev,
+           m.log_mean,
+           sum((o.log_value - m.log_mean) * (o.log_value - m.log_mean)) AS log_sum_sq_dev,
+           m.first_order, m.last_order, m.segment
+    FROM kept_orders o JOIN means m USING (customer)
+    GROUP BY m.customer, m.orders, m.total, m.mean, m.log_mean, m.first_order, m.last_order, m.segment
+    ORDER BY m.customer
+"""
+
+
+def _account(connection, files: OrderFiles) -> dict:
+    counts: dict[str, int] = {}
+    blank_marked, too_long = connection.execute(
+        "SELECT count(*) FILTER (WHERE blank), count(*) FILTER (WHERE too_long AND NOT blank) FROM marked"
+    ).fetchone()
+    counts["blank_row"] = int(blank_marked) + files.blank_lines
+    counts["malformed_row"] = int(too_long)
+    counts["duplicate_row"] = int(connection.execute("SELECT coalesce(sum(copies), 0) FROM kept").fetchone()[0])
+    for code, number in connection.execute(
+            "SELECT reason, count(*) FROM classified WHERE reason <> '' GROUP BY reason").fetchall():
+        counts[code] = int(number)
+    for code, number in connection.execute("""
+            SELECT CASE WHEN purchases = 0 THEN 'unmatched_refund' ELSE 'refunded_in_full' END, sum(lines)
+            FROM orders WHERE purchases = 0 OR order_value <= 0 GROUP BY 1""").fetchall():
+        counts[code] = int(number)
+    rows_read = int(connection.execute("SELECT count(*) FROM raw").fetchone()[0]) + files.blank_lines
+    excluded = {code: counts[code] for code in REASONS if counts.get(code, 0) > 0}
+    orders, customers = connection.execute(
+        "SELECT count(*), count(DISTINCT customer) FROM orders WHERE purchases > 0 AND order_value > 0"
+    ).fetchone()
+    rows_excluded = sum(excluded.values())
+    return {
+        "file": files.display_name,
+        "rows_read": rows_read,
+        "rows_used": rows_read - rows_excluded,
+        "rows_excluded": rows_excluded,
+        "orders": int(orders),
+        "customers": int(customers),
+        "excluded": excluded,
+        "mapping": files.mapping.as_dict(),
+        "notes": [],
+    }
+
+
+def _statistics_frame(table: pd.DataFrame, with_segment: bool) -> pd.DataFrame:
+    """The duckdb result in the layout of :func:`forecasting.customers.customer_statistics`."""
+    counts = table["orders"].to_numpy(dtype=np.int64)
+    log_sum_sq = table["log_sum_sq_dev"].to_numpy(dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
+    stats = pd.DataFrame(
+        {
+            "orders": counts,
+            "total": table["total"].to_numpy(dtype=np.float64),
+            "mean": table["mean"].to_numpy(dtype=np.float64),
+            "sum_sq_dev": table["sum_sq_dev"].to_numpy(dtype=np.float64),
+            "log_mean": table["log_mean"].to_numpy(dtype=np.float64),
+            "log_sum_sq_dev": log_sum_sq,
+            "log_var": log_var,
+            "first_order": pd.to_datetime(table["first_order"]).to_numpy().astype("datetime64[ns]"),
+            "last_order": pd.to_datetime(table["last_order"]).to_numpy().astype("datetime64[ns]"),
+        },
+        columns=STATISTICS_COLUMNS,
+        index=pd.Index(np.asarray(table["customer"].to_numpy(), dtype=object), name="customer"),
+    )
+    if with_segment:
+        stats["segment"] = table["segment"].to_numpy(dtype=object)
+    return stats
+
+
+def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, order_id=None, status=None,
+                               currency_column=None, segment=None, currency=None, date_order=None,
+                               decimal=None, sheet=None, file_name=None, memory_limit="2GB",
+                               temp_directory=None, threads=None):
+    """Per-customer statistics of order files, computed by duckdb within a memory limit.
+
+    Parameters
+    ----------
+    source : str, path or list of them
+        A CSV or Parquet file, a glob pattern (``"orders/*.csv"``) or a list of files;
+        every file must have the same columns. Several files are read as one table.
+    customer, date, value, order_id, status, currency_column, segment : str, optional
+        The column playing each part, as for :func:`forecasting.reading.read_orders`.
+    currency : str, optional
+        Keep only amounts in this currency.
+    date_order, decimal, sheet : optional
+        Accepted for the same call as the pandas engine; ``decimal=","`` and ``sheet``
+        are refused with a message naming ``--engine pandas``.
+    file_name : str, optional
+        The name shown in messages.
+    memory_limit : str, default "2GB"
+        duckdb's ``memory_limit``; what does not fit is spilled to ``temp_directory``.
+    temp_directory : str, optional
+        Where the working database and the spill files go (default: the system's
+        temporary folder); removed afterwards.
+    threads : int, optional
+        duckdb's ``threads`` (default: every core).
+
+    Returns
+    -------
+    stats : pandas.DataFrame
+        As :func:`forecasting.customers.customer_statistics`.
+    account : dict
+        As :meth:`forecasting.reading.ReadResult.audit`.
+
+    Raises
+    ------
+    OrderDataError
+        For the pandas reader's whole-file problems, and for formatted money or dates
+        (``$1,234.50``, ``14/03/2025``): the message names ``--engine pandas``.
+
+    Notes
+    -----
+    Plain numbers only: money text like ``$1,234.50`` or ``1.234,50`` is not parsed
+    here (its reading depends on the whole column); it stops the run with an
+    :class:`~forecasting.errors.OrderDataError` naming ``--engine pandas``. See
+    :mod:`forecasting.engines.rules` for the exact subset.
+
+    The sums of squares are computed in two passes, first each customer's mean,
+    then the squared deviations from it joined back to the orders, never as
+    sum(x^2) - n mean^2, which loses every digit of the spread of values near 1e9.
+    Lines of one order are summed in file order, as the pandas reader sums them, so
+    that an order which nets to exactly zero is treated the same by both.
+
+    Blank lines are skipped by duckdb's CSV reader; they are counted (as
+    ``blank_row``) by a scan of the file that follows RFC 4180 quoting.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> folder = tempfile.mkdtemp()
+    >>> path = os.path.join(folder, "orders.csv")
+    >>> _ = open(path, "w").write("customer,order_date,order_value\\n"
+    ...                           "fern,2025-03-01,24.00\\nfern,2025-04-02,36.00\\nivy,2025-03-05,80.00\\n")
+    >>> stats, account = customer_statistics_duckdb(path, memory_limit="500MB", threads=1)
+    >>> stats[["orders", "mean", "sum_sq_dev"]]
+              orders  mean  sum_sq_dev
+    customer
+    fern           2  30.0        72.0
+    ivy            1  80.0         0.0
+    >>> account["rows_read"], account["rows_used"]
+    (3, 3)
+    """
+    memory_limit = rules.check_memory_limit(memory_limit)
+    threads = rules.check_threads(threads)
+    rules.check_plain_options("duckdb", decimal=decimal, date_order=date_order, sheet=sheet)
+    if temp_directory is not None and not os.path.isdir(temp_directory):
+        raise OrderDataError(f"temp_directory is not a folder (got {os.fspath(temp_directory)!r})",
+                             fix="Create the folder first, or leave the option out")
+    try:
+        import duckdb  # noqa: F401
+    except ImportError:
+        raise OrderDataError("the duckdb engine needs the duckdb package",
+                             fix="Install it with pip install -r requirements-scale.txt, "
+                                 "or use --engine pandas") from None
+    overrides = {"customer": customer, "date": date, "value": value, "order_id": order_id,
+                 "status": status, "currency": currency_column, "segment": segment}
+    files = open_order_files(source, overrides=overrides, file_name=file_name)
+    with tempfile.TemporaryDirectory(prefix="order-engine-", dir=temp_directory) as directory:
+        connection = _connect(directory, memory_limit=memory_limit, threads=threads)
+        try:
+            _load_raw(connection, files)
+            _check_record_counts(connection, files)
+            _number_positions(connection, files)
+            _classify(connection, files, currency=currency)
+            _check_whole_columns(connection, files, currency=currency)
+            _build_orders(connection, files)
+            account = _account(connection, files)
+            if account["orders"] == 0:
+                excluded = account["excluded"]
+                top = max(excluded, key=excluded.get) if excluded else None
+                why = f"; most rows were left out because {REASONS[top]}" if top else ""
+                raise OrderDataError(f"no usable orders were found{why}", file=files.display_name,
+                                     fix="Check the column choices and the export")
+            table = connection.execute(_STATISTICS_SQL).df()
+        finally:
+            connection.close()
+    return _statistics_frame(table, with_segment=files.mapping.segment is not None), account
+
+
+def _check_record_counts(connection, files: OrderFiles) -> None:
+    """The blank-line scan and duckdb must agree on how many records each file has."""
+    if files.kind != "csv":
+        return
+    counted = dict(connection.execute("SELECT file, count(*) FROM raw GROUP BY file").fetchall())
+    for path in files.paths:
+        scanned = files.scanned_records.get(path)
+        if scanned is not None and scanned != counted.get(path, 0):
+            raise OrderDataError("the quoting of the file could not be followed to count its blank rows",
+                                 file=files.file_label(path),
+                                 fix="Use --engine pandas, or remove the blank lines")

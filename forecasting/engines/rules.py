@@ -1,0 +1,149 @@
+"""The cleaning rules as the scale engines apply them: one definition, used by SQL and by pandas.
+
+In: nothing (constants and small helpers). Out: the patterns and option checks that
+:mod:`forecasting.engines.duckdb_engine` turns into SQL and
+:mod:`forecasting.engines.dask_engine` applies to partitions with pandas.
+
+The pandas reader (:mod:`forecasting.reading`) understands formatted exports: money such
+as ``$1,234.50`` or ``1.234,50 €`` and dates such as ``14/03/2025`` whose reading
+(day-first or month-first) is settled by the whole column. A reading that depends on
+the whole column does not split over partitions, so the scale engines accept the plain
+subset and say so when a file needs more:
+
+* amounts: plain numbers (``1234.5``, ``-12``, ``.5``, ``1e3``); a value with no digit
+  at all (``n/a``) is an unreadable amount exactly as in the pandas reader; any other
+  value with a digit (``$1,234.50``, ``12,50``, ``12-``) stops the run with an
+  :class:`~forecasting.errors.OrderDataError` naming ``--engine pandas``;
+* dates: ISO dates ``YYYY-MM-DD`` with an optional time ``HH:MM[:SS[.ffffff]]``;
+  a value made of signs only (``-``, ``?``) is an unreadable date; anything else
+  (``14/03/2025``, ``March 14``, ``today``, ``2025-02-30``, a time-zone offset)
+  stops the run naming ``--engine pandas``.
+
+Every other rule (blank, over-long and duplicate rows, missing customer, test and
+cancelled orders, currencies, order lines summed by order id, refunds netted, orders
+that net to zero or less, the "most values unreadable" refusal) is the pandas reader's
+own, taken from :mod:`forecasting.reading` where it is written down.
+"""
+
+from __future__ import annotations
+
+import re
+
+from ..errors import OrderDataError
+from ..reading import (
+    _CANCELLED_STATUS,
+    _CURRENCY_SYMBOLS,
+    _REFUND_STATUS,
+    _TEST_STATUS,
+    MAX_FIELD_CHARS,
+    REASONS,
+)
+
+__all__ = [
+    "CANCELLED_PATTERN",
+    "CURRENCY_SYMBOLS",
+    "MAX_FIELD_CHARS",
+    "REASONS",
+    "REFUND_PATTERN",
+    "TEST_PATTERN",
+    "WHITESPACE",
+    "check_memory_limit",
+    "check_plain_options",
+    "check_threads",
+    "currency_marks",
+]
+
+# Exactly the characters Python's str.strip() removes (the pandas reader strips with it).
+WHITESPACE = "".join(chr(code) for code in range(0x110000) if chr(code).isspace())
+
+# Status words, lower-cased with everything but a-z removed first (as the pandas reader does).
+TEST_PATTERN = _TEST_STATUS.pattern
+CANCELLED_PATTERN = _CANCELLED_STATUS.pattern
+REFUND_PATTERN = _REFUND_STATUS.pattern
+CURRENCY_SYMBOLS = dict(_CURRENCY_SYMBOLS)
+
+# A plain number: what both pandas.to_numeric and a SQL cast to DOUBLE read the same way.
+PLAIN_NUMBER = r"^[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?$"
+# An ISO date with an optional time of day (hours 00-23, at most microseconds).
+ISO_DATE = (r"^[0-9]{4}-[0-9]{2}-[0-9]{2}"
+            r"([ T]([01][0-9]|2[0-3]):[0-5][0-9](:[0-5][0-9](\.[0-9]{1,6})?)?)?$")
+# Dates outside this range are unreadable (the pandas reader's rule).
+FIRST_DATE = "1970-01-01"
+LAST_DATE = "2100-01-01"
+# "Most values unreadable" means the column is the wrong one (the pandas reader's rule).
+UNREADABLE_MIN_VALUES = 5
+UNREADABLE_SHARE = 0.5
+
+_WORDY = re.compile(r"[^0-9.,()+\-\s]")
+_CODE = re.compile(r"\b([A-Z]{3})\b")
+
+
+def re2_class(characters: str) -> str:
+    """The body of an RE2 (duckdb) character class matching exactly ``characters``."""
+    return "".join(f"\\x{{{ord(c):x}}}" for c in characters)
+
+
+def wordy_pattern_sql() -> str:
+    """RE2 form of the reader's test "the amount has more than digits and separators"."""
+    return "[^0-9.,()+\\-" + re2_class(WHITESPACE) + "]"
+
+
+def currency_marks(text) -> list[str]:
+    """The currency each amount names, or ``""`` (the pandas reader's rule, for plain Python strings).
+
+    Examples
+    --------
+    >>> currency_marks(["12 EUR", "$5", "7", "kr 30"])
+    ['EUR', 'USD', '', 'SEK']
+    """
+    marks = []
+    for value in text:
+        mark = ""
+        if _WORDY.search(value):
+            found = _CODE.search(value.upper())
+            if found:
+                mark = found.group(1)
+            else:
+                mark = next((iso for symbol, iso in CURRENCY_SYMBOLS.items() if symbol in value), "")
+        marks.append(mark)
+    return marks
+
+
+_MEMORY = re.compile(r"^\s*\d+(\.\d+)?\s*(B|KB|MB|GB|TB|KIB|MIB|GIB|TIB)\s*$", re.IGNORECASE)
+
+
+def check_memory_limit(memory_limit) -> str:
+    """A memory limit such as ``"2GB"`` or ``"500MB"``; anything else is refused.
+
+    Examples
+    --------
+    >>> check_memory_limit("1.5GB")
+    '1.5GB'
+    """
+    if not isinstance(memory_limit, str) or not _MEMORY.match(memory_limit):
+        raise OrderDataError(f"memory_limit must be an amount such as '2GB' or '500MB' (got {memory_limit!r})",
+                             fix="Use for example --memory-limit 2GB")
+    return memory_limit.strip()
+
+
+def check_threads(threads) -> int | None:
+    """``None`` (all cores) or a whole number of threads, 1 or more."""
+    if threads is None:
+        return None
+    if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
+        raise OrderDataError(f"threads must be a whole number, 1 or more (got {threads!r})",
+                             fix="Use for example --threads 2, or leave it out to use every core")
+    return int(threads)
+
+
+def check_plain_options(engine: str, *, decimal=None, date_order=None, sheet=None) -> None:
+    """Refuse reading options that only the pandas engine honours, before any work."""
+    if decimal not in (None, "."):
+        raise OrderDataError(f"the {engine} engine reads plain numbers only (got --decimal {decimal!r})",
+                             fix="Use --engine pandas for amounts with a decimal comma")
+    if date_order not in (None, "day-first", "month-first"):
+        raise OrderDataError(f"the date order must be day-first or month-first (got {date_order!r})",
+                             fix="Use --date-order day-first or --date-order month-first")
+    if sheet is not None:
+        raise OrderDataError(f"the {engine} engine reads CSV and Parquet files, not Excel sheets",
+                             value=sheet, fix="Use --engine pandas for Excel workbooks")

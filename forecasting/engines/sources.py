@@ -1,0 +1,280 @@
+"""Order files for the scale engines: which files, what kind, which columns, where the blank lines are.
+
+In: a path, a glob pattern (``orders/*.csv``) or a list of paths. Out: a :class:`OrderFiles`
+with the files in sorted order, their kind (CSV text or Parquet), the delimiter and column
+names (the same for every file, or an :class:`~forecasting.errors.OrderDataError`), the
+column mapping guessed exactly as the pandas reader guesses it, and for CSV the position of
+every blank line (the SQL reader skips blank lines; the pandas reader counts them as rows).
+
+Row numbers are what a spreadsheet shows: the header is row 1 of each file.
+"""
+
+from __future__ import annotations
+
+import glob
+import io
+import mmap
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import OrderDataError
+from ..reading import ColumnMapping, _sniff_delimiter, guess_mapping
+
+_SNIFF_BYTES = 200_000
+_SAMPLE_ROWS = 500
+_SCAN_CHUNK = 1 << 26  # bytes per step of the blank-line scan
+
+
+@dataclass
+class OrderFiles:
+    """The files one engine run reads, as one table."""
+
+    paths: list[str]
+    kind: str  # "csv" or "parquet"
+    columns: list[str]
+    mapping: ColumnMapping
+    display_name: str
+    delimiter: str = ","
+    # For CSV: per file, the record numbers (header = 0) of blank lines, sorted, and the
+    # number of non-blank data records the scan found (None when there was nothing to scan).
+    blank_records: dict[str, np.ndarray] = field(default_factory=dict)
+    scanned_records: dict[str, int | None] = field(default_factory=dict)
+
+    @property
+    def blank_lines(self) -> int:
+        return int(sum(len(b) for b in self.blank_records.values()))
+
+    def file_label(self, path: str) -> str:
+        return Path(path).name if len(self.paths) > 1 else self.display_name
+
+    def spreadsheet_row(self, path: str, position: int) -> int:
+        """Row number of the ``position``-th (0-based) record the reader returned from ``path``."""
+        if self.kind == "parquet":
+            return int(position) + 2
+        blank = self.blank_records.get(path, np.zeros(0, dtype=np.int64))
+        # Data records before blank record b: b - 1 - (blank records before it).
+        before = blank - 1 - np.arange(len(blank))
+        skipped = int(np.searchsorted(before, position, side="right"))
+        return int(position) + 2 + skipped
+
+
+def resolve_paths(source) -> list[str]:
+    """The files named by a path, a glob pattern or a list of them, sorted, each existing."""
+    items = list(source) if isinstance(source, (list, tuple)) else [source]
+    if not items:
+        raise OrderDataError("no order file was given", fix="Name a file or a pattern such as orders/*.csv")
+    paths: list[str] = []
+    for item in items:
+        if not isinstance(item, (str, os.PathLike)):
+            raise OrderDataError(f"the scale engines read files by name, not {type(item).__name__}",
+                                 fix="Save the upload to a file, or use --engine pandas")
+        text = os.fspath(item)
+        if glob.has_magic(text):
+            found = sorted(p for p in glob.glob(text) if os.path.isfile(p))
+            if not found:
+                raise OrderDataError("no file matches the pattern", file=text,
+                                     fix="Check the folder and the pattern, e.g. orders/*.csv")
+            paths.extend(found)
+        elif os.path.isfile(text):
+            paths.append(text)
+        else:
+            raise OrderDataError("the file does not exist", file=text, fix="Check the path and the file name")
+    return list(dict.fromkeys(os.path.abspath(p) for p in paths))
+
+
+def _file_kind(path: str) -> str:
+    with open(path, "rb") as handle:
+        head = handle.read(4)
+    name = Path(path).name
+    if head == b"PAR1":
+        return "parquet"
+    if head == b"PK\x03\x04" or path.lower().endswith((".xlsx", ".xlsm", ".xls")):
+        raise OrderDataError("the scale engines read CSV and Parquet files, not Excel workbooks", file=name,
+                             fix="Use --engine pandas for Excel, or export the sheet as CSV")
+    if path.lower().endswith(".parquet"):
+        raise OrderDataError("the file is named like a Parquet file but is not one", file=name)
+    return "csv"
+
+
+def _text_head(path: str) -> str:
+    """The first bytes of a CSV file as text, refusing encodings the SQL reader cannot read."""
+    with open(path, "rb") as handle:
+        data = handle.read(_SNIFF_BYTES)
+    name = Path(path).name
+    if data.startswith((b"\xff\xfe", b"\xfe\xff")) or b"\x00" in data:
+        raise OrderDataError("the file is not UTF-8 text (it looks like UTF-16 or binary data)", file=name,
+                             fix="Use --engine pandas, or save the export as UTF-8 CSV")
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as problem:
+        if len(data) >= _SNIFF_BYTES - 3 and problem.start >= len(data) - 3:
+            return data[: problem.start].decode("utf-8")  # a character cut at the end of the sample
+        raise OrderDataError("the file is not UTF-8 text", file=name,
+                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
+                                 "or save the export as UTF-8 CSV") from None
+
+
+def text_cells(frame: pd.DataFrame) -> pd.DataFrame:
+    """Typed columns as the text the pandas reader makes of them (its rule for Parquet files)."""
+    cells = pd.DataFrame(index=frame.index)
+    for name in frame.columns:
+        column = frame[name]
+        if pd.api.types.is_datetime64_any_dtype(column):
+            text = column.dt.strftime("%Y-%m-%d %H:%M:%S")
+        else:
+            text = column.astype(str)
+        cells[str(name)] = text.where(column.notna(), "").astype(object)
+    return cells.reset_index(drop=True)
+
+
+def _csv_sample(path: str, delimiter: str) -> pd.DataFrame:
+    try:
+        return pd.read_csv(path, sep=delimiter, dtype=str, keep_default_na=False, skip_blank_lines=False,
+                           nrows=_SAMPLE_ROWS, encoding="utf-8-sig", engine="c").fillna("")
+    except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as problem:
+        raise OrderDataError(f"the first rows cannot be read as a table ({type(problem).__name__})",
+                             file=Path(path).name,
+                             fix="Use --engine pandas, which reports the rows that do not fit") from None
+    except pd.errors.EmptyDataError:
+        raise OrderDataError("the file is empty", file=Path(path).name, fix="Export the orders again") from None
+
+
+def _parquet_sample(path: str) -> pd.DataFrame:
+    import pyarrow.parquet as pq
+
+    try:
+        handle = pq.ParquetFile(path)
+        batch = next(handle.iter_batches(batch_size=_SAMPLE_ROWS), None)
+        frame = batch.to_pandas() if batch is not None else handle.schema_arrow.empty_table().to_pandas()
+    except Exception as problem:  # pyarrow raises several types for broken files
+        raise OrderDataError(f"the Parquet file could not be read ({type(problem).__name__})",
+                             file=Path(path).name) from None
+    return text_cells(frame)
+
+
+def open_order_files(source, *, overrides: dict, file_name: str | None = None) -> OrderFiles:
+    """Check the files, guess the column mapping as the pandas reader would, find blank lines.
+
+    Parameters
+    ----------
+    source : str, path or list of them
+        A file, a glob pattern or a list; every file must have the same columns.
+    overrides : dict
+        Role -> column chosen by the user (as for :func:`forecasting.reading.guess_mapping`).
+    file_name : str, optional
+        The name shown in messages (default: the file's name, or the pattern).
+    """
+    paths = resolve_paths(source)
+    kinds = {_file_kind(p) for p in paths}
+    if len(kinds) > 1:
+        raise OrderDataError("the files mix CSV and Parquet", file=str(source),
+                             fix="Give files of one kind in one run")
+    kind = kinds.pop()
+    display = file_name or (Path(paths[0]).name if len(paths) == 1 else os.fspath(
+        source if not isinstance(source, (list, tuple)) else Path(paths[0]).parent))
+    for path in paths:
+        if os.path.getsize(path) == 0:
+            raise OrderDataError("the file is empty", file=Path(path).name, fix="Export the orders again")
+    delimiter = ","
+    if kind == "csv":
+        heads = [_text_head(p) for p in paths]
+        delimiters = [_sniff_delimiter(h) for h in heads]
+        delimiter = delimiters[0]
+        samples = [_csv_sample(paths[0], delimiter)]
+        headers = [list(samples[0].columns)]
+        for path, head, sep in zip(paths[1:], heads[1:], delimiters[1:]):
+            if sep != delimiter:
+                raise OrderDataError("the files use different delimiters", file=Path(path).name,
+                                     fix="Export every file the same way")
+            headers.append(list(pd.read_csv(io.StringIO(head.split("\n", 1)[0]), sep=sep, dtype=str,
+                                            nrows=0).columns))
+    else:
+        samples = [_parquet_sample(paths[0])]
+        import pyarrow.parquet as pq
+
+        headers = [list(samples[0].columns)] + [[str(n) for n in pq.read_schema(p).names] for p in paths[1:]]
+    for path, header in zip(paths[1:], headers[1:]):
+        if header != headers[0]:
+            raise OrderDataError("the files have different columns", file=Path(path).name,
+                                 value=", ".join(header),
+                                 fix=f"Every file needs the columns of {Path(paths[0]).name}: "
+                                     + ", ".join(headers[0]))
+    columns = headers[0]
+    if len(columns) < 3:
+        raise OrderDataError(f"the file has {len(columns)} column(s); at least customer, date and amount are needed",
+                             file=display, fix="Check that the export has a header row and a known delimiter")
+    mapping = guess_mapping(samples[0], overrides, file_name=display)
+    files = OrderFiles(paths=paths, kind=kind, columns=columns, mapping=mapping, display_name=display,
+                       delimiter=delimiter)
+    if kind == "csv":
+        for path in paths:
+            files.blank_records[path], files.scanned_records[path] = scan_records(path)
+    return files
+
+
+def scan_records(path: str, *, quote: bytes = b'"') -> tuple[np.ndarray, int | None]:
+    """Record numbers (header = 0) of the empty lines of a CSV file, outside quoted fields,
+    and the number of non-blank data records (``None`` when the file has no empty line).
+
+    A record ends at a line break that is not inside quotes: with RFC 4180 quoting
+    (a quote inside a quoted field is doubled) a line break is inside a quoted field
+    exactly when an odd number of quote characters precede it. The file is scanned in
+    blocks, so memory stays bounded whatever its size.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> with tempfile.NamedTemporaryFile("wb", suffix=".csv", delete=False) as f:
+    ...     _ = f.write(b'a,b\\n1,"x\\n\\ny"\\n\\n2,3\\n\\n')
+    >>> blank, records = scan_records(f.name)
+    >>> blank.tolist(), records
+    ([2, 4], 2)
+    >>> os.remove(f.name)
+    """
+    size = os.path.getsize(path)
+    none = np.zeros(0, dtype=np.int64)
+    if size == 0:
+        return none, None
+    with open(path, "rb") as handle, mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as data:
+        if data.find(b"\n\n") < 0 and data.find(b"\n\r\n") < 0:
+            return none, None
+        last_byte = data[size - 1]
+        q = quote[0]
+        found: list[np.ndarray] = []
+        quotes_before = 0  # quote characters before the block
+        records_before = 0  # record ends before the block
+        previous_end = -1  # absolute position of the last record end (line break) seen
+        start = 0
+        while start < size:
+            stop = min(size, start + _SCAN_CHUNK)
+            block = np.frombuffer(data, dtype=np.uint8, count=stop - start, offset=start)
+            quote_at = np.flatnonzero(block == q)
+            newline_at = np.flatnonzero(block == 10)
+            parity = (quotes_before + np.searchsorted(quote_at, newline_at)) % 2
+            ends = newline_at[parity == 0] + start  # absolute positions of record ends
+            if len(ends):
+                starts = np.concatenate([[previous_end + 1], ends[:-1] + 1])
+                length = ends - starts
+                carriage = np.zeros(len(ends), dtype=bool)
+                has_one = length == 1
+                if has_one.any():
+                    carriage[has_one] = np.frombuffer(data, dtype=np.uint8)[ends[has_one] - 1] == 13
+                empty = (length == 0) | carriage
+                record = records_before + np.arange(len(ends))
+                # The header (record 0) is never a blank order row.
+                found.append(record[empty & (record > 0)])
+                records_before += len(ends)
+                previous_end = int(ends[-1])
+            quotes_before += len(quote_at)
+            start = stop
+            del block
+    blank = np.concatenate(found).astype(np.int64) if found else none
+    # Records: one per line break outside quotes, plus a last line without a break.
+    records = records_before + (1 if last_byte != 10 and previous_end < size - 1 else 0)
+    return blank, records - 1 - len(blank)
