@@ -1,4 +1,5 @@
-"""Tests for the revenue outlook, its backtest and value tiers (forecasting.outlook).
+"""Tests for the revenue outlook, its backtest and value tiers (forecasting.outlook),
+and the ``outlook`` / ``tiers`` commands.
 
 External references used here:
 - Fader, Hardie and Lee (2005), Marketing Science 24(2):275-284: the BG/NBD story
@@ -15,7 +16,10 @@ External references used here:
 
 from __future__ import annotations
 
+import json
 import math
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -537,3 +541,96 @@ class TestExportTiers:
         top = pd.read_csv(written["top customers"])
         assert top["customer"].tolist() == ["C-001"]
         assert pd.read_csv(written["occasional"])["tier"].unique().tolist() == ["occasional"]
+
+
+# --------------------------------------------------------------------------- #
+# Command line (run as a user would, in a separate process)
+# --------------------------------------------------------------------------- #
+def run_cli(*arguments, cwd=None):
+    return subprocess.run([sys.executable, "-m", "forecasting", *arguments], capture_output=True, text=True,
+                          cwd=cwd or REPO, timeout=300)
+
+
+@pytest.fixture(scope="module")
+def shop_file(tmp_path_factory, shop_orders):
+    path = tmp_path_factory.mktemp("shop") / "orders.csv"
+    out = shop_orders.assign(order_date=shop_orders["order_date"].dt.strftime("%Y-%m-%d %H:%M"))
+    out.rename(columns={"customer": "Customer", "order_id": "Order Number", "order_date": "Order Date",
+                        "order_value": "Order Total", "segment": "Channel"}).to_csv(path, index=False)
+    return path
+
+
+class TestOutlookCommand:
+    def test_json(self, shop_file):
+        done = run_cli("outlook", str(shop_file), "--horizon", "90", "--segment", "Channel", "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert set(payload) == {"customers", "horizon_days", "as_of", "by", "level", "total", "cohorts",
+                                "order_frequency", "method", "variance", "backtest"}
+        assert payload["horizon_days"] == 90
+        assert payload["customers"] == sum(c["customers"] for c in payload["cohorts"])
+        assert set(payload["cohorts"][0]) == set(COHORT_COLUMNS)
+        assert set(payload["backtest"]) == {"cutoff", "window_days", "by", "total", "cohorts", "order_frequency"}
+        assert set(payload["backtest"]["cohorts"][0]) == set(BACKTEST_COLUMNS)
+        total = payload["total"]
+        assert total["projected_low"] <= total["projected_revenue"] <= total["projected_high"]
+
+    def test_by_channel_and_cutoff(self, shop_file):
+        done = run_cli("outlook", str(shop_file), "--horizon", "60", "--by", "Channel", "--cutoff", "2026-07-01",
+                       "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert [c["cohort"] for c in payload["cohorts"]] == ["instagram", "market", "web"]
+        assert payload["backtest"]["cutoff"].startswith("2026-07-01")
+        assert payload["backtest"]["window_days"] == 60
+
+    def test_text(self, shop_file):
+        done = run_cli("outlook", str(shop_file), "--horizon", "90", "--by", "month")
+        assert done.returncode == 0, done.stderr
+        assert "Projected revenue" in done.stdout and "Backtest" in done.stdout
+
+    @pytest.mark.parametrize("arguments, message",
+                             [(["--horizon", "-3"], "--horizon"), (["--horizon", "30", "--cutoff", "someday"],
+                                                                    "--cutoff")])
+    def test_problems_are_messages(self, shop_file, arguments, message):
+        done = run_cli("outlook", str(shop_file), *arguments)
+        assert done.returncode == 2
+        assert message in done.stderr and "Traceback" not in done.stderr
+
+
+class TestTiersCommand:
+    def test_json_and_files(self, shop_file, tmp_path):
+        out = tmp_path / "tiers.csv"
+        done = run_cli("tiers", str(shop_file), "--rank", "revenue", "--quantiles", "0.1,0.3", "--out", str(out),
+                       "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert set(payload) == {"customers", "rank", "horizon_days", "method", "variance", "tiers",
+                                "tiers_written", "files"}
+        assert [t["tier"] for t in payload["tiers"]] == ["top customers", "regulars", "occasional"]
+        assert set(payload["tiers"][0]) == set(TIER_SUMMARY_COLUMNS)
+        assert sum(t["customers"] for t in payload["tiers"]) == payload["customers"]
+        written = pd.read_csv(out)
+        assert len(written) == payload["customers"]
+        for tier in payload["tiers"]:
+            part = pd.read_csv(payload["files"][tier["tier"]])
+            assert len(part) == tier["customers"]
+
+    def test_thresholds_text(self, shop_file, tmp_path):
+        out = tmp_path / "money.csv"
+        done = run_cli("tiers", str(shop_file), "--thresholds", "50,200", "--out", str(out))
+        assert done.returncode == 0, done.stderr
+        assert "200.00 and above" in done.stdout
+        assert (tmp_path / "money-top-customers.csv").exists()
+
+    def test_demo_shop(self, tmp_path):
+        out = tmp_path / "demo.csv"
+        done = run_cli("tiers", str(DEMO), "--out", str(out), "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert 1500 < payload["customers"] < 2500
+
+    def test_problem_is_a_message(self, shop_file, tmp_path):
+        done = run_cli("tiers", str(shop_file), "--quantiles", "0.7,0.7", "--out", str(tmp_path / "x.csv"))
+        assert done.returncode == 2
+        assert "--quantiles" in done.stderr and "Traceback" not in done.stderr

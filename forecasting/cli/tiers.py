@@ -1,0 +1,73 @@
+"""``tiers``: value tiers of customers, written as CSV lists.
+
+``python -m forecasting tiers FILE [--rank value|revenue] [--quantiles 0.1,0.3 | --thresholds 50,200]
+[--horizon DAYS] --out tiers.csv [--json]``
+"""
+
+from __future__ import annotations
+
+from . import EXIT_OK, add_column_options, load_from_args, print_json
+from ..forecasts import METHODS
+from ..variance import VARIANCE_MODELS
+from ..outlook import RANK_BY, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
+    project_revenue, tier_summary
+
+DEFAULT_HORIZON_DAYS = 365
+
+
+def add_arguments(parser) -> None:
+    add_column_options(parser)
+    parser.add_argument("--rank", choices=RANK_BY, default="value",
+                        help="rank by expected next-order value (default) or projected revenue in the horizon")
+    rule = parser.add_mutually_exclusive_group()
+    rule.add_argument("--quantiles", metavar="SHARES",
+                      help="shares of customers in the top tiers, from the top, e.g. 0.1,0.3 = top 10%%, "
+                           "next 30%%, the rest (default)")
+    rule.add_argument("--thresholds", metavar="AMOUNTS",
+                      help="money amounts instead of shares, e.g. 50,200 = 200 and above, 50 to under 200, "
+                           "under 50")
+    parser.add_argument("--horizon", default=str(DEFAULT_HORIZON_DAYS), metavar="DAYS",
+                        help=f"days ahead for projected revenue (default {DEFAULT_HORIZON_DAYS})")
+    parser.add_argument("--method", default="mta", metavar="NAME",
+                        help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
+    parser.add_argument("--variance", default="classic", metavar="NAME",
+                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    parser.add_argument("--out", required=True, metavar="CSV",
+                        help="CSV list of all customers; each tier also gets <name>-<tier>.csv beside it")
+    parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+
+
+def run(args) -> int:
+    horizon = _check_horizon(args.horizon)
+    _check_tier_options(args.rank, args.quantiles, args.thresholds, None)
+    orders = load_from_args(args).orders
+    outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance)
+    tiered = assign_tiers(outlook.customers, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds)
+    summary = tier_summary(tiered)
+    files = export_tiers(tiered, args.out)
+    if args.json:
+        print_json({
+            "customers": int(len(tiered)),
+            "rank": args.rank,
+            "horizon_days": horizon,
+            "method": outlook.forecast_fit.get("method"),
+            "variance": outlook.forecast_fit.get("variance"),
+            "tiers": _records(summary),
+            "tiers_written": str(files["all"]),
+            "files": {name: str(path) for name, path in files.items() if name != "all"},
+        })
+        return EXIT_OK
+    figure = "expected next order" if args.rank == "value" else f"projected revenue, next {horizon:g} days"
+    print(f"{len(tiered)} customers ranked by {figure}:")
+    print(f"  {'tier':<16} {'rule':<24} {'customers':>9} {'from':>10} {'to':>10} {'revenue share':>13} "
+          f"{'own history':>11} {'mostly shop':>11}")
+    for row in summary.itertuples(index=False):
+        low = "-" if row.customers == 0 else f"{row.lowest_figure:,.2f}"
+        high = "-" if row.customers == 0 else f"{row.highest_figure:,.2f}"
+        confidence = "-" if row.customers == 0 else f"{row.average_own_history_weight:.2f}"
+        print(f"  {row.tier:<16} {row.rule:<24} {row.customers:>9} {low:>10} {high:>10} "
+              f"{100 * row.share_of_projected_revenue:>12.0f}% {confidence:>11} {row.mostly_shop_pattern:>11}")
+    print("'own history' is the average weight a forecast puts on the customer's own orders; "
+          "'mostly shop' counts forecasts resting mostly on the shop-wide pattern (weight below 0.5).")
+    print(f"lists written: {files['all']}" + "".join(f", {p}" for n, p in files.items() if n != "all"))
+    return EXIT_OK
