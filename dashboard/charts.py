@@ -7,9 +7,13 @@ lightness. They stay distinguishable under the common forms of colour blindness.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pandas as pd
 import plotly.graph_objects as go
+
+from .words import method_label, variance_label
 
 # Okabe-Ito colours, in the order this product uses them.
 PALETTE = {
@@ -40,9 +44,30 @@ def _layout(fig: go.Figure, *, title: str | None = None, height: int = 420) -> g
         legend={"orientation": "h", "yanchor": "bottom", "y": 1.02, "xanchor": "right", "x": 1.0},
         hoverlabel={"bgcolor": "white"},
     )
-    fig.update_xaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside")
-    fig.update_yaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside")
+    fig.update_xaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside",
+                     automargin=True, title_standoff=10)
+    fig.update_yaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside",
+                     automargin=True, title_standoff=10)
     return fig
+
+
+def money_ticks(low: float, high: float, symbol: str) -> tuple[list[float], list[str]]:
+    """Ticks at 1, 2, 5, 10, 20, 50, ... between ``low`` and ``high``, labelled as money.
+
+    Examples
+    --------
+    >>> money_ticks(3.0, 60.0, "$")
+    ([5.0, 10.0, 20.0, 50.0], ['$5', '$10', '$20', '$50'])
+    """
+    values = []
+    start = math.floor(math.log10(max(low, 1e-9)))
+    for power in range(start, math.ceil(math.log10(max(high, low * 10))) + 1):
+        for step in (1, 2, 5):
+            value = step * 10.0 ** power
+            if low <= value <= high:
+                values.append(value)
+    labels = [f"{symbol}{v:,.0f}" if v >= 1 else f"{symbol}{v:g}" for v in values]
+    return values, labels
 
 
 def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str | None = None) -> go.Figure:
@@ -79,39 +104,48 @@ def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str
             x=[row["average_order_value"]], y=[row["expected_next_order"]], mode="markers", name=str(highlight),
             marker={"size": 16, "color": "rgba(0,0,0,0)", "line": {"width": 2.5, "color": PALETTE["black"]}},
             hoverinfo="skip"))
-    fig.update_xaxes(type="log", title=f"Customer's own average order ({symbol.strip() or 'money'}, log scale)")
-    fig.update_yaxes(type="log", title=f"Expected next order ({symbol.strip() or 'money'}, log scale)")
+    ticks, labels = money_ticks(low, high, symbol)
+    fig.update_xaxes(type="log", title="Customer's own average order (log scale)", tickvals=ticks, ticktext=labels)
+    fig.update_yaxes(type="log", title="Expected next order (log scale)", tickvals=ticks, ticktext=labels)
     return _layout(fig, height=460)
 
 
 def method_comparison(results: pd.DataFrame, *, title: str) -> go.Figure:
-    """Error reduction against plain averages per method, one bar per variance model, with 95% intervals."""
+    """Error reduction against own averages per method (one bar per spread model), with 95% intervals.
+
+    Horizontal bars, so the methods' names can be read without turning the head.
+    """
     fig = go.Figure()
+    order = [m for m in dict.fromkeys(results["method"])]
     for i, (variance, part) in enumerate(results.groupby("variance", sort=False)):
-        # Plain averages with the classic spread are the baseline itself (0% by definition).
+        # Own averages with the classic spread are the baseline itself (0% by definition).
         part = part[~((part["method"] == "plain") & (part["variance"] == "classic"))]
         if part.empty:
             continue
         value = part["error_reduction_pct"].to_numpy(dtype=float)
-        upper = (part["ci_high"].to_numpy(dtype=float) - value)
-        lower = (value - part["ci_low"].to_numpy(dtype=float))
+        upper = part["ci_high"].to_numpy(dtype=float) - value
+        lower = value - part["ci_low"].to_numpy(dtype=float)
         fig.add_trace(go.Bar(
-            x=part["method"], y=value, name=f"{variance} spread", marker_color=SEQUENCE[i % len(SEQUENCE)],
-            error_y={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
-                     "color": INK, "thickness": 1.2, "width": 4},
-            hovertemplate="%{x}: %{y:.1f}%<extra>" + f"{variance} spread</extra>",
+            y=part["method"].map(method_label), x=value, orientation="h",
+            name=f"{variance_label(variance)} spread", marker_color=SEQUENCE[i % len(SEQUENCE)],
+            error_x={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
+                     "color": INK, "thickness": 1.2, "width": 3},
+            hovertemplate="%{y}: %{x:.1f}%<extra>" + f"{variance_label(variance)} spread</extra>",
         ))
-    fig.add_hline(y=0, line={"color": INK, "width": 1})
-    fig.update_layout(barmode="group")
-    fig.update_yaxes(title="Smaller error than own averages (%)", ticksuffix="%")
-    fig.update_xaxes(title="Method")
-    return _layout(fig, title=title, height=400)
+    fig.add_vline(x=0, line={"color": INK, "width": 1})
+    fig.update_layout(barmode="group", bargap=0.25)
+    fig.update_xaxes(title="Smaller error than own averages (%)", ticksuffix="%")
+    fig.update_yaxes(categoryorder="array", categoryarray=[method_label(m) for m in reversed(order)],
+                     showgrid=False)
+    return _layout(fig, title=title, height=120 + 48 * len(order))
 
 
 def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> go.Figure:
     """Error reduction by how many orders were known before the forecast, one bar per evaluation."""
     fig = go.Figure()
+    names = {"leave-one-out": "hiding one order", "backtest": "next order"}
     for i, (kind, part) in enumerate(table.groupby("evaluation", sort=False)):
+        kind = names.get(kind, kind)
         fig.add_trace(go.Bar(
             x=part["past_orders"].astype(str), y=part["error_reduction_pct"], name=kind,
             marker_color=(PALETTE["green"], PALETTE["purple"])[i % 2], customdata=part["held_out"].to_numpy(),

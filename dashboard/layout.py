@@ -37,6 +37,17 @@ def coming(what: str) -> None:
     st.info(f"{what} is coming: this part of the forecasting library is still being finished.")
 
 
+# Streamlit's named formats put in thousands separators; printf-style formats cannot.
+_NAMED_MONEY = {"$": "dollar", "€": "euro", "¥": "yen"}
+
+
 def money_format(symbol: str) -> str:
     """A column_config number format showing money with the shop's symbol."""
+    if symbol in _NAMED_MONEY:
+        return _NAMED_MONEY[symbol]
     return f"{symbol}%.2f" if symbol else "%.2f"
+
+
+def table_height(rows: int, *, most: int = 420) -> int:
+    """Pixels for a table that shows ``rows`` rows without a scroll bar, up to ``most``."""
+    return int(min(most, 35 * (rows + 1) + 3))

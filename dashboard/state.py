@@ -176,21 +176,22 @@ def forecasts(dataset: Dataset, method: str = "auto", variance: str = "auto") ->
     try:
         if method == "auto" and variance == "auto":
             table = module.forecast_customers(stats, method="auto", orders=orders)
-            note = "Chosen automatically: " + table.attrs["fit"].get("auto_choice", "")
+            choice = table.attrs["fit"].get("auto_choice", "")
+            note = "Chosen automatically: " + (choice.split(": ", 1)[1] if ": " in choice else choice) + "."
         elif method == "auto":
             judge = optional_module("evaluation")
             try:
                 chosen = judge.choose_method(orders, stats, variances=[variance])
-                note = f"Chosen automatically for the {variance} spread model: {chosen['reason']}"
+                note = f"Method chosen automatically for this spread model: {chosen['reason']}."
             except OrderDataError:
                 chosen = judge.choose_method(orders, stats, variances=["classic"])
                 note = (f"The {variance} spread model has no quick accuracy check yet, so the method was "
-                        f"chosen with the classic model: {chosen['reason']}")
+                        f"chosen with the classic model: {chosen['reason']}.")
             table = module.forecast_customers(stats, method=chosen["method"], variance=variance, orders=orders)
         else:
             if variance == "auto":
                 variance = tail(dataset).suggested_variance
-                note = f"Spread model: {variance}, as the size of your big orders suggests."
+                note = "Spread model chosen from the size of your big orders (see above)."
             table = module.forecast_customers(stats, method=method, variance=variance, orders=orders)
     except OrderDataError as problem:
         return Outcome(problem=_problem_text(problem))

@@ -113,25 +113,32 @@ def forecast_sentence(*, orders: int, average: float, forecast: float, own_weigh
 
 
 def verdict_sentence(reduction_pct: float, *, low: float | None = None, high: float | None = None) -> str:
-    """The accuracy verdict in one sentence.
+    """The accuracy verdict in one sentence, with how sure it is.
+
+    ``low`` and ``high`` bound the likely error reduction (a 95% interval); when
+    they straddle zero the sentence says the gain is not settled.
 
     Examples
     --------
     >>> verdict_sentence(12.34, low=8.0, high=16.5)
     "On your data, forecasts cut the next-order error by 12% compared with each customer's own average (likely between 8% and 16%)."
+    >>> verdict_sentence(14.0, low=-39.0, high=79.0)
+    "On your data, forecasts cut the next-order error by 14% compared with each customer's own average, but with this few orders to test on that is not settled: anywhere from 39% worse to 79% better is plausible."
     >>> verdict_sentence(-3.0)
     "On your data, forecasts did not beat each customer's own average: the next-order error was 3% larger."
     """
     if reduction_pct is None or not math.isfinite(reduction_pct):
         return "There were not enough repeat orders to measure accuracy on your data."
-    band = ""
-    if low is not None and high is not None and math.isfinite(low) and math.isfinite(high):
-        band = f" (likely between {low:.0f}% and {high:.0f}%)"
+    known = low is not None and high is not None and math.isfinite(low) and math.isfinite(high)
     if reduction_pct > 0:
-        return (f"On your data, forecasts cut the next-order error by {reduction_pct:.0f}% compared with "
-                f"each customer's own average{band}.")
+        start = (f"On your data, forecasts cut the next-order error by {reduction_pct:.0f}% compared with "
+                 "each customer's own average")
+        if known and low < 0:
+            return (f"{start}, but with this few orders to test on that is not settled: anywhere from "
+                    f"{abs(low):.0f}% worse to {high:.0f}% better is plausible.")
+        return f"{start} (likely between {low:.0f}% and {high:.0f}%)." if known else f"{start}."
     return ("On your data, forecasts did not beat each customer's own average: the next-order error was "
-            f"{abs(reduction_pct):.0f}% larger{band}.")
+            f"{abs(reduction_pct):.0f}% larger.")
 
 
 # What each method and spread model does, in a line a shop owner can read.
@@ -164,3 +171,56 @@ VARIANCE_WORDS = {
            "typical one.",
     "proportional": "Proportional: customers who spend more also vary more, in proportion.",
 }
+
+# Short names for the method and spread-model boxes, tables and charts.
+METHOD_LABELS = {
+    "auto": "automatic (recommended)",
+    "plain": "own average only",
+    "pooled": "shop-wide average",
+    "james-stein": "James-Stein",
+    "mta": "multi-task averaging (MTA)",
+    "mta-minimax": "cautious MTA",
+    "mta-segments": "MTA within segments",
+    "empirical-bayes": "empirical Bayes",
+    "gamma-gamma": "Gamma-Gamma spend model",
+    "james-stein-cv": "James-Stein tuned on your orders",
+    "mta-cv": "MTA tuned on your orders",
+}
+VARIANCE_LABELS = {
+    "auto": "automatic (recommended)",
+    "classic": "classic",
+    "robust": "robust",
+    "log": "log scale",
+    "proportional": "proportional",
+    "gamma-model": "Gamma-Gamma",
+}
+
+
+def method_label(name: str) -> str:
+    return METHOD_LABELS.get(name, name)
+
+
+def variance_label(name: str) -> str:
+    return VARIANCE_LABELS.get(name, name)
+
+
+# A method's name in the library's sentences is always followed by "with <model> variance".
+_METHOD_NAME = re.compile(r"(?<![\w-])(" + "|".join(sorted((re.escape(m) for m in METHOD_LABELS if m != "auto"),
+                                                             key=len, reverse=True)) + r")(?=\s+with\b)")
+_VARIANCE_PHRASE = re.compile(r"(?<![\w-])(classic|robust|log|proportional) variance\b")
+
+
+def name_words(text: str) -> str:
+    """Put the on-screen names of methods and spread models into a library sentence.
+
+    Examples
+    --------
+    >>> name_words("mta with log variance had the smallest leave-one-out error, 8.3% below plain averages, "
+    ...            "ahead of mta-minimax with classic variance")
+    'multi-task averaging (MTA) with the log scale spread model had the smallest error when hiding one order at a time, 8.3% below own averages, ahead of cautious MTA with the classic spread model'
+    """
+    text = _METHOD_NAME.sub(lambda m: method_label(m.group(1)), text)
+    text = _VARIANCE_PHRASE.sub(lambda m: f"the {variance_label(m.group(1))} spread model", text)
+    text = text.replace("smallest leave-one-out error", "smallest error when hiding one order at a time")
+    text = text.replace("in leave-one-out", "when hiding one order at a time")
+    return text.replace("plain averages", "own averages")

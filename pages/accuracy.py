@@ -38,6 +38,10 @@ else:
     pair = (found.chosen["method"], found.chosen["variance"])
 
 
+def described(method: str, variance: str) -> str:
+    return f"{words.method_label(method)} with the {words.variance_label(variance)} spread model"
+
+
 def row_for(results: pd.DataFrame, method: str, variance: str):
     match = results[(results["method"] == method) & (results["variance"] == variance)]
     return match.iloc[0] if len(match) else None
@@ -45,9 +49,8 @@ def row_for(results: pd.DataFrame, method: str, variance: str):
 
 checked = row_for(found.leave_one_out, *pair) is not None
 if not checked:
-    st.caption(f"The method in use ({pair[0]} with the {pair[1]} spread model) has no quick accuracy check yet; "
-               f"the results below are for the automatic choice, {found.chosen['method']} with the "
-               f"{found.chosen['variance']} spread model.")
+    st.caption(f"The method in use ({described(*pair)}) has no quick accuracy check yet; the results below are "
+               f"for the automatic choice, {described(found.chosen['method'], found.chosen['variance'])}.")
     pair = (found.chosen["method"], found.chosen["variance"])
 
 # ---------------------------------------------------------------------------
@@ -63,7 +66,7 @@ else:
                                      low=float(loo_row["ci_low"]) if loo_row is not None else None,
                                      high=float(loo_row["ci_high"]) if loo_row is not None else None)
 st.success(f"**{verdict}**", icon=":material/verified:")
-details = [f"Method checked: {pair[0]} with the {pair[1]} spread model."]
+details = [f"Method checked: {described(*pair)}."]
 if loo_row is not None and math.isfinite(float(loo_row["error_reduction_pct"])):
     details.append(f"Hiding one past order at a time ({found.held_out:,} orders), its error was "
                    f"{float(loo_row['error_reduction_pct']):.1f}% smaller than the own average's.")
@@ -73,7 +76,7 @@ if backtest_row is not None and found.cutoff is not None:
                    f"{float(backtest_row['coverage']):.0%} of those orders fell inside the forecast's 80% range "
                    "(about 80% is what a well-judged range gives).")
 st.markdown(" ".join(details))
-st.caption(f"Automatic choice: {found.chosen['reason']}.")
+st.caption(f"Automatic choice: {words.name_words(found.chosen['reason'])}.")
 for note in found.notes:
     st.caption(note)
 
@@ -81,7 +84,7 @@ for note in found.notes:
 # Every method
 
 st.subheader("Every method against the customers' own averages")
-st.caption("Bars above zero beat the own average. The thin lines show the range the gain probably lies in "
+st.caption("Bars to the right of the zero line beat the own average. The thin lines show the range the gain probably lies in "
            "(95%, from re-drawing the customers many times).")
 left, right = st.columns(2)
 with left:
@@ -96,18 +99,22 @@ with right:
 
 results = pd.concat([found.leave_one_out.assign(test="hiding one order"),
                      found.backtest.assign(test="next order")], ignore_index=True)
+results = results.assign(method_name=results["method"].map(words.method_label),
+                         variance_name=results["variance"].map(words.variance_label),
+                         coverage_pct=100 * results["coverage"].astype(float))
 st.dataframe(
-    results, hide_index=True, key="accuracy_table",
-    column_order=["test", "method", "variance", "error_reduction_pct", "ci_low", "ci_high", "coverage"],
+    results, hide_index=True, key="accuracy_table", height=layout.table_height(len(results), most=900),
+    column_order=["test", "method_name", "variance_name", "error_reduction_pct", "ci_low", "ci_high",
+                  "coverage_pct"],
     column_config={
         "test": st.column_config.TextColumn("Test"),
-        "method": st.column_config.TextColumn("Method"),
-        "variance": st.column_config.TextColumn("Spread model"),
+        "method_name": st.column_config.TextColumn("Method"),
+        "variance_name": st.column_config.TextColumn("Spread model"),
         "error_reduction_pct": st.column_config.NumberColumn("Error smaller by", format="%.1f%%"),
         "ci_low": st.column_config.NumberColumn("Probably from", format="%.1f%%"),
         "ci_high": st.column_config.NumberColumn("Probably to", format="%.1f%%"),
-        "coverage": st.column_config.NumberColumn(
-            "Inside the 80% range", format="percent",
+        "coverage_pct": st.column_config.NumberColumn(
+            "Inside the 80% range", format="%.0f%%",
             help="Share of the tested orders that fell inside the forecast's 80% next-order range."),
     },
 )
@@ -119,14 +126,24 @@ st.subheader("Where the gain comes from")
 by_past = found.by_past_orders
 if len(by_past):
     mine = by_past[(by_past["method"] == pair[0]) & (by_past["variance"] == pair[1])]
-    st.plotly_chart(charts.gain_by_past_orders(mine, title=f"{pair[0]} ({pair[1]} spread), by orders known"),
+    st.plotly_chart(charts.gain_by_past_orders(mine, title=f"{described(*pair)}, by orders known"),
                     key="past_orders_chart", theme=None, config={"displaylogo": False})
-    st.caption("Customers with few orders gain most: their own average rests on little. With many orders, "
-               "the forecast and the own average nearly agree.")
+    loo_part = mine[mine["evaluation"] == "leave-one-out"].dropna(subset=["error_reduction_pct"])
+    if len(loo_part):
+        best = loo_part.sort_values("error_reduction_pct", ascending=False).iloc[0]
+        earlier = "1 earlier order" if best["past_orders"] == "1" else f"{best['past_orders']} earlier orders"
+        st.caption(f"Hiding one order at a time, the gain is largest for customers with {earlier} "
+                   f" ({float(best['error_reduction_pct']):.0f}% smaller error, "
+                   f"{int(best['held_out']):,} orders). A customer with few orders has an own average that rests "
+                   "on little, which is where borrowing from similar customers can help; with many orders the "
+                   "forecast and the own average nearly agree. The next-order test scores far fewer orders, "
+                   "so its bars jump around more.")
 by_segment = found.by_segment
 if len(by_segment):
     mine = by_segment[(by_segment["method"] == pair[0]) & (by_segment["variance"] == pair[1])]
     st.markdown("**By segment**")
+    mine = mine.assign(evaluation=mine["evaluation"].map({"leave-one-out": "hiding one order",
+                                                          "backtest": "next order"}))
     st.dataframe(
         mine, hide_index=True, key="segment_table",
         column_order=["evaluation", "segment", "held_out", "error_reduction_pct"],

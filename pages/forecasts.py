@@ -36,10 +36,12 @@ variances = ["auto", *variance_module.VARIANCE_MODELS]
 left, right = st.columns(2)
 with left:
     method = st.selectbox("Method", methods, **state.remember("method", "auto", methods),
+                          format_func=words.method_label,
                           help="How each customer's average is combined with what other customers spend.")
     st.caption(words.METHOD_WORDS.get(method, ""))
 with right:
     variance = st.selectbox("Spread model", variances, **state.remember("variance", "auto", variances),
+                            format_func=words.variance_label,
                             help="How much one order's value varies around the customer's usual spend. "
                                  "It decides how far a customer's own average can be trusted.")
     st.caption(words.VARIANCE_WORDS.get(variance, ""))
@@ -52,8 +54,9 @@ if not outcome.ok:
     st.stop()
 table = outcome.value
 fit = table.attrs.get("fit", {})
-if outcome.note:
-    st.caption(outcome.note)
+used = (f"In use: {words.method_label(fit.get('method', ''))} with the "
+        f"{words.variance_label(fit.get('variance', ''))} spread model.")
+st.caption(f"{used} {words.name_words(outcome.note)}" if outcome.note else used)
 if fit.get("notes"):
     st.caption(fit["notes"])
 
@@ -86,7 +89,7 @@ st.dataframe(
     hide_index=True,
     height=380,
     column_order=["customer", "orders", "average_order_value", "expected_next_order", "next_order_low",
-                  "next_order_high", "expected_low", "expected_high", "own_history_weight", "low_confidence"],
+                  "next_order_high", "own_history_weight", "low_confidence"],
     column_config={
         "customer": st.column_config.TextColumn("Customer", pinned=True),
         "orders": st.column_config.NumberColumn("Orders", format="%d"),
@@ -98,10 +101,6 @@ st.dataframe(
             "Next order from", format=money_format,
             help=f"About {next_level:.0%} of next orders should fall between 'from' and 'to'."),
         "next_order_high": st.column_config.NumberColumn("Next order to", format=money_format),
-        "expected_low": st.column_config.NumberColumn(
-            "Usual spend from", format=money_format,
-            help=f"Where this customer's true average order probably lies ({level:.0%} range)."),
-        "expected_high": st.column_config.NumberColumn("Usual spend to", format=money_format),
         "own_history_weight": st.column_config.ProgressColumn(
             "Weight on own history", format="percent", min_value=0.0, max_value=1.0,
             help="How much of the forecast comes from the customer's own orders; the rest comes from "
@@ -132,9 +131,13 @@ own = result.orders[result.orders["customer"].astype(str) == picked]
 sentence = words.forecast_sentence(orders=int(row["orders"]), average=float(row["average_order_value"]),
                                    forecast=float(row["expected_next_order"]), own_weight=weight,
                                    centre=centre, symbol=symbol, log_scale=fit.get("variance") == "log")
+usual_low, usual_high = float(row["expected_low"]), float(row["expected_high"])
+usual = (f"between {words.money(usual_low, symbol)} and {words.money(usual_high, symbol)}" if usual_low > 0
+         else f"up to {words.money(usual_high, symbol)}")
 st.markdown(f"**{picked}.** {sentence} Their next order will probably be between "
             f"{words.money(float(row['next_order_low']), symbol)} and "
-            f"{words.money(float(row['next_order_high']), symbol)} ({next_level:.0%} range).")
+            f"{words.money(float(row['next_order_high']), symbol)} ({next_level:.0%} range); what they usually "
+            f"spend per order is probably {usual} ({level:.0%} range).")
 
 chart_col, orders_col = st.columns([3, 2])
 with chart_col:
@@ -146,7 +149,8 @@ with chart_col:
 with orders_col:
     st.markdown(f"**{picked}'s orders** ({words.orders_word(len(own))})")
     st.dataframe(
-        own[["order_date", "order_id", "order_value"]], hide_index=True, key="customer_orders", height=300,
+        own[["order_date", "order_id", "order_value"]], hide_index=True, key="customer_orders",
+        height=layout.table_height(len(own), most=330),
         column_config={"order_date": st.column_config.DatetimeColumn("Date", format="YYYY-MM-DD"),
                        "order_id": st.column_config.TextColumn("Order number"),
                        "order_value": st.column_config.NumberColumn("Amount", format=money_format)},

@@ -31,15 +31,7 @@ def _drop_pending() -> None:
     st.session_state["pending"] = None
 
 
-dataset = state.current()
-if dataset is not None and dataset.demo:
-    st.info(
-        f"The demo shop's orders are already loaded, so you can look around straight away: "
-        f"{state.DEMO_SHOP} is an invented online shop selling houseplants, pots and garden tools. "
-        "Upload your own export below to see your customers instead."
-    )
-elif dataset is None and not state.DEMO_FILE.exists():
-    st.info("The demo shop's file is not here, so there is nothing loaded yet: upload your own export below.")
+note = st.empty()  # filled below, once a new upload has been read
 
 limit = st.get_option("server.maxUploadSize")
 upload = st.file_uploader(
@@ -56,6 +48,14 @@ if upload is not None and upload.file_id != st.session_state.get("upload_seen"):
 
 pending = st.session_state.get("pending")
 dataset = state.current()
+if dataset is not None and dataset.demo:
+    note.info(
+        "The demo shop's orders are already loaded, so you can look around straight away: "
+        f"{state.DEMO_SHOP} is an invented online shop selling houseplants, pots and garden tools. "
+        "Upload your own export below to see your customers instead."
+    )
+elif dataset is None and not state.DEMO_FILE.exists():
+    note.info("The demo shop's file is not here, so there is nothing loaded yet: upload your own export below.")
 if pending is not None:
     problem = state.read_dataset(pending).problem
     kept = f"The data loaded before ({'the demo shop' if dataset.demo else dataset.name}) is still in use." \
@@ -154,12 +154,17 @@ if result is not None:
         )
         st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons")
         left_out = result.excluded
+        if "raw_text" in left_out.columns and left_out["raw_text"].isna().any():
+            left_out = left_out.assign(raw_text=left_out["raw_text"].fillna(""))
         st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
                     "(the header is row 1) and the reason:")
         st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True, height=260,
                      key="left_out_rows",
                      column_config={"row": st.column_config.NumberColumn("Row", format="%d"),
-                                    "reason": st.column_config.TextColumn("Reason", width="medium")})
+                                    "reason": st.column_config.TextColumn("Reason", width="medium"),
+                                    "raw_text": st.column_config.TextColumn(
+                                        "Row as written", help="For rows that could not be split into the "
+                                        "file's columns: the row's text as it is in the file.")})
         if len(left_out) > 1000:
             st.caption("The first 1,000 are shown; the download has them all.")
         st.download_button(

@@ -300,7 +300,7 @@ class TestAccuracy:
         at.selectbox(key="variance").set_value("classic").run()
         at.switch_page("pages/accuracy.py").run()
         assert f"{row['error_reduction_pct']:.0f}%" in at.success[0].value
-        assert any("james-stein with the classic spread model" in m.value for m in at.markdown)
+        assert any("James-Stein with the classic spread model" in m.value for m in at.markdown)
 
 
 class TestWords:
