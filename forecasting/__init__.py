@@ -14,6 +14,8 @@ from .customers import customer_statistics
 from .errors import OrderDataError
 from .exports import csv_text, excel_bytes, write_csv
 from .forecasts import METHODS, forecast_customers
+from .frequency import fit_order_frequency, frequency_forecast, repeat_history
+from .outlook import assign_tiers, backtest_outlook, export_tiers, project_revenue, tier_summary
 from .reading import ColumnMapping, ReadResult, read_orders
 from .variance import VARIANCE_MODELS
 
@@ -23,10 +25,18 @@ __all__ = [
     "ColumnMapping",
     "OrderDataError",
     "ReadResult",
+    "assign_tiers",
+    "backtest_outlook",
     "csv_text",
     "customer_statistics",
     "excel_bytes",
+    "export_tiers",
+    "fit_order_frequency",
     "forecast_customers",
+    "frequency_forecast",
+    "project_revenue",
     "read_orders",
+    "repeat_history",
+    "tier_summary",
     "write_csv",
 ]

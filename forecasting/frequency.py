@@ -566,17 +566,17 @@ class FrequencyFit:
         return np.exp(logs)
 
     def as_dict(self) -> dict:
-        """Plain floats and strings, for JSON and the dashboard."""
-        errors = self.standard_errors
+        """Plain floats and strings, for JSON and the dashboard (unknown values are None)."""
+        errors = [float(e) if np.isfinite(e) else None for e in self.standard_errors]
         return {
             "r": self.r,
             "alpha_days": self.alpha,
             "a": self.a,
             "b": self.b,
-            "r_se": float(errors[0]),
-            "alpha_days_se": float(errors[1]),
-            "a_se": float(errors[2]),
-            "b_se": float(errors[3]),
+            "r_se": errors[0],
+            "alpha_days_se": errors[1],
+            "a_se": errors[2],
+            "b_se": errors[3],
             "log_likelihood": self.log_likelihood,
             "customers": self.customers,
             "converged": self.converged,

@@ -24,6 +24,7 @@ from scipy import integrate, optimize
 from forecasting.errors import OrderDataError
 from forecasting.frequency import (
     HISTORY_COLUMNS,
+    FrequencyFit,
     chance_still_active,
     expected_new_customer_orders,
     expected_orders_ahead,
@@ -401,6 +402,27 @@ class TestChanceStillActive:
         assert chances[0] == pytest.approx((b + 9) / (a + b + 9), rel=1e-12)
         # A regular customer silent for 650 days is very likely gone.
         assert chances[1] < 0.01
+
+
+class TestFrequencyFitResult:
+    def test_unknown_uncertainty(self):
+        # A flat likelihood leaves the covariance unknown: draws repeat the estimate and
+        # the summary stays valid JSON (no NaN).
+        import json
+
+        fit = FrequencyFit(r=0.5, alpha=30.0, a=0.9, b=2.0, log_likelihood=-10.0,
+                           covariance=np.full((4, 4), np.nan), customers=3, converged=True)
+        np.testing.assert_array_equal(fit.draw_parameters(5), np.tile([0.5, 30.0, 0.9, 2.0], (5, 1)))
+        summary = json.loads(json.dumps(fit.as_dict(), allow_nan=False))
+        assert summary["r_se"] is None
+        assert summary["chance_stop_after_order"] == pytest.approx(0.9 / 2.9)
+
+    def test_draws_follow_the_covariance(self):
+        # Reference: sample covariance of 20,000 draws of the log-parameters.
+        fit = fit_order_frequency(simulate_histories(PARAMS_A, 2000, seed=6))
+        logs = np.log(fit.draw_parameters(20000, seed=1))
+        assert np.all(np.abs(logs.mean(axis=0) - np.log(fit.params)) < 4 * np.sqrt(np.diag(fit.covariance) / 20000))
+        np.testing.assert_allclose(np.cov(logs.T), fit.covariance, rtol=0.1, atol=0.05 * np.abs(fit.covariance).max())
 
 
 class TestFrequencyForecast:
