@@ -165,9 +165,10 @@ def _check_orders(orders):
 def _check_by(by, orders):
     if by in COHORT_PERIODS:
         return by
-    if isinstance(by, str) and by in orders.columns and by not in ("order_date", "order_value", "customer"):
+    not_groups = ("customer", "order_date", "order_value", "order_id", "row")
+    if isinstance(by, str) and by in orders.columns and by not in not_groups:
         return by
-    available = [c for c in orders.columns if c not in ("customer", "order_date", "order_value", "order_id", "row")]
+    available = [c for c in orders.columns if c not in not_groups]
     raise OrderDataError(
         "customers can be grouped by first-order month or quarter, or by a column of the orders",
         column="--by",
@@ -503,7 +504,10 @@ class OutlookBacktest:
     Attributes
     ----------
     cohorts : pandas.DataFrame
-        One row per group, columns ``BACKTEST_COLUMNS``.
+        One row per group, columns ``BACKTEST_COLUMNS``. ``actual_inside_interval``
+        says whether the actual revenue fell inside the interval of the
+        *expected* amount; chance (which customers happen to order) is not in
+        that interval, so actual revenue often falls outside it.
     total : dict
         The same figures for all customers together, plus
         ``cohort_abs_error`` / ``run_rate_cohort_abs_error`` (sums over groups

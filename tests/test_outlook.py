@@ -274,6 +274,7 @@ class TestProjectRevenue:
         [({"horizon": 0}, "--horizon must be more than zero"),
          ({"horizon": "soon"}, "--horizon must be a number"),
          ({"horizon": 30, "by": "region"}, "--by"),
+         ({"horizon": 30, "by": "order_id"}, "--by"),
          ({"horizon": 30, "level": 1.5}, "between 0 and 1"),
          ({"horizon": 30, "draws": 5}, "at least 20"),
          ({"horizon": 30, "as_of": "2020-01-01"}, "earlier than the last order")],
