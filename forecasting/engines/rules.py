@@ -50,7 +50,6 @@ __all__ = [
     "check_memory_limit",
     "check_plain_options",
     "check_threads",
-    "currency_marks",
 ]
 
 # Exactly the characters Python's str.strip() removes (the pandas reader strips with it).
@@ -74,8 +73,6 @@ LAST_DATE = "2100-01-01"
 UNREADABLE_MIN_VALUES = 5
 UNREADABLE_SHARE = 0.5
 
-_WORDY = re.compile(r"[^0-9.,()+\-\s]")
-_CODE = re.compile(r"\b([A-Z]{3})\b")
 
 
 def re2_class(characters: str) -> str:
@@ -86,27 +83,6 @@ def re2_class(characters: str) -> str:
 def wordy_pattern_sql() -> str:
     """RE2 form of the reader's test "the amount has more than digits and separators"."""
     return "[^0-9.,()+\\-" + re2_class(WHITESPACE) + "]"
-
-
-def currency_marks(text) -> list[str]:
-    """The currency each amount names, or ``""`` (the pandas reader's rule, for plain Python strings).
-
-    Examples
-    --------
-    >>> currency_marks(["12 EUR", "$5", "7", "kr 30"])
-    ['EUR', 'USD', '', 'SEK']
-    """
-    marks = []
-    for value in text:
-        mark = ""
-        if _WORDY.search(value):
-            found = _CODE.search(value.upper())
-            if found:
-                mark = found.group(1)
-            else:
-                mark = next((iso for symbol, iso in CURRENCY_SYMBOLS.items() if symbol in value), "")
-        marks.append(mark)
-    return marks
 
 
 _MEMORY = re.compile(r"^\s*\d+(\.\d+)?\s*(B|KB|MB|GB|TB|KIB|MIB|GIB|TIB)\s*$", re.IGNORECASE)
