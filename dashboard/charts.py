@@ -155,3 +155,57 @@ def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> go.Figure:
     fig.update_yaxes(title="Smaller error than own averages (%)", ticksuffix="%")
     fig.update_xaxes(title="Orders known before the forecast", type="category")
     return _layout(fig, title=title, height=380)
+
+
+def tier_shares(summary: pd.DataFrame, *, title: str) -> go.Figure:
+    """Each tier's share of customers next to its share of the money."""
+    fig = go.Figure()
+    fig.add_trace(go.Bar(x=summary["tier"], y=100 * summary["share_of_customers"], name="share of customers",
+                         marker_color=PALETTE["sky"], hovertemplate="%{x}: %{y:.0f}% of customers<extra></extra>"))
+    if summary["share_of_projected_revenue"].notna().any():
+        fig.add_trace(go.Bar(x=summary["tier"], y=100 * summary["share_of_projected_revenue"],
+                             name="share of projected revenue", marker_color=PALETTE["blue"],
+                             hovertemplate="%{x}: %{y:.0f}% of projected revenue<extra></extra>"))
+    fig.update_layout(barmode="group", bargap=0.3)
+    fig.update_yaxes(title="Share (%)", ticksuffix="%", rangemode="tozero")
+    fig.update_xaxes(title=None, type="category")
+    return _layout(fig, title=title, height=340)
+
+
+def cohort_projection(cohorts: pd.DataFrame, *, symbol: str, title: str, grouped_by: str) -> go.Figure:
+    """Projected revenue per group of customers, with the interval of the expected amount."""
+    value = cohorts["projected_revenue"].to_numpy(dtype=float)
+    fig = go.Figure(go.Bar(
+        x=cohorts["cohort"].astype(str), y=value, name="projected", marker_color=PALETTE["blue"],
+        error_y={"type": "data", "array": np.nan_to_num(cohorts["projected_high"].to_numpy(dtype=float) - value),
+                 "arrayminus": np.nan_to_num(value - cohorts["projected_low"].to_numpy(dtype=float)),
+                 "color": INK, "thickness": 1.2, "width": 4},
+        customdata=cohorts["customers"].to_numpy(),
+        hovertemplate=f"%{{x}}: {symbol}%{{y:,.0f}} from %{{customdata:,}} customers<extra></extra>"))
+    fig.update_yaxes(title="Projected revenue", tickprefix=symbol, rangemode="tozero")
+    fig.update_xaxes(title=grouped_by[:1].upper() + grouped_by[1:], type="category")
+    return _layout(fig, title=title, height=380)
+
+
+def cohort_backtest(cohorts: pd.DataFrame, *, symbol: str, title: str, grouped_by: str) -> go.Figure:
+    """What the outlook made at the cut-off projected, what came in, and a run-rate guess, per group."""
+    x = cohorts["cohort"].astype(str)
+    value = cohorts["projected_revenue"].to_numpy(dtype=float)
+    fig = go.Figure()
+    fig.add_trace(go.Bar(
+        x=x, y=value, name="projected at the cut-off", marker_color=PALETTE["blue"],
+        error_y={"type": "data", "array": np.nan_to_num(cohorts["projected_high"].to_numpy(dtype=float) - value),
+                 "arrayminus": np.nan_to_num(value - cohorts["projected_low"].to_numpy(dtype=float)),
+                 "color": INK, "thickness": 1.2, "width": 4},
+        hovertemplate=f"%{{x}}: projected {symbol}%{{y:,.0f}}<extra></extra>"))
+    fig.add_trace(go.Bar(x=x, y=cohorts["actual_revenue"], name="what actually came in",
+                         marker_color=PALETTE["vermilion"],
+                         hovertemplate=f"%{{x}}: actual {symbol}%{{y:,.0f}}<extra></extra>"))
+    fig.add_trace(go.Scatter(x=x, y=cohorts["run_rate_revenue"], name="run-rate guess", mode="markers",
+                             marker={"symbol": "diamond", "size": 10, "color": PALETTE["orange"],
+                                     "line": {"width": 1, "color": INK}},
+                             hovertemplate=f"%{{x}}: run rate {symbol}%{{y:,.0f}}<extra></extra>"))
+    fig.update_layout(barmode="group", bargap=0.25)
+    fig.update_yaxes(title="Revenue in the window", tickprefix=symbol, rangemode="tozero")
+    fig.update_xaxes(title=grouped_by[:1].upper() + grouped_by[1:], type="category")
+    return _layout(fig, title=title, height=400)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import hashlib
 import re
+import tempfile
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -220,6 +221,74 @@ def evaluation(dataset: Dataset, bootstrap: int = 200) -> Outcome:
         return Outcome(module.evaluate_methods(read_dataset(dataset).value.orders, bootstrap=bootstrap, seed=0))
     except OrderDataError as problem:
         return Outcome(problem=_problem_text(problem))
+
+
+def method_in_use(dataset: Dataset) -> tuple[str, str]:
+    """The method and spread model the Forecasts page uses now (after any automatic choice)."""
+    outcome = forecasts(dataset, kept("method", "auto"), kept("variance", "auto"))
+    if not outcome.ok:
+        outcome = forecasts(dataset, "auto", "auto")
+    if not outcome.ok:
+        return "mta", "classic"
+    table = outcome.value
+    return str(table["method"].iloc[0]), str(table["variance"].iloc[0])
+
+
+def _outlook_variance(variance: str) -> str:
+    # Gamma-Gamma reports its own spread as "gamma-model"; the outlook calls want a model name.
+    return "classic" if variance == "gamma-model" else variance
+
+
+@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+def outlook(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
+    """Projected revenue per customer and per group over ``horizon`` days, from the forecasts in use."""
+    module = optional_module("outlook")
+    table = forecasts(dataset, method, _outlook_variance(variance))
+    try:
+        return Outcome(module.project_revenue(read_dataset(dataset).value.orders, horizon=horizon, by=by,
+                                              forecasts=table.value if table.ok else None, method=method,
+                                              variance=_outlook_variance(variance)))
+    except OrderDataError as problem:
+        return Outcome(problem=_problem_text(problem))
+
+
+@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
+    """The outlook made at an earlier date, against the revenue that came in after it."""
+    module = optional_module("outlook")
+    try:
+        return Outcome(module.backtest_outlook(read_dataset(dataset).value.orders, horizon=horizon, by=by,
+                                               method=method, variance=_outlook_variance(variance)))
+    except OrderDataError as problem:
+        return Outcome(problem=_problem_text(problem))
+
+
+@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: str, shares: tuple) -> Outcome:
+    """Customers in value tiers, the tier summary and the tier lists as CSV text.
+
+    The lists are written by the library's own tier export (formula-safe, rounded) into a
+    temporary folder and read back, so the downloads match the command line's files.
+    """
+    module = optional_module("outlook")
+    projection = outlook(dataset, method, variance, horizon, "quarter")
+    if not projection.ok:
+        return projection
+    note = ""
+    customers = projection.value.customers
+    if rank == "revenue" and not customers["projected_revenue"].notna().all():
+        rank = "value"
+        note = ("Revenue could not be projected for every customer on this data (the order-frequency model "
+                "did not fit), so customers are ranked by their expected next order instead.")
+    try:
+        tiered = module.assign_tiers(customers, rank=rank, shares=shares)
+        summary = module.tier_summary(tiered)
+        with tempfile.TemporaryDirectory() as folder:
+            written = module.export_tiers(tiered, Path(folder) / "tiers.csv")
+            files = {name: path.read_text(encoding="utf-8") for name, path in written.items()}
+    except OrderDataError as problem:
+        return Outcome(problem=_problem_text(problem))
+    return Outcome({"customers": tiered, "summary": summary, "files": files, "rank": rank}, note=note)
 
 
 # ---------------------------------------------------------------------------

@@ -84,8 +84,8 @@ for note in found.notes:
 # Every method
 
 st.subheader("Every method against the customers' own averages")
-st.caption("Bars to the right of the zero line beat the own average. The thin lines show the range the gain probably lies in "
-           "(95%, from re-drawing the customers many times).")
+st.caption("Bars to the right of the zero line beat the own average. The thin lines show the range the gain "
+           "probably lies in (95%, from re-drawing the customers many times).")
 left, right = st.columns(2)
 with left:
     st.plotly_chart(charts.method_comparison(found.leave_one_out, title="Hiding one past order at a time"),

@@ -1,17 +1,124 @@
-"""Cohort outlook: revenue ahead from each month's new customers."""
+"""Cohort outlook: revenue ahead from each group of customers, and the same outlook tried on the past."""
 
 from __future__ import annotations
 
+import math
+from pathlib import Path
+
 import streamlit as st
 
-from dashboard import layout, state
+from dashboard import charts, layout, state, words
+from forecasting import csv_text
 
 layout.page_header(
     "Cohort outlook",
-    "Revenue expected from the customers who first ordered in each month, checked against what they actually spent.",
+    "Revenue to expect from the customers you already have, grouped by when they first ordered (or by segment), "
+    "and a check of the same outlook made at an earlier date against what really came in.",
 )
 if not layout.dataset_line():
     st.stop()
-if state.optional_module("outlook") is None:
+if state.optional_module("outlook") is None or state.optional_module("forecasts") is None:
     layout.coming("The cohort outlook page")
     st.stop()
+
+dataset = state.current()
+result = state.current_result()
+symbol = state.money_symbol(dataset)
+money_format = layout.money_format(symbol)
+method, variance = state.method_in_use(dataset)
+
+HORIZONS = [90, 180, 365]
+groupings = {"quarter": "quarter of first order", "month": "month of first order"}
+if "segment" in result.orders.columns:
+    groupings["segment"] = "segment"
+
+first, second = st.columns(2)
+horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 180, HORIZONS),
+                          format_func=lambda days: f"next {days} days",
+                          help="How far ahead revenue is projected (from the last order date in the file).")
+by = second.selectbox("Group customers by", list(groupings),
+                      **state.remember("cohort_by", "quarter", list(groupings)), format_func=groupings.get)
+
+with st.status("Working out the outlook ...", expanded=False) as progress:
+    progress.write("Fitting how often customers come back ...")
+    ahead = state.outlook(dataset, method, variance, float(horizon), by)
+    progress.write("Trying the same outlook on the past ...")
+    past = state.outlook_backtest(dataset, method, variance, float(horizon), by)
+    progress.update(label="Outlook ready", state="complete")
+
+if not ahead.ok:
+    st.error(ahead.problem)
+    st.stop()
+projection = ahead.value
+total = projection.total
+frequency = projection.fit.as_dict()
+
+st.subheader(f"The next {horizon} days")
+if not math.isfinite(float(total["projected_revenue"])):
+    st.warning("The order-frequency model could not be fitted well enough on this data to project revenue. "
+               + (frequency.get("notes") or "") + " A longer order history with more customers helps.")
+    st.stop()
+cells = st.columns(4)
+cells[0].metric(f"Projected revenue, from {projection.as_of:%d %b %Y}",
+                words.money(total["projected_revenue"], symbol))
+cells[1].metric("Likely range of that amount",
+                f"{words.money(total['projected_low'], symbol)} to {words.money(total['projected_high'], symbol)}",
+                help=f"{projection.level:.0%} range of the expected amount.")
+cells[2].metric("Orders expected", f"{total['expected_orders']:,.0f}")
+cells[3].metric("Customers", f"{int(total['customers']):,}")
+st.markdown(f"An active customer orders about **{frequency['orders_per_year_active']:.1f} times a year**, and after "
+            f"each repeat order about **{frequency['chance_stop_after_order']:.0%}** stop for good (order-frequency "
+            "model BG/NBD). Only customers you already have are counted: new customers are not included.")
+if frequency.get("notes"):
+    st.caption(frequency["notes"])
+
+st.plotly_chart(charts.cohort_projection(projection.cohorts, symbol=symbol,
+                                         title=f"Projected revenue by {groupings[by]}",
+                                         grouped_by=groupings[by]),
+                key="cohort_chart", theme=None, config={"displaylogo": False})
+
+st.subheader("Tried on the past")
+if not past.ok:
+    st.info(f"The outlook could not be tried on the past: {past.problem}")
+else:
+    check = past.value
+    bt = check.total
+    st.plotly_chart(charts.cohort_backtest(check.cohorts, symbol=symbol,
+                                           title=f"Made on {check.cutoff:%d %b %Y}: projected against actual, "
+                                                 f"{check.window_days:.0f} days", grouped_by=groupings[by]),
+                    key="cohort_backtest_chart", theme=None, config={"displaylogo": False})
+    sentences = [f"Made from the orders before {check.cutoff:%d %B %Y}, the outlook projected "
+                 f"{words.money(bt['projected_revenue'], symbol)} from the {bt['customers']:,} customers of the "
+                 f"time for the next {check.window_days:.0f} days; they actually spent "
+                 f"{words.money(bt['actual_revenue'], symbol)}"]
+    if bt.get("error_pct") is not None and math.isfinite(float(bt["error_pct"])):
+        sentences[0] += f" ({float(bt['error_pct']):+.0f}%)."
+    else:
+        sentences[0] += "."
+    if bt.get("run_rate_error_pct") is not None and math.isfinite(float(bt["run_rate_error_pct"])):
+        sentences.append(f"Carrying each customer's past pace forward would have given "
+                         f"{words.money(bt['run_rate_revenue'], symbol)} ({float(bt['run_rate_error_pct']):+.0f}%).")
+    if bt.get("new_customer_revenue"):
+        sentences.append(f"New customers who first ordered in that window spent another "
+                         f"{words.money(bt['new_customer_revenue'], symbol)}, which no outlook of existing "
+                         "customers includes.")
+    st.markdown(" ".join(sentences))
+    inside = int(check.cohorts["actual_inside_interval"].sum())
+    st.caption(f"The actual amount fell inside the projected range for {inside} of {len(check.cohorts)} groups. "
+               "The range covers the uncertainty of the expected amount, not the luck of which customers "
+               "happen to order, so actual revenue often lands outside it.")
+
+with st.expander("Table and download"):
+    st.dataframe(projection.cohorts, hide_index=True, key="cohort_table",
+                 column_config={
+                     "cohort": st.column_config.TextColumn("Group"),
+                     "customers": st.column_config.NumberColumn("Customers", format="%d"),
+                     "expected_orders": st.column_config.NumberColumn("Orders expected", format="%.0f"),
+                     "projected_revenue": st.column_config.NumberColumn("Projected", format=money_format),
+                     "projected_low": st.column_config.NumberColumn("From", format=money_format),
+                     "projected_high": st.column_config.NumberColumn("To", format=money_format),
+                     "share_of_projected_revenue": st.column_config.NumberColumn("Share", format="percent"),
+                 })
+    st.download_button("Download the projection for every customer (CSV)", data=csv_text(projection.customers),
+                       file_name=f"{Path(dataset.name).stem}_outlook_{horizon}_days.csv", mime="text/csv",
+                       key="download_outlook", on_click="ignore", icon=":material/download:")

@@ -1,17 +1,132 @@
-"""Value tiers: customers grouped by what they are expected to bring in."""
+"""Value tiers: customers grouped by what they are expected to bring in, with a list per tier to download."""
 
 from __future__ import annotations
 
+import math
+from pathlib import Path
+
 import streamlit as st
 
-from dashboard import layout, state
+from dashboard import charts, layout, state, words
 
 layout.page_header(
     "Value tiers",
-    "Customers grouped by what they are expected to spend in the months ahead, so you can see who matters most.",
+    "Customers ranked by what they are expected to bring in and split into tiers, so you can see who matters "
+    "most, and download each tier as a list (for a thank-you note or an offer, say).",
 )
 if not layout.dataset_line():
     st.stop()
-if state.optional_module("outlook") is None:
+if state.optional_module("outlook") is None or state.optional_module("forecasts") is None:
     layout.coming("The value tiers page")
     st.stop()
+
+dataset = state.current()
+symbol = state.money_symbol(dataset)
+money_format = layout.money_format(symbol)
+method, variance = state.method_in_use(dataset)
+
+HORIZONS = [90, 180, 365]
+SPLITS = {(0.1, 0.3): "top 10%, next 30%, the rest", (0.2, 0.3): "top 20%, next 30%, the rest",
+          (0.05, 0.15, 0.3): "top 5%, next 15%, next 30%, the rest"}
+RANKS = {"revenue": "projected revenue in the period ahead", "value": "expected next order"}
+
+first, second, third = st.columns(3)
+horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 180, HORIZONS),
+                          format_func=lambda days: f"next {days} days",
+                          help="How far ahead revenue is projected (from the last order date in the file).")
+rank = second.selectbox("Rank customers by", list(RANKS), **state.remember("tier_rank", "revenue", list(RANKS)),
+                        format_func=RANKS.get,
+                        help="Projected revenue counts how often the customer is likely to order as well as "
+                             "how much; the expected next order looks only at how much.")
+split = third.selectbox("Tiers", list(SPLITS), **state.remember("tier_split", (0.1, 0.3), list(SPLITS)),
+                        format_func=SPLITS.get)
+st.caption(f"Forecasts from {words.method_label(method)} with the {words.variance_label(variance)} spread model "
+           "(change it on the Forecasts page).")
+
+with st.spinner("Projecting revenue and ranking customers ..."):
+    outcome = state.tiers(dataset, method, variance, float(horizon), rank, split)
+if not outcome.ok:
+    st.error(outcome.problem)
+    st.stop()
+if outcome.note:
+    st.warning(outcome.note)
+rank = outcome.value["rank"]
+tiered = outcome.value["customers"]
+summary = outcome.value["summary"]
+files = outcome.value["files"]
+
+figure_word = "projected revenue" if rank == "revenue" else "expected next order"
+shown = summary.assign(customers_pct=100 * summary["share_of_customers"],
+                       revenue_pct=100 * summary["share_of_projected_revenue"])
+st.dataframe(
+    shown, hide_index=True, key="tier_summary", height=layout.table_height(len(summary)),
+    column_order=["tier", "rule", "customers", "customers_pct", "lowest_figure", "highest_figure",
+                  "projected_revenue", "revenue_pct", "average_own_history_weight", "mostly_shop_pattern"],
+    column_config={
+        "tier": st.column_config.TextColumn("Tier"),
+        "rule": st.column_config.TextColumn("Who"),
+        "customers": st.column_config.NumberColumn("Customers", format="%d"),
+        "customers_pct": st.column_config.NumberColumn("Share", format="%.0f%%", help="Share of all customers."),
+        "lowest_figure": st.column_config.NumberColumn("Lowest", format=money_format,
+                                                   help=f"The lowest {figure_word} in the tier."),
+        "highest_figure": st.column_config.NumberColumn("Highest", format=money_format,
+                                                    help=f"The highest {figure_word} in the tier."),
+        "projected_revenue": st.column_config.NumberColumn(
+            "Projected", format=money_format, help=f"Revenue projected from the tier in the next {horizon} days."),
+        "revenue_pct": st.column_config.NumberColumn("Share of revenue", format="%.0f%%"),
+        "average_own_history_weight": st.column_config.ProgressColumn(
+            "Own-history weight", format="percent", min_value=0.0, max_value=1.0,
+            help="Average over the tier. Low means the tier's forecasts rest mostly on similar customers."),
+        "mostly_shop_pattern": st.column_config.NumberColumn(
+            "Mostly shop pattern", format="%d",
+            help="Customers whose forecast rests more on similar customers than on their own orders."),
+    },
+)
+left, right = st.columns([2, 3])
+with left:
+    top = summary.iloc[0]
+    if math.isfinite(float(top["share_of_projected_revenue"])):
+        st.markdown(f"The **{top['tier']}** ({top['rule']}, {int(top['customers']):,} customers) are expected to "
+                    f"bring in **{float(top['share_of_projected_revenue']):.0%}** of the revenue projected for the "
+                    f"next {horizon} days.")
+with right:
+    st.plotly_chart(charts.tier_shares(summary, title="Share of customers and of projected revenue"),
+                    key="tier_chart", theme=None, config={"displaylogo": False})
+
+st.subheader("Customers in a tier")
+names = list(summary["tier"])
+tier = st.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
+members = tiered[tiered["tier"] == tier]
+members = members.assign(active_pct=100 * members["chance_active"])
+st.dataframe(
+    members, hide_index=True, key="tier_members", height=layout.table_height(len(members), most=380),
+    column_order=["rank", "customer", "orders", "expected_next_order", "expected_orders", "active_pct",
+                  "projected_revenue", "projected_low", "projected_high", "own_history_weight", "cohort"],
+    column_config={
+        "rank": st.column_config.NumberColumn("Rank", format="%d"),
+        "customer": st.column_config.TextColumn("Customer"),
+        "orders": st.column_config.NumberColumn("Orders so far", format="%d"),
+        "expected_next_order": st.column_config.NumberColumn("Expected next order", format=money_format),
+        "expected_orders": st.column_config.NumberColumn(f"Orders expected, next {horizon} days", format="%.2f"),
+        "active_pct": st.column_config.NumberColumn(
+            "Still shopping here", format="%.0f%%", help="The chance this customer has not stopped for good."),
+        "projected_revenue": st.column_config.NumberColumn("Projected revenue", format=money_format),
+        "projected_low": st.column_config.NumberColumn("Projected from", format=money_format),
+        "projected_high": st.column_config.NumberColumn("Projected to", format=money_format),
+        "own_history_weight": st.column_config.ProgressColumn(
+            "Weight on own history", format="percent", min_value=0.0, max_value=1.0),
+        "cohort": st.column_config.TextColumn("First ordered"),
+    },
+)
+
+st.subheader("Download the tier lists")
+stem = Path(dataset.name).stem
+buttons = st.columns(len(files))
+for column, (name, text) in zip(buttons, files.items()):
+    label = "All customers with their tier" if name == "all" else f"{name.capitalize()}"
+    slug = "all" if name == "all" else "-".join(name.lower().split())
+    column.download_button(f"{label} (CSV)", data=text, file_name=f"{stem}_tier_{slug}.csv", mime="text/csv",
+                           key=f"download_tier_{slug}", on_click="ignore", icon=":material/download:")
+st.caption("Projected revenue is the expected amount: a customer's likely number of orders in the period times "
+           "their expected next order. The range is for that expected amount; what a single customer actually "
+           "spends varies much more.")

@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 from streamlit.testing.v1 import AppTest
 
-from dashboard import words
+from dashboard import charts, words
 from forecasting import OrderDataError, customer_statistics, read_orders
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -284,7 +284,8 @@ class TestAccuracy:
         at.switch_page("pages/accuracy.py").run()
         assert not at.exception
         verdict = at.success[0].value
-        assert verdict == f"**{words.verdict_sentence(row['error_reduction_pct'], low=row['ci_low'], high=row['ci_high'])}**"
+        sentence = words.verdict_sentence(row["error_reduction_pct"], low=row["ci_low"], high=row["ci_high"])
+        assert verdict == f"**{sentence}**"
         assert f"{row['error_reduction_pct']:.0f}%" in verdict
         shown = table_with(at, "coverage")
         assert len(shown) == len(found.leave_one_out) + len(found.backtest)
@@ -303,9 +304,125 @@ class TestAccuracy:
         assert any("James-Stein with the classic spread model" in m.value for m in at.markdown)
 
 
+outlook_module = pytest.importorskip("forecasting.outlook")
+
+
+@pytest.fixture(scope="module")
+def automatic(demo):
+    """The automatic forecasts and the method and spread model they settled on."""
+    result, stats = demo
+    table = forecasts_module.forecast_customers(stats, method="auto", orders=result.orders)
+    return table, str(table["method"].iloc[0]), str(table["variance"].iloc[0])
+
+
+class TestValueTiers:
+    def test_tier_table_is_the_librarys(self, demo, automatic):
+        result, _ = demo
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(result.orders, horizon=180, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        expected = outlook_module.tier_summary(
+            outlook_module.assign_tiers(projection.customers, rank="revenue", shares=(0.1, 0.3)))
+        at = new_app()
+        at.switch_page("pages/value_tiers.py").run()
+        assert not at.exception
+        shown = table_with(at, "share_of_projected_revenue")
+        assert shown["tier"].tolist() == expected["tier"].tolist()
+        assert shown["customers"].tolist() == expected["customers"].tolist()
+        np.testing.assert_allclose(shown["projected_revenue"], expected["projected_revenue"], rtol=1e-12)
+
+    def test_rank_and_split_by_key(self, demo, automatic):
+        result, _ = demo
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(result.orders, horizon=90, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        expected = outlook_module.assign_tiers(projection.customers, rank="value", shares=(0.05, 0.15, 0.3))
+        at = new_app()
+        at.switch_page("pages/value_tiers.py").run()
+        at.selectbox(key="horizon").set_value(90).run()
+        at.selectbox(key="tier_rank").set_value("value").run()
+        at.selectbox(key="tier_split").set_value((0.05, 0.15, 0.3)).run()
+        assert not at.exception
+        shown = table_with(at, "share_of_projected_revenue")
+        assert len(shown) == 4
+        members = table_with(at, "chance_active")
+        top = expected[expected["tier"] == expected.attrs["tiers"][0]["tier"]]
+        assert members["customer"].tolist() == top["customer"].tolist()
+
+    def test_no_projection_falls_back_to_next_order_value(self):
+        # Nine customers are too few for the order-frequency fit (see forecasting/frequency.py notes).
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        at.switch_page("pages/value_tiers.py").run()
+        assert not at.exception
+        assert not errors(at)
+        assert any("ranked by their expected next order" in w.value for w in at.warning)
+
+
+class TestCohortOutlook:
+    def test_cohorts_and_backtest_are_the_librarys(self, demo, automatic):
+        result, _ = demo
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(result.orders, horizon=180, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        check = outlook_module.backtest_outlook(result.orders, horizon=180, by="quarter", method=method,
+                                                variance=variance)
+        at = new_app()
+        at.switch_page("pages/cohort_outlook.py").run()
+        assert not at.exception
+        shown = table_with(at, "share_of_projected_revenue")
+        assert shown["cohort"].tolist() == projection.cohorts["cohort"].tolist()
+        np.testing.assert_allclose(shown["projected_revenue"], projection.cohorts["projected_revenue"], rtol=1e-12)
+        text = " ".join(m.value for m in at.markdown)
+        assert f"they actually spent {words.money(check.total['actual_revenue'])}" in text
+
+    def test_group_by_segment(self, demo, automatic):
+        result, _ = demo
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(result.orders, horizon=180, by="segment", forecasts=table,
+                                                    method=method, variance=variance)
+        at = new_app()
+        at.switch_page("pages/cohort_outlook.py").run()
+        at.selectbox(key="cohort_by").set_value("segment").run()
+        assert not at.exception
+        shown = table_with(at, "share_of_projected_revenue")
+        assert sorted(shown["cohort"]) == sorted(projection.cohorts["cohort"]) == ["instagram", "market", "web"]
+
+    def test_too_little_history_is_a_message(self):
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        at.switch_page("pages/cohort_outlook.py").run()
+        assert not at.exception
+        assert any("could not be fitted" in w.value for w in at.warning)
+
+
+class TestCharts:
+    def test_pull_chart_plots_every_customer_at_average_and_forecast(self, automatic):
+        table, _, _ = automatic
+        figure = charts.pull_toward_centre(table, highlight=table["customer"].iloc[0])
+        points = [trace for trace in figure.data if trace.mode == "markers" and trace.customdata is not None]
+        x = np.concatenate([np.asarray(trace.x, dtype=float) for trace in points])
+        y = np.concatenate([np.asarray(trace.y, dtype=float) for trace in points])
+        assert len(x) == len(table)
+        assert sorted(zip(x, y)) == sorted(zip(table["average_order_value"], table["expected_next_order"]))
+        diagonal = figure.data[0]
+        assert list(diagonal.x) == list(diagonal.y)
+
+    def test_method_bars_and_intervals_are_the_evaluations(self, demo):
+        found = evaluation_module.evaluate_methods(demo[0].orders, bootstrap=50, seed=1)
+        figure = charts.method_comparison(found.leave_one_out, title="t")
+        for bar in figure.data:
+            variance = next(v for v in found.leave_one_out["variance"].unique()
+                            if bar.name == f"{words.variance_label(v)} spread")
+            part = found.leave_one_out[found.leave_one_out["variance"] == variance]
+            part = part[~((part["method"] == "plain") & (part["variance"] == "classic"))]
+            np.testing.assert_allclose(bar.x, part["error_reduction_pct"])
+            np.testing.assert_allclose(np.asarray(bar.x) + np.asarray(bar.error_x.array), part["ci_high"])
+            np.testing.assert_allclose(np.asarray(bar.x) - np.asarray(bar.error_x.arrayminus), part["ci_low"])
+
+
 class TestWords:
-    def test_doctests(self):
-        failures, tried = doctest.testmod(words, optionflags=doctest.NORMALIZE_WHITESPACE)
+    @pytest.mark.parametrize("module", [words, charts])
+    def test_doctests(self, module):
+        failures, tried = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
         assert tried > 0 and failures == 0
 
     def test_library_messages_lose_their_command_line_options(self):

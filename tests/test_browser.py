@@ -175,10 +175,14 @@ class TestInTheBrowser:
 
     def test_value_tiers_page(self, page):
         open_page(page, "Value tiers", "Value tiers")
+        page.get_by_text("are expected to bring in").first.wait_for()
+        page.locator(".js-plotly-plot").first.wait_for()
         no_exception_shown(page)
         shoot(page, "value_tiers")
 
     def test_cohort_outlook_page(self, page):
         open_page(page, "Cohort outlook", "Cohort outlook")
+        page.get_by_text("they actually spent").first.wait_for()
+        page.locator(".js-plotly-plot").nth(1).wait_for()
         no_exception_shown(page)
         shoot(page, "cohort_outlook")
