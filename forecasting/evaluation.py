@@ -45,6 +45,13 @@ from forecasting.errors import OrderDataError
 # Methods and variance models whose leave-one-out is exact (closed forms).
 EXACT_METHODS = ("plain", "pooled", "james-stein", "mta", "mta-minimax", "empirical-bayes")
 EXACT_VARIANCES = ("classic", "log")
+# The variance name reported for gamma-gamma, which has its own spread.
+GAMMA_MODEL = "gamma-model"
+# Candidates of the automatic choice: the cross-validated variants are left
+# out because their fast leave-one-out keeps the multiplier chosen with the
+# held-out order in the data, which would flatter them in this comparison.
+AUTO_METHODS = ("plain", "pooled", "james-stein", "mta", "mta-minimax", "mta-segments", "empirical-bayes",
+                "gamma-gamma")
 
 # Bins of "orders known before the forecast" used in the breakdown tables.
 PAST_ORDER_BINS = ((1, 1, "1"), (2, 2, "2"), (3, 3, "3"), (4, 5, "4-5"), (6, 10, "6-10"), (11, np.inf, "11+"))
@@ -53,6 +60,9 @@ PAST_ORDER_BINS = ((1, 1, "1"), (2, 2, "2"), (3, 3, "3"), (4, 5, "4-5"), (6, 10,
 # and a block this size stays in the processor's cache, which is what makes it fast.
 _CHUNK_CELLS = 1 << 18
 _WORKERS = min(4, os.cpu_count() or 1)
+# Power series for centres over customers with distinct weights (proportional model).
+_SERIES_STEP = 0.01
+_SERIES_TERMS = 8
 
 _RESULT_COLUMNS = ["method", "variance", "sse", "error_reduction_pct", "ci_low", "ci_high", "coverage"]
 
@@ -162,6 +172,46 @@ class _Scale:
         return np.maximum((s2 - s1 * s1 / remaining) / (remaining - 1.0), 0.0)
 
 
+class _Precision:
+    """Precision weights q_s, with s_s = sigma2 / q_s, and their update.
+
+    For the classic, log and robust models q_s = n_s (grouped by order count,
+    exact); for the proportional model q_s = n_s / mu_s^2 with mu_s the
+    full-data fixed point (one step from it, see :func:`_loo_predict`).  The
+    held-out customer's weight goes from ``q_old`` to ``q_new``.
+    """
+
+    def __init__(self, scale, q=None):
+        self.own_level = q is not None  # proportional: the own weight depends on the own level
+        if q is None:
+            self.grouped = True
+            q = scale.counts
+            self.q_old = scale.n
+            self.q_new = scale.n - 1.0
+        else:
+            self.grouped = False
+            self.q_old = q[scale.t]
+            self.q_new = self.q_old * (scale.n - 1.0) / scale.n
+        self.q = q
+        d = scale.d
+        self.sum_q = float(q.sum())
+        self.sum_qd = float(q @ d)
+        self.sum_qd2 = float(q @ (d * d))
+        self.sum_inv_q = float((1.0 / q).sum())
+
+    def sum_q_after(self):
+        return self.sum_q - self.q_old + self.q_new
+
+    def sum_qd_after(self, scale):
+        return self.sum_qd - self.q_old * scale.d_before + self.q_new * scale.d_after
+
+    def sum_qd2_after(self, scale):
+        return self.sum_qd2 - self.q_old * scale.d_before**2 + self.q_new * scale.d_after**2
+
+    def sum_inv_q_after(self):
+        return self.sum_inv_q - 1.0 / self.q_old + 1.0 / self.q_new
+
+
 def _order_count_groups(scale):
     """Distinct order counts k with the number of customers and the sum of
     (m - origin) in each group (computed once per scale)."""
@@ -173,51 +223,133 @@ def _order_count_groups(scale):
     return scale._groups
 
 
-def _group_sums_direct(ks, groups, b):
-    """sum_k (k / (k + b)) [D_k, G_k] for every b: O(len(b) K), in blocks."""
-    H = len(b)
-    sums = np.empty((H, 2))
-    chunk = max(1, _CHUNK_CELLS // max(1, len(ks)))
-    starts = range(0, H, chunk)
-
-    def run(start):
-        stop = min(H, start + chunk)
-        weight = np.add(ks[None, :], b[start:stop, None])
-        np.divide(ks[None, :], weight, out=weight)  # g_k = k / (k + b)
-        np.matmul(weight, groups, out=sums[start:stop])
-
+def _rows_in_blocks(n_rows, width, run):
+    """Call run(start, stop) over row blocks of about _CHUNK_CELLS cells."""
+    chunk = max(1, _CHUNK_CELLS // max(1, width))
+    starts = range(0, n_rows, chunk)
     if len(starts) > 1 and _WORKERS > 1:
         # numpy releases the interpreter lock inside these loops, so blocks run in parallel.
         with ThreadPoolExecutor(max_workers=_WORKERS) as pool:
-            list(pool.map(run, starts))
+            list(pool.map(lambda start: run(start, min(n_rows, start + chunk)), starts))
     else:
         for start in starts:
-            run(start)
+            run(start, min(n_rows, start + chunk))
+
+
+def _weight_sums(q, columns, b):
+    """sum_s (q_s / (q_s + b)) columns_s for every b: O(len(b) len(q)), in blocks."""
+    sums = np.empty((len(b), columns.shape[1]))
+
+    def run(start, stop):
+        weight = np.add(q[None, :], b[start:stop, None])
+        np.divide(q[None, :], weight, out=weight)  # g = q / (q + b)
+        np.matmul(weight, columns, out=sums[start:stop])
+
+    _rows_in_blocks(len(b), len(q), run)
     return sums
 
 
-def _weighted_centre_after(scale, b):
-    """Centre c = sum g_s m_s / sum g_s with g_s = n_s / (n_s + b), after the
-    removal, for one b per held-out order (relative to origin).
+def _weight_sums_series(q, columns, b):
+    """The sums of :func:`_weight_sums` for many customers with distinct q.
 
-    b = 0 gives the unweighted mean, b = inf the order-weighted mean (the limit
-    of g_s proportional to n_s).  Customers are grouped by order count k, so
-    the sums run over the K distinct counts, then the held-out customer is
-    moved from group n to group n - 1 with the new average: O(N K).
+    Each b is expanded about the nearest point p of a geometric grid
+    (|b - p| <= p * _SERIES_STEP / 2):
+
+        q / (q + b) = sum_j q (p - b)^j / (q + p)^(j + 1),
+
+    a geometric series with ratio at most |b - p| / p <= 0.005, so
+    _SERIES_TERMS = 8 terms leave a tail below 1e-18 of the sum: exact to
+    rounding, at O(terms x customers) per grid point used plus O(terms) per
+    held-out order.  b = 0 (every g = 1) is summed directly.
     """
-    ks, groups = _order_count_groups(scale)
+    sums = np.empty((len(b), columns.shape[1]))
+    zero = b == 0
+    sums[zero] = columns.sum(axis=0)
+    step = np.log1p(_SERIES_STEP)
+    rest = np.flatnonzero(~zero)
+    point_of = np.rint(np.log(b[rest]) / step).astype(np.int64)
+    for point in np.unique(point_of):
+        rows = rest[point_of == point]
+        p = float(np.exp(point * step))
+        inverse = 1.0 / (q + p)
+        power = q * inverse
+        coefficients = []
+        for _ in range(_SERIES_TERMS):
+            coefficients.append(power @ columns)
+            power = power * inverse
+        ratio = (p - b[rows])[:, None]
+        total = np.tile(coefficients[-1], (len(rows), 1))
+        for coefficient in coefficients[-2::-1]:  # Horner
+            total *= ratio
+            total += coefficient
+        sums[rows] = total
+    return sums
+
+
+def _centre_sums_without(scale, precision, b):
+    """Numerator and denominator of the centre c = sum g_s m_s / sum g_s with
+    g_s = q_s / (q_s + b), over every customer except the held-out one
+    (relative to origin), for one b per held-out order.
+
+    With q = n, customers are grouped by order count k, so the sums run over
+    the K distinct counts: O(N K).  Otherwise an exact-to-rounding power
+    series over customers (:func:`_weight_sums_series`).
+    """
+    if precision.grouped:
+        ks, groups = _order_count_groups(scale)
+        sums = _weight_sums(ks, groups, b)
+    else:
+        columns = np.column_stack([scale.d, np.ones(scale.T)])
+        sums = _weight_sums_series(precision.q, columns, b)
+    g_old = precision.q_old / (precision.q_old + b)
+    return sums[:, 0] - g_old * scale.d_before, sums[:, 1] - g_old
+
+
+def _weighted_centre_after(scale, precision, b):
+    """Centre after the removal, the held-out customer moved from weight
+    q_old to q_new with the new average.  b = 0 gives the unweighted mean,
+    b = inf the q-weighted mean (the limit of g_s proportional to q_s; for
+    q = n the order-weighted mean)."""
     finite = np.isfinite(b)
     finite_b = np.where(finite, b, 0.0)
-    sums = _group_sums_direct(ks, groups, finite_b)
-    num, den = sums[:, 0], sums[:, 1]
-    n = scale.n
-    g_old = n / (n + finite_b)
-    g_new = (n - 1.0) / (n - 1.0 + finite_b)
-    num += g_new * scale.d_after - g_old * scale.d_before
-    den += g_new - g_old
+    num, den = _centre_sums_without(scale, precision, finite_b)
+    g_new = precision.q_new / (precision.q_new + finite_b)
     with np.errstate(invalid="ignore", divide="ignore"):
-        centre = num / den
-    return np.where(finite, centre, scale.order_weighted_centre_after())
+        centre = (num + g_new * scale.d_after) / (den + g_new)
+        limit = precision.sum_qd_after(scale) / precision.sum_q_after()
+    return np.where(finite, centre, limit)
+
+
+def _own_level_fixed_point(scale, precision, b):
+    """Proportional model: the held-out customer's own level mu solves
+    mu = F(mu), the estimate when s = cv2 mu^2 / n'; the other customers keep
+    their full-data levels.  F(mu) lies between the customer's new average
+    and the centre of the others, so bisection on that interval finds the
+    root (60 halvings: to rounding)."""
+    finite = np.isfinite(b)
+    finite_b = np.where(finite, b, 0.0)
+    num, den = _centre_sums_without(scale, precision, finite_b)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        others = num / den
+    n_after = scale.n - 1.0
+    d_new = scale.d_after
+
+    def estimate_at(level):
+        q_new = n_after / (level * level)
+        g = q_new / (q_new + finite_b)
+        centre = (num + g * d_new) / (den + g)
+        return centre + g * (d_new - centre), g
+
+    lo = scale.origin + np.minimum(d_new, others)
+    hi = scale.origin + np.maximum(d_new, others)
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        above = mid - (scale.origin + estimate_at(mid)[0]) > 0
+        hi = np.where(above, mid, hi)
+        lo = np.where(above, lo, mid)
+    estimate, g = estimate_at(0.5 * (lo + hi))
+    limit = precision.sum_qd_after(scale) / precision.sum_q_after()
+    return np.where(finite, estimate, limit), np.where(finite, g, 0.0)
 
 
 # ---------------------------------------------------------------------------
@@ -225,67 +357,73 @@ def _weighted_centre_after(scale, b):
 # ---------------------------------------------------------------------------
 
 
-def _own_weight(n_after, b):
-    """g = n / (n + b) = 1 / (1 + b / n) with the limits b = inf -> 0."""
+def _own_weight(q_after, b):
+    """g = q / (q + b) = 1 / (1 + b / q) with the limit b = inf -> 0."""
     with np.errstate(invalid="ignore"):
-        g = n_after / (n_after + b)
+        g = q_after / (q_after + b)
     return np.where(np.isinf(b), 0.0, g)
 
 
-def _loo_plain(scale, sigma2):
+def _loo_plain(scale, precision, sigma2, amount=1.0):
     return scale.d_after, np.ones(len(scale.t))
 
 
-def _loo_pooled(scale, sigma2):
+def _loo_pooled(scale, precision, sigma2, amount=1.0):
     return scale.order_weighted_centre_after(), np.zeros(len(scale.t))
 
 
-def _loo_james_stein(scale, sigma2):
+def _loo_james_stein(scale, precision, sigma2, amount=1.0):
     """Positive-part James-Stein (Bock's form) towards the unweighted mean:
-    Q sigma2 = sum n_s (m_s - xi)^2 = sum n d^2 - 2 delta sum n d + delta^2 sum n
-    with d = m - origin and delta = xi - origin."""
+    Q sigma2 = sum q_s (m_s - xi)^2 = sum q d^2 - 2 delta sum q d + delta^2 sum q
+    with d = m - origin and delta = xi - origin.  ``amount`` multiplies the
+    shrink amount 1 - factor (clipped to [0, 1]), as the cross-validated
+    variant does."""
     H = len(scale.t)
     if scale.T <= 3:
         return scale.d_after, np.ones(H)
-    n = scale.n
     delta = scale.unweighted_centre_after()
-    snd2 = scale.sum_nd2 - n * scale.d_before**2 + (n - 1.0) * scale.d_after**2
-    snd = scale.sum_nd - scale.v  # n d - (n-1) d' = x - origin
-    sn = scale.N - 1.0
-    spread = np.maximum(snd2 - 2.0 * delta * snd + delta * delta * sn, 0.0)
+    spread = (precision.sum_qd2_after(scale) - 2.0 * delta * precision.sum_qd_after(scale)
+              + delta * delta * precision.sum_q_after())
+    spread = np.maximum(spread, 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         q = spread / sigma2
         factor = np.maximum(0.0, 1.0 - (scale.T - 3.0) / q)
+    factor = 1.0 - np.clip(amount * (1.0 - factor), 0.0, 1.0)
     usable = (sigma2 > 0) & (spread > 0) & np.isfinite(q)
     factor = np.where(usable, factor, 1.0)
     estimate = delta + factor * (scale.d_after - delta)
     return estimate, factor
 
 
-def _loo_weighted(scale, b):
-    """Shrink towards the weighted centre with own weight n/(n+b)."""
-    centre = _weighted_centre_after(scale, b)
-    g = _own_weight(scale.n - 1.0, b)
+def _loo_weighted(scale, precision, b):
+    """Shrink towards the weighted centre with own weight q/(q+b)."""
+    if precision.own_level:
+        return _own_level_fixed_point(scale, precision, b)
+    centre = _weighted_centre_after(scale, precision, b)
+    g = _own_weight(precision.q_new, b)
     estimate = g * scale.d_after + (1.0 - g) * centre
     return estimate, g
 
 
 def _mta_b(similarity, sigma2):
-    """b = a sigma2 so that g = 1/(1 + a sigma2/n) = n/(n + b); a = inf -> b = inf."""
+    """b = a sigma2 so that g = 1/(1 + a sigma2/q) = q/(q + b); a = inf -> b = inf."""
     with np.errstate(invalid="ignore"):
         b = similarity * sigma2
     # a = inf and sigma2 = 0: every average is equal; the estimate is that value.
     return np.where(np.isnan(b), 0.0, b)
 
 
-def _loo_mta(scale, sigma2):
+def _loo_mta(scale, precision, sigma2, amount=1.0):
+    """Constant MTA, a = 1/var(m); ``amount`` multiplies a (cross-validated variant)."""
     var_m = scale.var_means_after()
     with np.errstate(divide="ignore"):
         a = 1.0 / var_m
-    return _loo_weighted(scale, _mta_b(a, sigma2))
+    if amount == 0:
+        return _loo_plain(scale, precision, sigma2)
+    return _loo_weighted(scale, precision, _mta_b(amount * a, sigma2))
 
 
-def _loo_mta_minimax(scale, sigma2):
+def _loo_mta_minimax(scale, precision, sigma2, amount=1.0):
     top, top_owner, top_second, bottom, bottom_owner, bottom_second = _extremes(scale.d)
     t = scale.t
     high_others = np.where(t == top_owner, top_second, top)
@@ -295,7 +433,7 @@ def _loo_mta_minimax(scale, sigma2):
     spread = high - low
     with np.errstate(divide="ignore"):
         a = 2.0 / (spread * spread)
-    return _loo_weighted(scale, _mta_b(a, sigma2))
+    return _loo_weighted(scale, precision, _mta_b(a, sigma2))
 
 
 def _extremes(values):
@@ -318,17 +456,17 @@ def _extremes(values):
     )
 
 
-def _loo_empirical_bayes(scale, sigma2):
+def _loo_empirical_bayes(scale, precision, sigma2, amount=1.0):
     """Normal-normal with the moment tau2 = max(0, var(m) - mean(s)):
-    w_s = 1/(tau2 + sigma2/n_s) is proportional to n_s/(n_s + sigma2/tau2)."""
+    w_s = 1/(tau2 + sigma2/q_s) is proportional to q_s/(q_s + sigma2/tau2)."""
     var_m = scale.var_means_after()
-    mean_s = sigma2 * scale.sum_inv_n_after() / scale.T
+    mean_s = sigma2 * precision.sum_inv_q_after() / scale.T
     tau2 = np.maximum(0.0, var_m - mean_s)
     with np.errstate(divide="ignore", invalid="ignore"):
         b = sigma2 / tau2
     # tau2 = 0 -> b = inf (complete pooling); sigma2 = 0 -> b = 0 (own averages).
     b = np.where(np.isnan(b), 0.0, b)
-    return _loo_weighted(scale, b)
+    return _loo_weighted(scale, precision, b)
 
 
 _LOO_METHODS = {
@@ -338,7 +476,13 @@ _LOO_METHODS = {
     "mta": _loo_mta,
     "mta-minimax": _loo_mta_minimax,
     "empirical-bayes": _loo_empirical_bayes,
+    "james-stein-cv": _loo_james_stein,
+    "mta-cv": _loo_mta,
 }
+# Methods whose fast leave-one-out keeps something from the full-data fit
+# (documented in _loo_predict) rather than refitting it exactly.
+APPROXIMATE_METHODS = ("gamma-gamma", "james-stein-cv", "mta-cv")
+APPROXIMATE_VARIANCES = ("robust", "proportional")
 
 
 # ---------------------------------------------------------------------------
@@ -350,15 +494,43 @@ _LOO_METHODS = {
 class _HeldOut:
     """Every order of every customer with at least two orders."""
 
+    orders: pd.DataFrame
     stats: pd.DataFrame
-    customer: np.ndarray  # position of the customer in stats
+    codes: np.ndarray  # position in stats of every order's customer
+    customer: np.ndarray  # position of the held-out order's customer in stats
     value: np.ndarray
     money: _Scale
     log: _Scale
+    _cache: dict = field(default_factory=dict)
 
     @property
     def past_orders(self):
         return self.money.n - 1.0
+
+    def full_fit(self, method, variance):
+        """The forecasts on all orders (for what the fast path keeps fixed)."""
+        key = (method, variance)
+        if key not in self._cache:
+            from forecasting.forecasts import forecast_customers
+
+            self._cache[key] = forecast_customers(self.stats, method=method,
+                                                  variance="classic" if variance == GAMMA_MODEL else variance,
+                                                  orders=self.orders)
+        return self._cache[key]
+
+    def robust_variance_after(self):
+        """Robust pooled variance after each removal, keeping the full-data
+        clip point c * scale0 (the one approximation) and recomputing the
+        held-out customer's clipped sum exactly around the new average."""
+        if "robust" not in self._cache:
+            self._cache["robust"] = _robust_variance_after(self)
+        return self._cache["robust"]
+
+    def proportional_variance_after(self):
+        """cv2 = sum SS/m^2 / sum (n - 1) after each removal (exact, O(1) each)."""
+        if "proportional" not in self._cache:
+            self._cache["proportional"] = _proportional_variance_after(self)
+        return self._cache["proportional"]
 
 
 def _customer_codes(orders, stats):
@@ -390,7 +562,120 @@ def _held_out_orders(orders, stats):
         t,
         np.log(x),
     )
-    return _HeldOut(stats=stats, customer=t, value=x, money=money, log=log)
+    return _HeldOut(orders=orders, stats=stats, codes=codes, customer=t, value=x, money=money, log=log)
+
+
+def _robust_variance_after(held):
+    """Winsorised pooled variance with one order removed, clip point fixed.
+
+    With C = c scale0 from the full data, customer t contributes
+    R_t = sum_i min((x_i - m_t)^2, C^2 (n_t - 1)/n_t) and
+    sigma2 = sum_t R_t / sum_t (n_t - 1) / kappa(c) (the formula of
+    :func:`forecasting.variance.robust_pooled_variance`).  Removing order i
+    changes only R_t: its other orders are compared with the new average m'
+    and the new bound h^2 = C^2 (n - 2)/(n - 1).  Each customer's orders are
+    sorted once; a vectorised bisection finds the orders within m' +- h and
+    prefix sums give their squared deviations, so each removal costs
+    O(log n_t).
+    """
+    from forecasting.variance import pooled_variance
+
+    fit = pooled_variance(held.stats, model="robust", orders=held.orders)
+    money = held.money
+    scale0 = fit.details.get("scale0", 0.0)
+    if not scale0 > 0 or money.dof - 1.0 <= 0:
+        return money.classic_variance_after()  # the same fallback the full fit takes
+    clip_at = float(fit.details["clip_at"])
+    kappa = float(fit.details["kappa"])
+    stats = held.stats
+    n = stats["orders"].to_numpy(np.float64)
+    means = stats["mean"].to_numpy(np.float64)
+    values = held.orders["order_value"].to_numpy(np.float64)
+    codes = held.codes
+    dev = values - means[codes]  # deviation from the customer's full-data average
+    bound = clip_at * clip_at * (n - 1.0) / n
+    per_customer = np.bincount(codes, weights=np.minimum(dev * dev, bound[codes]), minlength=len(n))
+    total = float(per_customer[n >= 2].sum())
+
+    order = np.lexsort((dev, codes))
+    sorted_dev = dev[order]
+    start = np.concatenate([[0], np.cumsum(np.bincount(codes, minlength=len(n)))])
+    prefix1 = np.concatenate([[0.0], np.cumsum(sorted_dev)])
+    prefix2 = np.concatenate([[0.0], np.cumsum(sorted_dev * sorted_dev)])
+
+    t = held.customer
+    nh = money.n
+    lo_index, hi_index = start[t], start[t + 1]
+    shift = (means[t] - held.value) / (nh - 1.0)  # m' - m
+    n_after = nh - 1.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        h2 = np.where(n_after >= 2, clip_at * clip_at * (n_after - 1.0) / n_after, 0.0)
+    h = np.sqrt(h2)
+    first_in = _segment_search(sorted_dev, lo_index, hi_index, shift - h, strict=False)
+    first_out = _segment_search(sorted_dev, lo_index, hi_index, shift + h, strict=True)
+    inside = first_out - first_in
+    s1 = prefix1[first_out] - prefix1[first_in]
+    s2 = prefix2[first_out] - prefix2[first_in]
+    inside_sq = np.maximum(s2 - 2.0 * shift * s1 + shift * shift * inside, 0.0)
+    all_orders = inside_sq + (nh - inside) * h2
+    own = (held.value - means[t]) - shift
+    new_sum = np.where(n_after >= 2, all_orders - np.minimum(own * own, h2), 0.0)
+    new_total = total - per_customer[t] + np.maximum(new_sum, 0.0)
+    return np.maximum(new_total / (money.dof - 1.0) / kappa, 0.0)
+
+
+def _segment_search(sorted_values, lo, hi, target, *, strict):
+    """First index in [lo, hi) of each segment whose value is >= target
+    (> target when ``strict``), by vectorised bisection."""
+    lo = lo.astype(np.int64).copy()
+    hi = hi.astype(np.int64).copy()
+    while True:
+        active = lo < hi
+        if not active.any():
+            return lo
+        mid = (lo + hi) // 2
+        value = sorted_values[np.minimum(mid, len(sorted_values) - 1)]
+        below = (value <= target) if strict else (value < target)
+        go_right = active & below
+        go_left = active & ~below
+        lo = np.where(go_right, mid + 1, lo)
+        hi = np.where(go_left, mid, hi)
+
+
+def _proportional_variance_after(held):
+    money = held.money
+    stats = held.stats
+    n = stats["orders"].to_numpy(np.float64)
+    means = stats["mean"].to_numpy(np.float64)
+    ss = stats["sum_sq_dev"].to_numpy(np.float64)
+    relative = ss / (means * means)
+    dof = money.dof - 1.0
+    if dof > 0:
+        t = money.t
+        ss_after = np.maximum(ss[t] - money.ss_removed, 0.0)
+        total = float(relative.sum()) - relative[t] + ss_after / money.mean_after**2
+        return np.maximum(total / dof, 0.0)
+    # Every customer is left with one order: var of the averages / their mean^2.
+    if money.T < 2:
+        return np.zeros(len(money.t))
+    grand = money.origin + money.unweighted_centre_after()
+    return money.var_means_after() / grand**2
+
+
+def _loo_gamma_gamma(held):
+    """Gamma-gamma with p, q, gamma kept from the full-data fit (the one
+    approximation): E = (gamma + n' m') p / (p n' + q - 1) for the customer's
+    remaining n' orders with average m'."""
+    fit = held.full_fit("gamma-gamma", GAMMA_MODEL).attrs["fit"]
+    money = held.money
+    n_after = money.n - 1.0
+    mean_after = money.mean_after
+    if "population_mean" not in fit:  # the full fit fell back to plain averages
+        return mean_after, np.ones(len(mean_after))
+    p, q = fit["p"], fit["q"]
+    g = p * n_after / (p * n_after + q - 1.0)
+    population = fit["population_mean"]
+    return population + g * (mean_after - population), g
 
 
 @dataclass
@@ -426,24 +711,54 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
     log-scale spread sigma2_log, median = expected exp(-sigma2_log / 2),
     range = median exp(+- z sqrt(sigma2_log + g sigma2_log / n)), all refitted
     without the held-out order.
+
+    Exact for ``EXACT_METHODS`` x ``EXACT_VARIANCES``.  The rest keep one
+    thing from the full-data fit and refit everything else exactly:
+
+    * ``robust``: the clip point c * scale0 (the clipped sums are updated);
+    * ``proportional``: one step from the full-data fixed point: the levels
+      mu_s in s_s = cv2 mu_s^2 / n_s are the full-data forecasts, while cv2,
+      the shrinkage amount and the centre are refitted (the centre's sums
+      over customers use an exact-to-rounding power series);
+    * ``gamma-gamma``: p, q and gamma;
+    * ``james-stein-cv`` and ``mta-cv``: the cross-validated multiplier lambda.
     """
-    if method not in _LOO_METHODS or variance not in EXACT_VARIANCES:
+    known = method in _LOO_METHODS or method == "gamma-gamma"
+    if not known or variance not in EXACT_VARIANCES + APPROXIMATE_VARIANCES + (GAMMA_MODEL,):
         raise ValueError(f"no fast leave-one-out for method {method!r} with variance {variance!r}")
     sigma2_log = held.log.classic_variance_after()
     n_after = held.money.n - 1.0
-    fit = _LOO_METHODS[method]
-    if variance == "classic":
-        sigma2 = held.money.classic_variance_after()
-        estimate, g = fit(held.money, sigma2)
-        expected = held.money.origin + estimate
+    on_log = variance == "log" and method != "gamma-gamma"
+    if method == "gamma-gamma":
+        expected, g = _loo_gamma_gamma(held)
+    else:
+        scale = held.log if on_log else held.money
+        if variance == "classic":
+            sigma2 = held.money.classic_variance_after()
+        elif variance == "log":
+            sigma2 = sigma2_log
+        elif variance == "robust":
+            sigma2 = held.robust_variance_after()
+        else:
+            sigma2 = held.proportional_variance_after()
+        if variance == "proportional" and method not in ("plain", "pooled"):
+            level = held.full_fit(method, variance)["expected_next_order"].to_numpy(np.float64)
+            precision = _Precision(scale, scale.counts / (level * level))
+        else:
+            precision = _Precision(scale)
+        amount = 1.0
+        if method.endswith("-cv"):
+            amount = float(held.full_fit(method, variance).attrs["fit"]["lambda"])
+        estimate, g = _LOO_METHODS[method](scale, precision, sigma2, amount)
+        if on_log:
+            log_expected = scale.origin + estimate + (sigma2_log + g * sigma2_log / n_after) / 2.0
+        else:
+            expected = scale.origin + estimate
+    if on_log:
+        expected = np.exp(log_expected)
+    else:
         with np.errstate(divide="ignore", invalid="ignore"):
             log_expected = np.log(expected)
-    else:  # log
-        estimate, g = fit(held.log, sigma2_log)
-        mu = held.log.origin + estimate
-        estimate_var = g * sigma2_log / n_after
-        log_expected = mu + (sigma2_log + estimate_var) / 2.0
-        expected = np.exp(log_expected)
     z = _scipy_stats.norm.ppf(0.5 + next_level / 2.0)
     half_width = z * np.sqrt(sigma2_log * (1.0 + g / n_after))
     return _Predictions(expected=expected, log_median=log_expected - sigma2_log / 2.0, half_width=half_width,
@@ -486,36 +801,45 @@ def _parse_names(value, allowed, option):
     return list(dict.fromkeys(names))
 
 
-def _combinations(methods, variances):
-    """(method, variance) pairs to evaluate, in the product's order."""
+def _combinations(methods, variances, *, stats=None, default_methods=None):
+    """(method, variance) pairs to evaluate, in the product's order.
+
+    gamma-gamma has its own spread and is evaluated once, as "gamma-model".
+    By default every method with a fast leave-one-out is evaluated with every
+    variance model; "mta-segments" only when the customers have segments.
+    """
     known_methods, known_variances = _known_names()
     chosen_methods = _parse_names(methods, known_methods, "--methods")
     chosen_variances = _parse_names(variances, known_variances, "--variances")
+    has_segments = stats is not None and "segment" in stats.columns
     if chosen_methods is None:
-        chosen_methods = [m for m in known_methods if _has_fast_path(m)]
+        pool = default_methods if default_methods is not None else known_methods
+        chosen_methods = [m for m in pool if _has_fast_path(m) and (m != "mta-segments" or has_segments)]
     if chosen_variances is None:
-        chosen_variances = [v for v in known_variances if v in EXACT_VARIANCES]
+        chosen_variances = list(known_variances)
     pairs = []
     for method in chosen_methods:
         if not _has_fast_path(method):
             raise OrderDataError(
-                f"method '{method}' has no leave-one-out evaluation yet",
+                f"method '{method}' has no leave-one-out evaluation",
                 value=method,
                 fix=f"Evaluate one of: {', '.join(m for m in known_methods if _has_fast_path(m))}",
             )
+        if method == "mta-segments" and not has_segments:
+            raise OrderDataError(
+                "the 'mta-segments' method needs a segment for every customer",
+                fix="Name the segment column with --segment, or leave mta-segments out of --methods",
+            )
+        if method == "gamma-gamma":
+            pairs.append((method, GAMMA_MODEL))
+            continue
         for variance in chosen_variances:
-            if variance not in EXACT_VARIANCES:
-                raise OrderDataError(
-                    f"variance model '{variance}' has no leave-one-out evaluation yet",
-                    value=variance,
-                    fix=f"Evaluate one of: {', '.join(EXACT_VARIANCES)}",
-                )
             pairs.append((method, variance))
     return pairs
 
 
 def _has_fast_path(method):
-    return method in _LOO_METHODS
+    return method in _LOO_METHODS or method == "gamma-gamma"
 
 
 # ---------------------------------------------------------------------------
@@ -708,6 +1032,8 @@ def default_cutoff(order_dates):
 def _forecast(stats, method, variance, orders, next_level):
     from forecasting.forecasts import forecast_customers
 
+    if variance == GAMMA_MODEL:
+        variance = "classic"  # ignored by gamma-gamma, which has its own spread
     return forecast_customers(stats, method=method, variance=variance, orders=orders, next_level=next_level)
 
 
@@ -768,11 +1094,17 @@ def _backtest(orders, pairs, cutoff, *, next_level=0.80):
 # ---------------------------------------------------------------------------
 
 
-def _choose(results):
-    """Lowest leave-one-out SSE among the methods, never one that loses to plain averages."""
-    candidates = results[results["method"] != "plain"].dropna(subset=["sse"])
+def _choose(results, allowed=None):
+    """Lowest leave-one-out SSE among the methods, never one that loses to plain averages.
+
+    ``error_reduction_pct`` in ``results`` is against plain averages, so plain
+    averages themselves (plain with classic variance) need no row.
+    """
+    plain = (results["method"] == "plain") & (results["variance"] == "classic")
+    candidates = results[~plain].dropna(subset=["sse"])
+    if allowed is not None:
+        candidates = candidates[candidates["method"].isin(allowed)]
     candidates = candidates.sort_values("sse", kind="stable")
-    plain_rows = results[(results["method"] == "plain") & (results["variance"] == "classic")]
     if len(candidates) == 0:
         return {
             "method": "plain",
@@ -806,7 +1138,6 @@ def _choose(results):
         if runner is not None
         else {"method": "plain", "variance": "classic", "error_reduction_pct": 0.0}
     )
-    del plain_rows
     return {
         "method": str(best["method"]),
         "variance": str(best["variance"]),
@@ -855,9 +1186,7 @@ def choose_method(orders, stats=None, *, methods=None, variances=None):
         )
     if stats is None:
         stats = customer_statistics(orders)
-    pairs = _combinations(methods, variances)
-    if ("plain", "classic") not in pairs:
-        pairs = [("plain", "classic")] + pairs
+    pairs = _combinations(methods, variances, stats=stats, default_methods=AUTO_METHODS)
     scored = _leave_one_out(orders, stats, pairs)
     results = _summarise(scored, resamples=0, seed=0)
     return _choose(results)
@@ -960,8 +1289,8 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
                              fix="Use e.g. --bootstrap 500")
     if not 0 < next_level < 1:
         raise OrderDataError("next_level must be between 0 and 1", value=next_level)
-    pairs = _combinations(methods, variances)
     stats = customer_statistics(orders)
+    pairs = _combinations(methods, variances, stats=stats)
     notes = []
     scored = _leave_one_out(orders, stats, pairs, next_level=next_level)
     if len(scored.plain_sq) == 0:
@@ -981,11 +1310,8 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         backtest = pd.DataFrame(columns=_RESULT_COLUMNS)
         n_backtest = 0
 
-    choice_pairs = pairs if ("plain", "classic") in pairs else [("plain", "classic")] + pairs
-    if choice_pairs == pairs:
-        chosen = _choose(loo)
-    else:
-        chosen = _choose(_summarise(_leave_one_out(orders, stats, choice_pairs), resamples=0, seed=0))
+    # The same choice as choose_method: by default among AUTO_METHODS.
+    chosen = _choose(loo, allowed=AUTO_METHODS if methods is None else None)
     return Evaluation(
         leave_one_out=loo,
         backtest=backtest,
