@@ -379,7 +379,12 @@ def money_symbol(dataset: Dataset) -> str:
     if dataset.currency:
         code = dataset.currency.strip().upper()
         return SYMBOLS.get(code, f"{code} ")
-    head = dataset.data[:500_000].decode("utf-8", errors="ignore")
+    raw = dataset.data[:500_000]
+    try:
+        head = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        # Not UTF-8 (or cut mid-character): Windows-1252 is what the reader tries next.
+        head = raw.decode("cp1252", errors="replace")
     counts = {code: 0 for code in SYMBOLS}
     for code in _CODE_RE.findall(head):
         counts[code] += 1

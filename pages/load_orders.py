@@ -152,13 +152,15 @@ if result is not None:
             {"Why the rows were left out": [REASONS[code] for code in audit["excluded"]],
              "Rows": list(audit["excluded"].values())}
         )
-        st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons")
+        st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons",
+                     height=layout.table_height(len(reasons)))
         left_out = result.excluded
         if "raw_text" in left_out.columns and left_out["raw_text"].isna().any():
             left_out = left_out.assign(raw_text=left_out["raw_text"].fillna(""))
         st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
                     "(the header is row 1) and the reason:")
-        st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True, height=260,
+        st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True,
+                     height=layout.table_height(len(left_out), most=320),
                      key="left_out_rows",
                      column_config={"row": st.column_config.NumberColumn("Row", format="%d"),
                                     "reason": st.column_config.TextColumn("Reason", width="medium"),

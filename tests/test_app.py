@@ -8,6 +8,7 @@ are checked by their doctests and against the library's own error messages.
 from __future__ import annotations
 
 import doctest
+import io
 import re
 from pathlib import Path
 
@@ -118,6 +119,26 @@ class TestLoadOrders:
         assert metric(at, "Rows used") == audit["rows_used"]
         assert metric(at, "Orders") == audit["orders"] == 32  # demo_data/README.md: 32 orders from 9 customers
         assert metric(at, "Customers") == audit["customers"] == 9
+
+    def test_messy_export_shows_euros(self):
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        at.switch_page("pages/forecasts.py").run()
+        sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
+        assert "averaging €" in sentence  # demo_data/README.md: amounts like 1.234,50 €
+
+    @pytest.mark.parametrize("kind", ["xlsx", "parquet"])
+    def test_workbook_and_parquet_uploads(self, demo, kind):
+        orders = demo[0].orders.head(300)
+        table = pd.DataFrame({"Customer": orders["customer"], "Order Date": orders["order_date"],
+                              "Total": orders["order_value"], "Order Number": orders["order_id"]})
+        buffer = io.BytesIO()
+        table.to_excel(buffer, index=False) if kind == "xlsx" else table.to_parquet(buffer, index=False)
+        data = buffer.getvalue()
+        audit = read_orders(data, file_name=f"orders.{kind}").audit()
+        at = upload(new_app(), f"orders.{kind}", data)
+        assert not errors(at)
+        assert metric(at, "Rows used") == audit["rows_used"] == 300
+        assert metric(at, "Customers") == audit["customers"]
 
     def test_changing_a_column_box_reads_again(self, demo):
         at = new_app()
