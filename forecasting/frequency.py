@@ -34,6 +34,7 @@ from .errors import OrderDataError
 
 __all__ = [
     "HISTORY_COLUMNS",
+    "MIN_REPEAT_CUSTOMERS",
     "FrequencyFit",
     "repeat_history",
     "frequency_log_likelihood",
@@ -52,6 +53,13 @@ _SECONDS_PER_DAY = 86400.0
 # Bounds on the log-parameters during the fit: wide enough for any shop measured
 # in days (alpha up to e^18 days), narrow enough to keep every term finite.
 _LOG_BOUND = 18.0
+# Fewer customers with a repeat order than this cannot support four parameters
+# (a rule of thumb: a handful of repeat customers per parameter).
+MIN_REPEAT_CUSTOMERS = 10
+# Largest standard error of a log-parameter that still describes real uncertainty.
+_MAX_LOG_SE = 5.0
+# Bound on drawn log-parameters (exp(40) ~ 2e17 stays finite in every formula).
+_DRAW_BOUND = 40.0
 
 
 # --------------------------------------------------------------------------- #
@@ -181,7 +189,7 @@ def _log_terms(params, x, t_x, age):
     alive = special.betaln(a, b + x) - beta_ab - (r + x) * np.log(alpha + age)
     has_repeat = x > 0
     x1 = np.where(has_repeat, x, 1.0)  # keeps b + x - 1 > 0 where the term is unused
-    stopped = special.betaln(a + 1.0, b + x1 - 1.0) - beta_ab - (r + x) * np.log(alpha + t_x)
+    stopped = special.betaln(a + 1.0, b + (x1 - 1.0)) - beta_ab - (r + x) * np.log(alpha + t_x)
     stopped = np.where(has_repeat, stopped, -np.inf)
     return base, alive, stopped
 
@@ -263,13 +271,40 @@ def frequency_log_likelihood_gradient(params, repeat_orders, days_to_last_order,
     d_alpha = r / alpha - (r + x) * (w_alive / (alpha + age) + w_stop / (alpha + t_x))
     common = psi(a + b) - psi(a + b + x)
     d_a = w_alive * common + w_stop * (psi(a + 1.0) - psi(a) + common)
-    d_b = w_alive * (psi(b + x) - psi(b) + common) + w_stop * (psi(b + x1 - 1.0) - psi(b) + common)
+    d_b = w_alive * (psi(b + x) - psi(b) + common) + w_stop * (psi(b + (x1 - 1.0)) - psi(b) + common)
     return np.array([d_r.sum(), d_alpha.sum(), d_a.sum(), d_b.sum()])
 
 
 # --------------------------------------------------------------------------- #
 # Expectations
 # --------------------------------------------------------------------------- #
+def _gauss_hypergeometric(first, second, third, z, *, max_terms=5000):
+    """2F1(first, second; third; z) for 0 <= z < 1: scipy, with a plain series where scipy fails.
+
+    scipy's hyp2f1 returns NaN for some extreme arguments (e.g. first around
+    -1e6 with z around 1e-6, as when the fit drifts toward its boundary); the
+    Gauss series sum_k (first)_k (second)_k / ((third)_k k!) z^k converges for
+    |z| < 1 and is summed there term by term until terms stop mattering.
+    """
+    first, second, third, z = np.broadcast_arrays(*(np.asarray(v, dtype=np.float64) for v in (first, second, third, z)))
+    value = np.array(special.hyp2f1(first, second, third, z), dtype=np.float64)
+    failed = ~np.isfinite(value)
+    if not np.any(failed):
+        return value
+    f, s, t, zz = first[failed], second[failed], third[failed], z[failed]
+    term = np.ones_like(zz)
+    total = np.ones_like(zz)
+    for k in range(max_terms):
+        term = term * (f + k) * (s + k) / ((t + k) * (k + 1.0)) * zz
+        total = total + term
+        if np.all(np.abs(term) <= 1e-17 * np.abs(total)):
+            break
+    else:
+        total = np.where(np.abs(term) <= 1e-12 * np.abs(total), total, np.nan)
+    value[failed] = np.where(np.isfinite(total), total, np.nan)
+    return value
+
+
 def _orders_while_active(params, x, age, horizon):
     """Expected orders in (T, T + horizon] for a customer active at T.
 
@@ -291,7 +326,7 @@ def _orders_while_active(params, x, age, horizon):
         lower = _orders_while_active((r, alpha, np.where(near_one, 1.0 - step, a), b), x, age, horizon)
         return np.where(near_one, 0.5 * (upper + lower), upper)
     z = horizon / (alpha + age + horizon)
-    hyper = special.hyp2f1(a + b - 1.0 - r, a - 1.0, a + b + x - 1.0, z)
+    hyper = _gauss_hypergeometric(a + b - 1.0 - r, a - 1.0, a + b + x - 1.0, z)
     bracket = 1.0 - np.exp((a - 1.0) * np.log1p(-z)) * hyper
     # Never below zero (also turns -0.0 at a zero horizon into 0.0).
     return np.maximum((a + b + x - 1.0) / (a - 1.0) * bracket, 0.0)
@@ -364,7 +399,7 @@ def _log_stop_odds(params, x, t_x, age):
     r, alpha, a, b = params
     has_repeat = x > 0
     x1 = np.where(has_repeat, x, 1.0)
-    odds = np.log(a) - np.log(b + x1 - 1.0) + (r + x) * (np.log(alpha + age) - np.log(alpha + t_x))
+    odds = np.log(a) - np.log(b + (x1 - 1.0)) + (r + x) * (np.log(alpha + age) - np.log(alpha + t_x))
     return np.where(has_repeat, odds, -np.inf)
 
 
@@ -506,6 +541,8 @@ class FrequencyFit:
         Whether the optimiser reported success away from the bounds.
     notes : tuple of str
         Plain-words remarks about the fit.
+    repeat_customers : int
+        Number of those customers with at least one repeat order.
     """
 
     r: float
@@ -517,11 +554,18 @@ class FrequencyFit:
     customers: int
     converged: bool
     notes: tuple = ()
+    repeat_customers: int = 0
 
     @property
     def params(self) -> tuple:
         """``(r, alpha, a, b)``."""
         return (self.r, self.alpha, self.a, self.b)
+
+    @property
+    def usable(self) -> bool:
+        """Whether the fit is sound enough to project from: it converged and at
+        least ``MIN_REPEAT_CUSTOMERS`` customers ordered more than once."""
+        return self.converged and self.repeat_customers >= MIN_REPEAT_CUSTOMERS
 
     @property
     def standard_errors(self) -> np.ndarray:
@@ -563,7 +607,8 @@ class FrequencyFit:
         if not np.all(np.isfinite(self.covariance)):
             return np.tile(np.asarray(self.params), (draws, 1))
         logs = rng.multivariate_normal(centre, self.covariance, size=draws, method="cholesky")
-        return np.exp(logs)
+        # A very uncertain fit can draw absurd values; keep them finite and positive.
+        return np.exp(np.clip(logs, -_DRAW_BOUND, _DRAW_BOUND))
 
     def as_dict(self) -> dict:
         """Plain floats and strings, for JSON and the dashboard (unknown values are None)."""
@@ -579,7 +624,9 @@ class FrequencyFit:
             "b_se": errors[3],
             "log_likelihood": self.log_likelihood,
             "customers": self.customers,
+            "repeat_customers": self.repeat_customers,
             "converged": self.converged,
+            "usable": self.usable,
             "orders_per_year_active": 365.25 * self.r / self.alpha,
             "chance_stop_after_order": self.a / (self.a + self.b),
             "notes": " ".join(self.notes),
@@ -656,7 +703,11 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
             fix="Use a longer stretch of orders (or a later cut-off date)",
         )
     notes = []
-    if len(x) < 30:
+    repeat_customers = int(np.count_nonzero(x > 0))
+    if repeat_customers < MIN_REPEAT_CUSTOMERS:
+        notes.append(f"Only {repeat_customers} customers ordered more than once; at least "
+                     f"{MIN_REPEAT_CUSTOMERS} are needed to say how often customers come back.")
+    elif len(x) < 30:
         notes.append(f"Only {len(x)} customers: the order-frequency fit is rough.")
     if start is None:
         start = (1.0, max(age.sum(), 1.0) / max(x.sum(), 1.0), 1.0, 3.0)
@@ -682,11 +733,18 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
         notes.append(f"The order-frequency optimiser stopped early: {result.message}.")
     hessian = _hessian_of_negative_ll(log_params, x, t_x, age)
     try:
+        if not converged:
+            # Away from a proper optimum the curvature says nothing about uncertainty.
+            raise np.linalg.LinAlgError
         np.linalg.cholesky(hessian)
         covariance = np.linalg.inv(hessian)
+        if np.any(np.sqrt(np.diag(covariance)) > _MAX_LOG_SE):
+            # A standard error of e^5 ~ 150-fold either way: the data do not pin the
+            # parameter down, and draws from such a normal would be meaningless.
+            raise np.linalg.LinAlgError
     except np.linalg.LinAlgError:
         covariance = np.full((4, 4), np.nan)
-        notes.append("The likelihood is flat in some direction, so parameter uncertainty is unknown.")
+        notes.append("The likelihood is nearly flat in some direction, so parameter uncertainty is unknown.")
     params = np.exp(log_params)
     log_likelihood = float(frequency_log_likelihood(params, x, t_x, age).sum())
     return FrequencyFit(
@@ -699,6 +757,7 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
         customers=int(len(x)),
         converged=converged,
         notes=tuple(notes),
+        repeat_customers=repeat_customers,
     )
 
 

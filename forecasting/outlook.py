@@ -46,6 +46,7 @@ __all__ = [
     "TIER_SUMMARY_COLUMNS",
     "Outlook",
     "OutlookBacktest",
+    "require_projection",
     "project_revenue",
     "backtest_outlook",
     "assign_tiers",
@@ -298,17 +299,27 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
     x = history["repeat_orders"].to_numpy(dtype=np.float64)
     t_x = history["days_to_last_order"].to_numpy(dtype=np.float64)
     age = history["days_known"].to_numpy(dtype=np.float64)
-    expected_orders = fit.expected_orders(history, horizon)
-    chance = fit.chance_active(history)
+    if fit.usable:
+        expected_orders = fit.expected_orders(history, horizon)
+        chance = fit.chance_active(history)
+    else:
+        # No projection from a fit that cannot support one (see fit.notes).
+        expected_orders = np.full(len(history), np.nan)
+        chance = np.full(len(history), np.nan)
     value = aligned["expected_next_order"].to_numpy(dtype=np.float64)
     value_sd = _value_spread(aligned, float(forecast_fit.get("level", 0.90)))
 
     labels = _group_labels(stats, orders, by)
     codes, group_names = pd.factorize(labels, sort=True)
-    rng = np.random.default_rng(seed)
-    params_draws = fit.draw_parameters(draws, seed=rng)
-    cust_low, cust_high, group_low, group_high, total_low, total_high = _simulate(
-        params_draws, x, t_x, age, horizon, value, value_sd, codes, len(group_names), level, rng)
+    if fit.usable:
+        rng = np.random.default_rng(seed)
+        params_draws = fit.draw_parameters(draws, seed=rng)
+        cust_low, cust_high, group_low, group_high, total_low, total_high = _simulate(
+            params_draws, x, t_x, age, horizon, value, value_sd, codes, len(group_names), level, rng)
+    else:
+        cust_low = cust_high = np.full(len(history), np.nan)
+        group_low = group_high = np.full(len(group_names), np.nan)
+        total_low = total_high = float("nan")
 
     projected = expected_orders * value
     weight = aligned["own_history_weight"].to_numpy(dtype=np.float64)
@@ -349,7 +360,8 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             "projected_revenue": group_revenue,
             "projected_low": np.minimum(group_low, group_revenue),
             "projected_high": np.maximum(group_high, group_revenue),
-            "share_of_projected_revenue": group_revenue / total if total > 0 else np.zeros(len(group_names)),
+            "share_of_projected_revenue": (group_revenue / total if total > 0 else
+                                           np.full(len(group_names), 0.0 if total == 0 else np.nan)),
         }
     )
     totals = {
@@ -448,6 +460,11 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     Returns
     -------
     Outlook
+        When the order-frequency model cannot be fitted soundly
+        (``outlook.fit.usable`` is False: it did not converge, or fewer than
+        ``MIN_REPEAT_CUSTOMERS`` customers ordered twice; see
+        ``outlook.fit.notes``), expected orders, chances and projected revenue
+        are NaN rather than a made-up number.
 
     Notes
     -----
@@ -497,6 +514,21 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
 # --------------------------------------------------------------------------- #
 # Public: backtest
 # --------------------------------------------------------------------------- #
+def require_projection(outlook: Outlook, *, what: str = "the outlook") -> Outlook:
+    """Return ``outlook`` if its projection is a number, else raise a plain-words error.
+
+    For front ends that must show a figure or nothing (the command line).
+    """
+    if math.isfinite(float(outlook.total["projected_revenue"])):
+        return outlook
+    reasons = " ".join(outlook.fit.notes)
+    raise OrderDataError(
+        f"how often customers come back could not be fitted on this data, so {what} cannot be worked out"
+        + (f" ({reasons.rstrip('.')})" if reasons else ""),
+        fix="A longer order history with more repeat customers helps",
+    )
+
+
 @dataclass(frozen=True)
 class OutlookBacktest:
     """Projected against actual revenue after a cut-off date.

@@ -86,25 +86,27 @@ def likelihood_by_integration(params, x, t_x, age):
 
 
 def new_customer_orders_printed(params, t):
-    """Eq. 7 exactly as printed, with mpmath's hypergeometric function."""
+    """Eq. 7 exactly as printed, with mpmath's hypergeometric function (40 digits)."""
     mpmath = pytest.importorskip("mpmath")
-    r, alpha, a, b = (mpmath.mpf(v) for v in params)
-    t = mpmath.mpf(t)
-    value = (a + b - 1) / (a - 1) * (1 - (alpha / (alpha + t)) ** r * mpmath.hyp2f1(r, b, a + b - 1, t / (alpha + t)))
-    return float(value)
+    with mpmath.workdps(40):
+        r, alpha, a, b = (mpmath.mpf(v) for v in params)
+        t = mpmath.mpf(t)
+        value = (a + b - 1) / (a - 1) * (1 - (alpha / (alpha + t)) ** r * mpmath.hyp2f1(r, b, a + b - 1, t / (alpha + t)))
+        return float(value)
 
 
 def orders_ahead_printed(params, x, t_x, age, t):
-    """Eq. 10 exactly as printed, with mpmath's hypergeometric function."""
+    """Eq. 10 exactly as printed, with mpmath's hypergeometric function (40 digits)."""
     mpmath = pytest.importorskip("mpmath")
-    r, alpha, a, b = (mpmath.mpf(v) for v in params)
-    x, t_x, age, t = (mpmath.mpf(v) for v in (x, t_x, age, t))
-    top = (a + b + x - 1) / (a - 1) * (
-        1 - ((alpha + age) / (alpha + age + t)) ** (r + x)
-        * mpmath.hyp2f1(r + x, b + x, a + b + x - 1, t / (alpha + age + t))
-    )
-    bottom = 1 + (a / (b + x - 1)) * ((alpha + age) / (alpha + t_x)) ** (r + x) if x > 0 else 1
-    return float(top / bottom)
+    with mpmath.workdps(40):
+        r, alpha, a, b = (mpmath.mpf(v) for v in params)
+        x, t_x, age, t = (mpmath.mpf(v) for v in (x, t_x, age, t))
+        top = (a + b + x - 1) / (a - 1) * (
+            1 - ((alpha + age) / (alpha + age + t)) ** (r + x)
+            * mpmath.hyp2f1(r + x, b + x, a + b + x - 1, t / (alpha + age + t))
+        )
+        bottom = 1 + (a / (b + x - 1)) * ((alpha + age) / (alpha + t_x)) ** (r + x) if x > 0 else 1
+        return float(top / bottom)
 
 
 def future_orders_monte_carlo(rate, stop, horizon, rng):
@@ -233,6 +235,22 @@ class TestFitOrderFrequency:
         np.testing.assert_allclose(other.params, default.params, rtol=1e-4)
         assert other.log_likelihood == pytest.approx(default.log_likelihood, abs=1e-6)
 
+    def test_too_few_repeat_customers_is_not_usable(self):
+        # 8 customers, 6 with repeat orders: fitted, but flagged as not sound enough.
+        history = pd.DataFrame({"repeat_orders": [3, 3, 1, 1, 2, 2, 0, 0],
+                                "days_to_last_order": [150.0, 170.0, 31.0, 56.0, 80.0, 160.0, 0.0, 0.0],
+                                "days_known": [217.0, 213.0, 156.0, 111.0, 103.0, 209.0, 40.0, 90.0]})
+        fit = fit_order_frequency(history)
+        assert fit.repeat_customers == 6
+        assert not fit.usable
+        assert any("at least 10" in note for note in fit.notes)
+        assert fit.as_dict()["usable"] is False
+
+    def test_enough_customers_is_usable(self):
+        fit = fit_order_frequency(simulate_histories(PARAMS_A, 500, seed=9))
+        assert fit.usable and fit.notes == ()
+        assert fit.repeat_customers == int((simulate_histories(PARAMS_A, 500, seed=9)["repeat_orders"] > 0).sum())
+
     def test_no_repeat_orders_is_refused(self):
         history = pd.DataFrame({"repeat_orders": [0, 0], "days_to_last_order": [0.0, 0.0], "days_known": [5.0, 9.0]})
         with pytest.raises(OrderDataError, match="more than once"):
@@ -330,6 +348,18 @@ class TestExpectedOrdersAhead:
         got = expected_orders_ahead(PARAMS_A, x, t_x, age, horizon)
         assert abs(got - counts.mean()) < 4 * error
         assert chance_still_active(PARAMS_A, x, t_x, age) == pytest.approx(active_share, rel=1e-12)
+
+    def test_extreme_parameters_where_scipy_hypergeometric_fails(self):
+        # Near the model's Poisson limit (r, alpha huge; a tiny, b huge) scipy's hyp2f1
+        # returns NaN for the transformed arguments; the series fallback must still
+        # match the printed formula evaluated by mpmath.
+        from scipy import special
+
+        params = (632584.6349232197, 47584332.95218751, 0.00212870552203082, 2949.417036461007)
+        r, alpha, a, b = params
+        assert np.isnan(special.hyp2f1(a + b - 1 - r, a - 1, a + b + 2, 180 / (alpha + 217 + 180)))
+        got = expected_orders_ahead(params, 3, 151.0, 217.0, 180.0)
+        assert got == pytest.approx(orders_ahead_printed(params, 3, 151.0, 217.0, 180.0), rel=1e-9)
 
     def test_zero_horizon_gives_zero(self):
         assert np.all(expected_orders_ahead(PARAMS_B, [0, 3], [0.0, 10.0], [5.0, 50.0], 0.0) == 0.0)

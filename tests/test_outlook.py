@@ -45,6 +45,7 @@ from forecasting.outlook import (
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "demo_data" / "plant_shop_orders.csv"
+MESSY = REPO / "demo_data" / "messy_orders.csv"
 START = pd.Timestamp("2024-11-01")
 # A shop in days: an active customer orders r/alpha = 0.01 times a day (about 3.7
 # a year) and stops after a repeat order with chance a/(a+b) = 0.3 on average.
@@ -295,6 +296,24 @@ class TestProjectRevenue:
                                                      variance="classic", orders=shop_orders)
         np.testing.assert_allclose(outlook.customers["expected_next_order"], direct["expected_next_order"])
         assert outlook.summary()["method"] == "mta"
+
+
+class TestTooLittleHistory:
+    def test_nan_with_reasons_and_a_message(self):
+        # The small hand-made messy file: 9 customers, too few to fit how often they come back.
+        from forecasting.outlook import require_projection
+        from forecasting.reading import read_orders
+
+        orders = read_orders(MESSY).orders
+        outlook = project_revenue(orders, horizon=90, draws=20)
+        assert math.isnan(outlook.total["projected_revenue"])
+        assert outlook.fit.notes and not np.isfinite(outlook.fit.covariance).any()
+        with pytest.raises(OrderDataError, match="could not be fitted"):
+            require_projection(outlook)
+        # Tiers by next-order value still work; revenue shares are unknown.
+        summary = tier_summary(assign_tiers(outlook.customers))
+        assert summary["customers"].sum() == 9
+        assert summary["share_of_projected_revenue"].isna().all()
 
 
 class TestValueDraws:
@@ -597,6 +616,12 @@ class TestOutlookCommand:
         done = run_cli("outlook", str(shop_file), *arguments)
         assert done.returncode == 2
         assert message in done.stderr and "Traceback" not in done.stderr
+
+
+    def test_too_little_history(self):
+        done = run_cli("outlook", str(MESSY), "--horizon", "90", "--json")
+        assert done.returncode == 2
+        assert "could not be fitted" in done.stderr and "Traceback" not in done.stderr
 
 
 class TestTiersCommand:

@@ -14,7 +14,7 @@ from ..exports import write_csv
 from ..forecasts import METHODS
 from ..variance import VARIANCE_MODELS
 from ..outlook import COHORT_PERIODS, _check_draws, _check_horizon, _check_level, _parse_date, backtest_outlook, \
-    project_revenue
+    project_revenue, require_projection
 
 BY_COHORT = "cohort"
 
@@ -84,12 +84,13 @@ def run(args) -> int:
         _parse_date(args.cutoff, "--cutoff")
     by = grouping_from_args(args)
     orders = load_from_args(args).orders
-    outlook = project_revenue(orders, horizon=horizon, by=by, method=args.method, variance=args.variance,
-                              level=level, draws=draws, seed=seed)
+    outlook = require_projection(project_revenue(orders, horizon=horizon, by=by, method=args.method,
+                                                 variance=args.variance, level=level, draws=draws, seed=seed))
     backtest = None
     if not args.no_backtest:
         backtest = backtest_outlook(orders, horizon=horizon, cutoff=args.cutoff, by=by, method=args.method,
                                     variance=args.variance, level=level, draws=draws, seed=seed)
+        require_projection(backtest.outlook, what="the backtest")
     if args.out:
         write_csv(outlook.customers, args.out)
     if args.json:

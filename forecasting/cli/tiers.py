@@ -6,11 +6,13 @@
 
 from __future__ import annotations
 
+import math
+
 from . import EXIT_OK, add_column_options, load_from_args, print_json
 from ..forecasts import METHODS
 from ..variance import VARIANCE_MODELS
 from ..outlook import RANK_BY, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
-    project_revenue, tier_summary
+    project_revenue, require_projection, tier_summary
 
 DEFAULT_HORIZON_DAYS = 365
 
@@ -42,6 +44,8 @@ def run(args) -> int:
     _check_tier_options(args.rank, args.quantiles, args.thresholds, None)
     orders = load_from_args(args).orders
     outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance)
+    if args.rank == "revenue":
+        require_projection(outlook, what="projected revenue")
     tiered = assign_tiers(outlook.customers, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds)
     summary = tier_summary(tiered)
     files = export_tiers(tiered, args.out)
@@ -65,8 +69,10 @@ def run(args) -> int:
         low = "-" if row.customers == 0 else f"{row.lowest_figure:,.2f}"
         high = "-" if row.customers == 0 else f"{row.highest_figure:,.2f}"
         confidence = "-" if row.customers == 0 else f"{row.average_own_history_weight:.2f}"
+        share = (f"{100 * row.share_of_projected_revenue:.0f}%" if math.isfinite(row.share_of_projected_revenue)
+                 else "-")
         print(f"  {row.tier:<16} {row.rule:<24} {row.customers:>9} {low:>10} {high:>10} "
-              f"{100 * row.share_of_projected_revenue:>12.0f}% {confidence:>11} {row.mostly_shop_pattern:>11}")
+              f"{share:>13} {confidence:>11} {row.mostly_shop_pattern:>11}")
     print("'own history' is the average weight a forecast puts on the customer's own orders; "
           "'mostly shop' counts forecasts resting mostly on the shop-wide pattern (weight below 0.5).")
     print(f"lists written: {files['all']}" + "".join(f", {p}" for n, p in files.items() if n != "all"))
