@@ -110,34 +110,29 @@ def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str
     return _layout(fig, height=460)
 
 
-def method_comparison(results: pd.DataFrame, *, title: str) -> go.Figure:
-    """Error reduction against own averages per method (one bar per spread model), with 95% intervals.
+def method_comparison(results: pd.DataFrame, *, title: str, highlight: str | None = None) -> go.Figure:
+    """Error reduction against own averages, one bar per row of ``results``, with 95% intervals.
 
-    Horizontal bars, so the methods' names can be read without turning the head.
+    Horizontal bars, so the methods' names can be read without turning the head; the
+    method in use (``highlight``) is drawn in the second colour.
     """
-    fig = go.Figure()
-    order = [m for m in dict.fromkeys(results["method"])]
-    for i, (variance, part) in enumerate(results.groupby("variance", sort=False)):
-        # Own averages with the classic spread are the baseline itself (0% by definition).
-        part = part[~((part["method"] == "plain") & (part["variance"] == "classic"))]
-        if part.empty:
-            continue
-        value = part["error_reduction_pct"].to_numpy(dtype=float)
-        upper = part["ci_high"].to_numpy(dtype=float) - value
-        lower = value - part["ci_low"].to_numpy(dtype=float)
-        fig.add_trace(go.Bar(
-            y=part["method"].map(method_label), x=value, orientation="h",
-            name=f"{variance_label(variance)} spread", marker_color=SEQUENCE[i % len(SEQUENCE)],
-            error_x={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
-                     "color": INK, "thickness": 1.2, "width": 3},
-            hovertemplate="%{y}: %{x:.1f}%<extra>" + f"{variance_label(variance)} spread</extra>",
-        ))
+    value = results["error_reduction_pct"].to_numpy(dtype=float)
+    upper = results["ci_high"].to_numpy(dtype=float) - value
+    lower = value - results["ci_low"].to_numpy(dtype=float)
+    names = results["method"].map(method_label)
+    colours = [PALETTE["vermilion"] if m == highlight else PALETTE["blue"] for m in results["method"]]
+    spread = results["variance"].map(variance_label)
+    fig = go.Figure(go.Bar(
+        y=names, x=value, orientation="h", marker_color=colours, customdata=np.stack([spread], axis=1),
+        error_x={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
+                 "color": INK, "thickness": 1.2, "width": 3},
+        hovertemplate="%{y} (%{customdata[0]} spread): %{x:.1f}%<extra></extra>",
+    ))
     fig.add_vline(x=0, line={"color": INK, "width": 1})
-    fig.update_layout(barmode="group", bargap=0.25)
+    fig.update_layout(showlegend=False, bargap=0.35)
     fig.update_xaxes(title="Smaller error than own averages (%)", ticksuffix="%")
-    fig.update_yaxes(categoryorder="array", categoryarray=[method_label(m) for m in reversed(order)],
-                     showgrid=False)
-    return _layout(fig, title=title, height=120 + 48 * len(order))
+    fig.update_yaxes(categoryorder="array", categoryarray=list(reversed(list(names))), showgrid=False)
+    return _layout(fig, title=title, height=int(130 + 34 * len(results)))
 
 
 def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> go.Figure:

@@ -207,7 +207,7 @@ def variance_label(name: str) -> str:
 # A method's name in the library's sentences is always followed by "with <model> variance".
 _METHOD_NAME = re.compile(r"(?<![\w-])(" + "|".join(sorted((re.escape(m) for m in METHOD_LABELS if m != "auto"),
                                                              key=len, reverse=True)) + r")(?=\s+with\b)")
-_VARIANCE_PHRASE = re.compile(r"(?<![\w-])(classic|robust|log|proportional) variance\b")
+_VARIANCE_PHRASE = re.compile(r"(?<![\w-])(classic|robust|log|proportional|gamma-model) variance\b")
 
 
 def name_words(text: str) -> str:

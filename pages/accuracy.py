@@ -84,15 +84,31 @@ for note in found.notes:
 # Every method
 
 st.subheader("Every method against the customers' own averages")
-st.caption("Bars to the right of the zero line beat the own average. The thin lines show the range the gain "
-           "probably lies in (95%, from re-drawing the customers many times).")
+spreads = [v for v in dict.fromkeys(found.leave_one_out["variance"]) if v != "gamma-model"]
+shown_spread = st.selectbox("Spread model in the charts", spreads, format_func=words.variance_label,
+                            **state.remember("accuracy_spread", pair[1] if pair[1] in spreads else spreads[0],
+                                             spreads),
+                            help="The table below has every method with every spread model.")
+
+
+def for_chart(results: pd.DataFrame) -> pd.DataFrame:
+    """One row per method: the chosen spread model (Gamma-Gamma has its own), without the baseline."""
+    keep = (results["variance"] == shown_spread) | (results["variance"] == "gamma-model")
+    keep &= ~((results["method"] == "plain") & (results["variance"] == "classic"))
+    return results[keep]
+
+
+st.caption("Bars to the right of the zero line beat the own average; the method in use is in orange-red. The "
+           "thin lines show the range the gain probably lies in (95%, from re-drawing the customers many times).")
 left, right = st.columns(2)
 with left:
-    st.plotly_chart(charts.method_comparison(found.leave_one_out, title="Hiding one past order at a time"),
+    st.plotly_chart(charts.method_comparison(for_chart(found.leave_one_out), title="Hiding one past order at a time",
+                                             highlight=pair[0]),
                     key="loo_chart", theme=None, config={"displaylogo": False})
 with right:
     if len(found.backtest):
-        st.plotly_chart(charts.method_comparison(found.backtest, title="Next order after the cut-off date"),
+        st.plotly_chart(charts.method_comparison(for_chart(found.backtest), title="Next order after the cut-off date",
+                                                 highlight=pair[0]),
                         key="backtest_chart", theme=None, config={"displaylogo": False})
     else:
         st.info("There is no next-order test: it needs customers who ordered both before and after a date.")

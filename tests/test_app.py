@@ -429,15 +429,14 @@ class TestCharts:
 
     def test_method_bars_and_intervals_are_the_evaluations(self, demo):
         found = evaluation_module.evaluate_methods(demo[0].orders, bootstrap=50, seed=1)
-        figure = charts.method_comparison(found.leave_one_out, title="t")
-        for bar in figure.data:
-            variance = next(v for v in found.leave_one_out["variance"].unique()
-                            if bar.name == f"{words.variance_label(v)} spread")
-            part = found.leave_one_out[found.leave_one_out["variance"] == variance]
-            part = part[~((part["method"] == "plain") & (part["variance"] == "classic"))]
-            np.testing.assert_allclose(bar.x, part["error_reduction_pct"])
-            np.testing.assert_allclose(np.asarray(bar.x) + np.asarray(bar.error_x.array), part["ci_high"])
-            np.testing.assert_allclose(np.asarray(bar.x) - np.asarray(bar.error_x.arrayminus), part["ci_low"])
+        part = found.leave_one_out[found.leave_one_out["variance"] == "classic"]
+        figure = charts.method_comparison(part, title="t", highlight="mta")
+        bar = figure.data[0]
+        np.testing.assert_allclose(bar.x, part["error_reduction_pct"])
+        np.testing.assert_allclose(np.asarray(bar.x) + np.asarray(bar.error_x.array), part["ci_high"])
+        np.testing.assert_allclose(np.asarray(bar.x) - np.asarray(bar.error_x.arrayminus), part["ci_low"])
+        assert list(bar.y) == [words.method_label(m) for m in part["method"]]
+        assert [c == charts.PALETTE["vermilion"] for c in bar.marker.color] == list(part["method"] == "mta")
 
 
 class TestWords:
