@@ -469,6 +469,129 @@ def _loo_empirical_bayes(scale, precision, sigma2, amount=1.0):
     return _loo_weighted(scale, precision, b)
 
 
+def _segment_codes(stats):
+    """Segment number of every customer, as the forecasts form them."""
+    labels = pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
+    return np.unique(labels, return_inverse=True)[1].astype(np.int64)
+
+
+def _loo_mta_segments(scale, sigma2, segment):
+    """Block-similarity MTA after each removal, exactly.
+
+    The similarities a_w (within segments) and a_b (between) come from sums
+    per segment of the averages and their squares, updated in O(G) per
+    held-out order.  The Woodbury solve of
+    :func:`forecasting.shrinkage.mta_segments` needs, per segment, sums over
+    its customers of functions of n_s only (s_s = sigma2 / n_s), so customers
+    are grouped by (segment, order count); the held-out customer moves from
+    cell (g, n) to (g, n - 1).  Then one G x G solve per held-out order
+    (batched).  Cost O(N (G K' + G^3)), K' the number of (segment, count)
+    cells.
+    """
+    H = len(scale.t)
+    T = scale.T
+    t = scale.t
+    own = segment[t]
+    G = int(segment.max()) + 1
+    if T == 1:
+        return scale.d_after, np.ones(H)
+    size = np.bincount(segment, minlength=G).astype(np.float64)
+    s1 = np.bincount(segment, weights=scale.d, minlength=G)
+    s2 = np.bincount(segment, weights=scale.d * scale.d, minlength=G)
+    change = scale.d_after - scale.d_before
+    s1_own = s1[own] + change
+    s2_own = s2[own] + scale.d_after**2 - scale.d_before**2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ss = np.maximum(s2 - s1 * s1 / size, 0.0)  # spread of the averages within each segment
+        ss_own = np.maximum(s2_own - s1_own * s1_own / size[own], 0.0)
+        square_means = s1 * s1 / size
+        square_own = s1_own * s1_own / size[own]
+    ss = np.where(size > 0, ss, 0.0)
+    square_means = np.where(size > 0, square_means, 0.0)
+    within_pairs = float(np.sum(size * (size - 1.0)))
+    between_pairs = float(T * (T - 1.0) - within_pairs)
+    within_sum = float(np.sum(2.0 * size * ss)) + 2.0 * size[own] * (ss_own - ss[own])
+    grand = scale.sum_d_after() / T
+    spread_of_means = float(np.sum(square_means)) + square_own - square_means[own] - T * grand * grand
+    between_sum = (2.0 * (float(np.sum(ss * (T - size))) + (ss_own - ss[own]) * (T - size[own]))
+                   + 2.0 * T * np.maximum(spread_of_means, 0.0))
+
+    def similarity(total, pairs):
+        if pairs == 0:
+            return np.full(H, np.nan)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(total > 0, 2.0 * pairs / total, np.inf)
+
+    a_w = similarity(within_sum, within_pairs)
+    a_b = similarity(between_sum, between_pairs)
+    a_b = np.where(np.isnan(a_b), 0.0, a_b)
+    a_w = np.where(np.isnan(a_w), a_b, a_w)
+    a_b = np.minimum(a_b, a_w)
+    n_min = np.minimum(float(scale.counts.min()), scale.n - 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cap = n_min * 1e12 / sigma2  # a s_max = 1e12 at most
+    a_w = np.minimum(a_w, cap)
+    a_b = np.minimum(a_b, cap)
+
+    # Cells (segment, order count) with their number of customers and sum of d.
+    base = int(scale.counts.max()) + 1
+    cell_key, cell_of = np.unique(segment * base + scale.counts.astype(np.int64), return_inverse=True)
+    cell_seg = cell_key // base
+    cell_n = (cell_key % base).astype(np.float64)
+    cell_count = np.bincount(cell_of, minlength=len(cell_key)).astype(np.float64)
+    cell_sum = np.bincount(cell_of, weights=scale.d, minlength=len(cell_key))
+    to_segment = np.zeros((len(cell_key), G))
+    to_segment[np.arange(len(cell_key)), cell_seg] = 1.0
+
+    estimate = np.empty(H)
+    weight = np.empty(H)
+    rows_per_block = max(1, _CHUNK_CELLS // max(1, len(cell_key)))
+    for start in range(0, H, rows_per_block):
+        rows = slice(start, min(H, start + rows_per_block))
+        r = np.arange(rows.start, rows.stop)
+        sg2, aw, ab = sigma2[rows], a_w[rows], a_b[rows]
+        degree_of = lambda seg, aw=aw, ab=ab: aw[:, None] * size[seg] + ab[:, None] * (T - size[seg])  # noqa: E731
+        s_cell = sg2[:, None] / cell_n[None, :]
+        delta = 1.0 + s_cell * degree_of(cell_seg) / T
+        h = (cell_count * s_cell / (T * delta)) @ to_segment
+        between = 1.0 + s_cell * ab[:, None] * (T - size[cell_seg]) / T
+        diag_sum = (cell_count * between / delta) @ to_segment
+        rhs = (cell_sum / delta) @ to_segment
+        # Move the held-out customer from cell (g, n) with d to (g, n - 1) with d'.
+        g_own = own[rows]
+        n_old, n_new = scale.n[rows], scale.n[rows] - 1.0
+        deg_own = aw * size[g_own] + ab * (T - size[g_own])
+        for n_cell, d_cell, sign in ((n_old, scale.d_before[rows], -1.0), (n_new, scale.d_after[rows], 1.0)):
+            s_t = sg2 / n_cell
+            delta_t = 1.0 + s_t * deg_own / T
+            idx = (np.arange(len(r)), g_own)  # one cell per row, so plain fancy-index adds are safe
+            h[idx] += sign * s_t / (T * delta_t)
+            diag_sum[idx] += sign * (1.0 + s_t * ab * (T - size[g_own]) / T) / delta_t
+            rhs[idx] += sign * d_cell / delta_t
+        B = np.repeat(ab[:, None, None], G, axis=1).repeat(G, axis=2)
+        B[:, np.arange(G), np.arange(G)] = aw[:, None]
+        K = -h[:, :, None] * B
+        K[:, np.arange(G), np.arange(G)] = diag_sum / np.maximum(size, 1.0)[None, :]
+        w = np.linalg.solve(K, rhs[:, :, None])[:, :, 0]
+        Bw = np.einsum("rgh,rh->rg", B, w)
+        s_t = sg2 / n_new
+        delta_t = 1.0 + s_t * deg_own / T
+        y = (scale.d_after[rows] + s_t * Bw[np.arange(len(r)), g_own] / T) / delta_t
+        unit = np.zeros((len(r), G, 1))
+        unit[np.arange(len(r)), g_own, 0] = 1.0
+        column = np.linalg.solve(K, unit)[:, :, 0]  # K^-1 e_g
+        bk = np.einsum("rh,rh->r", B[np.arange(len(r)), g_own, :], column)  # (B K^-1)_gg
+        estimate[rows] = y
+        weight[rows] = np.clip(1.0 / delta_t + (s_t / T) * bk / (delta_t * delta_t), 0.0, 1.0)
+
+    # Degenerate cases handled as the full fit does.
+    all_equal = scale.var_means_after() == 0
+    plain = ~(sigma2 > 0)
+    estimate = np.where(all_equal | plain, scale.d_after, estimate)
+    weight = np.where(all_equal, 0.0, np.where(plain, 1.0, weight))
+    return estimate, weight
+
+
 _LOO_METHODS = {
     "plain": _loo_plain,
     "pooled": _loo_pooled,
@@ -723,7 +846,7 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
     * ``gamma-gamma``: p, q and gamma;
     * ``james-stein-cv`` and ``mta-cv``: the cross-validated multiplier lambda.
     """
-    known = method in _LOO_METHODS or method == "gamma-gamma"
+    known = _has_fast_path(method)
     if not known or variance not in EXACT_VARIANCES + APPROXIMATE_VARIANCES + (GAMMA_MODEL,):
         raise ValueError(f"no fast leave-one-out for method {method!r} with variance {variance!r}")
     sigma2_log = held.log.classic_variance_after()
@@ -746,17 +869,27 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
             precision = _Precision(scale, scale.counts / (level * level))
         else:
             precision = _Precision(scale)
+        if method == "mta-segments":
+            if variance == "proportional":
+                raise ValueError("no fast leave-one-out for mta-segments with proportional variance")
+            estimate, g = _loo_mta_segments(scale, sigma2, _segment_codes(held.stats))
+            return _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level)
         amount = 1.0
         if method.endswith("-cv"):
             amount = float(held.full_fit(method, variance).attrs["fit"]["lambda"])
         estimate, g = _LOO_METHODS[method](scale, precision, sigma2, amount)
-        if on_log:
-            log_expected = scale.origin + estimate + (sigma2_log + g * sigma2_log / n_after) / 2.0
-        else:
-            expected = scale.origin + estimate
+        return _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level)
+    return _finish(held, None, expected, g, False, sigma2_log, n_after, next_level)
+
+
+def _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level):
+    """Money forecast and next-order range from an estimate on its scale
+    (relative to the scale's origin; ``scale=None``: already money)."""
     if on_log:
+        log_expected = scale.origin + estimate + (sigma2_log + g * sigma2_log / n_after) / 2.0
         expected = np.exp(log_expected)
     else:
+        expected = estimate if scale is None else scale.origin + estimate
         with np.errstate(divide="ignore", invalid="ignore"):
             log_expected = np.log(expected)
     z = _scipy_stats.norm.ppf(0.5 + next_level / 2.0)
@@ -834,12 +967,18 @@ def _combinations(methods, variances, *, stats=None, default_methods=None):
             pairs.append((method, GAMMA_MODEL))
             continue
         for variance in chosen_variances:
+            if method == "mta-segments" and variance == "proportional":
+                if variances is not None and len(chosen_variances) == 1:
+                    raise OrderDataError(
+                        "the leave-one-out of mta-segments covers the classic, robust and log variance models",
+                        value=variance, fix="Choose another --variances for mta-segments")
+                continue  # its levels differ customer by customer; no exact grouping
             pairs.append((method, variance))
     return pairs
 
 
 def _has_fast_path(method):
-    return method in _LOO_METHODS or method == "gamma-gamma"
+    return method in _LOO_METHODS or method in ("gamma-gamma", "mta-segments")
 
 
 # ---------------------------------------------------------------------------

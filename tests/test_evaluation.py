@@ -139,6 +139,25 @@ class TestExactLeaveOneOut:
             expected, _, _ = brute_force_leave_one_out(orders, method, variance)
             np.testing.assert_allclose(fast.expected, expected, rtol=1e-9)
 
+    @pytest.mark.parametrize("variance", EXACT_VARIANCES)
+    def test_mta_segments_matches_brute_force_refit(self, variance):
+        # Three segments fixed per customer (a customer's segment is the one
+        # of their latest order; here it never changes when one is held out).
+        orders = small_shop(seed=2)
+        names = sorted(orders["customer"].unique())
+        segment_of = {name: ("wholesale", "retail", "gifts")[i % 3] for i, name in enumerate(names)}
+        orders["segment"] = orders["customer"].map(segment_of)
+        fast = fast_leave_one_out(orders, "mta-segments", variance)
+        expected, low, high = brute_force_leave_one_out(orders, "mta-segments", variance)
+        np.testing.assert_allclose(fast.expected, expected, rtol=1e-9)
+        np.testing.assert_allclose(fast.low, low, rtol=1e-9)
+        np.testing.assert_allclose(fast.high, high, rtol=1e-9)
+
+    def test_mta_segments_with_one_segment_is_mta(self):
+        orders = small_shop(seed=4).assign(segment="online")
+        np.testing.assert_allclose(fast_leave_one_out(orders, "mta-segments", "classic").expected,
+                                   fast_leave_one_out(orders, "mta", "classic").expected, rtol=1e-9)
+
     def test_small_chunks_give_the_same_answer(self, monkeypatch):
         orders = small_shop(seed=5)
         whole = fast_leave_one_out(orders, "mta", "classic").expected
@@ -345,9 +364,11 @@ class TestEvaluateCommand:
         orders = simulated_shop(customers=60, seed=6)
         path = tmp_path / "orders.csv"
         orders.to_csv(path, index=False)
-        done = run_cli("evaluate", str(path), "--methods", "mta", "--bootstrap", "20")
+        done = run_cli("evaluate", str(path), "--methods", "mta,gamma-gamma", "--variances", "classic,log",
+                       "--bootstrap", "20")
         assert done.returncode == 0, done.stderr
         assert "Leave-one-out" in done.stdout and "Chosen:" in done.stdout
+        assert "gamma-model" in done.stdout
         bad = run_cli("evaluate", str(path), "--methods", "crystal-ball")
         assert bad.returncode == 2
         assert "--methods" in bad.stderr and "Traceback" not in bad.stderr
