@@ -43,3 +43,15 @@ class TestCheckCommand:
         assert done.returncode == 0, done.stderr
         text = out.read_text()
         assert "'=evil()" in text and "bad_amount" in text
+
+
+class TestPipes:
+    def test_output_cut_short_by_the_reader_ends_quietly(self):
+        # `... | head -1`: the reader closes the pipe early; no traceback may follow.
+        command = [sys.executable, "-m", "forecasting", "check", "demo_data/plant_shop_orders.csv"]
+        with subprocess.Popen(command, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE) as process:
+            process.stdout.readline()
+            process.stdout.close()
+            stderr = process.stderr.read().decode()
+            process.wait(timeout=120)
+        assert "Traceback" not in stderr

@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
+import os
 import sys
 
 from ..errors import OrderDataError
@@ -91,3 +92,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("stopped", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader of our output (e.g. `| head`) went away: stop quietly, as other shell tools do.
+        # Point stdout at devnull so the interpreter's final flush does not complain (Python docs, signal).
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
