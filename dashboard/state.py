@@ -149,8 +149,7 @@ def file_columns(dataset: Dataset) -> list[str]:
     if outcome.ok:
         return list(outcome.value.columns)
     try:
-        # The reader has no public "headings only" call; its raw loader gives them.
-        return list(reading._load_raw(dataset.data, dataset.name, None).cells.columns)
+        return list(reading.read_cells(dataset.data, file_name=dataset.name).columns)
     except OrderDataError:
         return []
 
@@ -403,7 +402,7 @@ def guessed_mapping(dataset: Dataset) -> dict[str, str]:
         return {role: column or "" for role, column in outcome.value.mapping.as_dict().items()}
     chosen = dict(dataset.overrides)
     try:
-        cells = reading._load_raw(dataset.data, dataset.name, None).cells
+        cells = reading.read_cells(dataset.data, file_name=dataset.name)
         guess = reading.guess_mapping(cells, chosen, file_name=dataset.name)
         return {role: column or "" for role, column in guess.as_dict().items()}
     except OrderDataError:

@@ -394,6 +394,18 @@ def _load_raw(data: bytes, file_name: str, sheet) -> _RawTable:
     return raw
 
 
+def read_cells(source, *, file_name: str | None = None, sheet: str | int | None = None) -> pd.DataFrame:
+    """The file's cells as text, headings as column names, before any cleaning.
+
+    For front ends that show the headings (to let the user map columns) even when
+    the file cannot be read as orders yet. Raises :class:`OrderDataError` when the
+    file is not a table at all.
+    """
+    if file_name is None:
+        file_name = Path(source).name if isinstance(source, (str, Path)) else "uploaded file"
+    return _load_raw(_source_bytes(source, file_name), file_name, sheet).cells
+
+
 # ---------------------------------------------------------------------------
 # Column mapping
 

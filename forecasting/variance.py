@@ -493,17 +493,17 @@ def tail_report(order_values) -> TailReport:
     if not np.isfinite(alpha):
         suggestion = "log" if abs(skew) < 0.5 and n >= 3 else "classic"
         summary = (f"{share_words}. There are too few orders to judge the tail reliably; "
-                   f"the '{suggestion}' variance model is a reasonable start.")
+                   f"the '{suggestion}' spread model is a reasonable start.")
     elif alpha < 4:
         heavy = "very heavy" if alpha < 2 else "heavy"
         suggestion = "log" if abs(skew) < 0.5 else "robust"
-        reason = ("order values look roughly lognormal, so the 'log' variance model fits"
+        reason = ("order values spread evenly on a log scale, so the 'log' spread model fits them"
                   if suggestion == "log" else
-                  "the 'robust' variance model, which limits the pull of any single order, is the safer choice")
-        summary = (f"{share_words}: the tail of big orders is {heavy} (tail index about {alpha:.1f}); "
-                   f"{reason}.")
+                  "a spread model that limits the pull of any single order ('robust' or 'log') is worth "
+                  "comparing in the accuracy check")
+        summary = (f"{share_words}: the tail of big orders is {heavy} (a few orders are many times the usual "
+                   f"one); {reason}.")
     else:
         suggestion = "classic"
-        summary = (f"{share_words}: big orders are not unusually large (tail index about {alpha:.1f}), "
-                   f"so the 'classic' variance model is fine.")
+        summary = (f"{share_words}: big orders are not unusually large, so the 'classic' spread model is fine.")
     return TailReport(share, skew, alpha, k, suggestion, summary)
