@@ -131,6 +131,13 @@ def bench_size(n_orders: int, seed: int, rows: list) -> None:
     pairs = [(mth, var) for mth in evaluation.EXACT_METHODS for var in evaluation.EXACT_VARIANCES]
     record(f"exact leave-one-out, {len(pairs)} closed-form method x variance pairs",
            lambda: evaluation._leave_one_out(orders, stats, pairs))
+    if METHODS:
+        every = evaluation._combinations(None, None, stats=stats)
+        record(f"fast leave-one-out, all {len(every)} pairs (robust, proportional, gamma-gamma, -cv approximate)",
+               lambda: evaluation._leave_one_out(orders, stats, every))
+        record(f"evaluate_methods: {len(pairs)} closed-form pairs, backtest, 500 bootstrap resamples",
+               lambda: evaluation.evaluate_methods(orders, methods=list(evaluation.EXACT_METHODS),
+                                                   variances=list(evaluation.EXACT_VARIANCES), bootstrap=500))
     del result, orders, stats
     gc.collect()
 

@@ -12,6 +12,7 @@ per customer with intervals) -> ``evaluation`` (leave-one-out and backtest proof
 
 from .customers import customer_statistics
 from .errors import OrderDataError
+from .evaluation import Evaluation, choose_method, evaluate_methods
 from .exports import csv_text, excel_bytes, write_csv
 from .forecasts import METHODS, forecast_customers
 from .frequency import fit_order_frequency, frequency_forecast, repeat_history
@@ -23,12 +24,15 @@ __all__ = [
     "METHODS",
     "VARIANCE_MODELS",
     "ColumnMapping",
+    "Evaluation",
     "OrderDataError",
     "ReadResult",
     "assign_tiers",
     "backtest_outlook",
+    "choose_method",
     "csv_text",
     "customer_statistics",
+    "evaluate_methods",
     "excel_bytes",
     "export_tiers",
     "fit_order_frequency",
