@@ -78,11 +78,14 @@ def peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
-def timed(label, func, rows, size, baseline=None):
-    gc.collect()
-    start = time.perf_counter()
-    out = func()
-    seconds = time.perf_counter() - start
+def timed(label, func, rows, size, baseline=None, repeat=1):
+    """Run func ``repeat`` times and keep the fastest (the least disturbed by other work)."""
+    seconds = np.inf
+    for _ in range(repeat):
+        gc.collect()
+        start = time.perf_counter()
+        out = func()
+        seconds = min(seconds, time.perf_counter() - start)
     rows.append({"orders": size, "stage": label, "seconds": seconds, "peak_mb": peak_mb()})
     ratio = "" if baseline is None else f"  ({seconds / baseline:.2f}x baseline)"
     print(f"  {label:<58} {seconds:8.3f} s{ratio}", flush=True)
@@ -97,11 +100,11 @@ def bench_size(n_orders: int, seed: int, rows: list) -> None:
         frame = pd.read_csv(path)
         return frame.groupby("customer")["order_value"].mean()
 
-    _, base = timed("baseline: pd.read_csv + groupby mean", baseline, rows, n_orders)
+    _, base = timed("baseline: pd.read_csv + groupby mean (best of 3)", baseline, rows, n_orders, repeat=3)
     rows[-1]["ratio"] = 1.0
 
-    def record(label, func):
-        out, seconds = timed(label, func, rows, n_orders, base)
+    def record(label, func, repeat=1):
+        out, seconds = timed(label, func, rows, n_orders, base, repeat)
         rows[-1]["ratio"] = seconds / base
         return out
 
@@ -129,8 +132,8 @@ def bench_size(n_orders: int, seed: int, rows: list) -> None:
             record(f"estimator {method}", lambda method=method, kwargs=kwargs: shrink(m, s, method=method, **kwargs))
 
     pairs = [(mth, var) for mth in evaluation.EXACT_METHODS for var in evaluation.EXACT_VARIANCES]
-    record(f"exact leave-one-out, {len(pairs)} closed-form method x variance pairs",
-           lambda: evaluation._leave_one_out(orders, stats, pairs))
+    record(f"exact leave-one-out, {len(pairs)} closed-form method x variance pairs (best of 3)",
+           lambda: evaluation._leave_one_out(orders, stats, pairs), repeat=3)
     if METHODS:
         every = evaluation._combinations(None, None, stats=stats)
         record(f"fast leave-one-out, all {len(every)} pairs (robust, proportional, gamma-gamma, -cv approximate)",

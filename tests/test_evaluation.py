@@ -164,6 +164,22 @@ class TestExactLeaveOneOut:
         monkeypatch.setattr(evaluation, "_CHUNK_CELLS", 7)
         np.testing.assert_allclose(fast_leave_one_out(orders, "mta", "classic").expected, whole, rtol=1e-13)
 
+    def test_power_series_equals_direct_sums(self, monkeypatch):
+        # Many customers: most removals move the amount of shrinkage very
+        # little, so the grouped centres come from the power series; with
+        # the series switched off they are summed directly.
+        orders = simulated_shop(customers=3000, seed=12)
+        held = evaluation._held_out_orders(orders, customer_statistics(orders))
+        b = held.money.classic_variance_after() / held.money.var_means_after()
+        ks, _ = evaluation._order_count_groups(held.money)
+        ratio = np.abs(b - np.median(b)) / (ks[0] + np.median(b))
+        assert np.mean(ratio <= evaluation._SERIES_RADIUS) > 0.9
+        series = {(m, v): fast_leave_one_out(orders, m, v).expected
+                  for m in ("mta", "empirical-bayes") for v in EXACT_VARIANCES}
+        monkeypatch.setattr(evaluation, "_SERIES_RADIUS", 0.0)
+        for (method, variance), expected in series.items():
+            np.testing.assert_allclose(expected, fast_leave_one_out(orders, method, variance).expected, rtol=1e-12)
+
     def test_plain_average_of_remaining_orders(self):
         orders = _orders([("a", 10.0), ("a", 20.0), ("a", 60.0), ("b", 5.0)])
         held = evaluation._held_out_orders(orders, customer_statistics(orders))
