@@ -53,6 +53,7 @@ when the held-out order was their latest).
 from __future__ import annotations
 
 import os
+import warnings
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -428,7 +429,9 @@ def _own_level_fixed_point(scale, precision, b):
         lo = np.where(above, lo, mid)
     estimate, g = estimate_at(0.5 * (lo + hi))
     limit = precision.sum_qd_after(scale) / precision.sum_q_after()
-    return np.where(finite, estimate, limit), np.where(finite, g, 0.0)
+    estimate, g = np.where(finite, estimate, limit), np.where(finite, g, 0.0)
+    alone = ~(den > 0)  # nobody else to average with (a single customer)
+    return np.where(alone, d_new, estimate), np.where(alone, 1.0, g)
 
 
 # ---------------------------------------------------------------------------
@@ -503,6 +506,8 @@ def _loo_mta(scale, precision, sigma2, amount=1.0):
 
 
 def _loo_mta_minimax(scale, precision, sigma2, amount=1.0):
+    if scale.T == 1:  # no one to average with
+        return _loo_plain(scale, precision, sigma2)
     top, top_owner, top_second, bottom, bottom_owner, bottom_second = _extremes(scale.d)
     t = scale.t
     high_others = np.where(t == top_owner, top_second, top)
@@ -955,7 +960,8 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
             return _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level)
         amount = 1.0
         if method.endswith("-cv"):
-            amount = float(held.full_fit(method, variance).attrs["fit"]["lambda"])
+            # No lambda when the full fit fell back to plain averages (one customer).
+            amount = float(held.full_fit(method, variance).attrs["fit"].get("lambda", 1.0))
         estimate, g = _LOO_METHODS[method](scale, precision, sigma2, amount)
         return _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level)
     return _finish(held, None, expected, g, False, sigma2_log, n_after, next_level)
@@ -1101,8 +1107,11 @@ def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples,
     sums = np.vstack(draws)
     reductions = _reduction_pct(sums[:, :1], sums[:, 1:])
     tail = (1.0 - level) / 2.0 * 100.0
-    low = np.nanpercentile(reductions, tail, axis=0)
-    high = np.nanpercentile(reductions, 100.0 - tail, axis=0)
+    with warnings.catch_warnings():
+        # Every resample undefined (plain averages were exact): the interval is NaN.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        low = np.nanpercentile(reductions, tail, axis=0)
+        high = np.nanpercentile(reductions, 100.0 - tail, axis=0)
     return low, high
 
 

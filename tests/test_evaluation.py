@@ -132,6 +132,17 @@ class TestExactLeaveOneOut:
             np.testing.assert_allclose(fast.expected, expected, rtol=1e-9)
 
     @pytest.mark.parametrize("method", EXACT_METHODS)
+    def test_one_customer_and_two(self, method):
+        for rows in ([("a", 10.0), ("a", 20.0), ("a", 30.0)],
+                     [("a", 10.0), ("a", 20.0), ("b", 30.0), ("b", 50.0), ("b", 45.0)]):
+            orders = _orders(rows)
+            for variance in EXACT_VARIANCES:
+                fast = fast_leave_one_out(orders, method, variance)
+                expected, low, _ = brute_force_leave_one_out(orders, method, variance)
+                np.testing.assert_allclose(fast.expected, expected, rtol=1e-9)
+                np.testing.assert_allclose(fast.low, low, rtol=1e-9)
+
+    @pytest.mark.parametrize("method", EXACT_METHODS)
     def test_larger_random_shop(self, method):
         orders = simulated_shop(customers=30, seed=3).iloc[::-1].reset_index(drop=True)
         for variance in EXACT_VARIANCES:
@@ -450,9 +461,39 @@ class TestApproximateLeaveOneOut:
             naive.append(total / dof / kappa)
         np.testing.assert_allclose(held.robust_variance_after(), naive, rtol=1e-10)
 
+    def test_one_customer_gives_finite_errors_everywhere(self):
+        orders = _orders([("a", 10.0), ("a", 20.0), ("a", 30.0)])
+        table = evaluate_methods(orders, bootstrap=0).leave_one_out
+        assert np.isfinite(table["sse"]).all()
+
     def test_every_pair_runs_and_gives_finite_errors(self, shop):
         orders, _ = shop
         table = evaluate_methods(orders, bootstrap=0).leave_one_out
         assert len(table) == 8 * 4 + 1  # gamma-gamma once, with its own spread
         assert np.isfinite(table["sse"]).all()
         assert (table["variance"] == evaluation.GAMMA_MODEL).sum() == 1
+
+
+class TestEdgeCases:
+    def test_no_repeat_customers(self):
+        found = evaluate_methods(_orders([("a", 10.0), ("b", 20.0), ("c", 30.0), ("d", 5.0)]), bootstrap=10)
+        assert found.held_out == 0
+        assert found.chosen["method"] == "plain" and found.chosen["fell_back_to_plain"]
+        assert any("nothing to hold out" in note for note in found.notes)
+
+    def test_one_order_in_the_file(self):
+        found = evaluate_methods(_orders([("a", 10.0)]), bootstrap=10)
+        assert found.held_out == 0 and found.orders == 1 and len(found.backtest) == 0
+
+    def test_identical_orders_everywhere(self):
+        rows = [("a", 10.0), ("a", 10.0), ("b", 10.0), ("b", 10.0), ("c", 10.0)]
+        found = evaluate_methods(_orders(rows), bootstrap=10)
+        # Zero up to the rounding of exp(log(10)) on the log scale.
+        assert (found.leave_one_out["sse"] < 1e-20).all()
+        assert found.chosen["method"] == "plain"
+
+    def test_cents_and_billions(self):
+        rows = [("a", 1e-6), ("a", 2e-6), ("b", 1e9), ("b", 2e9), ("c", 5.0), ("c", 7.0), ("d", 3.0)]
+        table = evaluate_methods(_orders(rows), bootstrap=10).leave_one_out
+        assert np.isfinite(table["sse"]).all()
+        assert np.isfinite(table["error_reduction_pct"]).all()
