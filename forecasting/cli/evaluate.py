@@ -79,7 +79,7 @@ def run(args) -> int:
     if found.cutoff is not None:
         _print_table(f"Next-order backtest (fitted before {found.cutoff.date()}, "
                      f"{found.backtest_scored} customers scored on their next order):", found.backtest)
-    print(f"Chosen: {found.chosen['method']} with {found.chosen['variance']} variance: {found.chosen['reason']}.")
+    print(f"Chosen: {found.chosen['reason']}.")
     for note in found.notes:
         print(f"note: {note}")
     return EXIT_OK
