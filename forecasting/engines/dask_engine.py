@@ -229,6 +229,8 @@ def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, curren
     if readable.any():
         numbers = pd.to_numeric(amount_text[readable], errors="coerce").astype(np.float64)
         amounts[readable] = numbers.where(np.isfinite(numbers))
+        # A plain number too large for a float (1e400) is read differently by the pandas reader.
+        formatted |= readable & amounts.isna().to_numpy()
     unreadable = alive & ~formatted & amounts.isna().to_numpy()
     amount_check = (int(alive.sum()), int(unreadable.sum()), _first_at(formatted, lines, amount_text),
                     _first_at(unreadable, lines, amount_text))

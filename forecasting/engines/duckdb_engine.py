@@ -40,9 +40,22 @@ def _literal(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
+_WS_CLASS = "[" + rules.re2_class(rules.WHITESPACE) + "]"
+
+
 def _strip(expression: str) -> str:
-    """SQL for Python's ``str.strip()`` of ``expression``."""
-    return f"trim({expression}, {_literal(rules.WHITESPACE)})"
+    """SQL for Python's ``str.strip()`` of ``expression``.
+
+    ``trim`` with a set of characters is slow, so it only runs on the few values
+    that start or end with whitespace."""
+    edge = _literal(f"^{_WS_CLASS}|{_WS_CLASS}$")
+    return (f"(CASE WHEN regexp_matches({expression}, {edge}) "
+            f"THEN trim({expression}, {_literal(rules.WHITESPACE)}) ELSE {expression} END)")
+
+
+def _is_blank(expression: str) -> str:
+    """SQL for ``expression.strip() == ""``."""
+    return f"regexp_full_match({expression}, {_literal(_WS_CLASS + '*')})"
 
 
 def _status_word(expression: str) -> str:
@@ -52,7 +65,8 @@ def _status_word(expression: str) -> str:
 def _connect(directory: str, *, memory_limit: str, threads: int | None):
     import duckdb
 
-    connection = duckdb.connect(os.path.join(directory, "orders.duckdb"))
+    # An in-memory database: duckdb spills what does not fit in memory_limit to temp_directory.
+    connection = duckdb.connect(":memory:")
     connection.execute(f"SET memory_limit = {_literal(memory_limit)}")
     connection.execute(f"SET temp_directory = {_literal(os.path.join(directory, 'spill'))}")
     connection.execute("SET preserve_insertion_order = true")
@@ -116,15 +130,15 @@ def _raise_read_problem(problem: Exception, files: OrderFiles):
 
 
 def _number_positions(connection, files: OrderFiles) -> None:
-    """Table ``numbered``: ``line`` orders all records (file order, then record order);
+    """View ``numbered``: ``line`` orders all records (file order, then record order);
     ``file_position`` is the record's 0-based place among the records read from its file."""
     cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
     if files.kind == "csv":
         connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM raw GROUP BY file")
-        connection.execute(f"CREATE TABLE numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
+        connection.execute(f"CREATE VIEW numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
                            f"AS file_position, {cells} FROM raw r JOIN file_start s USING (file)")
     else:
-        connection.execute(f"CREATE TABLE numbered AS SELECT rowid AS line, file, file_position, {cells} FROM raw")
+        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, file_position, {cells} FROM raw")
 
 
 def _row_of(files: OrderFiles, file: str, position) -> int | None:
@@ -136,7 +150,7 @@ def _row_of(files: OrderFiles, file: str, position) -> int | None:
 def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
     """Tables ``kept`` (rows that are not blank, over-long or duplicates) and ``classified``."""
     cells = [f"c{i}" for i in range(len(files.columns))]
-    blank = " AND ".join(f"{_strip(c)} = ''" for c in cells)
+    blank = " AND ".join(_is_blank(c) for c in cells)
     too_long = " OR ".join(f"length({c}) > {rules.MAX_FIELD_CHARS}" for c in cells)
     connection.execute(f"CREATE TABLE marked AS SELECT *, ({blank}) AS blank, "
                        f"({too_long}) AS too_long FROM numbered")
@@ -159,8 +173,9 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
     status = _status_word(cell("status")) if mapping.status else "''"
     order_text = _strip(cell("order_id")) if mapping.order_id else "''"
     segment = _strip(cell("segment")) if mapping.segment else "''"
+    currency_text = _strip(cell("currency")) if mapping.currency else "''"
     if mapping.currency:
-        row_currency = f"upper({_strip(cell('currency'))})"
+        row_currency = "upper(currency_text)"
     else:
         # The currency an amount names (the pandas reader's rule): a three-letter code, else a symbol.
         symbols = " ".join(f"WHEN contains(amount_text, {_literal(s)}) THEN {_literal(iso)}"
@@ -182,12 +197,12 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
     if mapping.status:
         refund = f"regexp_full_match({status}, {_literal(rules.REFUND_PATTERN)})"
     connection.execute(f"""
-        CREATE TABLE staged AS
+        CREATE VIEW staged AS
         SELECT *, {row_currency} AS row_currency
         FROM (SELECT line, file, file_position, copies,
                      {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
                      {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
-                     {status} AS status_word
+                     {status} AS status_word, {currency_text} AS currency_text
               FROM kept)""")
     connection.execute(f"""
         CREATE TABLE classified AS
@@ -205,7 +220,7 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
                    CASE {' '.join(early)} ELSE '' END AS early_reason,
                    CASE WHEN amount_text = '' THEN 'missing'
                         WHEN regexp_full_match(amount_text, {_literal(rules.PLAIN_NUMBER)})
-                             THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'unreadable' END
+                             THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'formatted' END
                         WHEN regexp_matches(amount_text, '\\p{{Nd}}') THEN 'formatted'
                         ELSE 'unreadable' END AS amount_kind,
                    CASE WHEN date_text = '' THEN 'missing'
@@ -229,7 +244,7 @@ def _first(connection, where: str, column: str):
 def _raw_cell(connection, files: OrderFiles, line: int, role: str):
     column = getattr(files.mapping, role)
     index = files.columns.index(column)
-    return connection.execute(f"SELECT c{index} FROM raw WHERE line = ?", [line]).fetchone()[0]
+    return connection.execute(f"SELECT c{index} FROM raw WHERE rowid = ?", [line]).fetchone()[0]
 
 
 def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None) -> None:
@@ -277,7 +292,7 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
 def _build_orders(connection, files: OrderFiles) -> None:
     """Tables ``order_lines`` and ``orders``: lines summed by order id, refunds netted."""
     connection.execute("""
-        CREATE TABLE order_lines AS
+        CREATE VIEW order_lines AS
         SELECT line, file, file_position, customer, order_text, segment_text, order_date,
                (amount < 0 OR refund_status) AS is_refund,
                CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed

@@ -12,8 +12,9 @@ subset and say so when a file needs more:
 
 * amounts: plain numbers (``1234.5``, ``-12``, ``.5``, ``1e3``); a value with no digit
   at all (``n/a``) is an unreadable amount exactly as in the pandas reader; any other
-  value with a digit (``$1,234.50``, ``12,50``, ``12-``) stops the run with an
-  :class:`~forecasting.errors.OrderDataError` naming ``--engine pandas``;
+  value with a digit (``$1,234.50``, ``12,50``, ``12-``, or ``1e400``, too large for a
+  float) stops the run with an :class:`~forecasting.errors.OrderDataError` naming
+  ``--engine pandas``;
 * dates: ISO dates ``YYYY-MM-DD`` with an optional time ``HH:MM[:SS[.ffffff]]``;
   a value made of signs only (``-``, ``?``) is an unreadable date; anything else
   (``14/03/2025``, ``March 14``, ``today``, ``2025-02-30``, a time-zone offset)

@@ -110,6 +110,9 @@ def _text_head(path: str) -> str:
                              fix="Use --engine pandas, or save the export as UTF-8 CSV")
     if data.startswith(b"\xef\xbb\xbf"):
         data = data[3:]
+    if b"\r" in data and b"\n" not in data:
+        raise OrderDataError("the lines of the file end in a carriage return only (old Mac style)", file=name,
+                             fix="Use --engine pandas, or save the export with Windows or Unix line endings")
     try:
         return data.decode("utf-8")
     except UnicodeDecodeError as problem:

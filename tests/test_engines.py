@@ -1,0 +1,553 @@
+"""The three engines give the same per-customer statistics and row account on the same file.
+
+References used here, named beside each check:
+* the pandas engine (``forecasting.reading`` + ``forecasting.customers``), itself tested
+  against RFC 4180 and hand-worked examples in tests/test_reading.py and tests/test_customers.py;
+* Python's ``statistics`` module (exact rational arithmetic) and ``decimal`` module for sums
+  and sums of squares that floating point could get wrong;
+* Python's ``csv`` module (an RFC 4180 reader) as the slow twin of the blank-line scan;
+* ``forecasting.evaluation.evaluate_methods`` and ``forecasting.forecasts.forecast_customers``
+  for the leave-one-out and forecasts run on a cluster.
+"""
+
+from __future__ import annotations
+
+import csv
+import importlib.util
+import io
+import os
+import statistics
+from decimal import Decimal
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from forecasting.customers import customer_statistics
+from forecasting.engines import ENGINES, check_engine, customer_statistics_from_file, measure_statistics_run
+from forecasting.engines.rules import check_memory_limit, check_threads
+from forecasting.engines.sources import scan_records
+from forecasting.errors import OrderDataError
+from forecasting.reading import read_orders
+
+HAVE_DUCKDB = importlib.util.find_spec("duckdb") is not None
+HAVE_DASK = importlib.util.find_spec("dask") is not None and importlib.util.find_spec("distributed") is not None
+needs_duckdb = pytest.mark.skipif(not HAVE_DUCKDB, reason="the duckdb engine needs duckdb "
+                                  "(pip install -r requirements-scale.txt)")
+needs_dask = pytest.mark.skipif(not HAVE_DASK, reason="the dask engine needs dask and distributed "
+                                "(pip install -r requirements-scale.txt)")
+
+
+# ---------------------------------------------------------------------------
+# A messy export of a small houseplant shop
+
+
+def write_shop_export(path, *, lines=1500, seed=0, order_ids=True, segments=True, blank_every=97,
+                      line_ending="\n"):
+    """Order lines of an online houseplant shop with every kind of row the reader has a rule for."""
+    rng = np.random.default_rng(seed)
+    products = ["Monstera deliciosa", "Pot, terracotta 12cm", "Pruning shears", 'Fern "Boston"',
+                "Peat-free compost", "Watering can\n(2 litre)"]
+    channels = ["web", "market stall", "wholesale", ""]
+    statuses = ["paid", "paid", "paid", "shipped", "Cancelled", "test", "refunded", "Paid "]
+    rows = []
+    order = 1000
+    while len(rows) < lines:
+        customer = f"C{rng.integers(0, 300):04d}"
+        order += 1
+        day = f"2024-{rng.integers(1, 13):02d}-{rng.integers(1, 29):02d}"
+        if rng.random() < 0.3:
+            day += f" {rng.integers(0, 24):02d}:{rng.integers(0, 60):02d}"
+        channel = channels[rng.integers(0, len(channels))]
+        for _ in range(rng.integers(1, 4)):
+            value = float(np.round(np.exp(rng.normal(3.2, 0.8)), 2))
+            row = [customer, str(order) if rng.random() < 0.9 else "", day, f"{value:.2f}",
+                   statuses[rng.integers(0, len(statuses))], channel, products[rng.integers(0, len(products))]]
+            u = rng.random()
+            if u < 0.02:
+                row[0] = ""  # missing customer
+            elif u < 0.03:
+                row[3] = "n/a"  # unreadable amount
+            elif u < 0.04:
+                row[3] = ""  # missing amount
+            elif u < 0.045:
+                row[2] = ""  # missing date
+            elif u < 0.05:
+                row[2] = "1969-12-31"  # before 1970: unreadable date
+            elif u < 0.07:
+                row[3] = "-" + row[3]  # refund line
+            elif u < 0.075:
+                row[3] = str(int(value))  # whole number
+            elif u < 0.08:
+                row[0] = " " + row[0] + " "  # padded customer id
+            rows.append(row)
+            if rng.random() < 0.03:
+                rows.append(list(row))  # exact duplicate
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator=line_ending)
+    writer.writerow(["customer_id", "order_number", "order_date", "line_total", "status", "channel", "product"])
+    for i, row in enumerate(rows):
+        if not order_ids:
+            row[1] = ""
+        if not segments:
+            row[5] = ""
+        writer.writerow(row)
+        if blank_every and i % blank_every == 5:
+            out.write(line_ending)  # a blank line
+    with open(path, "w", newline="", encoding="utf-8") as handle:
+        handle.write(out.getvalue())
+    return path
+
+
+def pandas_engine(path, **options):
+    result = read_orders(path, **options)
+    return customer_statistics(result.orders), result.audit()
+
+
+def assert_same_statistics(left: pd.DataFrame, right: pd.DataFrame):
+    """Same customers, same columns and types, numbers within 1e-9 relative."""
+    assert list(left.columns) == list(right.columns)
+    assert left.index.equals(right.index)
+    pd.testing.assert_frame_equal(left, right, check_exact=False, rtol=1e-9, atol=0.0)
+
+
+def assert_same_account(left: dict, right: dict):
+    keys = ["rows_read", "rows_used", "rows_excluded", "orders", "customers", "excluded", "mapping"]
+    assert {k: left[k] for k in keys} == {k: right[k] for k in keys}
+    assert left["rows_read"] == left["rows_used"] + left["rows_excluded"]
+
+
+@pytest.fixture(scope="module")
+def shop_export(tmp_path_factory):
+    return write_shop_export(tmp_path_factory.mktemp("shop") / "houseplant_orders.csv")
+
+
+# ---------------------------------------------------------------------------
+
+
+class TestCheckEngine:
+    def test_known_names(self):
+        assert [check_engine(name) for name in ENGINES] == ["pandas", "duckdb", "dask"]
+
+    def test_unknown_name_names_the_option_and_value(self):
+        with pytest.raises(OrderDataError, match=r"unknown engine.*'spark'.*--engine pandas, duckdb or dask"):
+            check_engine("spark")
+
+
+class TestCheckMemoryLimit:
+    @pytest.mark.parametrize("text", ["2GB", "500MB", "1.5GiB", " 64 mb "])
+    def test_accepts_amounts(self, text):
+        assert check_memory_limit(text) == text.strip()
+
+    @pytest.mark.parametrize("text", ["lots", "2", "-1GB", 2_000_000, None])
+    def test_refuses_other_values_naming_the_option(self, text):
+        with pytest.raises(OrderDataError, match="memory_limit must be an amount"):
+            check_memory_limit(text)
+
+
+class TestCheckThreads:
+    def test_none_and_whole_numbers(self):
+        assert check_threads(None) is None
+        assert check_threads(3) == 3
+
+    @pytest.mark.parametrize("value", [0, -2, 1.5, "2", True])
+    def test_refuses_the_rest(self, value):
+        with pytest.raises(OrderDataError, match=r"threads must be a whole number.*got"):
+            check_threads(value)
+
+
+class TestCustomerStatisticsFromFile:
+    def test_pandas_engine_is_the_default(self, shop_export):
+        stats, account = customer_statistics_from_file(shop_export)
+        expected_stats, expected_account = pandas_engine(shop_export)
+        assert_same_statistics(stats, expected_stats)
+        assert account == expected_account
+
+    def test_hand_worked_example(self, tmp_path):
+        # Worked by hand: fern orders 24 and 36 -> mean 30, squared deviations 36 + 36 = 72.
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\nfern,2025-04-02,36.00\n"
+                        "ivy,2025-03-05,80.00\n")
+        for engine in [e for e in ENGINES if (e != "duckdb" or HAVE_DUCKDB) and e != "dask"]:
+            stats, account = customer_statistics_from_file(path, engine=engine)
+            assert stats.loc["fern", "mean"] == 30.0
+            assert stats.loc["fern", "sum_sq_dev"] == pytest.approx(72.0, rel=1e-12)
+            assert account["rows_used"] == 3
+
+    def test_unknown_engine_is_refused_before_reading(self, tmp_path):
+        with pytest.raises(OrderDataError, match="--engine"):
+            customer_statistics_from_file(tmp_path / "missing.csv", engine="spark")
+
+    def test_pandas_engine_reads_one_file(self, tmp_path, shop_export):
+        for name in ("a.csv", "b.csv"):
+            (tmp_path / name).write_bytes(open(shop_export, "rb").read())
+        with pytest.raises(OrderDataError, match=r"one file at a time \(2 were given\).*--engine duckdb"):
+            customer_statistics_from_file(str(tmp_path / "*.csv"))
+
+
+@needs_duckdb
+class TestCustomerStatisticsDuckdb:
+    @pytest.mark.parametrize("seed,order_ids,segments,line_ending", [
+        (0, True, True, "\n"), (1, False, True, "\r\n"), (2, True, False, "\n")])
+    def test_same_as_pandas_on_a_messy_export(self, tmp_path, seed, order_ids, segments, line_ending):
+        path = write_shop_export(tmp_path / "orders.csv", seed=seed, order_ids=order_ids, segments=segments,
+                                 line_ending=line_ending)
+        stats, account = customer_statistics_from_file(path, engine="duckdb", memory_limit="500MB", threads=2)
+        expected_stats, expected_account = pandas_engine(path)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+        # The export really has every kind of row (else the comparison proves little).
+        assert {"blank_row", "duplicate_row", "missing_customer", "test_order", "cancelled_order",
+                "missing_amount", "bad_amount", "missing_date", "bad_date"} <= set(account["excluded"])
+        if order_ids:
+            assert {"unmatched_refund", "refunded_in_full"} <= set(account["excluded"])
+
+    def test_cents_that_only_appear_late_in_the_file_are_kept(self, tmp_path):
+        # 60,000 whole numbers first, then amounts with cents: a type guess on the first
+        # rows would read the column as whole numbers.
+        rng = np.random.default_rng(5)
+        whole = rng.integers(1, 200, 60_000).astype(str)
+        cents = np.char.mod("%.2f", rng.integers(100, 20_000, 3_000) / 100.0)
+        values = np.concatenate([whole, cents])
+        customers = np.char.add("C", rng.integers(0, 500, len(values)).astype(str))
+        frame = pd.DataFrame({"order_id": np.arange(len(values)), "customer": customers,
+                              "order_date": "2025-05-01", "order_value": values})
+        path = tmp_path / "late_cents.csv"
+        frame.to_csv(path, index=False)
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        # Exact decimal sum per customer (Python's decimal module) against the engine's total.
+        exact = {}
+        for who, text in zip(customers, values):
+            exact[who] = exact.get(who, Decimal(0)) + Decimal(text)
+        totals = stats["total"]
+        assert account["rows_used"] == len(values)
+        assert all(abs(Decimal(float(totals[who])) - exact[who]) < Decimal("1e-6") for who in exact)
+        assert sum(exact.values()) % 1 != 0  # the cents are there to be lost
+        assert_same_statistics(stats, pandas_engine(path)[0])
+
+    def test_spread_of_values_near_a_billion(self, tmp_path):
+        # Wholesale orders of about 1e9 with a spread of a few units: sum(x^2) - n mean^2
+        # cancels every digit; the two-pass sum of squares must match exact arithmetic.
+        values = [1e9 + d for d in (0.25, 1.5, -2.0, 3.75, -0.5, 1.0)]
+        lines = ["customer,order_date,order_value"] + [f"nursery-ltd,2025-01-{i + 1:02d},{v!r}"
+                                                      for i, v in enumerate(values)]
+        path = tmp_path / "big_orders.csv"
+        path.write_text("\n".join(lines) + "\n")
+        stats, _ = customer_statistics_from_file(path, engine="duckdb")
+        # statistics.pvariance works in exact fractions (Python standard library).
+        exact_ss = statistics.pvariance(values) * len(values)
+        assert stats.loc["nursery-ltd", "sum_sq_dev"] == pytest.approx(exact_ss, rel=1e-9)
+        naive = sum(v * v for v in values) - len(values) * statistics.fmean(values) ** 2
+        assert naive != pytest.approx(exact_ss, rel=1e-3)  # the one-pass formula would fail here
+
+    def test_formatted_money_names_the_pandas_engine_and_the_row(self, tmp_path):
+        path = tmp_path / "formatted.csv"
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n\n\n"
+                        "ivy,2025-03-05,\"$1,234.50\"\n")
+        with pytest.raises(OrderDataError) as raised:
+            customer_statistics_from_file(path, engine="duckdb")
+        assert "--engine pandas" in str(raised.value)
+        assert raised.value.row == 5  # header 1, fern 2, two blank lines 3-4, ivy 5
+        assert raised.value.value == "$1,234.50"
+        # The pandas engine reads it.
+        assert pandas_engine(path)[0].loc["ivy", "total"] == 1234.5
+
+    @pytest.mark.parametrize("date", ["14/03/2025", "March 14, 2025", "2025-02-30", "2025-03-14T10:00:00+02:00"])
+    def test_dates_other_than_iso_name_the_pandas_engine(self, tmp_path, date):
+        path = tmp_path / "dates.csv"
+        path.write_text(f"customer,order_date,order_value\nfern,2025-03-01,24.00\nivy,\"{date}\",12.00\n")
+        with pytest.raises(OrderDataError, match=r"ISO dates.*--engine pandas") as raised:
+            customer_statistics_from_file(path, engine="duckdb")
+        assert raised.value.row == 3
+
+    def test_whole_file_problems_match_the_pandas_reader(self, tmp_path):
+        path = tmp_path / "wrong_column.csv"
+        path.write_text("customer,order_date,order_value\n" + "".join(
+            f"c{i},2025-01-0{i % 9 + 1},{'unknown' if i % 3 else '12.5'}\n" for i in range(12)))
+        for engine in ("pandas", "duckdb"):
+            with pytest.raises(OrderDataError, match="most amounts in this column cannot be read") as raised:
+                customer_statistics_from_file(path, engine=engine)
+            assert raised.value.row == 3
+
+    def test_currencies_as_the_pandas_reader(self, tmp_path):
+        path = tmp_path / "currencies.csv"
+        path.write_text("customer,order_date,order_value,currency\nfern,2025-03-01,24.00,EUR\n"
+                        "ivy,2025-03-05,12.00,GBP\nfern,2025-03-09,30.00,eur \n")
+        for engine in ("pandas", "duckdb"):
+            with pytest.raises(OrderDataError, match=r"several currencies \(EUR, GBP\)") as raised:
+                customer_statistics_from_file(path, engine=engine)
+            assert raised.value.row == 3
+        stats, account = customer_statistics_from_file(path, engine="duckdb", currency="EUR")
+        expected_stats, expected_account = pandas_engine(path, currency="EUR")
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+        assert account["excluded"] == {"other_currency": 1}
+
+    def test_order_lines_that_net_to_exactly_nothing(self, tmp_path):
+        # 0.1 + 0.2 - 0.3 is 5.55e-17 when added in file order, 0 in another order:
+        # both engines add an order's lines in file order, so both keep the order.
+        path = tmp_path / "netting.csv"
+        path.write_text("customer,order_id,order_date,order_value\nfern,A1,2025-03-01,0.1\n"
+                        "fern,A1,2025-03-01,0.2\nfern,A1,2025-03-02,-0.3\nivy,B1,2025-03-05,5\n"
+                        "ivy,B2,2025-03-06,5\nivy,B2,2025-03-06,-5\n")
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(path)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+        assert account["excluded"] == {"refunded_in_full": 2}
+
+    def test_parquet_file(self, tmp_path, shop_export):
+        cells = pd.read_csv(shop_export, dtype=str, keep_default_na=False)
+        frame = pd.DataFrame({
+            "customer_id": cells["customer_id"].where(cells["customer_id"] != "", None),
+            "order_number": cells["order_number"],
+            "order_date": pd.to_datetime(cells["order_date"], errors="coerce", format="ISO8601"),
+            "line_total": pd.to_numeric(cells["line_total"], errors="coerce"),
+            "status": cells["status"],
+            "channel": cells["channel"],
+        })
+        path = tmp_path / "orders.parquet"
+        frame.to_parquet(path, index=False)
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(path)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
+    def test_several_files_are_one_table(self, tmp_path, shop_export):
+        text = open(shop_export, encoding="utf-8", newline="").read()
+        header, body = text.split("\n", 1)
+        lines = body.split("\n")
+        cut = len(lines) // 2
+        # Cut between records (not inside a quoted field): find a line that starts a record.
+        while lines[cut].count('"') % 2 or not lines[cut].startswith("C"):
+            cut += 1
+        (tmp_path / "orders_1.csv").write_text(header + "\n" + "\n".join(lines[:cut]) + "\n", newline="")
+        (tmp_path / "orders_2.csv").write_text(header + "\n" + "\n".join(lines[cut:]), newline="")
+        stats, account = customer_statistics_from_file(str(tmp_path / "orders_*.csv"), engine="duckdb")
+        expected_stats, expected_account = pandas_engine(shop_export)
+        assert_same_statistics(stats, expected_stats)
+        # A header is not a row: the two files hold the same rows as the one export.
+        assert_same_account(account, expected_account)
+
+    def test_files_with_different_columns_are_refused(self, tmp_path):
+        (tmp_path / "a.csv").write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n")
+        (tmp_path / "b.csv").write_text("customer,order_date,order_value,status\nivy,2025-03-01,4.00,paid\n")
+        with pytest.raises(OrderDataError, match="different columns"):
+            customer_statistics_from_file(str(tmp_path / "*.csv"), engine="duckdb")
+
+    def test_rows_with_too_many_fields_name_the_pandas_engine(self, tmp_path):
+        path = tmp_path / "ragged.csv"
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\nivy,2025-03-05,12.00,extra\n")
+        with pytest.raises(OrderDataError, match="--engine pandas"):
+            customer_statistics_from_file(path, engine="duckdb")
+
+    def test_text_that_is_not_utf8_names_the_pandas_engine(self, tmp_path):
+        path = tmp_path / "latin1.csv"
+        path.write_bytes("customer,order_date,order_value\nJosé,2025-03-01,24.00\n".encode("cp1252"))
+        with pytest.raises(OrderDataError, match=r"not UTF-8.*--engine pandas"):
+            customer_statistics_from_file(path, engine="duckdb")
+
+    def test_no_usable_orders(self, tmp_path):
+        path = tmp_path / "cancelled.csv"
+        path.write_text("customer,order_date,order_value,status\nfern,2025-03-01,24.00,cancelled\n")
+        with pytest.raises(OrderDataError, match="no usable orders.*cancelled"):
+            customer_statistics_from_file(path, engine="duckdb")
+
+    def test_options_are_checked_before_reading(self, tmp_path):
+        missing = tmp_path / "missing.csv"
+        with pytest.raises(OrderDataError, match="memory_limit"):
+            customer_statistics_from_file(missing, engine="duckdb", memory_limit="plenty")
+        with pytest.raises(OrderDataError, match="threads"):
+            customer_statistics_from_file(missing, engine="duckdb", threads=0)
+        with pytest.raises(OrderDataError, match="temp_directory is not a folder"):
+            customer_statistics_from_file(missing, engine="duckdb", temp_directory=tmp_path / "nowhere")
+        with pytest.raises(OrderDataError, match=r"plain numbers only.*--engine pandas"):
+            customer_statistics_from_file(missing, engine="duckdb", decimal=",")
+        with pytest.raises(OrderDataError, match="not Excel sheets"):
+            customer_statistics_from_file(missing, engine="duckdb", sheet="Orders")
+
+    def test_working_files_are_removed(self, tmp_path, shop_export):
+        spill = tmp_path / "spill"
+        spill.mkdir()
+        customer_statistics_from_file(shop_export, engine="duckdb", temp_directory=spill, memory_limit="100MB")
+        assert list(spill.iterdir()) == []
+
+    def test_input_file_is_not_changed(self, shop_export):
+        before = open(shop_export, "rb").read()
+        customer_statistics_from_file(shop_export, engine="duckdb")
+        assert open(shop_export, "rb").read() == before
+
+
+class TestScanRecords:
+    @staticmethod
+    def slow_twin(path):
+        """Blank records and non-blank data records by Python's csv module (RFC 4180)."""
+        with open(path, newline="", encoding="utf-8") as handle:
+            records = list(csv.reader(handle))
+        blank = [i for i, record in enumerate(records) if i > 0 and record == []]
+        return blank, len(records) - 1 - len(blank)
+
+    def test_quoted_line_breaks_are_not_blank_lines(self, tmp_path):
+        path = tmp_path / "quoted.csv"
+        path.write_bytes(b'a,b\n1,"x\n\ny"\n\n2,3\r\n\r\n"4",""""\n')
+        blank, records = scan_records(str(path))
+        assert (blank.tolist(), records) == self.slow_twin(path) == ([2, 4], 3)
+
+    def test_no_blank_line_needs_no_scan(self, tmp_path):
+        path = tmp_path / "plain.csv"
+        path.write_text("a,b\n1,2\n3,4\n")
+        blank, records = scan_records(str(path))
+        assert blank.tolist() == [] and records is None
+
+    # Field text: letters, delimiters, quotes and line breaks (\n or \r\n; a lone \r is not a line break here).
+    _field = st.lists(st.sampled_from(["a", "b", ",", '"', "\n", "\r\n", " "]), max_size=4).map("".join)
+
+    @settings(max_examples=60, deadline=None)
+    @given(rows=st.lists(st.one_of(st.just([]), st.lists(_field, min_size=2, max_size=2)), max_size=12),
+           ending=st.sampled_from(["\n", "\r\n"]))
+    def test_matches_the_csv_module(self, tmp_path_factory, rows, ending):
+        path = tmp_path_factory.mktemp("scan") / "rows.csv"
+        out = io.StringIO()
+        writer = csv.writer(out, lineterminator=ending)
+        writer.writerow(["a", "b"])
+        for row in rows:
+            writer.writerow(row)
+        path.write_bytes(out.getvalue().encode("utf-8"))
+        blank, records = scan_records(str(path))
+        twin_blank, twin_records = self.slow_twin(path)
+        assert blank.tolist() == twin_blank
+        if records is not None:
+            assert records == twin_records
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    if not HAVE_DASK:
+        pytest.skip("the dask engine needs dask and distributed (pip install -r requirements-scale.txt)")
+    from forecasting.engines.dask_engine import cluster_client
+
+    with cluster_client(workers=2, processes=False) as client:
+        yield client
+
+
+@needs_dask
+class TestCustomerStatisticsDask:
+    def test_same_as_pandas_over_several_partitions(self, cluster, shop_export):
+        from forecasting.engines.dask_engine import customer_statistics_dask
+
+        stats, account = customer_statistics_dask(shop_export, scheduler=cluster, blocksize=None)
+        expected_stats, expected_account = pandas_engine(shop_export)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
+    def test_small_blocks_of_a_file_without_quoted_line_breaks(self, cluster, tmp_path):
+        path = write_shop_export(tmp_path / "orders.csv", seed=3, lines=800)
+        text = open(path, encoding="utf-8").read().replace("Watering can\n(2 litre)", "Watering can (2 litre)")
+        open(path, "w", encoding="utf-8").write(text)
+        stats, account = customer_statistics_from_file(path, engine="dask", scheduler=cluster)
+        from forecasting.engines.dask_engine import customer_statistics_dask
+
+        small_stats, small_account = customer_statistics_dask(path, scheduler=cluster, blocksize="8KB")
+        expected_stats, expected_account = pandas_engine(path)
+        for got_stats, got_account in ((stats, account), (small_stats, small_account)):
+            assert_same_statistics(got_stats, expected_stats)
+            assert_same_account(got_account, expected_account)
+
+    def test_formatted_money_names_the_pandas_engine_and_the_row(self, cluster, tmp_path):
+        path = tmp_path / "formatted.csv"
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n\n\n"
+                        "ivy,2025-03-05,\"$1,234.50\"\n")
+        with pytest.raises(OrderDataError, match="--engine pandas") as raised:
+            customer_statistics_from_file(path, engine="dask", scheduler=cluster)
+        assert raised.value.row == 5
+
+    def test_bad_scheduler_address(self):
+        with pytest.raises(OrderDataError, match="scheduler must be an address"):
+            customer_statistics_from_file("orders.csv", engine="dask", scheduler="localhost")
+
+
+@pytest.fixture(scope="module")
+def shop_on_cluster(cluster, shop_export):
+    from forecasting.engines.dask_engine import read_on_cluster
+
+    shop = read_on_cluster(shop_export, client=cluster, blocksize=None)
+    orders = read_orders(shop_export).orders
+    return shop, orders
+
+
+@needs_dask
+class TestReadOnCluster:
+    def test_orders_stay_on_the_cluster_one_customer_per_partition(self, shop_on_cluster):
+        shop, orders = shop_on_cluster
+        parts = shop.client.gather(shop.order_parts)
+        seen = [set(part["customer"]) for part in parts]
+        assert sum(len(s) for s in seen) == len(set().union(*seen)) == orders["customer"].nunique()
+        assert sum(len(part) for part in parts) == len(orders)
+
+
+@needs_dask
+class TestLeaveOneOutOnCluster:
+    def test_same_as_the_evaluation_module(self, shop_on_cluster):
+        from forecasting.engines.dask_engine import leave_one_out_on_cluster
+        from forecasting.evaluation import EXACT_METHODS, EXACT_VARIANCES, evaluate_methods
+
+        shop, orders = shop_on_cluster
+        table = leave_one_out_on_cluster(shop)
+        expected = evaluate_methods(orders, methods=list(EXACT_METHODS), variances=list(EXACT_VARIANCES),
+                                    bootstrap=0)
+        pd.testing.assert_frame_equal(table, expected.leave_one_out, check_exact=False, rtol=1e-9)
+        assert table.attrs["held_out"] == expected.held_out
+        assert (table["sse"] > 0).all()
+
+    def test_methods_needing_every_order_are_refused(self, shop_on_cluster):
+        from forecasting.engines.dask_engine import leave_one_out_on_cluster
+
+        with pytest.raises(OrderDataError, match=r"exact closed-form methods only.*--engine pandas"):
+            leave_one_out_on_cluster(shop_on_cluster[0], methods="mta", variances="robust")
+
+
+@needs_dask
+class TestForecastOnCluster:
+    @pytest.mark.parametrize("method,variance", [("mta", "classic"), ("empirical-bayes", "log"),
+                                                 ("gamma-gamma", "classic")])
+    def test_same_as_forecast_customers(self, shop_on_cluster, method, variance):
+        from forecasting.engines.dask_engine import forecast_on_cluster
+        from forecasting.forecasts import forecast_customers
+
+        shop, orders = shop_on_cluster
+        table = forecast_on_cluster(shop, method=method, variance=variance)
+        expected = forecast_customers(customer_statistics(orders), method=method, variance=variance)
+        pd.testing.assert_frame_equal(table, expected, check_exact=False, rtol=1e-9)
+
+    def test_automatic_choice_among_the_exact_methods(self, shop_on_cluster):
+        from forecasting.engines.dask_engine import forecast_on_cluster
+        from forecasting.evaluation import EXACT_METHODS, EXACT_VARIANCES, choose_method
+
+        shop, orders = shop_on_cluster
+        table = forecast_on_cluster(shop, method="auto")
+        chosen = choose_method(orders, methods=list(EXACT_METHODS), variances=list(EXACT_VARIANCES))
+        assert (table["method"].iloc[0], table["variance"].iloc[0]) == (chosen["method"], chosen["variance"])
+        assert "among the exact closed-form methods" in table.attrs["fit"]["auto_choice"]
+
+
+@needs_duckdb
+class TestMeasureStatisticsRun:
+    def test_reports_what_the_run_found(self, shop_export):
+        measured = measure_statistics_run(os.fspath(shop_export), engine="duckdb", memory_limit="200MB")
+        _, account = pandas_engine(shop_export)
+        assert measured["engine"] == "duckdb"
+        assert measured["customers"] == account["customers"]
+        assert measured["rows_read"] == account["rows_read"]
+        assert measured["peak_memory_mb"] > 0 and measured["seconds"] > 0
+
+    def test_a_failed_run_reports_its_message(self, tmp_path):
+        # The child's own function, run here: a failure comes back as a message, not a hang.
+        import queue
+
+        from forecasting.engines.measure import _child
+
+        answers = queue.Queue()
+        _child(answers, os.fspath(tmp_path / "missing.csv"), {"engine": "duckdb"})
+        assert "the file does not exist" in answers.get_nowait()["error"]
