@@ -101,6 +101,14 @@ def write_shop_export(path, *, lines=1500, seed=0, order_ids=True, segments=True
     return path
 
 
+def write_late_latin1(path):
+    """UTF-8-looking orders whose last row is Windows-1252, past the part read to sniff the file."""
+    lines = "".join(f"fern{i % 50},2025-03-01,{i % 90 + 1}.50\n" for i in range(12_000))
+    path.write_bytes(("customer,order_date,order_value\n" + lines + "José,2025-03-02,4.00\n").encode("cp1252"))
+    assert path.stat().st_size > 200_000
+    return path
+
+
 def pandas_engine(path, **options):
     result = read_orders(path, **options)
     return customer_statistics(result.orders), result.audit()
@@ -114,7 +122,7 @@ def assert_same_statistics(left: pd.DataFrame, right: pd.DataFrame):
 
 
 def assert_same_account(left: dict, right: dict):
-    keys = ["rows_read", "rows_used", "rows_excluded", "orders", "customers", "excluded", "mapping"]
+    keys = ["rows_read", "rows_used", "rows_excluded", "orders", "customers", "excluded", "mapping", "notes"]
     assert {k: left[k] for k in keys} == {k: right[k] for k in keys}
     assert left["rows_read"] == left["rows_used"] + left["rows_excluded"]
 
@@ -122,6 +130,23 @@ def assert_same_account(left: dict, right: dict):
 @pytest.fixture(scope="module")
 def shop_export(tmp_path_factory):
     return write_shop_export(tmp_path_factory.mktemp("shop") / "houseplant_orders.csv")
+
+
+@pytest.fixture(scope="module")
+def shop_parquet(shop_export):
+    """The same export as a Parquet file with typed columns (dates, floats, empty cells)."""
+    cells = pd.read_csv(shop_export, dtype=str, keep_default_na=False)
+    frame = pd.DataFrame({
+        "customer_id": cells["customer_id"].where(cells["customer_id"] != "", None),
+        "order_number": cells["order_number"],
+        "order_date": pd.to_datetime(cells["order_date"], errors="coerce", format="ISO8601"),
+        "line_total": pd.to_numeric(cells["line_total"], errors="coerce"),
+        "status": cells["status"],
+        "channel": cells["channel"],
+    })
+    path = shop_export.parent / "houseplant_orders.parquet"
+    frame.to_parquet(path, index=False)
+    return path
 
 
 # ---------------------------------------------------------------------------
@@ -298,22 +323,39 @@ class TestCustomerStatisticsDuckdb:
         assert_same_account(account, expected_account)
         assert account["excluded"] == {"refunded_in_full": 2}
 
-    def test_parquet_file(self, tmp_path, shop_export):
+    def test_parquet_file(self, shop_parquet):
+        stats, account = customer_statistics_from_file(shop_parquet, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(shop_parquet)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
+    @pytest.mark.parametrize("delimiter", [";", "\t", "|"])
+    def test_other_delimiters(self, tmp_path, shop_export, delimiter):
         cells = pd.read_csv(shop_export, dtype=str, keep_default_na=False)
-        frame = pd.DataFrame({
-            "customer_id": cells["customer_id"].where(cells["customer_id"] != "", None),
-            "order_number": cells["order_number"],
-            "order_date": pd.to_datetime(cells["order_date"], errors="coerce", format="ISO8601"),
-            "line_total": pd.to_numeric(cells["line_total"], errors="coerce"),
-            "status": cells["status"],
-            "channel": cells["channel"],
-        })
-        path = tmp_path / "orders.parquet"
-        frame.to_parquet(path, index=False)
+        path = tmp_path / "orders.txt"
+        cells.to_csv(path, sep=delimiter, index=False)
         stats, account = customer_statistics_from_file(path, engine="duckdb")
         expected_stats, expected_account = pandas_engine(path)
         assert_same_statistics(stats, expected_stats)
         assert_same_account(account, expected_account)
+        assert account["notes"] and "separated" in account["notes"][0]
+
+    def test_parquet_whole_numbers_with_gaps(self, tmp_path):
+        # A whole-number customer id with empty cells is read by pandas as decimals ("12.0").
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        table = pa.table({"customer": pa.array([12, None, 7, 12], pa.int64()),
+                          "order_date": pa.array(pd.to_datetime(["2025-01-01", "2025-01-02", None, "2025-01-04"])),
+                          "order_value": pa.array([10.0, 5.0, 3.0, None]),
+                          "first_time": pa.array([True, None, False, True])})
+        path = tmp_path / "gaps.parquet"
+        pq.write_table(table, path)
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(path)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+        assert list(stats.index) == ["12.0"]
 
     def test_several_files_are_one_table(self, tmp_path, shop_export):
         text = open(shop_export, encoding="utf-8", newline="").read()
@@ -346,6 +388,11 @@ class TestCustomerStatisticsDuckdb:
     def test_text_that_is_not_utf8_names_the_pandas_engine(self, tmp_path):
         path = tmp_path / "latin1.csv"
         path.write_bytes("customer,order_date,order_value\nJosé,2025-03-01,24.00\n".encode("cp1252"))
+        with pytest.raises(OrderDataError, match=r"not UTF-8.*--engine pandas"):
+            customer_statistics_from_file(path, engine="duckdb")
+
+    def test_text_that_stops_being_utf8_late_in_the_file(self, tmp_path):
+        path = write_late_latin1(tmp_path / "late_latin1.csv")
         with pytest.raises(OrderDataError, match=r"not UTF-8.*--engine pandas"):
             customer_statistics_from_file(path, engine="duckdb")
 
@@ -462,6 +509,23 @@ class TestCustomerStatisticsDask:
         with pytest.raises(OrderDataError, match="--engine pandas") as raised:
             customer_statistics_from_file(path, engine="dask", scheduler=cluster)
         assert raised.value.row == 5
+
+    def test_parquet_file(self, cluster, shop_parquet):
+        stats, account = customer_statistics_from_file(shop_parquet, engine="dask", scheduler=cluster)
+        expected_stats, expected_account = pandas_engine(shop_parquet)
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
+    def test_text_that_is_not_utf8_names_the_pandas_engine(self, cluster, tmp_path):
+        path = tmp_path / "latin1.csv"
+        path.write_bytes("customer,order_date,order_value\nJosé,2025-03-01,24.00\n".encode("cp1252"))
+        with pytest.raises(OrderDataError, match=r"not UTF-8.*--engine pandas"):
+            customer_statistics_from_file(path, engine="dask", scheduler=cluster)
+
+    def test_text_that_stops_being_utf8_late_in_the_file(self, cluster, tmp_path):
+        path = write_late_latin1(tmp_path / "late_latin1.csv")
+        with pytest.raises(OrderDataError, match=r"not UTF-8.*--engine pandas"):
+            customer_statistics_from_file(path, engine="dask", scheduler=cluster)
 
     def test_bad_scheduler_address(self):
         with pytest.raises(OrderDataError, match="scheduler must be an address"):

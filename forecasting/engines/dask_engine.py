@@ -422,6 +422,10 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         half = len(cleaned)
         order_parts, summary_parts = futures[:half], futures[half:]
         summaries = client.gather(summary_parts)
+    except UnicodeDecodeError:
+        raise OrderDataError("the file is not UTF-8 text", file=files.display_name,
+                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
+                                 "or save the export as UTF-8 CSV") from None
     except pd.errors.ParserError as problem:
         raise OrderDataError(f"some rows do not split into the header's fields ({str(problem).strip()})",
                              file=files.display_name,
@@ -453,7 +457,7 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         "customers": int(len(stats)),
         "excluded": excluded,
         "mapping": files.mapping.as_dict(),
-        "notes": [],
+        "notes": list(files.notes),
     }
     return ShopOnCluster(client=client, order_parts=order_parts, stats=stats, account=account)
 

@@ -62,6 +62,10 @@ def _status_word(expression: str) -> str:
     return f"regexp_replace(lower({expression}), '[^a-z]', '', 'g')"
 
 
+_WHOLE_NUMBER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT",
+                       "UINTEGER", "UBIGINT"}
+
+
 def _connect(directory: str, *, memory_limit: str, threads: int | None):
     import duckdb
 
@@ -88,17 +92,31 @@ def _load_raw(connection, files: OrderFiles) -> None:
         position = "NULL::BIGINT"
     else:
         reader = f"read_parquet({paths}, filename = true, file_row_number = true)"
-        types = {row[0]: row[1] for row in connection.execute(f"DESCRIBE SELECT * FROM {reader}").fetchall()}
+        try:
+            types = {row[0]: str(row[1]).upper()
+                     for row in connection.execute(f"DESCRIBE SELECT * FROM {reader}").fetchall()}
+        except Exception as problem:  # duckdb.Error and its subclasses
+            _raise_read_problem(problem, files)
+        # The pandas reader sees a whole-number column with empty cells as decimals (12 -> "12.0").
+        whole = [n for n in files.columns if types[n] in _WHOLE_NUMBER_TYPES]
+        with_gaps = set()
+        if whole:
+            gaps = connection.execute("SELECT " + ", ".join(f"bool_or({_quote_identifier(n)} IS NULL)" for n in whole)
+                                      + f" FROM {reader}").fetchone()
+            with_gaps = {n for n, gap in zip(whole, gaps) if gap}
         cells = []
         for i, name in enumerate(files.columns):
             column = _quote_identifier(name)
-            kind = str(types[name]).upper()
+            kind = types[name]
+            # Typed cells as the text the pandas reader makes of them (see sources.text_cells).
             if kind.startswith("TIMESTAMP"):
                 text = f"strftime({column}, '%Y-%m-%d %H:%M:%S')"
             elif kind in ("DOUBLE", "FLOAT", "REAL"):
                 text = f"CASE WHEN isnan({column}) THEN NULL ELSE CAST({column} AS VARCHAR) END"
+            elif name in with_gaps:
+                text = f"CAST(CAST({column} AS DOUBLE) AS VARCHAR)"
             elif kind == "BOOLEAN":
-                text = f"CASE WHEN {column} THEN 'True' ELSE 'False' END"
+                text = f"CASE WHEN {column} IS NULL THEN NULL WHEN {column} THEN 'True' ELSE 'False' END"
             else:
                 text = f"CAST({column} AS VARCHAR)"
             cells.append(f"coalesce({text}, '') AS c{i}")
@@ -372,7 +390,7 @@ def _account(connection, files: OrderFiles) -> dict:
         "customers": int(customers),
         "excluded": excluded,
         "mapping": files.mapping.as_dict(),
-        "notes": [],
+        "notes": list(files.notes),
     }
 
 

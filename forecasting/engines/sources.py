@@ -43,6 +43,7 @@ class OrderFiles:
     # number of non-blank data records the scan found (None when there was nothing to scan).
     blank_records: dict[str, np.ndarray] = field(default_factory=dict)
     scanned_records: dict[str, int | None] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
 
     @property
     def blank_lines(self) -> int:
@@ -215,6 +216,9 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None) -
     mapping = guess_mapping(samples[0], overrides, file_name=display)
     files = OrderFiles(paths=paths, kind=kind, columns=columns, mapping=mapping, display_name=display,
                        delimiter=delimiter)
+    if kind == "csv" and delimiter != ",":
+        # The pandas reader's note, word for word.
+        files.notes.append(f"Fields are separated by {'a tab' if delimiter == chr(9) else repr(delimiter)}.")
     if kind == "csv":
         for path in paths:
             files.blank_records[path], files.scanned_records[path] = scan_records(path)
