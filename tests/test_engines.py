@@ -510,6 +510,22 @@ class TestCustomerStatisticsDask:
             customer_statistics_from_file(path, engine="dask", scheduler=cluster)
         assert raised.value.row == 5
 
+    def test_row_numbers_in_messages_count_across_partitions(self, cluster, tmp_path):
+        body = "".join(f"fern{i % 40},2025-03-01,{i % 90 + 1}.50\n" + ("\n" if i % 97 == 3 else "")
+                       for i in range(3000))
+        path = tmp_path / "late_formatted.csv"
+        path.write_text("customer,order_date,order_value\n" + body + "ivy,2025-03-05,\"1,234.50\"\n")
+        row = len(path.read_text().splitlines())  # the last line of the file
+        from forecasting.engines.dask_engine import customer_statistics_dask
+
+        with pytest.raises(OrderDataError, match="--engine pandas") as raised:
+            customer_statistics_dask(path, scheduler=cluster, blocksize="8KB")
+        assert raised.value.row == row
+        if HAVE_DUCKDB:
+            with pytest.raises(OrderDataError, match="--engine pandas") as raised:
+                customer_statistics_from_file(path, engine="duckdb")
+            assert raised.value.row == row
+
     def test_parquet_file(self, cluster, shop_parquet):
         stats, account = customer_statistics_from_file(shop_parquet, engine="dask", scheduler=cluster)
         expected_stats, expected_account = pandas_engine(shop_parquet)

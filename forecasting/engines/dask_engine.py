@@ -135,7 +135,7 @@ def _read_partitions(files: OrderFiles, blocksize):
 
 
 def _number_lines(part: pd.DataFrame, columns, kind, partition_info=None) -> pd.DataFrame:
-    """Cells as text ('' for empty), a line key that orders rows as in the files, the customer key."""
+    """Cells as text ('' for empty) and a line key that orders rows as they are in the files."""
     number = partition_info["number"] if partition_info else 0
     cells = part[columns] if kind == "csv" else text_cells(part[columns])
     cells = cells.astype(object).fillna("").astype(object)
