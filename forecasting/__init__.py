@@ -11,6 +11,7 @@ per customer with intervals) -> ``evaluation`` (leave-one-out and backtest proof
 """
 
 from .customers import customer_statistics
+from .engines import ENGINES, customer_statistics_from_file
 from .errors import OrderDataError
 from .evaluation import Evaluation, choose_method, evaluate_methods
 from .exports import csv_text, excel_bytes, write_csv
@@ -21,6 +22,7 @@ from .reading import ColumnMapping, ReadResult, read_orders
 from .variance import VARIANCE_MODELS
 
 __all__ = [
+    "ENGINES",
     "METHODS",
     "VARIANCE_MODELS",
     "ColumnMapping",
@@ -32,6 +34,7 @@ __all__ = [
     "choose_method",
     "csv_text",
     "customer_statistics",
+    "customer_statistics_from_file",
     "evaluate_methods",
     "excel_bytes",
     "export_tiers",
