@@ -75,7 +75,6 @@ UNREADABLE_MIN_VALUES = 5
 UNREADABLE_SHARE = 0.5
 
 
-
 def re2_class(characters: str) -> str:
     """The body of an RE2 (duckdb) character class matching exactly ``characters``."""
     return "".join(f"\\x{{{ord(c):x}}}" for c in characters)
