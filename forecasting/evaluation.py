@@ -919,8 +919,9 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
     range = median exp(+- z sqrt(sigma2_log + g sigma2_log / n)), all refitted
     without the held-out order.
 
-    Exact for ``EXACT_METHODS`` x ``EXACT_VARIANCES``.  The rest keep one
-    thing from the full-data fit and refit everything else exactly:
+    Exact for ``EXACT_METHODS`` and mta-segments x ``EXACT_VARIANCES``.  The
+    rest keep one thing from the full-data fit and refit everything else
+    exactly:
 
     * ``robust``: the clip point c * scale0 (the clipped sums are updated);
     * ``proportional``: one step from the full-data fixed point: the levels
@@ -948,16 +949,16 @@ def _loo_predict(held, method, variance, *, next_level=0.80):
             sigma2 = held.robust_variance_after()
         else:
             sigma2 = held.proportional_variance_after()
-        if variance == "proportional" and method not in ("plain", "pooled"):
-            level = held.full_fit(method, variance)["expected_next_order"].to_numpy(np.float64)
-            precision = _Precision(scale, scale.counts / (level * level))
-        else:
-            precision = _Precision.of_counts(scale)
         if method == "mta-segments":
             if variance == "proportional":
                 raise ValueError("no fast leave-one-out for mta-segments with proportional variance")
             estimate, g = _loo_mta_segments(scale, sigma2, _segment_codes(held.stats))
             return _finish(held, scale, estimate, g, on_log, sigma2_log, n_after, next_level)
+        if variance == "proportional" and method not in ("plain", "pooled"):
+            level = held.full_fit(method, variance)["expected_next_order"].to_numpy(np.float64)
+            precision = _Precision(scale, scale.counts / (level * level))
+        else:
+            precision = _Precision.of_counts(scale)
         amount = 1.0
         if method.endswith("-cv"):
             # No lambda when the full fit fell back to plain averages (one customer).
