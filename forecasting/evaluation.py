@@ -1325,6 +1325,16 @@ def _backtest(orders, pairs, cutoff, *, next_level=0.80):
 # ---------------------------------------------------------------------------
 
 
+def best_of(results, allowed=None) -> dict:
+    """The automatic choice from a table of leave-one-out results (public door to the rule).
+
+    Lowest SSE among ``results`` (rows of method, variance, sse, error_reduction_pct),
+    never one that loses to plain averages. Used by front ends that computed the table
+    elsewhere, such as a cluster.
+    """
+    return _choose(results, allowed)
+
+
 def _choose(results, allowed=None):
     """Lowest leave-one-out SSE among the methods, never one that loses to plain averages.
 

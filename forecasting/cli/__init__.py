@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
+import logging
 import os
 import sys
 
@@ -51,10 +52,48 @@ def add_column_options(parser: argparse.ArgumentParser) -> None:
 
 def load_from_args(args: argparse.Namespace) -> ReadResult:
     """Read the file named on the command line with the column options given."""
-    return read_orders(args.file, customer=args.customer, value=args.value, date=args.date,
-                       order_id=args.order_id, status=args.status, segment=args.segment,
-                       currency_column=args.currency_column, currency=args.currency,
-                       date_order=args.date_order, decimal=args.decimal, sheet=args.sheet)
+    return read_orders(args.file, **_column_options(args))
+
+
+ENGINE_CHOICES = ("pandas", "duckdb", "dask")
+
+
+def add_engine_options(parser: argparse.ArgumentParser) -> None:
+    """Where the work runs: in memory (pandas), out of core (duckdb) or on a Dask cluster."""
+    engine = parser.add_argument_group("engine (for files too big for memory)")
+    engine.add_argument("--engine", choices=ENGINE_CHOICES, default="pandas",
+                        help="pandas (default, any export), duckdb (out of core, plain numbers and ISO dates), "
+                             "dask (a cluster; FILE may be a glob pattern)")
+    engine.add_argument("--memory-limit", default="2GB", metavar="SIZE", help="duckdb memory limit (default 2GB)")
+    engine.add_argument("--temp-directory", metavar="DIR", help="where duckdb may spill to disk")
+    engine.add_argument("--threads", type=int, metavar="N", help="duckdb threads (default: all cores)")
+    engine.add_argument("--scheduler", metavar="ADDRESS",
+                        help="Dask scheduler address (default: a local cluster on this machine)")
+
+
+def _column_options(args: argparse.Namespace) -> dict:
+    return dict(customer=args.customer, value=args.value, date=args.date, order_id=args.order_id,
+                status=args.status, segment=args.segment, currency_column=args.currency_column,
+                currency=args.currency, date_order=args.date_order, decimal=args.decimal, sheet=args.sheet)
+
+
+def load_statistics_from_args(args: argparse.Namespace):
+    """Per-customer statistics, the row account and (pandas engine only) the cleaned orders.
+
+    Returns ``(stats, account, orders)``; ``orders`` is None for the scale engines,
+    which never hold every order in this process.
+    """
+    from ..customers import customer_statistics
+
+    if args.engine == "pandas":
+        result = load_from_args(args)
+        return customer_statistics(result.orders), result.audit(), result.orders
+    from ..engines import customer_statistics_from_file
+
+    stats, account = customer_statistics_from_file(
+        args.file, engine=args.engine, memory_limit=args.memory_limit, temp_directory=args.temp_directory,
+        threads=args.threads, scheduler=args.scheduler, **_column_options(args))
+    return stats, account, None
 
 
 def print_json(payload) -> None:
@@ -84,6 +123,9 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if getattr(args, "engine", None) == "dask":
+        # The cluster's routine log lines (shuffles starting and ending) are not news to a user.
+        logging.getLogger("distributed").setLevel(logging.ERROR)
     try:
         return args.run(args)
     except OrderDataError as problem:

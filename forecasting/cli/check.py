@@ -2,22 +2,30 @@
 
 from __future__ import annotations
 
-from . import EXIT_OK, add_column_options, load_from_args, print_json
+from . import EXIT_OK, add_column_options, add_engine_options, load_from_args, load_statistics_from_args, print_json
+from ..errors import OrderDataError
 from ..exports import write_csv
 from ..reading import REASONS
 
 
 def add_arguments(parser) -> None:
     add_column_options(parser)
+    add_engine_options(parser)
     parser.add_argument("--excluded-out", metavar="CSV", help="write the rows left out, with reasons, to this CSV")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
 def run(args) -> int:
-    result = load_from_args(args)
-    audit = result.audit()
-    if args.excluded_out:
-        write_csv(result.excluded, args.excluded_out)
+    if args.engine == "pandas":
+        result = load_from_args(args)
+        audit = result.audit()
+        if args.excluded_out:
+            write_csv(result.excluded, args.excluded_out)
+    else:
+        if args.excluded_out:
+            raise OrderDataError("--excluded-out lists every row left out, which only the pandas engine keeps",
+                                 fix="Run it with --engine pandas")
+        _, audit, _ = load_statistics_from_args(args)
     if args.json:
         print_json(audit)
         return EXIT_OK

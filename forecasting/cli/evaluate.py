@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, add_column_options, load_from_args, print_json
+from . import EXIT_OK, _column_options, add_column_options, add_engine_options, load_from_args, print_json
 from ..errors import OrderDataError
 from ..evaluation import evaluate_methods
 
@@ -13,6 +13,7 @@ _RESULT_FIELDS = ("method", "variance", "sse", "error_reduction_pct", "ci_low", 
 
 def add_arguments(parser) -> None:
     add_column_options(parser)
+    add_engine_options(parser)
     parser.add_argument("--methods", metavar="A,B,...", help="methods to compare (default: all)")
     parser.add_argument("--variances", metavar="X,Y,...", help="variance models to compare (default: all)")
     parser.add_argument("--cutoff", metavar="YYYY-MM-DD",
@@ -59,6 +60,8 @@ def _print_table(title, table):
 def run(args) -> int:
     if args.bootstrap < 0:
         raise OrderDataError("--bootstrap must be 0 or more", value=args.bootstrap)
+    if args.engine != "pandas":
+        return _run_on_cluster(args)
     result = load_from_args(args)
     found = evaluate_methods(result.orders, methods=args.methods, variances=args.variances,
                              cutoff=args.cutoff, bootstrap=args.bootstrap, seed=args.seed)
@@ -82,4 +85,28 @@ def run(args) -> int:
     print(f"Chosen: {found.chosen['reason']}.")
     for note in found.notes:
         print(f"note: {note}")
+    return EXIT_OK
+
+
+def _run_on_cluster(args) -> int:
+    """Exact leave-one-out of the closed-form methods where the orders are (no bootstrap, no backtest)."""
+    if args.engine != "dask":
+        raise OrderDataError("evaluate needs every order: it runs with --engine pandas or --engine dask",
+                             value=args.engine, fix="Use --engine pandas, or --engine dask for a cluster")
+    from ..engines.dask_engine import cluster_client, leave_one_out_on_cluster, read_on_cluster
+    from ..evaluation import best_of
+
+    with cluster_client(args.scheduler) as client:
+        shop = read_on_cluster(args.file, client=client, **_column_options(args))
+        table = leave_one_out_on_cluster(shop, methods=args.methods, variances=args.variances)
+    chosen = best_of(table)
+    if args.json:
+        print_json({"orders": shop.account["orders"], "customers": shop.account["customers"],
+                    "held_out": int(table.attrs.get("held_out", 0)), "results": _records(table),
+                    "backtest": [], "chosen": {"method": chosen["method"], "variance": chosen["variance"]}})
+        return EXIT_OK
+    print(f"{shop.account['orders']} orders from {shop.account['customers']} customers (on the cluster; "
+          "no bootstrap intervals or backtest there)")
+    _print_table("Leave-one-out (every order of a repeat customer held out in turn):", table)
+    print(f"Chosen: {chosen['reason']}.")
     return EXIT_OK

@@ -8,8 +8,7 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, add_column_options, load_from_args, print_json
-from ..customers import customer_statistics
+from . import EXIT_OK, _column_options, add_column_options, add_engine_options, load_statistics_from_args, print_json
 from ..exports import write_csv
 from ..forecasts import METHODS, forecast_customers
 from ..variance import VARIANCE_MODELS
@@ -17,6 +16,7 @@ from ..variance import VARIANCE_MODELS
 
 def add_arguments(parser) -> None:
     add_column_options(parser)
+    add_engine_options(parser)
     choice = parser.add_argument_group("forecast")
     choice.add_argument("--method", default="mta", metavar="NAME",
                         help=f"how averages are combined: {', '.join(METHODS)} or auto (default: mta)")
@@ -37,12 +37,25 @@ def _plain_value(value):
     return value
 
 
+def _forecast_on_cluster(args):
+    """The dask engine: read, clean and (for auto) evaluate where the orders are."""
+    from ..engines.dask_engine import cluster_client, forecast_on_cluster, read_on_cluster
+
+    with cluster_client(args.scheduler) as client:
+        shop = read_on_cluster(args.file, client=client, **_column_options(args))
+        table = forecast_on_cluster(shop, method=args.method, variance=args.variance, level=args.level,
+                                    next_level=args.next_level)
+        return table, shop.account
+
+
 def run(args) -> int:
-    loaded = load_from_args(args)
-    orders = loaded.orders
-    stats = customer_statistics(orders)
-    table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
-                               level=args.level, next_level=args.next_level)
+    if args.engine == "dask":
+        table, account = _forecast_on_cluster(args)
+    else:
+        stats, account, orders = load_statistics_from_args(args)
+        table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
+                                   level=args.level, next_level=args.next_level)
+    loaded_notes = account.get("notes", [])
     written = write_csv(table, args.out)
     fit = {key: _plain_value(value) for key, value in table.attrs["fit"].items()}
     method, variance = fit["method"], fit["variance"]
@@ -51,7 +64,7 @@ def run(args) -> int:
                     "forecasts_written": str(written)})
         return EXIT_OK
     few = int(table["low_confidence"].sum())
-    print(f"{len(table)} customers from {len(orders)} orders in {loaded.file_name}")
+    print(f"{len(table)} customers from {account['orders']} orders in {account['file']}")
     print(f"method: {method}, variance: {variance}")
     if "auto_choice" in fit:
         print(f"chosen automatically: {fit['auto_choice']}")
@@ -60,7 +73,7 @@ def run(args) -> int:
     print(f"shop-wide centre: {fit['centre']:.2f}")
     if fit.get("tail_summary"):
         print(fit["tail_summary"])
-    for note in loaded.notes:
+    for note in loaded_notes:
         print(f"note: {note}")
     if fit.get("notes"):
         print(f"note: {fit['notes']}")

@@ -1,0 +1,89 @@
+"""The --engine option on the command line: the scale engines give what the pandas engine gives."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run_cli(*args):
+    return subprocess.run([sys.executable, "-m", "forecasting", *args], cwd=ROOT, capture_output=True, text=True,
+                          timeout=300)
+
+
+pytest.importorskip("duckdb", reason="the duckdb engine needs requirements-scale.txt")
+
+
+@pytest.fixture(scope="module")
+def plain_file(tmp_path_factory):
+    """A plain export (numbers and ISO dates) of a few hundred customers, some with many orders."""
+    rng = np.random.default_rng(11)
+    counts = rng.geometric(0.35, size=300)
+    customers = np.repeat([f"C-{i:04d}" for i in range(300)], counts)
+    level = np.repeat(rng.lognormal(3.8, 0.5, size=300), counts)
+    frame = pd.DataFrame({
+        "customer": customers,
+        "order_date": (pd.Timestamp("2025-01-01")
+                       + pd.to_timedelta(rng.integers(0, 600, len(customers)), unit="D")).strftime("%Y-%m-%d"),
+        "order_value": np.round(level * rng.lognormal(0, 0.6, len(customers)), 2),
+    })
+    path = tmp_path_factory.mktemp("engines") / "plain.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def read_forecast(path):
+    return pd.read_csv(path).set_index("customer").sort_index()
+
+
+class TestEngineOption:
+    def test_check_row_account_is_the_same(self, plain_file):
+        pandas_run = run_cli("check", str(plain_file), "--json")
+        duckdb_run = run_cli("check", str(plain_file), "--json", "--engine", "duckdb")
+        assert pandas_run.returncode == 0 and duckdb_run.returncode == 0, duckdb_run.stderr
+        first, second = json.loads(pandas_run.stdout), json.loads(duckdb_run.stdout)
+        for key in ("rows_read", "rows_used", "orders", "customers", "excluded"):
+            assert first[key] == second[key]
+
+    def test_forecast_csv_is_the_same(self, plain_file, tmp_path):
+        for engine in ("pandas", "duckdb"):
+            done = run_cli("forecast", str(plain_file), "--method", "empirical-bayes", "--variance", "log",
+                           "--engine", engine, "--out", str(tmp_path / f"{engine}.csv"))
+            assert done.returncode == 0, done.stderr
+        by_pandas, by_duckdb = read_forecast(tmp_path / "pandas.csv"), read_forecast(tmp_path / "duckdb.csv")
+        numbers = by_pandas.select_dtypes("number").columns
+        np.testing.assert_allclose(by_duckdb[numbers], by_pandas[numbers], rtol=1e-9)
+
+    def test_formatted_money_points_to_the_pandas_engine(self, tmp_path):
+        path = tmp_path / "formatted.csv"
+        path.write_text("customer,date,amount\nC1,2025-01-02,\"$1,234.50\"\nC2,2025-01-03,$5.00\n")
+        done = run_cli("check", str(path), "--engine", "duckdb")
+        assert done.returncode == 2
+        assert "--engine pandas" in done.stderr and "Traceback" not in done.stderr
+
+    def test_excluded_rows_need_the_pandas_engine(self, plain_file, tmp_path):
+        done = run_cli("check", str(plain_file), "--engine", "duckdb", "--excluded-out", str(tmp_path / "x.csv"))
+        assert done.returncode == 2 and "--engine pandas" in done.stderr
+
+    def test_evaluate_on_a_local_dask_cluster_keeps_the_json_contract(self, plain_file):
+        pytest.importorskip("distributed", reason="the dask engine needs requirements-scale.txt")
+        cluster = run_cli("evaluate", str(plain_file), "--engine", "dask", "--json",
+                          "--methods", "mta,james-stein", "--variances", "classic")
+        local = run_cli("evaluate", str(plain_file), "--json", "--bootstrap", "0",
+                        "--methods", "mta,james-stein", "--variances", "classic")
+        assert cluster.returncode == 0, cluster.stderr
+        on_cluster, here = json.loads(cluster.stdout), json.loads(local.stdout)
+        assert set(on_cluster) == {"orders", "customers", "held_out", "results", "backtest", "chosen"}
+        assert on_cluster["held_out"] == here["held_out"]
+        sse_cluster = {(r["method"], r["variance"]): r["sse"] for r in on_cluster["results"]}
+        sse_here = {(r["method"], r["variance"]): r["sse"] for r in here["results"]}
+        for pair, value in sse_here.items():
+            assert sse_cluster[pair] == pytest.approx(value, rel=1e-9)
+        assert on_cluster["chosen"] == here["chosen"]
+        assert "Traceback" not in cluster.stderr
