@@ -13,6 +13,11 @@ Output:
   maximum likelihood, with their covariance (a :class:`FrequencyFit`).
 * :func:`frequency_forecast` -- per customer, the expected number of orders in
   the next ``horizon`` days and the chance the customer still shops here.
+* :func:`simulate_orders_ahead` -- draws of how many orders each customer
+  places in the horizon, following the model's story from their posterior.
+* :func:`month_of_year_index` and :func:`seasonal_days` -- how much busier each
+  calendar month is for repeat orders than the model says, and the length of a
+  period on the seasonal clock that index defines.
 
 The model (Fader, Hardie and Lee 2005): while a customer is active, orders
 arrive as a Poisson process with rate lambda; after each repeat order the
@@ -42,9 +47,14 @@ __all__ = [
     "fit_order_frequency",
     "expected_orders_ahead",
     "expected_orders_for_draws",
+    "simulate_orders_ahead",
     "expected_new_customer_orders",
     "chance_still_active",
     "frequency_forecast",
+    "MIN_SEASON_DAYS",
+    "SEASON_COLUMNS",
+    "month_of_year_index",
+    "seasonal_days",
 ]
 
 HISTORY_COLUMNS = ["repeat_orders", "days_to_last_order", "days_known"]
@@ -60,6 +70,8 @@ MIN_REPEAT_CUSTOMERS = 10
 _MAX_LOG_SE = 5.0
 # Bound on drawn log-parameters (exp(40) ~ 2e17 stays finite in every formula).
 _DRAW_BOUND = 40.0
+# Largest expected number of arrivals handed to the Poisson sampler in a simulation.
+_MAX_SIMULATED_ARRIVALS = 1e12
 
 
 # --------------------------------------------------------------------------- #
@@ -294,13 +306,14 @@ def _gauss_hypergeometric(first, second, third, z, *, max_terms=5000):
     f, s, t, zz = first[failed], second[failed], third[failed], z[failed]
     term = np.ones_like(zz)
     total = np.ones_like(zz)
-    for k in range(max_terms):
-        term = term * (f + k) * (s + k) / ((t + k) * (k + 1.0)) * zz
-        total = total + term
-        if np.all(np.abs(term) <= 1e-17 * np.abs(total)):
-            break
-    else:
-        total = np.where(np.abs(term) <= 1e-12 * np.abs(total), total, np.nan)
+    with np.errstate(over="ignore", invalid="ignore"):  # a diverging sum ends as NaN below
+        for k in range(max_terms):
+            term = term * (f + k) * (s + k) / ((t + k) * (k + 1.0)) * zz
+            total = total + term
+            if np.all(np.abs(term) <= 1e-17 * np.abs(total)):
+                break
+        else:
+            total = np.where(np.abs(term) <= 1e-12 * np.abs(total), total, np.nan)
     value[failed] = np.where(np.isfinite(total), total, np.nan)
     return value
 
@@ -328,8 +341,20 @@ def _orders_while_active(params, x, age, horizon):
     z = horizon / (alpha + age + horizon)
     hyper = _gauss_hypergeometric(a + b - 1.0 - r, a - 1.0, a + b + x - 1.0, z)
     bracket = 1.0 - np.exp((a - 1.0) * np.log1p(-z)) * hyper
+    factor = (a + b + x - 1.0) / (a - 1.0)
+    value = factor * bracket
+    failed = ~np.isfinite(value)
+    if np.any(failed):
+        # With a and b in the thousands (a stop chance the data barely pin down,
+        # met in parameter draws) the transformed 2F1 overflows although the
+        # product is modest; the printed form's parameters r+x, b+x stay tame there.
+        shape = np.shape(value)
+        pick = [np.broadcast_to(v, shape)[failed] for v in (r + x, b + x, a + b + x - 1.0, z, factor)]
+        printed = 1.0 - np.exp(pick[0] * np.log1p(-pick[3])) * _gauss_hypergeometric(*pick[:4])
+        value = np.array(np.broadcast_to(value, shape), dtype=np.float64)
+        value[failed] = pick[4] * printed
     # Never below zero (also turns -0.0 at a zero horizon into 0.0).
-    return np.maximum((a + b + x - 1.0) / (a - 1.0) * bracket, 0.0)
+    return np.maximum(value, 0.0)
 
 
 def _check_params(params):
@@ -512,6 +537,66 @@ def expected_orders_for_draws(param_draws, repeat_orders, days_to_last_order, da
     params = tuple(draws[:, [k]] for k in range(4))
     active = special.expit(-_log_stop_odds(params, x, t_x, age))
     return _orders_while_active(params, x, age, horizon) * active
+
+
+def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_known, horizon, *,
+                          seed=0) -> np.ndarray:
+    """Draw how many orders each customer places in the next ``horizon`` days.
+
+    Parameters
+    ----------
+    param_draws : array_like, shape (D, 4)
+        Rows of ``(r, alpha, a, b)``; row d is used for draw d (e.g. from
+        :meth:`FrequencyFit.draw_parameters`, or the point estimate repeated).
+    repeat_orders, days_to_last_order, days_known : array_like, shape (N,)
+        x, t_x and T per customer (days).
+    horizon : float
+        Days ahead of T (>= 0).
+    seed : int or numpy.random.Generator
+        Seed for ``numpy.random.default_rng``.
+
+    Returns
+    -------
+    numpy.ndarray of int64, shape (D, N)
+        One simulated order count per draw and customer. Its average over
+        draws is the expected count of :func:`expected_orders_ahead`.
+
+    Notes
+    -----
+    Each draw follows the model's own story from the customer's posterior
+    (Bayes' rule on the BG/NBD assumptions, Fader, Hardie and Lee 2005):
+
+    1. still active at T with the chance of eq. 11; a customer who has
+       stopped orders nothing more;
+    2. if active, the ordering rate lambda ~ Gamma(r + x, rate alpha + T)
+       and the stop chance p ~ Beta(a, b + x) (the prior updated by x repeat
+       orders and the silence since the last one);
+    3. orders then arrive after exponential gaps with rate lambda, and after
+       each one the customer stops for good with chance p.
+
+    Step 3 is drawn exactly without a loop over orders: the count of arrivals
+    in the horizon is Poisson(lambda h) and the number of orders up to and
+    including the one after which the customer stops is Geometric(p), so the
+    orders placed are min(Poisson(lambda h), Geometric(p)). The tests check
+    this against a literal event-by-event simulation.
+    """
+    draws = np.asarray(param_draws, dtype=np.float64)
+    if draws.ndim != 2 or draws.shape[1] != 4 or not np.all(np.isfinite(draws)) or np.any(draws <= 0):
+        raise OrderDataError("parameter draws must be rows of four positive numbers (r, alpha, a, b)")
+    horizon = _check_horizon(horizon)
+    rng = np.random.default_rng(seed)
+    x, t_x, age = (np.asarray(v, dtype=np.float64)[None, :] for v in (repeat_orders, days_to_last_order, days_known))
+    _check_arrays(x, t_x, age)
+    r, alpha, a, b = (draws[:, [k]] for k in range(4))
+    shape = (draws.shape[0], x.shape[1])
+    active = rng.random(shape) < special.expit(-_log_stop_odds((r, alpha, a, b), x, t_x, age))
+    rate = rng.gamma(np.broadcast_to(r + x, shape), 1.0) / (alpha + age)
+    stop = rng.beta(np.broadcast_to(a, shape), np.broadcast_to(b + x, shape))
+    # Keep both draws inside what numpy's samplers accept (a rate of 1e12 orders
+    # in the horizon, or a stop chance of 1e-300, already means "no limit").
+    arrivals = rng.poisson(np.minimum(rate * horizon, _MAX_SIMULATED_ARRIVALS))
+    stop_count = rng.geometric(np.clip(stop, 1e-300, 1.0))
+    return np.where(active, np.minimum(arrivals, stop_count), 0).astype(np.int64)
 
 
 # --------------------------------------------------------------------------- #
@@ -787,3 +872,197 @@ def frequency_forecast(history: pd.DataFrame, *, horizon, fit: FrequencyFit | No
     table["chance_active"] = fit.chance_active(history)
     table.attrs["fit"] = fit.as_dict()
     return table
+
+
+# --------------------------------------------------------------------------- #
+# Seasons
+# --------------------------------------------------------------------------- #
+# A seasonal index needs every calendar month seen at least once.
+MIN_SEASON_DAYS = 365
+SEASON_COLUMNS = ["month", "repeat_orders", "model_orders", "index"]
+# Average Gregorian month lengths in days (February 28.2425), for weighting months.
+_MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
+# Customer-by-edge cells evaluated at once when summing the model's expected orders.
+_SEASON_CELLS = 1_000_000
+# Most rounds of the fixed-point search for the index (it settles in a handful).
+_SEASON_ROUNDS = 50
+
+
+def _month_edges(start: pd.Timestamp, end: pd.Timestamp) -> pd.DatetimeIndex:
+    """``start``, every first-of-month strictly between, and ``end``."""
+    inside = pd.date_range(start.normalize().replace(day=1), end, freq="MS")
+    inside = inside[(inside > start) & (inside < end)]
+    return pd.DatetimeIndex([start, *inside, end])
+
+
+def month_of_year_index(orders: pd.DataFrame, fit: FrequencyFit, *, as_of=None) -> pd.DataFrame:
+    """How much busier each calendar month is for repeat orders than the model says.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders with ``customer`` and ``order_date``, all on or before
+        ``as_of``.
+    fit : FrequencyFit
+        The order-frequency model fitted on these orders (calendar days).
+    as_of : date-like, optional
+        End of the history; default the last order date. At least
+        ``MIN_SEASON_DAYS`` days must lie between the first order and it.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Twelve rows, columns ``SEASON_COLUMNS``: ``month`` (1 = January),
+        ``repeat_orders`` (repeat orders placed in that month of the year, all
+        years together), ``model_orders`` (what the fitted model without
+        seasons expects for the same customers in the same days) and
+        ``index`` (the month's order rate relative to the year's average; the
+        day-weighted average of the twelve is 1).
+
+    Raises
+    ------
+    OrderDataError
+        If the history is shorter than a full year, or orders fall after ``as_of``.
+
+    Notes
+    -----
+    The model's expected repeat orders in calendar month k are
+    ``sum_i E[X(c(e_{k+1}) - c(f_i))] - E[X(c(e_k) - c(f_i))]`` over customers
+    i with first order f_i, where E[X(t)] is the new-customer count of eq. 7
+    (Fader, Hardie and Lee 2005), e_k the month's edges (clipped at f_i) and
+    c the seasonal clock (:func:`seasonal_days` from the first order). A
+    growing list of customers and customers dropping away are thus both in
+    the expectation; what is left in actual / expected is the time of year.
+    Months of the year are pooled over years (ratios of sums).
+
+    The index is the fixed point of ``index_m <- index_m x actual_m /
+    expected_m(index)`` (rescaled to average 1 each round), starting from no
+    seasons: the index under which the fitted model, run on the seasonal
+    clock, places as many repeat orders in each month of the year as the
+    shop saw. A single round (plain model in the denominator) confuses a
+    busy month with the faster dropping away that more orders bring; the
+    fixed point does not, and settles within a few rounds.
+
+    Then, with ``l_m`` the log index and ``v_m = 1 / orders_m`` its Poisson
+    sampling variance, each month is shrunk toward the year's average as in
+    empirical Bayes: ``l_m* = c + tau2 / (tau2 + v_m) (l_m - c)``, c the mean
+    of the l_m and ``tau2 = max(0, var(l_m) - mean(v_m))`` the spread between
+    months beyond what chance explains (method of moments). A shop without
+    seasons therefore gets an index close to 1 in every month rather than its
+    noise. Finally the index is scaled so its day-weighted average is 1: it
+    moves orders between months but leaves the model's yearly level alone.
+    The fit itself stays in calendar days.
+    """
+    missing = [c for c in ("customer", "order_date") if c not in orders.columns]
+    if missing:
+        raise OrderDataError("the orders table lacks columns", value=", ".join(missing),
+                             fix="Read the file with forecasting.read_orders")
+    if len(orders) == 0:
+        raise OrderDataError("there are no orders to measure seasons on")
+    dates = pd.to_datetime(orders["order_date"])
+    first_day, last_day = dates.min(), dates.max()
+    as_of_ts = last_day if as_of is None else pd.Timestamp(as_of)
+    if pd.isna(as_of_ts) or as_of_ts < last_day:
+        raise OrderDataError("the 'as of' date must be a date on or after the last order", column="as_of",
+                             value=as_of)
+    days = (as_of_ts - first_day) / pd.Timedelta(days=1)
+    if days < MIN_SEASON_DAYS:
+        raise OrderDataError(
+            f"a month-of-year pattern needs at least a full year of orders; these cover {days:.0f} days",
+            column="--seasons", value="month", fix="Use --seasons none, or a longer order history")
+
+    # Repeat orders: every order of a customer except one earliest one.
+    table = pd.DataFrame({"customer": orders["customer"].to_numpy(), "order_date": dates.to_numpy()})
+    table = table.sort_values(["customer", "order_date"], kind="stable")
+    repeats = table.loc[table["customer"].duplicated(), "order_date"]
+    first_orders = table.loc[~table["customer"].duplicated(), "order_date"]
+
+    edges = _month_edges(first_day, as_of_ts)
+    months = edges[:-1].month.to_numpy()
+    positions = np.searchsorted(edges.to_numpy(), repeats.to_numpy(), side="right") - 1
+    positions = np.clip(positions, 0, len(edges) - 2)  # an order exactly at as_of joins the last month
+    actual_by_month = np.bincount(positions, minlength=len(edges) - 1).astype(np.float64)
+
+    actual = np.bincount(months - 1, weights=actual_by_month, minlength=12)
+    edge_values = edges.to_numpy()
+    lengths = np.diff(edge_values) / np.timedelta64(1, "D")
+    first_values = first_orders.to_numpy()
+    first_month = np.clip(np.searchsorted(edge_values, first_values, side="right") - 1, 0, len(edges) - 2)
+    into_month = (first_values - edge_values[first_month]) / np.timedelta64(1, "D")
+
+    def model_orders_by_month(index):
+        # The seasonal clock (integral of the index) at each month edge and at each first order;
+        # a customer's expected repeat orders up to an edge is E[X(clock(edge) - clock(first))].
+        clock_edges = np.concatenate([[0.0], np.cumsum(index[months - 1] * lengths)])
+        clock_first = clock_edges[first_month] + index[months[first_month] - 1] * into_month
+        cumulative = np.zeros(len(edges))
+        rows = max(1, _SEASON_CELLS // len(edges))
+        for start in range(0, len(clock_first), rows):
+            block = np.maximum(clock_edges[None, :] - clock_first[start:start + rows, None], 0.0)
+            cumulative += _orders_while_active(fit.params, np.zeros_like(block), np.zeros_like(block),
+                                               block).sum(axis=0)
+        return np.bincount(months - 1, weights=np.maximum(np.diff(cumulative), 0.0), minlength=12)
+
+    plain_model = model_orders_by_month(np.ones(12))
+    if np.any(plain_model <= 0):
+        raise OrderDataError("the order-frequency model expects no repeat orders in some month",
+                             fix="Use --seasons none")
+    index = np.ones(12)
+    model = plain_model
+    rounds = 0
+    for rounds in range(1, _SEASON_ROUNDS + 1):
+        updated = index * np.maximum(actual, 0.5) / model
+        updated = updated / (updated @ _MONTH_DAYS / _MONTH_DAYS.sum())
+        change = float(np.max(np.abs(updated - index)))
+        index = updated
+        if change < 1e-6:
+            break
+        model = model_orders_by_month(index)
+    log_ratio = np.log(index)
+    noise = 1.0 / np.maximum(actual, 0.5)
+    centre = log_ratio.mean()
+    between = max(0.0, float(np.sum((log_ratio - centre) ** 2) / 11.0 - noise.mean()))
+    shrunk = centre + between / (between + noise) * (log_ratio - centre)
+    index = np.exp(shrunk)
+    index = index / (index @ _MONTH_DAYS / _MONTH_DAYS.sum())
+    result = pd.DataFrame({"month": np.arange(1, 13), "repeat_orders": actual, "model_orders": plain_model,
+                           "index": index}, columns=SEASON_COLUMNS)
+    result.attrs = {"as_of": as_of_ts.isoformat(), "days_of_history": float(days), "rounds": rounds}
+    return result
+
+
+def seasonal_days(start, days, index) -> float:
+    """Length of a period in "average days": each calendar day weighted by its month's index.
+
+    Parameters
+    ----------
+    start : date-like
+        Start of the period.
+    days : float
+        Its length in calendar days (>= 0).
+    index : array_like of 12 floats
+        Month-of-year index, January first (e.g. ``month_of_year_index(...)["index"]``).
+
+    Returns
+    -------
+    float
+        ``integral from start to start + days of index[month(t)] dt``, in days.
+        With every month at 1 it is ``days``.
+
+    Notes
+    -----
+    An active customer's ordering rate in a month is lambda x index; a Poisson
+    process with that rate counts the same orders as one with rate lambda run
+    on this seasonal clock, so the model's expected orders and simulations
+    for a calendar window of ``days`` are those for ``seasonal_days(...)``.
+    """
+    weights = np.asarray(index, dtype=np.float64)
+    if weights.shape != (12,) or not np.all(np.isfinite(weights)) or np.any(weights < 0):
+        raise OrderDataError("a month-of-year index must be twelve numbers of at least 0", value=index)
+    days = _check_horizon(days)
+    start_ts = pd.Timestamp(start)
+    if days == 0:
+        return 0.0
+    edges = _month_edges(start_ts, start_ts + pd.Timedelta(days=days))
+    lengths = np.diff(edges.to_numpy()) / np.timedelta64(1, "D")
+    return float(np.sum(weights[edges[:-1].month.to_numpy() - 1] * lengths))

@@ -9,7 +9,12 @@ External references used here:
   alpha = 4.414, a = 0.793, b = 2.426 (weeks).
 - scipy.integrate (dblquad/quad) integrating the model over lambda and p.
 - mpmath.hyp2f1 for the printed, untransformed formulas.
-- Monte Carlo simulation of the model (numpy, seeded).
+- Monte Carlo simulation of the model (numpy, seeded), including a literal
+  event-by-event simulation (exponential gaps, a coin after each order) as the
+  slow twin of the order-count draws, and shops simulated on a known seasonal
+  clock (rate x month weight) for the month-of-year index.
+- A calendar (pandas date ranges, hour by hour) as the slow twin of the
+  seasonal length of a period.
 """
 
 from __future__ import annotations
@@ -19,11 +24,13 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import integrate, optimize
+from scipy import integrate, optimize, stats
 
 from forecasting.errors import OrderDataError
 from forecasting.frequency import (
     HISTORY_COLUMNS,
+    MIN_SEASON_DAYS,
+    SEASON_COLUMNS,
     FrequencyFit,
     chance_still_active,
     expected_new_customer_orders,
@@ -33,14 +40,20 @@ from forecasting.frequency import (
     frequency_forecast,
     frequency_log_likelihood,
     frequency_log_likelihood_gradient,
+    month_of_year_index,
     repeat_history,
+    seasonal_days,
+    simulate_orders_ahead,
 )
+from forecasting.customers import customer_statistics
 
 # CDNOW estimates in weeks (Fader, Hardie and Lee 2005, section 4).
 CDNOW_WEEKS = (0.243, 4.414, 0.793, 2.426)
 # Two parameter sets in days used throughout; the second has a < 1 and r > 1.
 PARAMS_A = (0.8, 40.0, 1.5, 4.0)
 PARAMS_B = (2.5, 100.0, 0.7, 2.0)
+# A shop in days: about 3.7 orders a year while active, a 30% chance of stopping after a repeat order.
+PARAMS_A_SHOP = (1.2, 120.0, 1.2, 2.8)
 
 
 def simulate_histories(params, customers, seed, *, known_low=60.0, known_high=730.0):
@@ -361,6 +374,16 @@ class TestExpectedOrdersAhead:
         got = expected_orders_ahead(params, 3, 151.0, 217.0, 180.0)
         assert got == pytest.approx(orders_ahead_printed(params, 3, 151.0, 217.0, 180.0), rel=1e-9)
 
+    @pytest.mark.parametrize("x, t_x, age", [(0, 0.0, 34.3), (4, 200.0, 260.0)])
+    def test_huge_a_and_b_where_the_transformed_series_overflows(self, x, t_x, age):
+        # A parameter draw with a poorly pinned-down stop chance (a, b in the thousands):
+        # the Euler-transformed 2F1 is ~1e383 (beyond float range) although the expected
+        # count is modest; the code falls back to the printed form, checked by mpmath.
+        params = (0.99, 110.0, 1800.0, 7500.0)
+        got = expected_orders_ahead(params, x, t_x, age, 120.0)
+        assert np.isfinite(got)
+        assert got == pytest.approx(orders_ahead_printed(params, x, t_x, age, 120.0), rel=1e-9)
+
     def test_zero_horizon_gives_zero(self):
         assert np.all(expected_orders_ahead(PARAMS_B, [0, 3], [0.0, 10.0], [5.0, 50.0], 0.0) == 0.0)
 
@@ -401,6 +424,210 @@ class TestExpectedOrdersForDraws:
     def test_bad_draws_refused(self):
         with pytest.raises(OrderDataError, match="four positive numbers"):
             expected_orders_for_draws(np.array([[1.0, -2.0, 1.0, 1.0]]), [1], [1.0], [2.0], 10.0)
+
+
+def orders_event_by_event(params, x, t_x, age, horizon, draws, rng):
+    """Slow twin of simulate_orders_ahead: the model's story told one customer and one order at a time.
+
+    Active at T with the posterior chance of eq. 11 (computed here from the two
+    likelihood terms, as in test_matches_monte_carlo_of_the_posterior); if active,
+    lambda ~ Gamma(r+x, alpha+T) and p ~ Beta(a, b+x); then wait an exponential gap,
+    place an order if still inside the horizon, and flip a coin with p after it.
+    """
+    r, alpha, a, b = params
+    log_active = math.lgamma(a) + math.lgamma(b + x) - math.lgamma(a + b + x) - (r + x) * math.log(alpha + age)
+    if x > 0:
+        log_stopped = (math.lgamma(a + 1) + math.lgamma(b + x - 1) - math.lgamma(a + b + x)
+                       - (r + x) * math.log(alpha + t_x))
+        active_share = 1 / (1 + math.exp(log_stopped - log_active))
+    else:
+        active_share = 1.0
+    counts = np.zeros(draws, dtype=np.int64)
+    for d in range(draws):
+        if rng.random() >= active_share:
+            continue
+        rate = rng.gamma(r + x, 1 / (alpha + age))
+        stop = rng.beta(a, b + x)
+        clock = 0.0
+        while True:
+            clock += rng.exponential(1 / rate)
+            if clock > horizon:
+                break
+            counts[d] += 1
+            if rng.random() < stop:
+                break
+    return counts
+
+
+class TestSimulateOrdersAhead:
+    CUSTOMERS = [(0, 0.0, 120.0), (3, 200.0, 400.0), (6, 100.0, 500.0), (12, 340.0, 360.0)]
+
+    def test_matches_the_event_by_event_story(self):
+        # Distribution check: counts 0, 1, 2, 3+ from the vectorised draws against the
+        # literal simulation, chi-square test of homogeneity (scipy), each customer.
+        rng = np.random.default_rng(31)
+        x, t_x, age = (np.array(v, dtype=float) for v in zip(*self.CUSTOMERS))
+        fast = simulate_orders_ahead(np.tile(PARAMS_A, (4000, 1)), x, t_x, age, 180.0, seed=5)
+        for k, (xk, tk, ak) in enumerate(self.CUSTOMERS):
+            slow = orders_event_by_event(PARAMS_A, xk, tk, ak, 180.0, 4000, rng)
+            table = np.array([[np.sum(np.minimum(c, 3) == j) for j in range(4)] for c in (fast[:, k], slow)])
+            table = table[:, table.sum(axis=0) > 0]
+            assert stats.chi2_contingency(table).pvalue > 1e-3, (self.CUSTOMERS[k], table)
+
+    def test_average_is_the_expected_count(self):
+        # Reference: eq. 10 (expected_orders_ahead); tolerance 4 Monte Carlo standard errors.
+        x, t_x, age = (np.array(v, dtype=float) for v in zip(*self.CUSTOMERS))
+        for params in (PARAMS_A, PARAMS_B):
+            counts = simulate_orders_ahead(np.tile(params, (100_000, 1)), x, t_x, age, 90.0, seed=2)
+            expected = expected_orders_ahead(params, x, t_x, age, 90.0)
+            error = counts.std(axis=0) / math.sqrt(len(counts))
+            assert np.all(np.abs(counts.mean(axis=0) - expected) < 4 * error), (counts.mean(axis=0), expected)
+
+    def test_each_row_uses_its_own_parameters(self):
+        draws = np.repeat(np.array([PARAMS_A, PARAMS_B]), 50_000, axis=0)
+        counts = simulate_orders_ahead(draws, [2.0], [60.0], [90.0], 120.0, seed=8)[:, 0]
+        for block, params in zip((counts[:50_000], counts[50_000:]), (PARAMS_A, PARAMS_B)):
+            expected = expected_orders_ahead(params, 2, 60.0, 90.0, 120.0)
+            assert abs(block.mean() - expected) < 4 * block.std() / math.sqrt(len(block))
+
+    def test_long_silence_after_repeat_orders_means_mostly_nothing(self):
+        # Five repeat orders in the first month, then two years of silence: the
+        # chance of still being active is tiny, so almost every draw is zero.
+        counts = simulate_orders_ahead(np.tile(PARAMS_A, (2000, 1)), [5], [30.0], [760.0], 90.0, seed=1)
+        assert np.mean(counts == 0) > 1 - 3 * chance_still_active(PARAMS_A, 5, 30.0, 760.0) - 0.01
+
+    def test_seeded_and_extremes(self):
+        draws = np.tile(PARAMS_B, (30, 1))
+        one = simulate_orders_ahead(draws, [0, 4], [0.0, 20.0], [10.0, 40.0], 60.0, seed=3)
+        np.testing.assert_array_equal(one, simulate_orders_ahead(draws, [0, 4], [0.0, 20.0], [10.0, 40.0], 60.0,
+                                                                 seed=3))
+        assert one.dtype == np.int64 and one.shape == (30, 2) and (one >= 0).all()
+        assert (simulate_orders_ahead(draws, [0, 4], [0.0, 20.0], [10.0, 40.0], 0.0, seed=3) == 0).all()
+        # Absurd draws (as from a flat likelihood) stay finite.
+        wild = np.array([[np.exp(40.0), np.exp(-40.0), np.exp(-40.0), np.exp(40.0)]] * 3)
+        assert (simulate_orders_ahead(wild, [1], [5.0], [10.0], 30.0, seed=0) >= 0).all()
+
+    def test_bad_input_refused(self):
+        with pytest.raises(OrderDataError, match="four positive numbers"):
+            simulate_orders_ahead(np.ones((3, 3)), [1], [2.0], [3.0], 10.0)
+        with pytest.raises(OrderDataError, match="horizon"):
+            simulate_orders_ahead(np.tile(PARAMS_A, (3, 1)), [1], [2.0], [3.0], -1.0)
+        with pytest.raises(OrderDataError, match="known time"):
+            simulate_orders_ahead(np.tile(PARAMS_A, (3, 1)), [1], [5.0], [3.0], 10.0)
+
+
+# Average Gregorian month lengths (365.2425 days a year; February 28.2425).
+MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
+# Month weights of a plant shop's year (busy spring), used to simulate seasons.
+SPRING_WEIGHTS = np.array([0.6, 0.7, 1.3, 1.6, 1.4, 1.0, 0.8, 0.8, 1.0, 1.1, 0.8, 0.9])
+
+
+def simulate_seasonal_orders(params, customers, seed, weights, *, start="2024-01-01", days=730):
+    """Orders from the BG/NBD story run on a seasonal clock.
+
+    While active, a customer's rate in a calendar month is lambda x weight of
+    the month: equivalently, the model's story in seasonal time tau (the
+    integral of the weights), mapped back to dates through the clock's inverse
+    (a daily grid, linear within a day). First orders fall uniformly over the
+    calendar period.
+    """
+    r, alpha, a, b = params
+    rng = np.random.default_rng(seed)
+    grid = pd.date_range(start, periods=days + 1, freq="D")
+    clock = np.concatenate([[0.0], np.cumsum(np.asarray(weights)[grid[:-1].month - 1])])
+    rate = rng.gamma(r, 1 / alpha, customers)
+    stop = rng.beta(a, b, customers)
+    tau = np.interp(rng.uniform(0, days, customers), np.arange(days + 1), clock)
+    who, when = [np.arange(customers)], [tau.copy()]
+    active = np.ones(customers, dtype=bool)
+    while active.any():
+        tau = tau + rng.exponential(1 / rate)
+        active &= tau < clock[-1]
+        who.append(np.flatnonzero(active))
+        when.append(tau[active])
+        active &= rng.random(customers) >= stop
+    who, when = np.concatenate(who), np.concatenate(when)
+    day = np.interp(when, clock, np.arange(days + 1))
+    return pd.DataFrame({"customer": [f"C-{i:05d}" for i in who],
+                         "order_date": pd.Timestamp(start) + pd.to_timedelta(np.round(day * 1440), unit="min"),
+                         "order_value": 1.0})
+
+
+def index_for(orders, **options):
+    fit = fit_order_frequency(repeat_history(customer_statistics(orders), **options))
+    return month_of_year_index(orders, fit, **options), fit
+
+
+class TestMonthOfYearIndex:
+    def test_recovers_a_known_seasonal_clock(self):
+        # Reference: the weights the shops were simulated with (scaled to a day-weighted
+        # average of 1). 3,000 customers over two years give ~450 repeat orders per
+        # month of the year (Poisson noise ~5%); tolerance: mean absolute error 0.06,
+        # worst month 0.2.
+        truth = SPRING_WEIGHTS / (SPRING_WEIGHTS @ MONTH_DAYS / MONTH_DAYS.sum())
+        for seed in (0, 1):
+            index, _ = index_for(simulate_seasonal_orders(PARAMS_A_SHOP, 3000, seed, SPRING_WEIGHTS))
+            assert list(index.columns) == SEASON_COLUMNS
+            error = np.abs(index["index"].to_numpy() - truth)
+            assert error.mean() < 0.06 and error.max() < 0.2, np.round(index["index"].to_numpy() - truth, 3)
+            assert index["index"].to_numpy() @ MONTH_DAYS / MONTH_DAYS.sum() == pytest.approx(1.0, rel=1e-12)
+
+    def test_no_seasons_gives_about_one(self):
+        # A shop on a flat clock: the month-to-month scatter is what Poisson noise
+        # explains, so the shrinkage takes every month (nearly) back to 1.
+        index, _ = index_for(simulate_seasonal_orders(PARAMS_A_SHOP, 3000, 2, np.ones(12)))
+        assert np.abs(index["index"] - 1).max() < 0.05
+
+    def test_counts_by_plain_pandas_and_a_loop_over_customers(self):
+        # Slow twins: repeat orders = all but each customer's first order, grouped by
+        # calendar month with pandas; the plain model's expectation = a loop over
+        # customers and months of E[X(t)] (eq. 7, expected_new_customer_orders).
+        orders = simulate_seasonal_orders(PARAMS_A_SHOP, 150, 3, SPRING_WEIGHTS, days=400)
+        as_of = orders["order_date"].max() + pd.Timedelta(hours=5)
+        index, fit = index_for(orders, as_of=as_of)
+        ordered = orders.sort_values(["order_date"]).reset_index(drop=True)
+        repeats = ordered[ordered.groupby("customer").cumcount() > 0]
+        by_month = repeats["order_date"].dt.month.value_counts().reindex(range(1, 13), fill_value=0)
+        np.testing.assert_array_equal(index["repeat_orders"], by_month.to_numpy())
+        first = orders.groupby("customer")["order_date"].min()
+        start = orders["order_date"].min()
+        edges = [start] + list(pd.date_range(start.normalize() + pd.offsets.MonthBegin(1), as_of, freq="MS")) + [as_of]
+        model = np.zeros(12)
+        for left, right in zip(edges[:-1], edges[1:]):
+            for when in first:
+                up = max((right - when) / pd.Timedelta(days=1), 0.0)
+                down = max((left - when) / pd.Timedelta(days=1), 0.0)
+                model[left.month - 1] += float(expected_new_customer_orders(fit.params, up)
+                                               - expected_new_customer_orders(fit.params, down))
+        np.testing.assert_allclose(index["model_orders"], model, rtol=1e-9)
+
+    def test_needs_a_full_year(self):
+        orders = simulate_seasonal_orders(PARAMS_A_SHOP, 300, 4, np.ones(12), days=MIN_SEASON_DAYS - 20)
+        fit = fit_order_frequency(repeat_history(customer_statistics(orders)))
+        with pytest.raises(OrderDataError, match="full year"):
+            month_of_year_index(orders, fit)
+        with pytest.raises(OrderDataError, match="on or after the last order"):
+            month_of_year_index(orders, fit, as_of="2024-02-01")
+
+
+class TestSeasonalDays:
+    def test_matches_an_hour_by_hour_calendar(self):
+        # Slow twin: walk the period hour by hour with pandas and add index[month] / 24.
+        index = SPRING_WEIGHTS
+        for start, days in [("2025-01-20 06:00", 45.5), ("2025-11-30 23:00", 400.0), ("2028-02-10", 30.0)]:
+            hours = pd.date_range(start, periods=int(days * 24), freq="h")
+            slow = float(index[hours.month - 1].sum() / 24)
+            assert seasonal_days(start, days, index) == pytest.approx(slow, rel=1e-9)
+
+    def test_flat_index_and_zero_length(self):
+        assert seasonal_days("2025-03-03", 90.25, np.ones(12)) == pytest.approx(90.25, rel=1e-12)
+        assert seasonal_days("2025-03-03", 0, SPRING_WEIGHTS) == 0.0
+
+    def test_bad_index_refused(self):
+        with pytest.raises(OrderDataError, match="twelve numbers"):
+            seasonal_days("2025-03-03", 10, [1.0] * 11)
+        with pytest.raises(OrderDataError, match="twelve numbers"):
+            seasonal_days("2025-03-03", 10, [-1.0] + [1.0] * 11)
 
 
 class TestChanceStillActive:
