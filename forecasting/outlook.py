@@ -8,11 +8,13 @@ Output:
 * :func:`project_revenue` -- per customer, the expected number of orders in the
   next ``horizon`` days (BG/NBD, :mod:`forecasting.frequency`) times the
   expected value of their next order (:func:`forecasting.forecasts.forecast_customers`),
-  with an interval; and the same summed per cohort (first-order month or
-  quarter, or any customer group such as the sales channel).
+  with two ranges -- one for the expected amount, one for the revenue that
+  will actually come in -- and the same summed per cohort (first-order month
+  or quarter, or any customer group such as the sales channel); optionally
+  adjusted for the month-of-year pattern of repeat orders.
 * :func:`backtest_outlook` -- the outlook fitted on orders before a cut-off
   date, compared per cohort with the revenue that actually came in after it,
-  next to a run-rate baseline.
+  next to a run-rate baseline, with whether each range held the actual amount.
 * :func:`assign_tiers`, :func:`tier_summary`, :func:`export_tiers` -- customers
   ranked by expected next-order value or by projected revenue, grouped into
   value tiers by shares of customers or by money thresholds, with each tier's
@@ -35,11 +37,21 @@ from scipy import sparse, stats as sps
 
 from .customers import customer_statistics
 from .errors import OrderDataError
-from .frequency import FrequencyFit, expected_orders_for_draws, fit_order_frequency, repeat_history
+from .frequency import (
+    MIN_SEASON_DAYS,
+    FrequencyFit,
+    expected_orders_for_draws,
+    fit_order_frequency,
+    month_of_year_index,
+    repeat_history,
+    seasonal_days,
+    simulate_orders_ahead,
+)
 
 __all__ = [
     "COHORT_PERIODS",
     "RANK_BY",
+    "SEASONS",
     "OUTLOOK_COLUMNS",
     "COHORT_COLUMNS",
     "BACKTEST_COLUMNS",
@@ -56,6 +68,8 @@ __all__ = [
 
 COHORT_PERIODS = ("month", "quarter")
 RANK_BY = ("value", "revenue")
+# "auto": the month-of-year adjustment when a full year of history exists (see project_revenue).
+SEASONS = ("auto", "month", "none")
 
 OUTLOOK_COLUMNS = [
     "customer",
@@ -75,6 +89,8 @@ OUTLOOK_COLUMNS = [
     "projected_revenue",
     "projected_low",
     "projected_high",
+    "revenue_range_low",
+    "revenue_range_high",
 ]
 COHORT_COLUMNS = [
     "cohort",
@@ -83,6 +99,8 @@ COHORT_COLUMNS = [
     "projected_revenue",
     "projected_low",
     "projected_high",
+    "revenue_range_low",
+    "revenue_range_high",
     "share_of_projected_revenue",
 ]
 BACKTEST_COLUMNS = [
@@ -91,6 +109,8 @@ BACKTEST_COLUMNS = [
     "projected_revenue",
     "projected_low",
     "projected_high",
+    "revenue_range_low",
+    "revenue_range_high",
     "actual_revenue",
     "error",
     "error_pct",
@@ -98,6 +118,7 @@ BACKTEST_COLUMNS = [
     "run_rate_error",
     "run_rate_error_pct",
     "actual_inside_interval",
+    "actual_inside_revenue_range",
 ]
 TIER_SUMMARY_COLUMNS = [
     "tier",
@@ -117,6 +138,10 @@ TIER_SUMMARY_COLUMNS = [
 SHOP_PATTERN_WEIGHT = 0.5
 # Cells of the (draws x customers) matrix handled at once: bounds memory to ~50 MB.
 _CELLS_PER_CHUNK = 2_000_000
+# The same for the simulation of actual revenue, which holds about eight such
+# arrays at once (~40 MB), and the simulated orders whose values are drawn at once.
+_SIMULATION_CELLS_PER_CHUNK = 500_000
+_ORDERS_PER_BLOCK = 1_000_000
 _NO_GROUP = "(none)"
 
 
@@ -179,6 +204,13 @@ def _check_by(by, orders):
     )
 
 
+def _check_seasons(seasons):
+    if seasons not in SEASONS:
+        raise OrderDataError("the seasonal adjustment can be auto, month or none", column="--seasons",
+                             value=seasons, fix="Use --seasons auto, --seasons month or --seasons none")
+    return seasons
+
+
 def _parse_date(value, option):
     try:
         stamp = pd.Timestamp(value)
@@ -235,7 +267,7 @@ def _forecasts_for(stats, orders, *, method, variance, forecasts):
 
 
 def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n_groups, level, rng):
-    """Per-customer and per-group interval ends from joint draws.
+    """Per-customer and per-group ends of the interval of the expected amount, from joint draws.
 
     Each draw d takes one BG/NBD parameter set (shared by every customer, so
     cohort totals carry its correlation) and, independently per customer, a
@@ -256,9 +288,7 @@ def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n
         values = _value_draws(value_mean[start:stop], value_sd[start:stop], draws, rng)
         revenue = orders_ahead * values
         cust_low[start:stop], cust_high[start:stop] = np.quantile(revenue, [low_q, high_q], axis=0)
-        indicator = sparse.csr_matrix(
-            (np.ones(stop - start), (np.arange(stop - start), codes[start:stop])), shape=(stop - start, n_groups))
-        group_sums += np.asarray((indicator.T @ revenue.T).T)
+        group_sums += _group_sums(revenue, codes[start:stop], n_groups)
     group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
     total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
     return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
@@ -291,16 +321,127 @@ def _value_spread(forecasts, level):
     return np.where(np.isfinite(sd) & (sd > 0), sd, 0.0)
 
 
-def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, level, draws, seed):
-    """Shared work of project_revenue and backtest_outlook; returns tables and the fit."""
+def _group_sums(revenue, codes, n_groups):
+    """(draws x customers) -> (draws x groups) sums through a sparse indicator matrix."""
+    n = revenue.shape[1]
+    indicator = sparse.csr_matrix((np.ones(n), (np.arange(n), codes)), shape=(n, n_groups))
+    return np.asarray((indicator.T @ revenue.T).T)
+
+
+def _order_value_model(aligned, forecast_fit, stats):
+    """Lognormal of one order's value per customer: log-centre, level spread, per-order spread.
+
+    The value of an order of customer t in draw d is
+    ``exp(centre_t + level_sd_t * u_dt + order_sd_t * e)``, u and e standard
+    normal, u shared by all of the customer's orders in the draw (what we do
+    not know about their own level), e new for each order (how one order
+    differs from the next). See project_revenue, Notes.
+    """
+    expected = aligned["expected_next_order"].to_numpy(dtype=np.float64)
+    sigma2 = forecast_fit.get("sigma2_log")
+    sigma2 = float(sigma2) if sigma2 is not None and math.isfinite(float(sigma2)) and sigma2 >= 0 else None
+    has_range = {"next_order_low", "next_order_high"} <= set(aligned.columns)
+    if has_range:
+        low = aligned["next_order_low"].to_numpy(dtype=np.float64)
+        high = aligned["next_order_high"].to_numpy(dtype=np.float64)
+        has_range = bool(np.all(np.isfinite(low) & np.isfinite(high) & (low > 0) & (high >= low)))
+    if has_range:
+        z_next = float(sps.norm.ppf(0.5 + float(forecast_fit.get("next_level", 0.80)) / 2))
+        total_var = (np.log(high / low) / (2 * z_next)) ** 2
+        order_var = total_var if sigma2 is None else np.minimum(sigma2, total_var)
+    else:
+        # No next-order range: every order spreads with the shop's pooled log spread.
+        if sigma2 is None:
+            repeat = stats["orders"].to_numpy(dtype=np.float64) - 1
+            sigma2 = float(stats["log_sum_sq_dev"].sum() / repeat.sum()) if repeat.sum() > 0 else 0.0
+        total_var = order_var = np.full(len(expected), sigma2)
+    level_var = np.maximum(total_var - order_var, 0.0)
+    centre = np.log(expected) - total_var / 2
+    return centre, np.sqrt(level_var), np.sqrt(order_var)
+
+
+def _spend_draws(counts, order_sd, rng):
+    """Sum over each cell's simulated orders of exp(order_sd * e), e standard normal.
+
+    ``counts`` is (draws x customers); the orders are drawn in blocks of at
+    most ``_ORDERS_PER_BLOCK`` so memory stays bounded for long horizons.
+    """
+    shape = counts.shape
+    flat = counts.ravel()
+    customers = shape[1]
+    sums = np.zeros(flat.size)
+    running = np.cumsum(flat)
+    start = 0
+    while start < flat.size:
+        done = running[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(running, done + _ORDERS_PER_BLOCK, side="right")))
+        stop = min(stop, flat.size)
+        owners = np.repeat(np.arange(start, stop), flat[start:stop])
+        if owners.size:
+            values = np.exp(order_sd[owners % customers] * rng.standard_normal(owners.size))
+            sums[start:stop] = np.bincount(owners - start, weights=values, minlength=stop - start)
+        start = stop
+    return sums.reshape(shape)
+
+
+def _simulate_revenue(params_draws, x, t_x, age, horizon, centre, level_sd, order_sd, codes, n_groups, level,
+                      rng):
+    """Quantiles of simulated actual revenue per customer, per group and in total.
+
+    Draw d: BG/NBD parameters params_draws[d]; per customer, orders in the
+    horizon from the posterior (simulate_orders_ahead); each order's value
+    from the customer's lognormal (_order_value_model).
+    """
+    draws = params_draws.shape[0]
+    n = len(x)
+    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
+    cust_low = np.empty(n)
+    cust_high = np.empty(n)
+    group_sums = np.zeros((draws, n_groups))
+    chunk = max(1, _SIMULATION_CELLS_PER_CHUNK // draws)
+    for start in range(0, n, chunk):
+        stop = min(n, start + chunk)
+        part = slice(start, stop)
+        counts = simulate_orders_ahead(params_draws, x[part], t_x[part], age[part], horizon, seed=rng)
+        spend = _spend_draws(counts, order_sd[part], rng)
+        level_shift = level_sd[part] * rng.standard_normal((draws, stop - start))
+        revenue = spend * np.exp(centre[part] + level_shift)
+        cust_low[part], cust_high[part] = np.quantile(revenue, [low_q, high_q], axis=0)
+        group_sums += _group_sums(revenue, codes[part], n_groups)
+    group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
+    total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
+    return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
+
+
+def _seasonal_horizon(orders, stats, fit, *, seasons, as_of, horizon):
+    """The horizon on the seasonal clock, and the month index used (None without one)."""
+    if seasons == "none" or not fit.usable:
+        return horizon, None
+    history_days = (as_of - pd.Timestamp(stats["first_order"].min())) / pd.Timedelta(days=1)
+    if seasons == "auto" and history_days < MIN_SEASON_DAYS:
+        return horizon, None
+    index = month_of_year_index(orders, fit, as_of=as_of)
+    return seasonal_days(as_of, horizon, index["index"].to_numpy()), index
+
+
+def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, level, draws, seed, seasons):
+    """Shared work of project_revenue and backtest_outlook; returns tables, the fit and the seasons used."""
     history = repeat_history(stats, as_of=as_of)
+    if seasons == "month":
+        history_days = (as_of - pd.Timestamp(stats["first_order"].min())) / pd.Timedelta(days=1)
+        if history_days < MIN_SEASON_DAYS:
+            raise OrderDataError(
+                f"a month-of-year adjustment needs at least a full year of orders before "
+                f"{as_of:%Y-%m-%d}; these cover {history_days:.0f} days",
+                column="--seasons", value=seasons, fix="Use --seasons auto or --seasons none")
     fit = fit_order_frequency(history)
     aligned, forecast_fit = _forecasts_for(stats, orders, method=method, variance=variance, forecasts=forecasts)
     x = history["repeat_orders"].to_numpy(dtype=np.float64)
     t_x = history["days_to_last_order"].to_numpy(dtype=np.float64)
     age = history["days_known"].to_numpy(dtype=np.float64)
+    clock, season_index = _seasonal_horizon(orders, stats, fit, seasons=seasons, as_of=as_of, horizon=horizon)
     if fit.usable:
-        expected_orders = fit.expected_orders(history, horizon)
+        expected_orders = fit.expected_orders(history, clock)
         chance = fit.chance_active(history)
     else:
         # No projection from a fit that cannot support one (see fit.notes).
@@ -311,15 +452,22 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
 
     labels = _group_labels(stats, orders, by)
     codes, group_names = pd.factorize(labels, sort=True)
+    n_groups = len(group_names)
     if fit.usable:
         rng = np.random.default_rng(seed)
         params_draws = fit.draw_parameters(draws, seed=rng)
         cust_low, cust_high, group_low, group_high, total_low, total_high = _simulate(
-            params_draws, x, t_x, age, horizon, value, value_sd, codes, len(group_names), level, rng)
+            params_draws, x, t_x, age, clock, value, value_sd, codes, n_groups, level, rng)
+        # Its own stream, so the interval of the expected amount does not move when this one changes.
+        chance_rng = np.random.default_rng(np.random.SeedSequence(entropy=seed, spawn_key=(1,)))
+        centre, level_sd, order_sd = _order_value_model(aligned, forecast_fit, stats)
+        (cust_range_low, cust_range_high, group_range_low, group_range_high, total_range_low,
+         total_range_high) = _simulate_revenue(params_draws, x, t_x, age, clock, centre, level_sd, order_sd,
+                                               codes, n_groups, level, chance_rng)
     else:
-        cust_low = cust_high = np.full(len(history), np.nan)
-        group_low = group_high = np.full(len(group_names), np.nan)
-        total_low = total_high = float("nan")
+        cust_low = cust_high = cust_range_low = cust_range_high = np.full(len(history), np.nan)
+        group_low = group_high = group_range_low = group_range_high = np.full(n_groups, np.nan)
+        total_low = total_high = total_range_low = total_range_high = float("nan")
 
     projected = expected_orders * value
     weight = aligned["own_history_weight"].to_numpy(dtype=np.float64)
@@ -348,20 +496,24 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             # the value draws are cut at zero.
             "projected_low": np.minimum(cust_low, projected),
             "projected_high": np.maximum(cust_high, projected),
+            "revenue_range_low": cust_range_low,
+            "revenue_range_high": cust_range_high,
         }
     )
-    group_revenue = np.bincount(codes, weights=projected, minlength=len(group_names))
+    group_revenue = np.bincount(codes, weights=projected, minlength=n_groups)
     total = float(projected.sum())
     cohorts = pd.DataFrame(
         {
             "cohort": np.asarray(group_names, dtype=object),
-            "customers": np.bincount(codes, minlength=len(group_names)).astype(np.int64),
-            "expected_orders": np.bincount(codes, weights=expected_orders, minlength=len(group_names)),
+            "customers": np.bincount(codes, minlength=n_groups).astype(np.int64),
+            "expected_orders": np.bincount(codes, weights=expected_orders, minlength=n_groups),
             "projected_revenue": group_revenue,
             "projected_low": np.minimum(group_low, group_revenue),
             "projected_high": np.maximum(group_high, group_revenue),
+            "revenue_range_low": group_range_low,
+            "revenue_range_high": group_range_high,
             "share_of_projected_revenue": (group_revenue / total if total > 0 else
-                                           np.full(len(group_names), 0.0 if total == 0 else np.nan)),
+                                           np.full(n_groups, 0.0 if total == 0 else np.nan)),
         }
     )
     totals = {
@@ -370,8 +522,10 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
         "projected_revenue": total,
         "projected_low": min(total_low, total),
         "projected_high": max(total_high, total),
+        "revenue_range_low": total_range_low,
+        "revenue_range_high": total_range_high,
     }
-    return customers, cohorts, totals, fit, forecast_fit
+    return customers, cohorts, totals, fit, forecast_fit, clock, season_index
 
 
 # --------------------------------------------------------------------------- #
@@ -389,13 +543,22 @@ class Outlook:
         One row per group, columns ``COHORT_COLUMNS``.
     total : dict
         ``customers``, ``expected_orders``, ``projected_revenue``,
-        ``projected_low``, ``projected_high``.
+        ``projected_low``, ``projected_high`` (interval of the expected
+        amount), ``revenue_range_low``, ``revenue_range_high`` (range for the
+        revenue that will actually come in).
     fit : FrequencyFit
         The order-frequency model.
     forecast_fit : dict
         ``attrs["fit"]`` of the next-order forecasts used.
     horizon_days, as_of, by, level, draws, seed
         The options the outlook was made with.
+    seasons : str
+        The seasonal adjustment used: ``"month"`` or ``"none"``.
+    seasonal_days : float
+        The horizon on the seasonal clock (equal to ``horizon_days`` without
+        an adjustment): the expected orders are those of this many average days.
+    season_index : pandas.DataFrame or None
+        The month-of-year index used (:func:`forecasting.frequency.month_of_year_index`).
     """
 
     customers: pd.DataFrame
@@ -409,6 +572,9 @@ class Outlook:
     level: float
     draws: int
     seed: int
+    seasons: str = "none"
+    seasonal_days: float = float("nan")
+    season_index: pd.DataFrame | None = field(default=None, repr=False)
 
     def summary(self) -> dict:
         """Plain numbers and strings, one object (for JSON and the dashboard)."""
@@ -423,12 +589,16 @@ class Outlook:
             "order_frequency": self.fit.as_dict(),
             "method": self.forecast_fit.get("method"),
             "variance": self.forecast_fit.get("variance"),
+            "seasons": self.seasons,
+            "seasonal_days": self.seasonal_days,
+            "season_index": (None if self.season_index is None
+                             else [float(v) for v in self.season_index["index"]]),
         }
 
 
 def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of=None, method: str = "mta",
                     variance: str = "classic", forecasts: pd.DataFrame | None = None, level: float = 0.90,
-                    draws: int = 400, seed: int = 0) -> Outlook:
+                    draws: int = 400, seed: int = 0, seasons: str = "auto") -> Outlook:
     """Project each customer's revenue over the next ``horizon`` days, and per group.
 
     Parameters
@@ -456,6 +626,12 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
         Number of simulation draws for the intervals (at least 20).
     seed : int, default 0
         Seed of the draws; the same seed gives the same intervals.
+    seasons : {"auto", "month", "none"}, default "auto"
+        Seasonal adjustment of the order rate in the horizon. ``"month"``: a
+        month-of-year index estimated from these orders (needs at least a
+        full year, ``MIN_SEASON_DAYS``); ``"none"``: the plain model;
+        ``"auto"``: ``"month"`` when a full year of orders exists, else
+        ``"none"``. See Notes for the backtests behind the default.
 
     Returns
     -------
@@ -474,20 +650,98 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     much they spend per order are independent (the usual assumption of spend
     models that sit on BG/NBD).
 
-    The interval is a parametric bootstrap of the *expected* revenue, not a
-    range for what will actually be spent: each draw takes BG/NBD parameters
+    Two ranges answer two questions.
+
+    ``projected_low`` / ``projected_high`` -- *interval of the expected
+    amount*: a parametric bootstrap of what the customers spend on average,
+    not of what they will actually spend. Each draw takes BG/NBD parameters
     from the normal approximation of their log-scale estimates (inverse
     Hessian) and, independently per customer, a next-order value with the
     forecast's expected value as mean and its interval's half-width / z as
-    standard deviation. The value draws are Gamma rather than normal: in a
-    shop with a heavy tail a customer with one or two orders can have a
-    standard deviation larger than the value itself, and a normal cut at zero
-    would push the draws' mean up; a Gamma keeps them positive with the mean
-    unchanged. Value draws are independent between
-    customers, which ignores that shrunk forecasts share a centre; cohort
-    intervals are therefore somewhat narrow for the value part. Actual
-    revenue also varies with chance (which customers happen to order), which
-    the interval does not include.
+    standard deviation (Gamma draws: they stay positive with the mean
+    unchanged where a normal cut at zero would not). Chance -- which
+    customers happen to order, and how much -- is not in it, so actual
+    revenue usually falls outside it.
+
+    ``revenue_range_low`` / ``revenue_range_high`` -- *range for the revenue
+    that will actually come in* (prediction interval), from a seeded
+    simulation of the whole story per customer and draw: the same parameter
+    draw; still active or not, the ordering rate and the stop chance drawn
+    from the customer's posterior, and the orders in the horizon from the
+    BG/NBD process itself (:func:`forecasting.frequency.simulate_orders_ahead`);
+    then each order's value. Order values are lognormal, derived from the
+    forecasts' 80% next-order range ``next_order_low`` / ``next_order_high``:
+    its log-width gives the customer's log spread ``s_t`` (``s_t =
+    log(high/low) / (2 z)``), of which the shop's per-order log spread
+    ``sigma2_log`` (from the forecasts' fit) is drawn afresh for every order
+    and the rest, ``s_t^2 - sigma2_log`` (what the customer's few orders
+    leave unknown about their own level), once per customer and draw, shared
+    by all their orders. The log-centre is ``log(expected_next_order) -
+    s_t^2 / 2``, so the simulated orders average exactly the expected
+    next-order value and the range is centred on the same projection as the
+    point figure. Without a next-order range (a hand-made forecast table),
+    each order spreads with the pooled log spread of the customers' own orders.
+    Work is done in blocks of customers and of simulated orders, so memory
+    stays bounded for any shop size and horizon.
+
+    Both ranges treat customers' value forecasts as independent, which
+    ignores that shrunk forecasts share a shop-wide centre, and neither
+    includes the uncertainty of the seasonal index; new customers are never
+    in the outlook.
+
+    Seasons. The BG/NBD model has none: an active customer orders at the same
+    rate in every month. With ``seasons="month"`` the rate in each calendar
+    month is multiplied by a month-of-year index estimated from the orders up
+    to ``as_of`` only (:func:`forecasting.frequency.month_of_year_index`:
+    repeat orders per month against what the fitted model expects there,
+    pooled over years, shrunk toward 1 by their Poisson noise, averaging 1
+    over the year). A Poisson rate lambda x index is the same as rate lambda
+    on a seasonal clock, so the projection and both simulations use the
+    horizon measured in seasonal days
+    (:func:`forecasting.frequency.seasonal_days`); the fit itself and each
+    customer's history stay in calendar days.
+
+    Backtests on the demo shop (``demo_data/plant_shop_orders.csv``, orders
+    from 2024-11-01 to 2026-10-31; fitted on orders before each cut-off, MTA
+    forecasts, classic spread; error of the projected total against what the
+    already-known customers actually spent; the index sees only data before
+    the cut-off):
+
+    ====== ========== =============== ============ ============ ===============
+    window cut-off    actual revenue  error, none  error, month groups in range
+    ====== ========== =============== ============ ============ ===============
+    90 d   2025-11-15          29,962       +27.3%        +3.9%  3/5 -> 5/5
+    90 d   2026-01-01          36,308        +4.1%        +2.5%  4/5 -> 4/5
+    90 d   2026-02-15          49,312       -30.0%       -10.9%  4/6 -> 5/6
+    90 d   2026-04-01          57,693       -24.8%        -1.6%  4/6 -> 6/6
+    90 d   2026-05-15          41,038       +39.5%       +38.4%  3/7 -> 3/7
+    90 d   2026-07-01          37,728       +50.1%       +34.7%  3/7 -> 4/7
+    90 d   2026-08-03          40,616       +26.7%       +26.6%  5/8 -> 5/8
+    180 d  2025-11-15          67,051        +4.2%        +8.7%  5/5 -> 5/5
+    180 d  2026-01-01          75,016        -6.6%        +4.9%  4/5 -> 4/5
+    180 d  2026-02-15          75,704       -16.4%        -6.1%  4/6 -> 6/6
+    180 d  2026-04-01          82,452        -2.9%        +6.6%  5/6 -> 3/6
+    180 d  2026-05-05          69,781       +48.9%       +51.8%  2/7 -> 2/7
+    ====== ========== =============== ============ ============ ===============
+
+    ("groups in range": quarterly cohorts whose actual revenue fell inside
+    the 90% range for actual revenue, without -> with the index: 46 -> 52 of
+    73 in all; the interval of the expected amount held 23 and 24 of them.)
+    The 180-day windows overlap, so those five rows are not independent.
+
+    The default ``"auto"`` uses the index whenever a full year of history
+    exists, because over these cut-offs it nearly halves the typical miss
+    at 90 days (mean absolute error 28.9% -> 16.9%, better or about equal at
+    every cut-off) and leaves it about the same at 180
+    days (15.8% -> 15.6%: better at two cut-offs, worse at three, and the
+    average signed error moves from +5% to +13%). The misses that remain
+    after the busy spring (cut-offs from May to August, +27% to +52%) are
+    not seasonal: they come from customers silent for many months -- above
+    all one-time customers, whom BG/NBD treats as certain to still be active
+    -- and no seasonal index touches them. The demo's generator makes its
+    seasons as a seasonal clock, the same shape the index assumes, so its
+    gain there is a best case; on a simulated shop without seasons the
+    index shrinks to 1 and changes nothing.
 
     References
     ----------
@@ -497,6 +751,7 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     horizon = _check_horizon(horizon)
     level = _check_level(level)
     draws = _check_draws(draws)
+    seasons = _check_seasons(seasons)
     _check_orders(orders)
     by = _check_by(by, orders)
     stats = customer_statistics(orders)
@@ -504,11 +759,13 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
         as_of_ts = pd.Timestamp(stats["last_order"].max())
     else:
         as_of_ts = _parse_date(as_of, "the 'as of' date")
-    customers, cohorts, totals, fit, forecast_fit = _project(
+    customers, cohorts, totals, fit, forecast_fit, clock, season_index = _project(
         orders, stats, horizon=horizon, by=by, as_of=as_of_ts, method=method, variance=variance,
-        forecasts=forecasts, level=level, draws=draws, seed=seed)
+        forecasts=forecasts, level=level, draws=draws, seed=seed, seasons=seasons)
     return Outlook(customers=customers, cohorts=cohorts, total=totals, fit=fit, forecast_fit=forecast_fit,
-                   horizon_days=horizon, as_of=as_of_ts, by=by, level=level, draws=draws, seed=seed)
+                   horizon_days=horizon, as_of=as_of_ts, by=by, level=level, draws=draws, seed=seed,
+                   seasons="none" if season_index is None else "month", seasonal_days=float(clock),
+                   season_index=season_index)
 
 
 # --------------------------------------------------------------------------- #
@@ -538,13 +795,20 @@ class OutlookBacktest:
     cohorts : pandas.DataFrame
         One row per group, columns ``BACKTEST_COLUMNS``. ``actual_inside_interval``
         says whether the actual revenue fell inside the interval of the
-        *expected* amount; chance (which customers happen to order) is not in
-        that interval, so actual revenue often falls outside it.
+        *expected* amount (``projected_low``..``projected_high``); chance
+        (which customers happen to order) is not in that interval, so actual
+        revenue often falls outside it. ``actual_inside_revenue_range`` says
+        whether it fell inside the range for actual revenue
+        (``revenue_range_low``..``revenue_range_high``), which should happen
+        for about ``level`` of groups when the model holds.
     total : dict
         The same figures for all customers together, plus
         ``cohort_abs_error`` / ``run_rate_cohort_abs_error`` (sums over groups
-        of absolute errors) and ``new_customer_revenue`` (revenue in the window
-        from customers first seen after the cut-off; not projected).
+        of absolute errors), ``new_customer_revenue`` (revenue in the window
+        from customers first seen after the cut-off; not projected),
+        ``cohorts_inside_interval`` / ``cohorts_inside_revenue_range``
+        (counts of groups) and ``seasons`` / ``seasonal_days`` (the seasonal
+        adjustment used).
     cutoff : pandas.Timestamp
         Orders before it were used to fit; the window starts there.
     window_days : float
@@ -568,6 +832,7 @@ class OutlookBacktest:
             "total": dict(self.total),
             "cohorts": _records(self.cohorts),
             "order_frequency": self.outlook.fit.as_dict(),
+            "seasons": self.outlook.seasons,
         }
 
 
@@ -581,7 +846,7 @@ def _default_window(first, end, horizon):
 
 def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str = "quarter",
                      method: str = "mta", variance: str = "classic", level: float = 0.90,
-                     draws: int = 400, seed: int = 0) -> OutlookBacktest:
+                     draws: int = 400, seed: int = 0, seasons: str = "auto") -> OutlookBacktest:
     """Fit the outlook on orders before a cut-off and compare with what came after.
 
     Parameters
@@ -599,8 +864,10 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
     by : str, default "quarter"
         Grouping, as in :func:`project_revenue` (groups are taken from the
         orders before the cut-off).
-    method, variance, level, draws, seed
-        As in :func:`project_revenue`.
+    method, variance, level, draws, seed, seasons
+        As in :func:`project_revenue`; a seasonal index is estimated from the
+        orders before the cut-off only, and ``"auto"`` needs a full year of
+        them.
 
     Returns
     -------
@@ -621,6 +888,7 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
     """
     level = _check_level(level)
     draws = _check_draws(draws)
+    seasons = _check_seasons(seasons)
     if horizon is not None:
         horizon = _check_horizon(horizon)
     _check_orders(orders)
@@ -646,7 +914,7 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
         raise OrderDataError("no orders fall before the cut-off date", value=cutoff_ts.date(),
                              fix="Choose a later --cutoff")
     outlook = project_revenue(before, horizon=window, by=by, as_of=cutoff_ts, method=method, variance=variance,
-                              level=level, draws=draws, seed=seed)
+                              level=level, draws=draws, seed=seed, seasons=seasons)
     projection = outlook.customers
     known = pd.Index(projection["customer"])
     actual_by_customer = after.groupby("customer")["order_value"].sum()
@@ -673,6 +941,8 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
                 "projected_revenue": proj,
                 "projected_low": cohorts["projected_low"].to_numpy(),
                 "projected_high": cohorts["projected_high"].to_numpy(),
+                "revenue_range_low": cohorts["revenue_range_low"].to_numpy(),
+                "revenue_range_high": cohorts["revenue_range_high"].to_numpy(),
                 "actual_revenue": act,
                 "error": proj - act,
                 "error_pct": np.where(act > 0, 100 * (proj - act) / act, np.nan),
@@ -681,6 +951,8 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
                 "run_rate_error_pct": np.where(act > 0, 100 * (base - act) / act, np.nan),
                 "actual_inside_interval": (cohorts["projected_low"].to_numpy() <= act)
                 & (act <= cohorts["projected_high"].to_numpy()),
+                "actual_inside_revenue_range": (cohorts["revenue_range_low"].to_numpy() <= act)
+                & (act <= cohorts["revenue_range_high"].to_numpy()),
             }
         )
     total_actual = float(act.sum())
@@ -691,6 +963,8 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
         "projected_revenue": total_proj,
         "projected_low": float(outlook.total["projected_low"]),
         "projected_high": float(outlook.total["projected_high"]),
+        "revenue_range_low": float(outlook.total["revenue_range_low"]),
+        "revenue_range_high": float(outlook.total["revenue_range_high"]),
         "actual_revenue": total_actual,
         "error": total_proj - total_actual,
         "error_pct": 100 * (total_proj - total_actual) / total_actual if total_actual > 0 else None,
@@ -702,6 +976,12 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
         "new_customer_revenue": new_revenue,
         "orders_fitted": int(len(before)),
         "orders_in_window": int(len(after)),
+        "actual_inside_revenue_range": bool(outlook.total["revenue_range_low"] <= total_actual
+                                            <= outlook.total["revenue_range_high"]),
+        "cohorts_inside_interval": int(result["actual_inside_interval"].sum()),
+        "cohorts_inside_revenue_range": int(result["actual_inside_revenue_range"].sum()),
+        "seasons": outlook.seasons,
+        "seasonal_days": outlook.seasonal_days,
     }
     return OutlookBacktest(cohorts=result, total=total, cutoff=cutoff_ts, window_days=window, outlook=outlook)
 
@@ -925,7 +1205,7 @@ def tier_summary(tiered: pd.DataFrame) -> pd.DataFrame:
 _EXPORT_COLUMNS = [
     "customer", "tier", "rank", "tier_rule", "orders", "expected_next_order", "expected_low", "expected_high",
     "expected_orders", "chance_active", "projected_revenue", "projected_low", "projected_high",
-    "own_history_weight", "low_confidence", "mostly_shop_pattern", "cohort",
+    "revenue_range_low", "revenue_range_high", "own_history_weight", "low_confidence", "mostly_shop_pattern", "cohort",
 ]
 
 
@@ -963,7 +1243,7 @@ def export_tiers(tiered: pd.DataFrame, path) -> dict:
     columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
     table = tiered[columns].copy()
     for name in ("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
-                 "projected_high"):
+                 "projected_high", "revenue_range_low", "revenue_range_high"):
         if name in table.columns:
             table[name] = table[name].round(2)
     for name in ("own_history_weight", "chance_active", "expected_orders"):

@@ -11,6 +11,13 @@ External references used here:
   of the parametric bootstrap.
 - Plain pandas group-bys as the slow twins of cohort sums, actual revenue and
   the run-rate baseline.
+- Moments of the lognormal distribution (mean exp(mu + s^2/2), variance
+  (exp(s^2) - 1) exp(2 mu + s^2)) and conjugate normal updating of a lognormal
+  level (e.g. Gelman et al., Bayesian Data Analysis, 3rd ed., section 2.5 --
+  from memory) for the order values of shops simulated with known spend.
+- Shops simulated past the cut-off from the BG/NBD story: the revenue that
+  actually came in, against which the range for actual revenue must hold its
+  stated coverage.
 - OWASP "CSV Injection" guidance for the formula-safe exports.
 """
 
@@ -29,12 +36,20 @@ from scipy import stats as sps
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.frequency import expected_orders_ahead, fit_order_frequency, repeat_history
+from forecasting.frequency import (
+    expected_orders_ahead,
+    fit_order_frequency,
+    month_of_year_index,
+    repeat_history,
+    seasonal_days,
+)
 from forecasting.outlook import (
     BACKTEST_COLUMNS,
     COHORT_COLUMNS,
     OUTLOOK_COLUMNS,
     TIER_SUMMARY_COLUMNS,
+    _order_value_model,
+    _spend_draws,
     _value_draws,
     assign_tiers,
     backtest_outlook,
@@ -147,6 +162,45 @@ def stand_in_forecasts(orders, *, level=0.90, value=None):
     return table
 
 
+# Spend of the simulated shops (simulate_orders): log level ~ N(log 50, 0.5^2) per
+# customer, log order value = log level + N(0, 0.4^2).
+LEVEL_MEAN, LEVEL_SD, ORDER_SD = math.log(50), 0.5, 0.4
+
+
+def exact_forecasts(orders, *, next_level=0.80):
+    """Next-order forecasts that know how the simulated shop spends.
+
+    Conjugate normal updating of each customer's log level from their log order
+    values gives the posterior N(m, v); the next order is then lognormal with
+    log-mean m and log-variance v + ORDER_SD^2, so its mean is
+    exp(m + (v + ORDER_SD^2) / 2) and its 80% range exp(m +- z sqrt(v + ORDER_SD^2)).
+    The table has the columns and fit entries that forecast_customers provides.
+    """
+    stats = customer_statistics(orders)
+    n = stats["orders"].to_numpy().astype(float)
+    log_sum = np.log(orders["order_value"]).groupby(orders["customer"]).sum().reindex(stats.index).to_numpy()
+    precision = 1 / LEVEL_SD ** 2 + n / ORDER_SD ** 2
+    centre = (LEVEL_MEAN / LEVEL_SD ** 2 + log_sum / ORDER_SD ** 2) / precision
+    spread = np.sqrt(1 / precision + ORDER_SD ** 2)
+    z = sps.norm.ppf(0.5 + next_level / 2)
+    half = sps.norm.ppf(0.95) / np.sqrt(precision)
+    table = pd.DataFrame({
+        "customer": stats.index.to_numpy(dtype=object),
+        "orders": n.astype(np.int64),
+        "average_order_value": stats["mean"].to_numpy(),
+        "expected_next_order": np.exp(centre + spread ** 2 / 2),
+        "own_history_weight": n / (n + 2.0),
+        "expected_low": np.exp(centre + ORDER_SD ** 2 / 2 - half),
+        "expected_high": np.exp(centre + ORDER_SD ** 2 / 2 + half),
+        "next_order_low": np.exp(centre - z * spread),
+        "next_order_high": np.exp(centre + z * spread),
+        "low_confidence": n == 1,
+    })
+    table.attrs["fit"] = {"level": 0.90, "next_level": next_level, "sigma2_log": ORDER_SD ** 2,
+                          "method": "exact", "variance": "log"}
+    return table
+
+
 @pytest.fixture(scope="module")
 def shop_orders():
     return simulate_orders(SHOP, 1500, seed=7)
@@ -155,7 +209,7 @@ def shop_orders():
 class TestProjectRevenue:
     def test_columns_and_customer_figures(self, shop_orders):
         forecasts = stand_in_forecasts(shop_orders)
-        outlook = project_revenue(shop_orders, horizon=90, forecasts=forecasts, draws=100)
+        outlook = project_revenue(shop_orders, horizon=90, forecasts=forecasts, draws=100, seasons="none")
         table = outlook.customers
         assert list(table.columns) == OUTLOOK_COLUMNS
         assert list(outlook.cohorts.columns) == COHORT_COLUMNS
@@ -218,7 +272,7 @@ class TestProjectRevenue:
         x, t_x, age = (history[c].to_numpy() for c in ("repeat_orders", "days_to_last_order", "days_known"))
         orders = orders_from_histories(x, t_x, age)
         forecasts = stand_in_forecasts(orders, value=1.0)
-        outlook = project_revenue(orders, horizon=180, forecasts=forecasts, draws=3000, seed=1)
+        outlook = project_revenue(orders, horizon=180, forecasts=forecasts, draws=3000, seed=1, seasons="none")
         fit = outlook.fit
         centre = np.log(fit.params)
         stats = customer_statistics(orders)
@@ -249,7 +303,7 @@ class TestProjectRevenue:
             truth = expected_orders_ahead(SHOP, hist["repeat_orders"], hist["days_to_last_order"],
                                           hist["days_known"], 120.0).sum()
             outlook = project_revenue(orders, horizon=120, forecasts=stand_in_forecasts(orders, value=1.0),
-                                      draws=150, seed=seed)
+                                      draws=150, seed=seed, seasons="none")
             inside += outlook.total["projected_low"] <= truth <= outlook.total["projected_high"]
         assert inside >= 23, inside
 
@@ -329,6 +383,177 @@ class TestValueDraws:
         for k in (0, 1, 3):
             assert abs(draws[:, k].mean() - mean[k]) < 4 * sd[k] / math.sqrt(200_000)
             assert draws[:, k].std() == pytest.approx(sd[k], rel=0.03)
+
+
+class TestOrderValueModel:
+    def test_from_the_next_order_range_and_the_shops_spread(self):
+        # The shop's own forecasts: the lognormal's total log-variance is read off the
+        # 80% next-order range, split into the shop's per-order sigma2_log and the rest;
+        # its mean (lognormal moments) is the expected next order.
+        forecasts_module = pytest.importorskip("forecasting.forecasts")
+        orders = simulate_orders(SHOP, 300, seed=3)
+        stats = customer_statistics(orders)
+        table = forecasts_module.forecast_customers(stats, method="mta", variance="classic", orders=orders)
+        fit = table.attrs["fit"]
+        centre, level_sd, order_sd = _order_value_model(table, fit, stats)
+        total = level_sd ** 2 + order_sd ** 2
+        z = sps.norm.ppf(0.5 + fit["next_level"] / 2)
+        width = np.log(table["next_order_high"] / table["next_order_low"]).to_numpy()
+        np.testing.assert_allclose(np.sqrt(total), width / (2 * z), rtol=1e-12)
+        np.testing.assert_allclose(order_sd ** 2, fit["sigma2_log"], rtol=1e-12)
+        np.testing.assert_allclose(np.exp(centre + total / 2), table["expected_next_order"], rtol=1e-12)
+        # More orders, less unknown about the customer's level.
+        many, one = table["orders"].to_numpy() >= 5, table["orders"].to_numpy() == 1
+        assert level_sd[many].max() < level_sd[one].min()
+
+    def test_exact_forecasts_give_the_true_predictive(self):
+        orders = simulate_orders(SHOP, 200, seed=4)
+        table = exact_forecasts(orders)
+        centre, level_sd, order_sd = _order_value_model(table, table.attrs["fit"], customer_statistics(orders))
+        np.testing.assert_allclose(order_sd, ORDER_SD, rtol=1e-12)
+        n = table["orders"].to_numpy()
+        np.testing.assert_allclose(level_sd ** 2, 1 / (1 / LEVEL_SD ** 2 + n / ORDER_SD ** 2), rtol=1e-9)
+
+    def test_without_a_range_the_pooled_log_spread(self):
+        # Slow twin: pooled within-customer variance of log order values, by pandas.
+        orders = simulate_orders(SHOP, 200, seed=5)
+        stats = customer_statistics(orders)
+        table = stand_in_forecasts(orders)
+        centre, level_sd, order_sd = _order_value_model(table, {}, stats)
+        logs = np.log(orders["order_value"])
+        deviations = logs - logs.groupby(orders["customer"]).transform("mean")
+        pooled = (deviations ** 2).sum() / (len(orders) - orders["customer"].nunique())
+        np.testing.assert_allclose(order_sd ** 2, pooled, rtol=1e-9)
+        assert (level_sd == 0).all()
+        np.testing.assert_allclose(np.exp(centre + pooled / 2), table["expected_next_order"], rtol=1e-12)
+
+
+class TestSpendDraws:
+    def test_equals_a_loop_over_orders(self, monkeypatch):
+        # Slow twin: walk the cells in order, one normal draw per order from the same
+        # stream; blocks of 7 orders must give the same sums as one block.
+        import forecasting.outlook as outlook_module
+
+        counts = np.array([[0, 3, 1, 12], [2, 0, 5, 0], [1, 1, 0, 30]])
+        sd = np.array([0.2, 0.5, 0.0, 1.1])
+        rng = np.random.default_rng(4)
+        slow = np.zeros(counts.shape)
+        for d in range(counts.shape[0]):
+            for c in range(counts.shape[1]):
+                slow[d, c] = np.exp(sd[c] * rng.standard_normal(counts[d, c])).sum()
+        np.testing.assert_allclose(_spend_draws(counts, sd, np.random.default_rng(4)), slow, rtol=1e-12)
+        monkeypatch.setattr(outlook_module, "_ORDERS_PER_BLOCK", 7)
+        np.testing.assert_allclose(_spend_draws(counts, sd, np.random.default_rng(4)), slow, rtol=1e-12)
+
+    def test_lognormal_moments(self):
+        # Reference: a sum of n lognormal(0, s^2) values has mean n exp(s^2/2) and
+        # variance n (exp(s^2) - 1) exp(s^2). Tolerance: 4 standard errors / 5% on the variance.
+        counts = np.full((200_000, 2), 3)
+        sd = np.array([0.4, 0.9])
+        sums = _spend_draws(counts, sd, np.random.default_rng(9))
+        mean = 3 * np.exp(sd ** 2 / 2)
+        var = 3 * (np.exp(sd ** 2) - 1) * np.exp(sd ** 2)
+        assert np.all(np.abs(sums.mean(axis=0) - mean) < 4 * np.sqrt(var / len(sums)))
+        np.testing.assert_allclose(sums.var(axis=0), var, rtol=0.05)
+
+
+class TestRangeForActualRevenue:
+    def test_covers_simulated_revenue_at_its_stated_rate(self):
+        # Shops simulated from the BG/NBD story for 730 + 120 days (simulate_orders);
+        # fitted on the first 730, with next-order forecasts that know the shop's spend
+        # (exact_forecasts), so what is tested is the order-count and value simulation
+        # and the parameter draws. 80% ranges, 24 shops x 9 quarterly cohorts = 216
+        # cohort ranges: the share holding the actual cohort revenue must lie within
+        # 0.80 +- 0.08 (about 3 binomial standard errors; an offline run of 200 shops
+        # gave 0.80), and the range of the expected amount must hold far fewer (it
+        # leaves out chance; offline 0.22).
+        inside = inside_expected = ranges = totals_inside = 0
+        for seed in range(24):
+            orders = simulate_orders(SHOP, 600, seed=300 + seed, days=850)
+            cut = START + pd.Timedelta(days=730)
+            before, after = orders[orders["order_date"] < cut], orders[orders["order_date"] >= cut]
+            outlook = project_revenue(before, horizon=120, as_of=cut, forecasts=exact_forecasts(before),
+                                      level=0.80, draws=150, seed=seed, seasons="none")
+            groups = outlook.customers.set_index("customer")["cohort"]
+            actual_by_customer = after.groupby("customer")["order_value"].sum().reindex(groups.index, fill_value=0)
+            actual = actual_by_customer.groupby(groups).sum().reindex(outlook.cohorts["cohort"]).to_numpy()
+            cohorts = outlook.cohorts
+            inside += int(((cohorts["revenue_range_low"] <= actual) & (actual <= cohorts["revenue_range_high"])).sum())
+            inside_expected += int(((cohorts["projected_low"] <= actual) & (actual <= cohorts["projected_high"])).sum())
+            ranges += len(cohorts)
+            total = actual_by_customer.sum()
+            totals_inside += outlook.total["revenue_range_low"] <= total <= outlook.total["revenue_range_high"]
+        assert abs(inside / ranges - 0.80) <= 0.08, (inside, ranges)
+        assert inside_expected / ranges < 0.5
+        # Totals: 24 shops, expected 19.2 inside (binomial sd 2): accept 14 to 23.
+        assert 14 <= totals_inside <= 23, totals_inside
+
+    def test_wider_than_the_expected_amount_and_seeded(self, shop_orders):
+        forecasts = exact_forecasts(shop_orders)
+        one = project_revenue(shop_orders, horizon=90, forecasts=forecasts, draws=100, seed=2)
+        two = project_revenue(shop_orders, horizon=90, forecasts=forecasts, draws=100, seed=2)
+        pd.testing.assert_frame_equal(one.cohorts, two.cohorts)
+        other = project_revenue(shop_orders, horizon=90, forecasts=forecasts, draws=100, seed=3)
+        assert other.total["revenue_range_low"] != one.total["revenue_range_low"]
+        cohorts = one.cohorts
+        assert (cohorts["revenue_range_low"] < cohorts["projected_low"]).all()
+        assert (cohorts["revenue_range_high"] > cohorts["projected_high"]).all()
+        # One customer over 90 days: most order nothing, so the range starts at zero.
+        assert (one.customers["revenue_range_low"] == 0).mean() > 0.5
+        assert (one.customers["revenue_range_high"] >= 0).all()
+
+    def test_memory_blocks_do_not_change_the_answer(self, shop_orders, monkeypatch):
+        # Tiny blocks of customers and of orders give the same range up to Monte Carlo
+        # noise (different streams; 400 draws: within 4%).
+        import forecasting.outlook as outlook_module
+
+        forecasts = exact_forecasts(shop_orders)
+        whole = project_revenue(shop_orders, horizon=60, forecasts=forecasts, draws=400, seasons="none")
+        monkeypatch.setattr(outlook_module, "_SIMULATION_CELLS_PER_CHUNK", 4000)
+        monkeypatch.setattr(outlook_module, "_ORDERS_PER_BLOCK", 500)
+        blocked = project_revenue(shop_orders, horizon=60, forecasts=forecasts, draws=400, seasons="none")
+        for end in ("revenue_range_low", "revenue_range_high"):
+            assert blocked.total[end] == pytest.approx(whole.total[end], rel=0.04)
+
+
+class TestSeasonalAdjustment:
+    def test_month_index_from_the_orders_on_the_seasonal_clock(self, shop_orders):
+        # Slow twin from the public pieces: the plain fit's expected orders over the
+        # horizon measured in seasonal days.
+        forecasts = stand_in_forecasts(shop_orders)
+        outlook = project_revenue(shop_orders, horizon=75, forecasts=forecasts, draws=30, seasons="month")
+        stats = customer_statistics(shop_orders)
+        history = repeat_history(stats)
+        fit = fit_order_frequency(history)
+        index = month_of_year_index(shop_orders, fit)
+        pd.testing.assert_frame_equal(outlook.season_index, index)
+        clock = seasonal_days(outlook.as_of, 75, index["index"])
+        assert outlook.seasonal_days == pytest.approx(clock, rel=1e-12)
+        np.testing.assert_allclose(outlook.customers["expected_orders"], fit.expected_orders(history, clock),
+                                   rtol=1e-12)
+        assert outlook.summary()["seasons"] == "month"
+
+    def test_auto_needs_a_full_year(self, shop_orders):
+        forecasts = stand_in_forecasts(shop_orders)
+        auto = project_revenue(shop_orders, horizon=30, forecasts=forecasts, draws=20)
+        assert auto.seasons == "month"
+        young = shop_orders[shop_orders["order_date"] < START + pd.Timedelta(days=300)]
+        short = project_revenue(young, horizon=30, forecasts=stand_in_forecasts(young), draws=20)
+        assert short.seasons == "none" and short.season_index is None and short.seasonal_days == 30
+        with pytest.raises(OrderDataError, match="full year"):
+            project_revenue(young, horizon=30, forecasts=stand_in_forecasts(young), draws=20, seasons="month")
+        with pytest.raises(OrderDataError, match="--seasons"):
+            project_revenue(young, horizon=30, forecasts=stand_in_forecasts(young), draws=20, seasons="weekly")
+
+    def test_backtest_index_sees_only_orders_before_the_cutoff(self, shop_orders):
+        result = backtest_outlook(shop_orders, horizon=60, cutoff="2026-04-01", draws=20, seasons="month")
+        before = shop_orders[shop_orders["order_date"] < pd.Timestamp("2026-04-01")]
+        fit = fit_order_frequency(repeat_history(customer_statistics(before), as_of="2026-04-01"))
+        pd.testing.assert_frame_equal(result.outlook.season_index,
+                                      month_of_year_index(before, fit, as_of="2026-04-01"))
+        assert result.total["seasons"] == "month"
+        plain = backtest_outlook(shop_orders, horizon=60, cutoff="2026-04-01", draws=20, seasons="none")
+        assert plain.total["seasons"] == "none" and plain.total["seasonal_days"] == 60
 
 
 class TestBacktestOutlook:
@@ -586,14 +811,19 @@ class TestOutlookCommand:
         assert done.returncode == 0, done.stderr
         payload = json.loads(done.stdout)
         assert set(payload) == {"customers", "horizon_days", "as_of", "by", "level", "total", "cohorts",
-                                "order_frequency", "method", "variance", "backtest"}
+                                "order_frequency", "method", "variance", "backtest", "seasons", "seasonal_days",
+                                "season_index"}
+        assert payload["seasons"] == "month" and len(payload["season_index"]) == 12
         assert payload["horizon_days"] == 90
         assert payload["customers"] == sum(c["customers"] for c in payload["cohorts"])
         assert set(payload["cohorts"][0]) == set(COHORT_COLUMNS)
-        assert set(payload["backtest"]) == {"cutoff", "window_days", "by", "total", "cohorts", "order_frequency"}
+        assert set(payload["backtest"]) == {"cutoff", "window_days", "by", "total", "cohorts", "order_frequency",
+                                            "seasons"}
         assert set(payload["backtest"]["cohorts"][0]) == set(BACKTEST_COLUMNS)
         total = payload["total"]
         assert total["projected_low"] <= total["projected_revenue"] <= total["projected_high"]
+        assert total["revenue_range_low"] < total["projected_low"] < total["projected_high"] \
+            < total["revenue_range_high"]
 
     def test_by_channel_and_cutoff(self, shop_file):
         done = run_cli("outlook", str(shop_file), "--horizon", "60", "--by", "Channel", "--cutoff", "2026-07-01",
@@ -608,10 +838,19 @@ class TestOutlookCommand:
         done = run_cli("outlook", str(shop_file), "--horizon", "90", "--by", "month")
         assert done.returncode == 0, done.stderr
         assert "Projected revenue" in done.stdout and "Backtest" in done.stdout
+        assert "what may come in" in done.stdout and "Seasons:" in done.stdout
+
+    def test_seasons_off(self, shop_file):
+        done = run_cli("outlook", str(shop_file), "--horizon", "90", "--seasons", "none", "--no-backtest", "--json")
+        assert done.returncode == 0, done.stderr
+        payload = json.loads(done.stdout)
+        assert payload["seasons"] == "none" and payload["season_index"] is None
+        assert payload["seasonal_days"] == 90
 
     @pytest.mark.parametrize("arguments, message",
                              [(["--horizon", "-3"], "--horizon"), (["--horizon", "30", "--cutoff", "someday"],
-                                                                    "--cutoff")])
+                                                                    "--cutoff"),
+                              (["--horizon", "30", "--seasons", "weekly"], "--seasons")])
     def test_problems_are_messages(self, shop_file, arguments, message):
         done = run_cli("outlook", str(shop_file), *arguments)
         assert done.returncode == 2
@@ -631,7 +870,7 @@ class TestTiersCommand:
                        "--json")
         assert done.returncode == 0, done.stderr
         payload = json.loads(done.stdout)
-        assert set(payload) == {"customers", "rank", "horizon_days", "method", "variance", "tiers",
+        assert set(payload) == {"customers", "rank", "horizon_days", "seasons", "method", "variance", "tiers",
                                 "tiers_written", "files"}
         assert [t["tier"] for t in payload["tiers"]] == ["top customers", "regulars", "occasional"]
         assert set(payload["tiers"][0]) == set(TIER_SUMMARY_COLUMNS)

@@ -1,7 +1,7 @@
 """``outlook``: projected revenue per cohort over a horizon, checked by a backtest.
 
 ``python -m forecasting outlook FILE --horizon DAYS [--by cohort|month|quarter|COLUMN]
-[--cutoff DATE] [--json]``
+[--cutoff DATE] [--seasons auto|month|none] [--json]``
 """
 
 from __future__ import annotations
@@ -13,8 +13,8 @@ from ..errors import OrderDataError
 from ..exports import write_csv
 from ..forecasts import METHODS
 from ..variance import VARIANCE_MODELS
-from ..outlook import COHORT_PERIODS, _check_draws, _check_horizon, _check_level, _parse_date, backtest_outlook, \
-    project_revenue, require_projection
+from ..outlook import COHORT_PERIODS, SEASONS, _check_draws, _check_horizon, _check_level, _parse_date, \
+    backtest_outlook, project_revenue, require_projection
 
 BY_COHORT = "cohort"
 
@@ -31,6 +31,9 @@ def add_arguments(parser) -> None:
                         help="backtest: fit on orders before this date and compare with what came after "
                              "(default: the horizon, or the last 20%% of the time span)")
     parser.add_argument("--no-backtest", action="store_true", help="skip the backtest")
+    parser.add_argument("--seasons", choices=SEASONS, default="auto",
+                        help="adjust the order rate by month of the year: auto (default: when a full year of "
+                             "orders exists), month (always; needs a full year) or none")
     parser.add_argument("--method", default="mta", metavar="NAME",
                         help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
     parser.add_argument("--variance", default="classic", metavar="NAME",
@@ -85,11 +88,13 @@ def run(args) -> int:
     by = grouping_from_args(args)
     orders = load_from_args(args).orders
     outlook = require_projection(project_revenue(orders, horizon=horizon, by=by, method=args.method,
-                                                 variance=args.variance, level=level, draws=draws, seed=seed))
+                                                 variance=args.variance, level=level, draws=draws, seed=seed,
+                                                 seasons=args.seasons))
     backtest = None
     if not args.no_backtest:
         backtest = backtest_outlook(orders, horizon=horizon, cutoff=args.cutoff, by=by, method=args.method,
-                                    variance=args.variance, level=level, draws=draws, seed=seed)
+                                    variance=args.variance, level=level, draws=draws, seed=seed,
+                                    seasons=args.seasons)
         require_projection(backtest.outlook, what="the backtest")
     if args.out:
         write_csv(outlook.customers, args.out)
@@ -101,15 +106,24 @@ def run(args) -> int:
 
     total = outlook.total
     print(f"Projected revenue over the next {horizon:g} days from {outlook.as_of:%Y-%m-%d}, "
-          f"{total['customers']} customers ({100 * level:g}% interval of the expected amount):")
-    print(f"  {'group':<14} {'customers':>9} {'orders':>8} {'projected':>12} {'low':>12} {'high':>12} {'share':>6}")
+          f"{total['customers']} customers ({100 * level:g}% ranges):")
+    print(f"  {'':<14} {'':>9} {'':>8} {'':>12} {'expected amount':^25} {'what may come in':^25}")
+    print(f"  {'group':<14} {'customers':>9} {'orders':>8} {'projected':>12} {'low':>12} {'high':>12} "
+          f"{'low':>12} {'high':>12} {'share':>6}")
     for row in outlook.cohorts.itertuples(index=False):
         print(f"  {str(row.cohort):<14} {row.customers:>9} {row.expected_orders:>8.0f} "
               f"{_money(row.projected_revenue):>12} {_money(row.projected_low):>12} "
-              f"{_money(row.projected_high):>12} {100 * row.share_of_projected_revenue:>5.0f}%")
+              f"{_money(row.projected_high):>12} {_money(row.revenue_range_low):>12} "
+              f"{_money(row.revenue_range_high):>12} {100 * row.share_of_projected_revenue:>5.0f}%")
     print(f"  {'all':<14} {total['customers']:>9} {total['expected_orders']:>8.0f} "
           f"{_money(total['projected_revenue']):>12} {_money(total['projected_low']):>12} "
-          f"{_money(total['projected_high']):>12}")
+          f"{_money(total['projected_high']):>12} {_money(total['revenue_range_low']):>12} "
+          f"{_money(total['revenue_range_high']):>12}")
+    print("'expected amount' is where the average outcome lies; 'what may come in' also includes the luck of "
+          "which customers order and how much.")
+    if outlook.seasons == "month":
+        print(f"Seasons: the next {horizon:g} days count as {outlook.seasonal_days:.0f} average days "
+              "(month-of-year pattern of repeat orders).")
     fit = outlook.fit.as_dict()
     print(f"An active customer orders about {fit['orders_per_year_active']:.1f} times a year; after each repeat "
           f"order about {100 * fit['chance_stop_after_order']:.0f}% stop for good (BG/NBD fit).")
@@ -120,14 +134,20 @@ def run(args) -> int:
         print()
         print(f"Backtest: fitted on orders before {backtest.cutoff:%Y-%m-%d}, compared with the next "
               f"{backtest.window_days:g} days ({bt['customers']} customers known by then):")
-        print(f"  {'group':<14} {'projected':>12} {'actual':>12} {'error':>7} {'run rate':>12} {'error':>7}")
+        print(f"  {'group':<14} {'projected':>12} {'could be from':>14} {'to':>12} {'actual':>12} {'error':>7} "
+              f"{'run rate':>12} {'error':>7}")
         for row in backtest.cohorts.itertuples(index=False):
-            print(f"  {str(row.cohort):<14} {_money(row.projected_revenue):>12} {_money(row.actual_revenue):>12} "
+            print(f"  {str(row.cohort):<14} {_money(row.projected_revenue):>12} {_money(row.revenue_range_low):>14} "
+                  f"{_money(row.revenue_range_high):>12} {_money(row.actual_revenue):>12} "
                   f"{_percent(row.error_pct):>7} {_money(row.run_rate_revenue):>12} "
                   f"{_percent(row.run_rate_error_pct):>7}")
-        print(f"  {'all':<14} {_money(bt['projected_revenue']):>12} {_money(bt['actual_revenue']):>12} "
+        print(f"  {'all':<14} {_money(bt['projected_revenue']):>12} {_money(bt['revenue_range_low']):>14} "
+              f"{_money(bt['revenue_range_high']):>12} {_money(bt['actual_revenue']):>12} "
               f"{_percent(bt['error_pct']):>7} {_money(bt['run_rate_revenue']):>12} "
               f"{_percent(bt['run_rate_error_pct']):>7}")
+        print(f"  actual revenue fell inside the {100 * level:g}% range of what may come in for "
+              f"{bt['cohorts_inside_revenue_range']} of {len(backtest.cohorts)} groups "
+              f"(inside the range of the expected amount: {bt['cohorts_inside_interval']}).")
         print(f"  summed cohort misses: outlook {_money(bt['cohort_abs_error'])}, "
               f"run rate {_money(bt['run_rate_cohort_abs_error'])}; "
               f"new customers in the window brought {_money(bt['new_customer_revenue'])} (not projected).")

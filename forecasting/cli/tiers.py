@@ -1,7 +1,7 @@
 """``tiers``: value tiers of customers, written as CSV lists.
 
 ``python -m forecasting tiers FILE [--rank value|revenue] [--quantiles 0.1,0.3 | --thresholds 50,200]
-[--horizon DAYS] --out tiers.csv [--json]``
+[--horizon DAYS] [--seasons auto|month|none] --out tiers.csv [--json]``
 """
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ import math
 from . import EXIT_OK, add_column_options, load_from_args, print_json
 from ..forecasts import METHODS
 from ..variance import VARIANCE_MODELS
-from ..outlook import RANK_BY, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
+from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
     project_revenue, require_projection, tier_summary
 
 DEFAULT_HORIZON_DAYS = 365
@@ -30,6 +30,9 @@ def add_arguments(parser) -> None:
                            "under 50")
     parser.add_argument("--horizon", default=str(DEFAULT_HORIZON_DAYS), metavar="DAYS",
                         help=f"days ahead for projected revenue (default {DEFAULT_HORIZON_DAYS})")
+    parser.add_argument("--seasons", choices=SEASONS, default="auto",
+                        help="adjust projected revenue by month of the year: auto (default: when a full year of "
+                             "orders exists), month or none")
     parser.add_argument("--method", default="mta", metavar="NAME",
                         help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
     parser.add_argument("--variance", default="classic", metavar="NAME",
@@ -43,7 +46,8 @@ def run(args) -> int:
     horizon = _check_horizon(args.horizon)
     _check_tier_options(args.rank, args.quantiles, args.thresholds, None)
     orders = load_from_args(args).orders
-    outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance)
+    outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance,
+                              seasons=args.seasons)
     if args.rank == "revenue":
         require_projection(outlook, what="projected revenue")
     tiered = assign_tiers(outlook.customers, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds)
@@ -54,6 +58,7 @@ def run(args) -> int:
             "customers": int(len(tiered)),
             "rank": args.rank,
             "horizon_days": horizon,
+            "seasons": outlook.seasons,
             "method": outlook.forecast_fit.get("method"),
             "variance": outlook.forecast_fit.get("variance"),
             "tiers": _records(summary),
