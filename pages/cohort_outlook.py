@@ -61,19 +61,36 @@ if not math.isfinite(float(total["projected_revenue"])):
 cells = st.columns(4)
 cells[0].metric(f"Projected revenue, from {projection.as_of:%d %b %Y}",
                 words.money(total["projected_revenue"], symbol))
-cells[1].metric("Likely range of that amount",
-                f"{words.money(total['projected_low'], symbol)} to {words.money(total['projected_high'], symbol)}",
-                help=f"{projection.level:.0%} range of the expected amount.")
+cells[1].metric("What may actually come in",
+                f"{words.money(total['revenue_range_low'], symbol)} to "
+                f"{words.money(total['revenue_range_high'], symbol)}",
+                help=f"{projection.level:.0%} range for the revenue that will actually come in: it includes the "
+                     "luck of which customers order and how much, as well as what the data leave unknown.")
 cells[2].metric("Orders expected", f"{total['expected_orders']:,.0f}")
 cells[3].metric("Customers", f"{int(total['customers']):,}")
 st.markdown(f"An active customer orders about **{frequency['orders_per_year_active']:.1f} times a year**, and after "
             f"each repeat order about **{frequency['chance_stop_after_order']:.0%}** stop for good (order-frequency "
             "model BG/NBD). Only customers you already have are counted: new customers are not included.")
+notes = [f"The average outcome itself is known to within {words.money(total['projected_low'], symbol)} to "
+         f"{words.money(total['projected_high'], symbol)} ({projection.level:.0%} range of the expected amount)."]
+if projection.seasons == "month":
+    notes.append(f"Adjusted for the time of year: from the months' repeat orders so far, the next {horizon} days "
+                 f"count as {projection.seasonal_days:.0f} average days.")
+else:
+    notes.append("Not adjusted for the time of year (that needs a full year of orders).")
 if frequency.get("notes"):
-    st.caption(frequency["notes"])
+    notes.append(frequency["notes"])
+st.caption(" ".join(notes))
 
-st.plotly_chart(charts.cohort_projection(projection.cohorts, symbol=symbol,
-                                         title=f"Projected revenue by {groupings[by]}",
+
+def with_actual_range(table):
+    """The chart's whiskers show the range for what may actually come in."""
+    return table.assign(projected_low=table["revenue_range_low"], projected_high=table["revenue_range_high"])
+
+
+st.plotly_chart(charts.cohort_projection(with_actual_range(projection.cohorts), symbol=symbol,
+                                         title=f"Projected revenue by {groupings[by]} "
+                                               f"(whiskers: {projection.level:.0%} range of what may come in)",
                                          grouped_by=groupings[by]),
                 key="cohort_chart", theme=None, config={"displaylogo": False})
 
@@ -83,9 +100,10 @@ if not past.ok:
 else:
     check = past.value
     bt = check.total
-    st.plotly_chart(charts.cohort_backtest(check.cohorts, symbol=symbol,
-                                           title=f"Made on {check.cutoff:%d %b %Y}: projected against actual, "
-                                                 f"{check.window_days:.0f} days", grouped_by=groupings[by]),
+    st.plotly_chart(charts.cohort_backtest(with_actual_range(check.cohorts), symbol=symbol,
+                                           title=f"Made on {check.cutoff:%d %b %Y}: projected (with the range of "
+                                                 f"what may come in) against actual, {check.window_days:.0f} days",
+                                           grouped_by=groupings[by]),
                     key="cohort_backtest_chart", theme=None, config={"displaylogo": False})
     sentences = [f"Made from the orders before {check.cutoff:%d %B %Y}, the outlook projected "
                  f"{words.money(bt['projected_revenue'], symbol)} from the {bt['customers']:,} customers of the "
@@ -103,10 +121,11 @@ else:
                          f"{words.money(bt['new_customer_revenue'], symbol)}, which no outlook of existing "
                          "customers includes.")
     st.markdown(" ".join(sentences))
-    inside = int(check.cohorts["actual_inside_interval"].sum())
-    st.caption(f"The actual amount fell inside the projected range for {inside} of {len(check.cohorts)} groups. "
-               "The range covers the uncertainty of the expected amount, not the luck of which customers "
-               "happen to order, so actual revenue often lands outside it.")
+    st.caption(f"The actual amount fell inside the {check.outlook.level:.0%} range of what may come in (the "
+               f"whiskers) for {bt['cohorts_inside_revenue_range']} of {len(check.cohorts)} groups, and inside the "
+               f"narrower range of the expected amount for {bt['cohorts_inside_interval']}. When the actual amount "
+               "misses the wider range for most groups on the same side, the projection itself is off, not "
+               "just unlucky.")
 
 with st.expander("Table and download"):
     st.dataframe(projection.cohorts, hide_index=True, key="cohort_table",
@@ -115,8 +134,10 @@ with st.expander("Table and download"):
                      "customers": st.column_config.NumberColumn("Customers", format="%d"),
                      "expected_orders": st.column_config.NumberColumn("Orders expected", format="%.0f"),
                      "projected_revenue": st.column_config.NumberColumn("Projected", format=money_format),
-                     "projected_low": st.column_config.NumberColumn("From", format=money_format),
-                     "projected_high": st.column_config.NumberColumn("To", format=money_format),
+                     "projected_low": st.column_config.NumberColumn("Expected amount from", format=money_format),
+                     "projected_high": st.column_config.NumberColumn("Expected amount to", format=money_format),
+                     "revenue_range_low": st.column_config.NumberColumn("May come in from", format=money_format),
+                     "revenue_range_high": st.column_config.NumberColumn("May come in to", format=money_format),
                      "share_of_projected_revenue": st.column_config.NumberColumn("Share", format="percent"),
                  })
     st.download_button("Download the projection for every customer (CSV)", data=csv_text(projection.customers),
