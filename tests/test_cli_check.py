@@ -55,3 +55,23 @@ class TestPipes:
             stderr = process.stderr.read().decode()
             process.wait(timeout=120)
         assert "Traceback" not in stderr
+
+
+class TestProgress:
+    def test_shown_at_a_terminal_only(self):
+        import io
+
+        from forecasting.cli import Progress
+
+        class Terminal(io.StringIO):
+            def isatty(self):
+                return True
+
+        terminal, captured = Terminal(), io.StringIO()
+        for stream in (terminal, captured):
+            progress = Progress(2, stream=stream)
+            progress.step("reading")
+            progress.step("fitting")
+            progress.finish()
+        assert "2/2 fitting" in terminal.getvalue() and "done in" in terminal.getvalue()
+        assert captured.getvalue() == ""

@@ -15,6 +15,7 @@ import json
 import logging
 import os
 import sys
+import time
 
 from ..errors import OrderDataError
 from ..reading import DATE_ORDERS, ReadResult, read_orders
@@ -94,6 +95,32 @@ def load_statistics_from_args(args: argparse.Namespace):
         args.file, engine=args.engine, memory_limit=args.memory_limit, temp_directory=args.temp_directory,
         threads=args.threads, scheduler=args.scheduler, **_column_options(args))
     return stats, account, None
+
+
+class Progress:
+    """Step-by-step progress on stderr for long commands, shown only to a person at a terminal.
+
+    Scripts that read stdout (``--json``) or capture stderr see nothing of it.
+    """
+
+    def __init__(self, steps: int, *, stream=None):
+        self.steps = steps
+        self.done = 0
+        self.stream = stream if stream is not None else sys.stderr
+        self.enabled = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.started = time.perf_counter()
+
+    def step(self, what: str) -> None:
+        self.done += 1
+        if self.enabled:
+            elapsed = time.perf_counter() - self.started
+            bar = "#" * self.done + "." * max(0, self.steps - self.done)
+            print(f"\r[{bar}] {self.done}/{self.steps} {what} ({elapsed:.0f} s)\033[K", end="",
+                  file=self.stream, flush=True)
+
+    def finish(self) -> None:
+        if self.enabled:
+            print(f"\r\033[Kdone in {time.perf_counter() - self.started:.1f} s", file=self.stream, flush=True)
 
 
 def print_json(payload) -> None:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, _column_options, add_column_options, add_engine_options, load_from_args, print_json
+from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_from_args, print_json
 from ..errors import OrderDataError
 from ..evaluation import evaluate_methods
 
@@ -62,9 +62,13 @@ def run(args) -> int:
         raise OrderDataError("--bootstrap must be 0 or more", value=args.bootstrap)
     if args.engine != "pandas":
         return _run_on_cluster(args)
+    progress = Progress(2)
+    progress.step(f"reading {args.file}")
     result = load_from_args(args)
+    progress.step(f"holding out {len(result.orders):,} orders one at a time, backtest, bootstrap")
     found = evaluate_methods(result.orders, methods=args.methods, variances=args.variances,
                              cutoff=args.cutoff, bootstrap=args.bootstrap, seed=args.seed)
+    progress.finish()
     if args.json:
         print_json({
             "orders": found.orders,

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, _column_options, add_column_options, add_engine_options, load_statistics_from_args, print_json
+from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_statistics_from_args, print_json
 from ..exports import write_csv
 from ..forecasts import METHODS, forecast_customers
 from ..variance import VARIANCE_MODELS
@@ -49,14 +49,19 @@ def _forecast_on_cluster(args):
 
 
 def run(args) -> int:
+    progress = Progress(3)
+    progress.step(f"reading {args.file}")
     if args.engine == "dask":
         table, account = _forecast_on_cluster(args)
     else:
         stats, account, orders = load_statistics_from_args(args)
+        progress.step(f"forecasting {len(stats):,} customers")
         table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
                                    level=args.level, next_level=args.next_level)
+    progress.step(f"writing {args.out}")
     loaded_notes = account.get("notes", [])
     written = write_csv(table, args.out)
+    progress.finish()
     fit = {key: _plain_value(value) for key, value in table.attrs["fit"].items()}
     method, variance = fit["method"], fit["variance"]
     if args.json:
