@@ -77,6 +77,8 @@ def run(args) -> int:
             "results": _records(found.leave_one_out),
             "backtest": _records(found.backtest),
             "chosen": {"method": found.chosen["method"], "variance": found.chosen["variance"]},
+            "margins": [{key: (value if isinstance(value, str) else _number(value)) for key, value in row.items()}
+                        for row in found.margins.to_dict("records")],
         })
         return EXIT_OK
     print(f"{found.orders} orders from {found.customers} customers; "
@@ -87,6 +89,11 @@ def run(args) -> int:
         _print_table(f"Next-order backtest (fitted before {found.cutoff.date()}, "
                      f"{found.backtest_scored} customers scored on their next order):", found.backtest)
     print(f"Chosen: {found.chosen['reason']}.")
+    if len(found.margins):
+        print("How far the choice is ahead (points of error cut, paired 95% interval over customers):")
+        for row in found.margins.sort_values("margin_pct").head(5).itertuples():
+            print(f"  vs {row.method:<16} {row.variance:<13} {row.margin_pct:+6.1f}  "
+                  f"({row.margin_low:+.1f} to {row.margin_high:+.1f})")
     for note in found.notes:
         print(f"note: {note}")
     return EXIT_OK
