@@ -6,7 +6,7 @@ import math
 
 from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_from_args, print_json
 from ..errors import OrderDataError
-from ..evaluation import evaluate_methods
+from ..evaluation import AUTO_METHODS, evaluate_methods
 
 _RESULT_FIELDS = ("method", "variance", "sse", "error_reduction_pct", "ci_low", "ci_high")
 
@@ -77,8 +77,6 @@ def run(args) -> int:
             "results": _records(found.leave_one_out),
             "backtest": _records(found.backtest),
             "chosen": {"method": found.chosen["method"], "variance": found.chosen["variance"]},
-            "margins": [{key: (value if isinstance(value, str) else _number(value)) for key, value in row.items()}
-                        for row in found.margins.to_dict("records")],
         })
         return EXIT_OK
     print(f"{found.orders} orders from {found.customers} customers; "
@@ -91,7 +89,8 @@ def run(args) -> int:
     print(f"Chosen: {found.chosen['reason']}.")
     if len(found.margins):
         print("How far the choice is ahead (points of error cut, paired 95% interval over customers):")
-        for row in found.margins.sort_values("margin_pct").head(5).itertuples():
+        eligible = found.margins[found.margins["method"].isin(AUTO_METHODS)]
+        for row in eligible.sort_values("margin_pct").head(5).itertuples():
             print(f"  vs {row.method:<16} {row.variance:<13} {row.margin_pct:+6.1f}  "
                   f"({row.margin_low:+.1f} to {row.margin_high:+.1f})")
     for note in found.notes:
