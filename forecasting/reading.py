@@ -360,6 +360,16 @@ def _read_parquet(data: bytes, file_name: str, notes: list[str]) -> _RawTable:
     except Exception as problem:
         raise OrderDataError(f"the Parquet file could not be read ({type(problem).__name__})",
                              file=file_name) from None
+    cells = typed_cells_as_text(frame)
+    cells.columns = _unique_headers(list(cells.columns))
+    return _RawTable(cells, np.arange(2, len(cells) + 2), [], notes)
+
+
+def typed_cells_as_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """Typed columns (as Parquet holds them) turned into the text the cleaning rules read.
+
+    Dates become ``YYYY-MM-DD HH:MM:SS``, missing cells the empty string.
+    """
     cells = pd.DataFrame(index=frame.index)
     for name in frame.columns:
         column = frame[name]
@@ -368,8 +378,7 @@ def _read_parquet(data: bytes, file_name: str, notes: list[str]) -> _RawTable:
         else:
             text = column.astype(str)
         cells[str(name)] = text.where(column.notna(), "").astype(object)
-    cells.columns = _unique_headers(list(cells.columns))
-    return _RawTable(cells.reset_index(drop=True), np.arange(2, len(cells) + 2), [], notes)
+    return cells.reset_index(drop=True)
 
 
 def _load_raw(data: bytes, file_name: str, sheet) -> _RawTable:

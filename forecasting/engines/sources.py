@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import OrderDataError
-from ..reading import ColumnMapping, _sniff_delimiter, guess_mapping
+from ..reading import ColumnMapping, _sniff_delimiter, guess_mapping, typed_cells_as_text
 
 _SNIFF_BYTES = 200_000
 _SAMPLE_ROWS = 500
@@ -126,15 +126,7 @@ def _text_head(path: str) -> str:
 
 def text_cells(frame: pd.DataFrame) -> pd.DataFrame:
     """Typed columns as the text the pandas reader makes of them (its rule for Parquet files)."""
-    cells = pd.DataFrame(index=frame.index)
-    for name in frame.columns:
-        column = frame[name]
-        if pd.api.types.is_datetime64_any_dtype(column):
-            text = column.dt.strftime("%Y-%m-%d %H:%M:%S")
-        else:
-            text = column.astype(str)
-        cells[str(name)] = text.where(column.notna(), "").astype(object)
-    return cells.reset_index(drop=True)
+    return typed_cells_as_text(frame)
 
 
 def _csv_sample(path: str, delimiter: str) -> pd.DataFrame:
