@@ -1,0 +1,145 @@
+"""Running the dashboard for real-browser tests: ``streamlit run`` on a loopback port, Chromium flags, waits.
+
+Importing this module skips the importing test module when Debian's Chromium or
+Playwright is missing, with the reason and the command that installs it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import socket
+import subprocess
+import sys
+import threading
+import time
+import urllib.request
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+CHROMIUM = Path("/usr/bin/chromium")
+# Flags that let Debian's Chromium run headless as root in a container, with its own background calls off.
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+LOOPBACK_HOSTS = frozenset({"127.0.0.1", "localhost", "::1", "[::1]"})
+READY = '[data-testid="stApp"][data-test-script-state="notRunning"]'
+
+
+def require_browser() -> None:
+    """Skip the calling test module unless Chromium and Playwright are both here."""
+    if not CHROMIUM.exists():
+        pytest.skip("the browser tests need Debian's Chromium at /usr/bin/chromium (apt-get install chromium)",
+                    allow_module_level=True)
+    pytest.importorskip("playwright.sync_api", reason="the browser tests need playwright (pip install playwright)")
+
+
+def free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+@dataclass
+class AppServer:
+    """A running ``streamlit run app.py``: its address, its process and what it printed so far."""
+
+    url: str
+    process: subprocess.Popen
+    lines: list[str] = field(default_factory=list)
+
+    @property
+    def pid(self) -> int:
+        return self.process.pid
+
+    def output(self) -> str:
+        return "".join(self.lines)
+
+
+def _drain(process: subprocess.Popen, lines: list[str]) -> None:
+    # Read the server's output as it comes, so a chatty server never blocks on a full pipe.
+    for raw in iter(process.stdout.readline, b""):
+        lines.append(raw.decode(errors="replace"))
+
+
+@contextlib.contextmanager
+def running_app(*, cwd: Path = ROOT, env: dict[str, str] | None = None, address: str | None = "127.0.0.1",
+                start_timeout: float = 60.0) -> Iterator[AppServer]:
+    """Start the dashboard on a free port, wait for its health check, stop it on the way out.
+
+    ``env`` replaces the server's whole environment (default: this process's, with usage
+    statistics off). ``address=None`` leaves out ``--server.address``, so the server starts
+    as ``streamlit run app.py`` does for a user (binding every interface); the test still
+    only talks to it over 127.0.0.1.
+    """
+    port = free_port()
+    if env is None:
+        env = dict(os.environ, STREAMLIT_BROWSER_GATHER_USAGE_STATS="false")
+    command = [sys.executable, "-m", "streamlit", "run", "app.py", "--server.headless", "true",
+               "--server.port", str(port), "--server.fileWatcherType", "none"]
+    if address is not None:
+        command += ["--server.address", address]
+    process = subprocess.Popen(command, cwd=cwd, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    server = AppServer(url=f"http://127.0.0.1:{port}", process=process)
+    reader = threading.Thread(target=_drain, args=(process, server.lines), daemon=True)
+    reader.start()
+    try:
+        deadline = time.monotonic() + start_timeout
+        while True:
+            try:
+                with urllib.request.urlopen(f"{server.url}/_stcore/health", timeout=2) as answer:
+                    if answer.status == 200:
+                        break
+            except OSError:
+                pass
+            if process.poll() is not None or time.monotonic() > deadline:
+                pytest.fail(f"streamlit did not start on port {port}: {server.output()[-2000:]}")
+            time.sleep(0.3)
+        yield server
+    finally:
+        process.terminate()
+        try:
+            process.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait(timeout=10)
+        reader.join(timeout=5)
+
+
+def launch_chromium(playwright):
+    """Debian's Chromium, headless, through a started sync or async Playwright."""
+    return playwright.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+
+
+def settle(tab) -> None:
+    """Wait until the app has finished its run and drawn the page (sync Playwright)."""
+    tab.wait_for_selector(READY)
+    tab.wait_for_timeout(300)
+    tab.wait_for_selector(READY)
+
+
+async def settle_async(tab) -> None:
+    """:func:`settle` for async Playwright."""
+    await tab.wait_for_selector(READY)
+    await tab.wait_for_timeout(300)
+    await tab.wait_for_selector(READY)
+
+
+def open_page(tab, title: str) -> None:
+    """Click a page's link in the top navigation and wait for its heading and a finished run."""
+    tab.get_by_role("link", name=title).first.click()
+    tab.get_by_role("heading", name=title).first.wait_for()
+    settle(tab)
+
+
+def metric_value(tab, label: str) -> str:
+    box = tab.locator('[data-testid="stMetric"]', has_text=label).first
+    return box.locator('[data-testid="stMetricValue"]').inner_text().strip()
+
+
+def no_exception_shown(tab) -> None:
+    assert tab.locator('[data-testid="stException"]').count() == 0
+    assert "Traceback" not in tab.content()
