@@ -399,6 +399,7 @@ def main(argv=None) -> int:
         if args.commands:
             bench_commands(size, args.seed, engines, command_rows, repeat=1 if size >= BIG else args.repeat,
                            evaluate_up_to=args.evaluate_up_to)
+            write_markdown(rows, command_rows, Path(args.out), started=started)
         if not args.no_stages:
             bench_size(size, args.seed, rows, every_pair_at_10m=args.every_pair_at_10m)
         write_markdown(rows, command_rows, Path(args.out), started=started)  # partial results survive a stop
