@@ -12,7 +12,7 @@ from dashboard import state
 
 HERE = Path(__file__).parent
 
-st.set_page_config(page_title="Next-order forecasts", page_icon=":material/potted_plant:", layout="wide")
+st.set_page_config(page_title="Next-order forecasts", page_icon="🪴", layout="wide")
 
 state.start()
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import hashlib
 import re
-import tempfile
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -266,8 +265,8 @@ def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: floa
 def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: str, shares: tuple) -> Outcome:
     """Customers in value tiers, the tier summary and the tier lists as CSV text.
 
-    The lists are written by the library's own tier export (formula-safe, rounded) into a
-    temporary folder and read back, so the downloads match the command line's files.
+    The lists come from the library's own tier lists (formula-safe, rounded) as text in
+    memory, so the downloads match the command line's files and nothing touches the disk.
     """
     module = optional_module("outlook")
     projection = outlook(dataset, method, variance, horizon, "quarter")
@@ -282,9 +281,7 @@ def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: st
     try:
         tiered = module.assign_tiers(customers, rank=rank, shares=shares)
         summary = module.tier_summary(tiered)
-        with tempfile.TemporaryDirectory() as folder:
-            written = module.export_tiers(tiered, Path(folder) / "tiers.csv")
-            files = {name: path.read_text(encoding="utf-8") for name, path in written.items()}
+        files = module.tier_csv_texts(tiered)
     except OrderDataError as problem:
         return Outcome(problem=_problem_text(problem))
     return Outcome({"customers": tiered, "summary": summary, "files": files, "rank": rank}, note=note)

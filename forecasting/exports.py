@@ -67,7 +67,9 @@ def excel_bytes(table: pd.DataFrame, *, sheet_name: str = "forecasts") -> bytes:
     buffer = io.BytesIO()
     with pd.ExcelWriter(buffer, engine="xlsxwriter",
                         engine_kwargs={"options": {"strings_to_formulas": False,
-                                                   "strings_to_urls": False}}) as writer:
+                                                   "strings_to_urls": False,
+                                                   # no temporary files: customer data stays off the disk
+                                                   "in_memory": True}}) as writer:
         safe_table(table).to_excel(writer, index=False, sheet_name=sheet_name)
     return buffer.getvalue()
 

@@ -1213,6 +1213,35 @@ def _slug(name: str) -> str:
     return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "tier"
 
 
+def tier_lists(tiered: pd.DataFrame) -> dict:
+    """The lists to hand out: ``{"all": table, <tier name>: table, ...}``, rounded for reading.
+
+    Money figures are rounded to cents, weights and chances to three decimals.
+    """
+    if "tiers" not in tiered.attrs:
+        raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
+    columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
+    table = tiered[columns].copy()
+    for name in ("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
+                 "projected_high", "revenue_range_low", "revenue_range_high"):
+        if name in table.columns:
+            table[name] = table[name].round(2)
+    for name in ("own_history_weight", "chance_active", "expected_orders"):
+        if name in table.columns:
+            table[name] = table[name].round(3)
+    lists = {"all": table}
+    for spec in tiered.attrs["tiers"]:
+        lists[spec["tier"]] = table.loc[table["tier"] == spec["tier"]]
+    return lists
+
+
+def tier_csv_texts(tiered: pd.DataFrame) -> dict:
+    """The tier lists as formula-safe CSV text, in memory (for downloads that touch no disk)."""
+    from .exports import csv_text
+
+    return {name: csv_text(table) for name, table in tier_lists(tiered).items()}
+
+
 def export_tiers(tiered: pd.DataFrame, path) -> dict:
     """Write all customers and each tier as CSV lists (formula-safe).
 
@@ -1232,28 +1261,16 @@ def export_tiers(tiered: pd.DataFrame, path) -> dict:
     Notes
     -----
     Written with :func:`forecasting.exports.write_csv`, which neutralises text
-    that a spreadsheet would run as a formula. Money figures are rounded to
-    cents, weights and chances to three decimals.
+    that a spreadsheet would run as a formula; the lists are :func:`tier_lists`.
     """
     from .exports import write_csv
 
-    if "tiers" not in tiered.attrs:
-        raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
     path = Path(path)
-    columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
-    table = tiered[columns].copy()
-    for name in ("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
-                 "projected_high", "revenue_range_low", "revenue_range_high"):
-        if name in table.columns:
-            table[name] = table[name].round(2)
-    for name in ("own_history_weight", "chance_active", "expected_orders"):
-        if name in table.columns:
-            table[name] = table[name].round(3)
-    written = {"all": write_csv(table, path)}
     suffix = path.suffix or ".csv"
-    for spec in tiered.attrs["tiers"]:
-        part = table.loc[table["tier"] == spec["tier"]]
-        written[spec["tier"]] = write_csv(part, path.with_name(f"{path.stem}-{_slug(spec['tier'])}{suffix}"))
+    written = {}
+    for name, table in tier_lists(tiered).items():
+        target = path if name == "all" else path.with_name(f"{path.stem}-{_slug(name)}{suffix}")
+        written[name] = write_csv(table, target)
     return written
 
 

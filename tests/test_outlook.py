@@ -787,6 +787,16 @@ class TestExportTiers:
         assert top["customer"].tolist() == ["C-001"]
         assert pd.read_csv(written["occasional"])["tier"].unique().tolist() == ["occasional"]
 
+    def test_in_memory_lists_equal_the_files(self, tmp_path):
+        from forecasting.outlook import tier_csv_texts
+
+        tiered = assign_tiers(tier_table([5.0, 80.0, 40.0, 12.0], revenue=[1.0, 2.0, 3.0, 4.0]), shares=(0.25, 0.25))
+        written = export_tiers(tiered, tmp_path / "tiers.csv")
+        texts = tier_csv_texts(tiered)
+        assert set(texts) == set(written)
+        for name, path in written.items():
+            assert texts[name].encode("utf-8") == path.read_bytes()
+
 
 # --------------------------------------------------------------------------- #
 # Command line (run as a user would, in a separate process)

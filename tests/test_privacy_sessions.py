@@ -13,8 +13,9 @@ any request the page makes to another host is recorded and aborted, never sent.
   stated time, and the server's memory afterwards stays within a stated margin of its level
   after a warm-up session.
 
-Checks that fail on the code as it is now are marked ``xfail(strict=True)`` with the change
-that makes them pass, so the mark has to go when that change is made.
+The app keeps to this by drawing its page icon locally (an emoji, not a web font), listening on
+localhost only (which also stops Streamlit looking up the machine's outside address), building
+Excel downloads in memory and making tier lists as text in memory.
 """
 
 from __future__ import annotations
@@ -63,9 +64,6 @@ PAGES = [("Forecasts", 0), ("Accuracy check", 0), ("Value tiers", 0), ("Cohort o
 # Where Streamlit's front end fetches a ":material/...:" page icon from (seen in its bundled JavaScript).
 MATERIAL_ICON_URL = "https://fonts.gstatic.com/s/i/short-term/release/materialsymbolsrounded/"
 
-APP_ICON_IS_MATERIAL = re.search(r"page_icon\s*=\s*[\"']:material/", (ROOT / "app.py").read_text()) is not None
-SERVER_ADDRESS = tomllib.loads(CONFIG.read_text(encoding="utf-8")).get("server", {}).get("address")
-CONFIG_PINS_LOOPBACK = SERVER_ADDRESS in support.LOOPBACK_HOSTS
 
 
 def needs_psutil() -> None:
@@ -422,27 +420,17 @@ class TestMarkedUpload:
     def test_no_file_left_behind_names_or_holds_the_upload(self, private_visit):
         assert private_visit.traces == []
 
-    @pytest.mark.xfail(strict=True,
-                       reason="customer ids go to short-lived files in TMPDIR: the Excel download is built by "
-                              "xlsxwriter, which writes each sheet to temporary files unless its in_memory "
-                              "option is on (forecasting/exports.py excel_bytes), and the Value tiers page "
-                              "writes the tier lists into a temporary folder and reads them back "
-                              "(dashboard/state.py tiers)")
     def test_no_temporary_file_is_made_for_the_data(self, private_visit):
         if private_visit.created is None:
             pytest.skip("watching for short-lived files needs Linux inotify")
         assert private_visit.created == []
 
     def test_page_asks_no_other_host(self, private_visit):
-        outside = [url for url in private_visit.requests
-                   if not is_loopback(url) and not url.startswith(MATERIAL_ICON_URL)]
+        outside = [url for url in private_visit.requests if not is_loopback(url)]
         assert private_visit.requests, "no request was recorded at all"
         assert outside == []
         assert private_visit.websockets and all(is_loopback(url) for url in private_visit.websockets)
 
-    @pytest.mark.xfail(APP_ICON_IS_MATERIAL, strict=True,
-                       reason="app.py sets page_icon=':material/potted_plant:', whose picture Streamlit's front "
-                              "end fetches from fonts.gstatic.com on every page; an emoji icon is drawn locally")
     def test_page_icon_is_drawn_here(self, private_visit):
         assert [url for url in private_visit.requests if url.startswith(MATERIAL_ICON_URL)] == []
 
@@ -453,10 +441,6 @@ class TestMarkedUpload:
 
 
 class TestServerStartedAsTheReadmeSays:
-    @pytest.mark.xfail(not CONFIG_PINS_LOOPBACK, strict=True,
-                       reason="without server.address in .streamlit/config.toml a headless Streamlit asks "
-                              "checkip.amazonaws.com for the machine's outside address at start; "
-                              "address = \"localhost\" under [server] stops it")
     def test_start_calls_no_one(self, tmp_path):
         # `streamlit run app.py` with no address option, as README.md says; only the port is ours.
         needs_psutil()
