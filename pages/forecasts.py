@@ -161,8 +161,21 @@ with orders_col:
 
 st.subheader("Download the forecasts")
 stem = Path(dataset.name).stem
-csv_file, excel_file = state.forecast_files(dataset, method, variance)
+share = st.toggle("Replace customer ids by pseudonyms (for sharing with an agency)", key="pseudonyms_on",
+                  help="Each id becomes a code made from it and a secret phrase of yours. The same phrase gives "
+                       "the same codes next time, so you can match answers back; without it nobody can.")
+salt = ""
+if share:
+    salt = st.text_input("Secret phrase (at least 8 characters; keep it to match codes later)", type="password",
+                         key="pseudonym_salt")
+    if len(salt) < 8:
+        st.info("Type a secret phrase of at least 8 characters to get the files with pseudonyms.")
+        salt = None
+if salt is not None:
+    csv_file, excel_file = state.forecast_files(dataset, method, variance, salt)
 first, second = st.columns(2)
+if salt is None:
+    st.stop()
 first.download_button("Download all forecasts (CSV)", data=csv_file, file_name=f"{stem}_forecasts.csv",
                       mime="text/csv", key="download_forecasts_csv", on_click="ignore", icon=":material/download:")
 second.download_button("Download all forecasts (Excel)", data=excel_file,

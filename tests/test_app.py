@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 from streamlit.testing.v1 import AppTest
 
-from dashboard import charts, words
+from dashboard import charts, state, words
 from forecasting import OrderDataError, customer_statistics, read_orders
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -292,6 +292,26 @@ class TestForecasts:
         assert not at.exception
         assert any("segment" in text for text in errors(at))
         assert not any("--" in text for text in errors(at))
+
+
+    def test_pseudonym_downloads(self, demo):
+        # Turning pseudonyms on asks for a secret first; with one, the files carry the library's pseudonyms.
+        from forecasting.exports import pseudonymise
+
+        at = new_app()
+        at.switch_page("pages/forecasts.py").run()
+        at.toggle(key="pseudonyms_on").set_value(True).run()
+        assert not at.exception
+        assert any("secret phrase" in element.value for element in at.info)
+        at.text_input(key="pseudonym_salt").input("fernhollow-secret").run()
+        assert not at.exception
+        assert not any("secret phrase of at least" in element.value for element in at.info)
+        dataset = state.Dataset.from_bytes(DEMO.read_bytes(), DEMO.name, demo=True)
+        method, variance = at.selectbox(key="method").value, at.selectbox(key="variance").value
+        text, _ = state.forecast_files(dataset, method, variance, "fernhollow-secret")
+        shared = pd.read_csv(io.StringIO(text))
+        plain = state.forecasts(dataset, method, variance).value
+        assert shared["customer"].tolist() == pseudonymise(plain, salt="fernhollow-secret")["customer"].tolist()
 
 
 class TestAccuracy:

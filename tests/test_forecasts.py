@@ -313,3 +313,27 @@ class TestForecastCommand:
         assert done.returncode == 0, done.stderr
         assert "method: mta, variance: log" in done.stdout
         assert str(out) in done.stdout and out.exists()
+
+
+class TestForecastPseudonyms:
+    def test_ids_replaced_and_short_secret_refused(self, tmp_path):
+        import subprocess
+        import sys
+        from pathlib import Path
+
+        from forecasting.exports import pseudonymise
+
+        root = Path(__file__).resolve().parents[1]
+        plain, shared = tmp_path / "plain.csv", tmp_path / "shared.csv"
+        base = [sys.executable, "-m", "forecasting", "forecast", "demo_data/messy_orders.csv"]
+        assert subprocess.run(base + ["--out", str(plain)], cwd=root, capture_output=True).returncode == 0
+        done = subprocess.run(base + ["--out", str(shared), "--pseudonym-salt", "a-secret-phrase"], cwd=root,
+                              capture_output=True, text=True)
+        assert done.returncode == 0, done.stderr
+        original, hidden = pd.read_csv(plain), pd.read_csv(shared)
+        expected = pseudonymise(original, salt="a-secret-phrase")["customer"]
+        assert hidden["customer"].tolist() == expected.tolist()
+        assert not set(hidden["customer"]) & set(original["customer"])
+        short = subprocess.run(base + ["--out", str(shared), "--pseudonym-salt", "abc"], cwd=root,
+                               capture_output=True, text=True)
+        assert short.returncode == 2 and "at least 8 characters" in short.stderr

@@ -9,7 +9,8 @@ from __future__ import annotations
 import math
 
 from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_statistics_from_args, print_json
-from ..exports import write_csv
+from ..errors import OrderDataError
+from ..exports import pseudonymise, write_csv
 from ..forecasts import METHODS, forecast_customers
 from ..variance import VARIANCE_MODELS
 
@@ -27,6 +28,9 @@ def add_arguments(parser) -> None:
     choice.add_argument("--next-level", type=float, default=0.80, metavar="P",
                         help="coverage of the range for the next single order (default 0.80)")
     parser.add_argument("--out", required=True, metavar="CSV", help="where to write the forecasts")
+    parser.add_argument("--pseudonym-salt", metavar="SECRET",
+                        help="replace customer ids in the file by salted pseudonyms (for sharing; keep the secret "
+                             "to match them back later)")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
@@ -60,6 +64,12 @@ def run(args) -> int:
                                    level=args.level, next_level=args.next_level)
     progress.step(f"writing {args.out}")
     loaded_notes = account.get("notes", [])
+    if args.pseudonym_salt is not None:
+        if len(args.pseudonym_salt) < 8:
+            raise OrderDataError("--pseudonym-salt must be at least 8 characters",
+                                 value=f"{len(args.pseudonym_salt)} characters",
+                                 fix="Choose a longer secret phrase and keep it")
+        table = pseudonymise(table, salt=args.pseudonym_salt)
     written = write_csv(table, args.out)
     progress.finish()
     fit = {key: _plain_value(value) for key, value in table.attrs["fit"].items()}
