@@ -215,8 +215,13 @@ def load_text() -> str:
     return f"{one:.1f} / {five:.1f} / {fifteen:.1f}"
 
 
-def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int, evaluate_up_to: int) -> None:
-    """Baseline, ``forecast`` with each engine and ``evaluate``, each as a user runs it."""
+def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int, evaluate_up_to: int,
+                   baseline_repeat: int | None = None) -> None:
+    """Baseline, ``forecast`` with each engine and ``evaluate``, each as a user runs it.
+
+    Every command runs ``repeat`` times, the baseline ``baseline_repeat`` times
+    (default: as often), interleaved; the fastest run of each is kept."""
+    baseline_repeat = repeat if baseline_repeat is None else baseline_repeat
     path = ensure_file(n_orders, seed)
     root = HERE.parent
     python = sys.executable
@@ -234,10 +239,13 @@ def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int
         runs["evaluate"] = ("evaluate --engine pandas (all methods, backtest, 500 bootstrap resamples)",
                             [python, "-m", "forecasting", "evaluate", str(path), "--engine", "pandas"])
     best: dict = {}
-    for attempt in range(repeat):
+    times = {key: (baseline_repeat if key == "baseline" else repeat) for key in runs}
+    for attempt in range(max(times.values())):
         for key, (label, argv) in runs.items():
+            if attempt >= times[key]:
+                continue
             measured = run_command(argv, cwd=root)
-            print(f"  [{attempt + 1}/{repeat}] {label:<70} {measured['seconds']:8.2f} s "
+            print(f"  [{attempt + 1}/{times[key]}] {label:<70} {measured['seconds']:8.2f} s "
                   f"{measured['tree_mb']:7.0f} MB", flush=True)
             if key not in best or measured["seconds"] < best[key]["seconds"]:
                 # Peak memory: the largest of the repeats (memory does not shrink with load).
@@ -252,7 +260,7 @@ def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int
     for key, (label, _) in runs.items():
         rows.append({"orders": n_orders, "stage": label, "seconds": best[key]["seconds"],
                      "ratio": best[key]["seconds"] / base, "peak_mb": best[key]["tree_mb"],
-                     "process_mb": best[key]["process_mb"], "repeat": repeat,
+                     "process_mb": best[key]["process_mb"], "repeat": times[key],
                      "load": f"{load_before} -> {load_after}"})
     if "duckdb" in engines:
         from forecasting.engines import measure_statistics_run
@@ -377,7 +385,8 @@ def main(argv=None) -> int:
     parser.add_argument("--no-stages", action="store_true", help="skip the in-process library stages")
     parser.add_argument("--engines", default="pandas,duckdb,dask", help="engines for the forecast command")
     parser.add_argument("--repeat", type=int, default=3,
-                        help="repeats of each command below 10M orders, fastest kept (10M runs once)")
+                        help="repeats of each command below 10M orders, fastest kept (at 10M the "
+                             "commands run once, the baseline this many times)")
     parser.add_argument("--evaluate-up-to", type=int, default=1_000_000,
                         help="largest size at which the evaluate command is timed")
     parser.add_argument("--every-pair-at-10m", action="store_true",
@@ -398,7 +407,7 @@ def main(argv=None) -> int:
     for size in sizes:
         if args.commands:
             bench_commands(size, args.seed, engines, command_rows, repeat=1 if size >= BIG else args.repeat,
-                           evaluate_up_to=args.evaluate_up_to)
+                           baseline_repeat=args.repeat, evaluate_up_to=args.evaluate_up_to)
             write_markdown(rows, command_rows, Path(args.out), started=started)
         if not args.no_stages:
             bench_size(size, args.seed, rows, every_pair_at_10m=args.every_pair_at_10m)
