@@ -16,7 +16,7 @@ interpreter's start-up. The runs of one size are interleaved (baseline, then eac
 engine, repeated) and the fastest of the repeats is kept. Peak memory of a command is
 the largest resident size summed over its process tree (sampled every 50 ms with
 psutil: dask workers are separate processes) and, beside it, the high-water mark of
-the command's own process (``os.wait4``). The duckdb engine is also measured on its
+the command's own process (its ``VmHWM``). The duckdb engine is also measured on its
 own (:func:`forecasting.engines.measure_statistics_run`, a fresh process).
 
 Every time is also shown as a ratio to a pandas baseline measured in the same
@@ -172,12 +172,26 @@ def bench_size(n_orders: int, seed: int, rows: list, *, every_pair_at_10m: bool 
 # Whole commands, each in its own process
 
 
+def _high_water_mb(pid: int) -> float:
+    """A live process's own resident high-water mark (``VmHWM``), in MB; 0 when gone."""
+    try:
+        with open(f"/proc/{pid}/status") as status:
+            for line in status:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0  # kilobytes
+    except OSError:
+        pass
+    return 0.0
+
+
 def run_command(argv, *, cwd) -> dict:
     """Run ``argv`` as a child process; wall seconds and peak memory (MB).
 
     ``tree_mb`` is the largest resident size summed over the child and its
     descendants (sampled every 50 ms); ``process_mb`` is the child's own
-    high-water mark from ``os.wait4``.
+    high-water mark (``VmHWM`` of its address space, read while it runs).
+    ``ru_maxrss`` of a child is not used: on Linux it starts from the parent's
+    resident size at the fork, so a benchmark that has grown would inflate it.
     """
     import psutil
 
@@ -185,10 +199,12 @@ def run_command(argv, *, cwd) -> dict:
     child = subprocess.Popen(argv, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     watched = psutil.Process(child.pid)
     tree_peak = 0
+    own_peak = 0.0
     while True:
-        pid, status, usage = os.wait4(child.pid, os.WNOHANG)
+        pid, status, _ = os.wait4(child.pid, os.WNOHANG)
         if pid:
             break
+        own_peak = max(own_peak, _high_water_mb(child.pid))
         try:
             total = watched.memory_info().rss
             for descendant in watched.children(recursive=True):
@@ -206,8 +222,7 @@ def run_command(argv, *, cwd) -> dict:
     child.stderr.close()
     if child.returncode != 0:
         raise RuntimeError(f"{' '.join(map(str, argv))} exited with {child.returncode}: {errors[-2000:]}")
-    process_mb = usage.ru_maxrss / 1024.0  # kilobytes on Linux
-    return {"seconds": seconds, "tree_mb": max(tree_peak / 2**20, process_mb), "process_mb": process_mb}
+    return {"seconds": seconds, "tree_mb": max(tree_peak / 2**20, own_peak), "process_mb": own_peak}
 
 
 def load_text() -> str:
