@@ -9,16 +9,11 @@ from __future__ import annotations
 
 import csv
 import io
-import os
-import socket
-import subprocess
-import sys
-import time
-import urllib.request
 from pathlib import Path
 
 import pytest
 
+import browser_support as support
 from forecasting import customer_statistics, read_orders
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -37,42 +32,10 @@ playwright_sync = pytest.importorskip("playwright.sync_api",
 forecasts_module = pytest.importorskip("forecasting.forecasts")
 
 
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
 @pytest.fixture(scope="module")
 def server():
-    port = free_port()
-    env = dict(os.environ, STREAMLIT_BROWSER_GATHER_USAGE_STATS="false")
-    process = subprocess.Popen(
-        [sys.executable, "-m", "streamlit", "run", "app.py", "--server.headless", "true",
-         "--server.port", str(port), "--server.address", "127.0.0.1", "--server.fileWatcherType", "none"],
-        cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
-    url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                with urllib.request.urlopen(f"{url}/_stcore/health", timeout=2) as answer:
-                    if answer.status == 200:
-                        break
-            except OSError:
-                pass
-            if process.poll() is not None or time.monotonic() > deadline:
-                output = process.stdout.read().decode(errors="replace") if process.poll() is not None else ""
-                pytest.fail(f"streamlit did not start on port {port}: {output[-2000:]}")
-            time.sleep(0.3)
-        yield url
-    finally:
-        process.terminate()
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait(timeout=10)
+    with support.running_app() as app:
+        yield app.url
 
 
 @pytest.fixture(scope="module")
