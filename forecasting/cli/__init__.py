@@ -13,6 +13,7 @@ import argparse
 import importlib
 import json
 import logging
+import math
 import os
 import sys
 import time
@@ -70,6 +71,24 @@ def add_engine_options(parser: argparse.ArgumentParser) -> None:
     engine.add_argument("--threads", type=int, metavar="N", help="duckdb threads (default: all cores)")
     engine.add_argument("--scheduler", metavar="ADDRESS",
                         help="Dask scheduler address (default: a local cluster on this machine)")
+
+
+def add_method_options(parser) -> None:
+    """``--method`` and ``--variance``, shared by every command that forecasts next-order values."""
+    from ..forecasts import METHODS
+    from ..variance import VARIANCE_MODELS
+
+    parser.add_argument("--method", default="mta", metavar="NAME",
+                        help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
+    parser.add_argument("--variance", default="classic", metavar="NAME",
+                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+
+
+def json_number(value):
+    """A number for JSON output, or None where it is not finite (JSON has no NaN); other values unchanged."""
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and not math.isfinite(value):
+        return None
+    return value
 
 
 def _column_options(args: argparse.Namespace) -> dict:

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_from_args, print_json
+from . import (EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, json_number,
+               load_from_args, print_json)
 from ..errors import OrderDataError
 from ..evaluation import AUTO_METHODS, evaluate_methods
 
@@ -25,11 +26,8 @@ def add_arguments(parser) -> None:
 
 
 def _number(value):
-    """A float for JSON, or None when it is not a number (JSON has no NaN)."""
-    if value is None:
-        return None
-    value = float(value)
-    return value if math.isfinite(value) else None
+    """A float for JSON, or None when it is not a number."""
+    return None if value is None else json_number(float(value))
 
 
 def _records(table):

@@ -6,23 +6,19 @@
 
 from __future__ import annotations
 
-import math
 
-from . import EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, load_statistics_from_args, print_json
+from . import (EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, add_method_options,
+               json_number, load_statistics_from_args, print_json)
 from ..errors import OrderDataError
 from ..exports import pseudonymise, write_csv
-from ..forecasts import METHODS, forecast_customers
-from ..variance import VARIANCE_MODELS
+from ..forecasts import forecast_customers
 
 
 def add_arguments(parser) -> None:
     add_column_options(parser)
     add_engine_options(parser)
     choice = parser.add_argument_group("forecast")
-    choice.add_argument("--method", default="mta", metavar="NAME",
-                        help=f"how averages are combined: {', '.join(METHODS)} or auto (default: mta)")
-    choice.add_argument("--variance", default="classic", metavar="NAME",
-                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    add_method_options(choice)
     choice.add_argument("--level", type=float, default=0.90, metavar="P",
                         help="coverage of the range for a customer's average order (default 0.90)")
     choice.add_argument("--next-level", type=float, default=0.80, metavar="P",
@@ -32,13 +28,6 @@ def add_arguments(parser) -> None:
                         help="replace customer ids in the file by salted pseudonyms (for sharing; keep the secret "
                              "to match them back later)")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
-
-
-def _plain_value(value):
-    """JSON-safe: floats that are not finite become null."""
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 def _forecast_on_cluster(args):
@@ -72,7 +61,7 @@ def run(args) -> int:
         table = pseudonymise(table, salt=args.pseudonym_salt)
     written = write_csv(table, args.out)
     progress.finish()
-    fit = {key: _plain_value(value) for key, value in table.attrs["fit"].items()}
+    fit = {key: json_number(value) for key, value in table.attrs["fit"].items()}
     method, variance = fit["method"], fit["variance"]
     if args.json:
         print_json({"customers": int(len(table)), "method": method, "variance": variance, "fit": fit,

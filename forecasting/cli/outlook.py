@@ -8,11 +8,9 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, add_column_options, load_from_args, print_json
+from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
 from ..errors import OrderDataError
 from ..exports import write_csv
-from ..forecasts import METHODS
-from ..variance import VARIANCE_MODELS
 from ..outlook import COHORT_PERIODS, SEASONS, _check_draws, _check_horizon, _check_level, _parse_date, \
     backtest_outlook, project_revenue, require_projection
 
@@ -34,10 +32,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--seasons", choices=SEASONS, default="auto",
                         help="adjust the order rate by month of the year: auto (default: when a full year of "
                              "orders exists), month (always; needs a full year) or none")
-    parser.add_argument("--method", default="mta", metavar="NAME",
-                        help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
-    parser.add_argument("--variance", default="classic", metavar="NAME",
-                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    add_method_options(parser)
     parser.add_argument("--level", default="0.9", help="interval level (default 0.9)")
     parser.add_argument("--draws", default="400", help="simulation draws for the intervals (default 400)")
     parser.add_argument("--seed", default="0", help="seed of the draws (default 0)")

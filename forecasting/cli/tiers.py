@@ -8,9 +8,7 @@ from __future__ import annotations
 
 import math
 
-from . import EXIT_OK, add_column_options, load_from_args, print_json
-from ..forecasts import METHODS
-from ..variance import VARIANCE_MODELS
+from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
 from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
     project_revenue, require_projection, tier_summary
 
@@ -33,10 +31,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--seasons", choices=SEASONS, default="auto",
                         help="adjust projected revenue by month of the year: auto (default: when a full year of "
                              "orders exists), month or none")
-    parser.add_argument("--method", default="mta", metavar="NAME",
-                        help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
-    parser.add_argument("--variance", default="classic", metavar="NAME",
-                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    add_method_options(parser)
     parser.add_argument("--out", required=True, metavar="CSV",
                         help="CSV list of all customers; each tier also gets <name>-<tier>.csv beside it")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
