@@ -54,7 +54,7 @@ def add_column_options(parser: argparse.ArgumentParser) -> None:
 
 def load_from_args(args: argparse.Namespace) -> ReadResult:
     """Read the file named on the command line with the column options given."""
-    return read_orders(args.file, **_column_options(args))
+    return read_orders(args.file, **column_options(args))
 
 
 ENGINE_CHOICES = ("pandas", "duckdb", "dask")
@@ -91,7 +91,7 @@ def json_number(value):
     return value
 
 
-def _column_options(args: argparse.Namespace) -> dict:
+def column_options(args: argparse.Namespace) -> dict:
     return dict(customer=args.customer, value=args.value, date=args.date, order_id=args.order_id,
                 status=args.status, segment=args.segment, currency_column=args.currency_column,
                 currency=args.currency, date_order=args.date_order, decimal=args.decimal, sheet=args.sheet)
@@ -112,7 +112,7 @@ def load_statistics_from_args(args: argparse.Namespace):
 
     stats, account = customer_statistics_from_file(
         args.file, engine=args.engine, memory_limit=args.memory_limit, temp_directory=args.temp_directory,
-        threads=args.threads, scheduler=args.scheduler, **_column_options(args))
+        threads=args.threads, scheduler=args.scheduler, **column_options(args))
     return stats, account, None
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 
-from . import (EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, json_number,
+from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine_options, json_number,
                load_from_args, print_json)
 from ..errors import OrderDataError
 from ..evaluation import AUTO_METHODS, evaluate_methods
@@ -105,7 +105,7 @@ def _run_on_cluster(args) -> int:
     from ..evaluation import best_of
 
     with cluster_client(args.scheduler) as client:
-        shop = read_on_cluster(args.file, client=client, **_column_options(args))
+        shop = read_on_cluster(args.file, client=client, **column_options(args))
         table = leave_one_out_on_cluster(shop, methods=args.methods, variances=args.variances)
     chosen = best_of(table)
     if args.json:

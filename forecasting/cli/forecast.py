@@ -6,8 +6,7 @@
 
 from __future__ import annotations
 
-
-from . import (EXIT_OK, Progress, _column_options, add_column_options, add_engine_options, add_method_options,
+from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine_options, add_method_options,
                json_number, load_statistics_from_args, print_json)
 from ..errors import OrderDataError
 from ..exports import pseudonymise, write_csv
@@ -35,7 +34,7 @@ def _forecast_on_cluster(args):
     from ..engines.dask_engine import cluster_client, forecast_on_cluster, read_on_cluster
 
     with cluster_client(args.scheduler) as client:
-        shop = read_on_cluster(args.file, client=client, **_column_options(args))
+        shop = read_on_cluster(args.file, client=client, **column_options(args))
         table = forecast_on_cluster(shop, method=args.method, variance=args.variance, level=args.level,
                                     next_level=args.next_level)
         return table, shop.account
