@@ -8,42 +8,53 @@ statistics) -> ``variance`` (pooled spread of order values) -> ``shrinkage``
 per customer with intervals) -> ``evaluation`` (leave-one-out and backtest proof),
 ``frequency`` and ``outlook`` (order rates, tiers, cohort revenue), ``exports``
 (safe CSV/Excel). The package never imports streamlit.
+
+The names below are loaded on first use, so that a command which needs only a
+few stages does not wait for the libraries of the others (scipy.stats is slow to load).
 """
 
-from .customers import customer_statistics
-from .engines import ENGINES, customer_statistics_from_file
-from .errors import OrderDataError
-from .evaluation import Evaluation, choose_method, evaluate_methods
-from .exports import csv_text, excel_bytes, write_csv
-from .forecasts import METHODS, forecast_customers
-from .frequency import fit_order_frequency, frequency_forecast, repeat_history
-from .outlook import assign_tiers, backtest_outlook, export_tiers, project_revenue, tier_summary
-from .reading import ColumnMapping, ReadResult, read_orders
-from .variance import VARIANCE_MODELS
+from __future__ import annotations
 
-__all__ = [
-    "ENGINES",
-    "METHODS",
-    "VARIANCE_MODELS",
-    "ColumnMapping",
-    "Evaluation",
-    "OrderDataError",
-    "ReadResult",
-    "assign_tiers",
-    "backtest_outlook",
-    "choose_method",
-    "csv_text",
-    "customer_statistics",
-    "customer_statistics_from_file",
-    "evaluate_methods",
-    "excel_bytes",
-    "export_tiers",
-    "fit_order_frequency",
-    "forecast_customers",
-    "frequency_forecast",
-    "project_revenue",
-    "read_orders",
-    "repeat_history",
-    "tier_summary",
-    "write_csv",
-]
+import importlib
+
+# Public name -> the module that defines it.
+_HOMES = {
+    "ENGINES": "engines",
+    "METHODS": "forecasts",
+    "VARIANCE_MODELS": "variance",
+    "ColumnMapping": "reading",
+    "Evaluation": "evaluation",
+    "OrderDataError": "errors",
+    "ReadResult": "reading",
+    "assign_tiers": "outlook",
+    "backtest_outlook": "outlook",
+    "choose_method": "evaluation",
+    "csv_text": "exports",
+    "customer_statistics": "customers",
+    "customer_statistics_from_file": "engines",
+    "evaluate_methods": "evaluation",
+    "excel_bytes": "exports",
+    "export_tiers": "outlook",
+    "fit_order_frequency": "frequency",
+    "forecast_customers": "forecasts",
+    "frequency_forecast": "frequency",
+    "project_revenue": "outlook",
+    "read_orders": "reading",
+    "repeat_history": "frequency",
+    "tier_summary": "outlook",
+    "write_csv": "exports",
+}
+
+__all__ = sorted(_HOMES)
+
+
+def __getattr__(name: str):
+    if name not in _HOMES:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{_HOMES[name]}", __name__), name)
+    globals()[name] = value  # later look-ups skip this function
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_HOMES))

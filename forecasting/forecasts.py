@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
+from scipy import special
 
 from forecasting.errors import OrderDataError
 from forecasting.shrinkage import METHODS, check_method, shrink
@@ -223,8 +223,9 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     estimate = result.estimate
     weight = np.clip(result.weight, 0.0, 1.0)
     v = np.maximum(result.estimate_var, 0.0)
-    z = float(sps.norm.ppf(0.5 + level / 2.0))
-    z_next = float(sps.norm.ppf(0.5 + next_level / 2.0))
+    # Normal quantiles (scipy.special.ndtri is what scipy.stats.norm.ppf computes).
+    z = float(special.ndtri(0.5 + level / 2.0))
+    z_next = float(special.ndtri(0.5 + next_level / 2.0))
     half = z * np.sqrt(v)
     if on_log:
         expected = np.exp(estimate + (sigma2_log + v) / 2.0)

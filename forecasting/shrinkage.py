@@ -21,7 +21,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from forecasting.errors import OrderDataError
 from forecasting.variance import classic_pooled_variance
@@ -496,6 +496,8 @@ def _tau2_reml(m, s) -> float:
     upper = max(float(np.var(m, ddof=1)) * 4.0, float(np.max(s)), np.finfo(float).tiny)
     if np.min(s) == 0:
         return _tau2_moments(m, s)
+    from scipy import optimize  # slow to import: only these fits need it
+
     found = optimize.minimize_scalar(negative, bounds=(0.0, upper), method="bounded",
                                      options={"xatol": upper * 1e-10})
     best = float(found.x)
@@ -559,6 +561,8 @@ def fit_gamma_gamma(means, orders):
     # p gamma / (q - 1) equal the mean of the (rescaled) averages, 1.
     start = np.log([2.0, 3.0, 1.0])
     args = (counts_n, counts, n, x, sum_n_log_nm, sum_log_m)
+    from scipy import optimize
+
     found = optimize.minimize(_gamma_gamma_negloglik, start, args=args, jac=True, method="L-BFGS-B",
                               bounds=[(-15.0, 15.0)] * 3, options={"maxiter": 500, "ftol": 1e-14, "gtol": 1e-9})
     p, q, gam = np.exp(found.x)

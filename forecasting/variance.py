@@ -36,7 +36,7 @@ from typing import Callable
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
+from scipy import special
 
 from forecasting.errors import OrderDataError
 
@@ -157,7 +157,8 @@ def normal_clip_consistency(c: float) -> float:
     mean square by kappa(c) makes it consistent for the variance at the normal.
     """
     c = float(c)
-    return float((2 * sps.norm.cdf(c) - 1) - 2 * c * sps.norm.pdf(c) + 2 * c * c * sps.norm.sf(c))
+    phi = math.exp(-c * c / 2.0) / math.sqrt(2.0 * math.pi)
+    return float((2 * special.ndtr(c) - 1) - 2 * c * phi + 2 * c * c * special.ndtr(-c))
 
 
 def _customer_codes(stats: pd.DataFrame, orders: pd.DataFrame) -> np.ndarray:
@@ -234,7 +235,9 @@ def robust_pooled_variance(codes, values, orders, means, *, clip=ROBUST_CLIP):
     keep = n_order >= 2
     e = (x[keep] - m[codes[keep]]) * np.sqrt(n_order[keep] / (n_order[keep] - 1.0))
     weights = (n_order[keep] - 1.0) / n_order[keep]
-    scale0 = float(sps.median_abs_deviation(e, center=_zero_centre, scale="normal")) if e.size else 0.0
+    from scipy import stats  # only the robust variance needs it; importing it is slow
+
+    scale0 = float(stats.median_abs_deviation(e, center=_zero_centre, scale="normal")) if e.size else 0.0
     details = {"scale0": scale0, "clip_at": float(clip * scale0), "kappa": normal_clip_consistency(clip)}
     if not scale0 > 0:
         details["clipped_orders"] = 0.0
@@ -458,6 +461,12 @@ def hill_tail_index(values, k: int) -> float:
     return float(k / total) if total > 0 else float("inf")
 
 
+def _skewness(x: np.ndarray) -> float:
+    """Sample skewness m3 / m2^(3/2) (the moment form, as scipy.stats.skew with bias=True)."""
+    d = x - np.mean(x)
+    return float(np.mean(d ** 3) / np.mean(d ** 2) ** 1.5)
+
+
 def tail_report(order_values) -> TailReport:
     """Describe the upper tail of order values and suggest a variance model.
 
@@ -485,7 +494,7 @@ def tail_report(order_values) -> TailReport:
     top = np.partition(x, n - top_count)[n - top_count:]
     share = float(np.sum(top) / np.sum(x))
     logs = np.log(x)
-    skew = float(sps.skew(logs)) if n >= 3 and np.ptp(logs) > 0 else 0.0
+    skew = _skewness(logs) if n >= 3 and np.ptp(logs) > 0 else 0.0
     k = max(1, int(0.05 * n))
     alpha = hill_tail_index(x, k) if n >= 20 else float("nan")
 

@@ -147,13 +147,16 @@ def print_json(payload) -> None:
     print(json.dumps(payload, indent=2, default=str, allow_nan=False))
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The parser of every command, or of ``only`` that one (its module alone is imported)."""
     parser = argparse.ArgumentParser(
         prog="python -m forecasting",
         description="Forecast what each customer will spend on their next order. "
                     "Everything runs on this machine; nothing is sent anywhere.")
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     for name, (module_name, summary) in COMMANDS.items():
+        if only is not None and name != only:
+            continue
         try:
             module = importlib.import_module(f"{__name__}.{module_name}")
         except ModuleNotFoundError as missing:
@@ -167,7 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    # A command's run imports what that command needs, not what the others do.
+    parser = build_parser(only=argv[0] if argv and argv[0] in COMMANDS else None)
     args = parser.parse_args(argv)
     if getattr(args, "engine", None) == "dask":
         # The cluster's routine log lines (shuffles starting and ending) are not news to a user.
