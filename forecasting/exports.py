@@ -45,11 +45,6 @@ def neutralise_cell(value):
     return value
 
 
-def _is_text(series: pd.Series) -> bool:
-    return (pd.api.types.is_object_dtype(series) or pd.api.types.is_string_dtype(series)
-            or isinstance(series.dtype, pd.CategoricalDtype))
-
-
 def safe_table(table: pd.DataFrame) -> pd.DataFrame:
     """A copy of ``table`` with text cells (and text column names) neutralised."""
     out = table.copy()
@@ -70,6 +65,7 @@ def safe_table(table: pd.DataFrame) -> pd.DataFrame:
 
 
 _NEEDS_QUOTES = '[",\r\n]'
+_FORMULA_START = "^[=+\\-@\t\r]"  # FORMULA_STARTS as a pattern
 
 
 def _quoted(text):
@@ -82,8 +78,16 @@ def _quoted(text):
     return pc.if_else(needs, enclosed, text)
 
 
+def _neutralised(text):
+    """:func:`neutralise_cell` on a whole Arrow string array."""
+    risky = pc.match_substring_regex(text, _FORMULA_START)
+    if not pc.any(risky).as_py():
+        return text
+    return pc.if_else(risky, pc.binary_join_element_wise("'", text, ""), text)
+
+
 def _cells_as_text(series: pd.Series):
-    """One column as an Arrow array of CSV fields (empty text for missing values)."""
+    """One column as an Arrow array of safe CSV fields (empty text for missing values)."""
     if pd.api.types.is_bool_dtype(series) and not series.isna().any():
         return pa.array(np.where(series.to_numpy(dtype=bool), "True", "False"))
     if pd.api.types.is_datetime64_any_dtype(series):
@@ -95,10 +99,11 @@ def _cells_as_text(series: pd.Series):
         # The shortest text that reads back as exactly the same number.
         return pc.fill_null(pc.cast(pa.array(series.to_numpy(), from_pandas=True), pa.string()), "")
     if pd.api.types.is_string_dtype(series) and not pd.api.types.is_object_dtype(series):
-        text = pa.array(series.fillna("").to_numpy(dtype=object) if series.isna().any() else series.array,
-                        type=pa.string())
+        text = _neutralised(pa.array(series.fillna("").to_numpy(dtype=object) if series.isna().any()
+                                     else series.array, type=pa.string()))
     else:
-        text = pa.array(["" if _is_missing(v) else str(v) for v in series.to_numpy(dtype=object)], type=pa.string())
+        text = pa.array(["" if _is_missing(v) else str(neutralise_cell(v)) for v in series.to_numpy(dtype=object)],
+                        type=pa.string())
     return _quoted(text)
 
 
@@ -117,9 +122,9 @@ def csv_bytes(table: pd.DataFrame) -> bytes:
     when a column has one). Every column is turned into text at once (Arrow compute), so a
     table of millions of customers is written in seconds.
     """
-    safe = safe_table(table)
+    safe = table  # text cells are neutralised column by column as they are encoded
     header = io.StringIO()
-    csv.writer(header, lineterminator="\r\n").writerow(list(safe.columns))
+    csv.writer(header, lineterminator="\r\n").writerow([neutralise_cell(str(c)) for c in safe.columns])
     if len(safe) == 0 or len(safe.columns) == 0:
         return header.getvalue().encode("utf-8")
     # Arrow compute releases the GIL: big tables are encoded in row blocks side by side.
