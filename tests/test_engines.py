@@ -18,6 +18,7 @@ import io
 import os
 import statistics
 from decimal import Decimal
+from fractions import Fraction
 
 import numpy as np
 import pandas as pd
@@ -266,6 +267,33 @@ class TestCustomerStatisticsDuckdb:
         assert stats.loc["nursery-ltd", "sum_sq_dev"] == pytest.approx(exact_ss, rel=1e-9)
         naive = sum(v * v for v in values) - len(values) * statistics.fmean(values) ** 2
         assert naive != pytest.approx(exact_ss, rel=1e-3)  # the one-pass formula would fail here
+
+    def test_one_pass_spreads_are_checked_against_exact_arithmetic(self, tmp_path):
+        # duckdb's one-pass sums of squares are used only where their error bound is far below
+        # 1e-9; the rest take the exact second pass. Customers from well-conditioned (spread of the
+        # order of the mean) to ill-conditioned (1e9 +- 2, all orders equal) must all match exact
+        # fractions (Python's fractions module) and the pandas engine.
+        rng = np.random.default_rng(11)
+        lines, exact = ["customer,order_date,order_value"], {}
+        kinds = [(50.0, 30.0), (200.0, 1.0), (1e6, 5.0), (1e9, 2.0), (75.0, 0.0)]
+        for c in range(150):
+            centre, spread = kinds[c % len(kinds)]
+            n = int(rng.integers(2, 60))
+            values = [round(float(centre + spread * v), 2) if spread else centre for v in rng.standard_normal(n)]
+            values = [v if v > 0 else 1.0 for v in values]
+            name = f"grower-{c}"
+            for i, v in enumerate(values):
+                lines.append(f"{name},2025-{1 + i % 12:02d}-{1 + i % 28:02d},{v!r}")
+            fractions = [Fraction(v) for v in values]
+            mean = sum(fractions) / n
+            exact[name] = float(sum((f - mean) ** 2 for f in fractions))
+        path = tmp_path / "spreads.csv"
+        path.write_text("\n".join(lines) + "\n")
+        stats, _ = customer_statistics_from_file(path, engine="duckdb", threads=2)
+        for name, value in exact.items():
+            got = stats.loc[name, "sum_sq_dev"]
+            assert got == pytest.approx(value, rel=1e-9, abs=1e-18), name
+        assert_same_statistics(stats, pandas_engine(path)[0])
 
     def test_formatted_money_names_the_pandas_engine_and_the_row(self, tmp_path):
         path = tmp_path / "formatted.csv"

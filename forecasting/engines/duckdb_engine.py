@@ -43,19 +43,33 @@ def _literal(text: str) -> str:
 _WS_CLASS = "[" + rules.re2_class(rules.WHITESPACE) + "]"
 
 
+def _plain_edges(expression: str) -> str:
+    """SQL that is true when the first and the last character are printable ASCII (not whitespace).
+
+    A quick test that spares the exact whitespace rules for almost every cell."""
+    return (f"(ascii({expression}) BETWEEN 33 AND 126 AND ascii({expression}[-1]) BETWEEN 33 AND 126)")
+
+
 def _strip(expression: str) -> str:
     """SQL for Python's ``str.strip()`` of ``expression``.
 
     ``trim`` with a set of characters is slow, so it only runs on the few values
     that start or end with whitespace."""
     edge = _literal(f"^{_WS_CLASS}|{_WS_CLASS}$")
-    return (f"(CASE WHEN regexp_matches({expression}, {edge}) "
+    return (f"(CASE WHEN {_plain_edges(expression)} THEN {expression} "
+            f"WHEN regexp_matches({expression}, {edge}) "
             f"THEN trim({expression}, {_literal(rules.WHITESPACE)}) ELSE {expression} END)")
 
 
 def _is_blank(expression: str) -> str:
     """SQL for ``expression.strip() == ""``."""
-    return f"regexp_full_match({expression}, {_literal(_WS_CLASS + '*')})"
+    return (f"(CASE WHEN ascii({expression}) BETWEEN 33 AND 126 THEN false "
+            f"ELSE regexp_full_match({expression}, {_literal(_WS_CLASS + '*')}) END)")
+
+
+def _all(conditions: list[str]) -> str:
+    """SQL for ``all(conditions)`` that stops at the first false one (CASE evaluates lazily)."""
+    return "(CASE " + " ".join(f"WHEN NOT {c} THEN false" for c in conditions) + " ELSE true END)"
 
 
 def _status_word(expression: str) -> str:
@@ -75,13 +89,15 @@ def _connect(directory: str, *, memory_limit: str, threads: int | None):
     connection.execute(f"SET temp_directory = {_literal(os.path.join(directory, 'spill'))}")
     connection.execute("SET preserve_insertion_order = true")
     connection.execute("SET TimeZone = 'UTC'")
+    connection.execute("SET enable_progress_bar = false")  # the command line shows its own progress
     if threads is not None:
         connection.execute(f"SET threads = {int(threads)}")
     return connection
 
 
-def _load_raw(connection, files: OrderFiles) -> None:
-    """Table ``raw``: one row per record, every cell as text ('' for empty), in file order."""
+def _reader(connection, files: OrderFiles) -> str:
+    """A query giving one row per record, every cell as text ('' for empty), in file order:
+    ``file, file_position, c0, c1, ...``."""
     paths = "[" + ", ".join(_literal(p) for p in files.paths) + "]"
     if files.kind == "csv":
         names = "[" + ", ".join(_literal(n) for n in files.columns) + "]"
@@ -121,11 +137,7 @@ def _load_raw(connection, files: OrderFiles) -> None:
                 text = f"CAST({column} AS VARCHAR)"
             cells.append(f"coalesce({text}, '') AS c{i}")
         position = "file_row_number"
-    try:
-        connection.execute(f"CREATE TABLE raw AS SELECT filename AS file, {position} AS file_position, "
-                           f"{', '.join(cells)} FROM {reader}")
-    except Exception as problem:  # duckdb.Error and its subclasses
-        _raise_read_problem(problem, files)
+    return f"SELECT filename AS file, {position} AS file_position, {', '.join(cells)} FROM {reader}"
 
 
 def _raise_read_problem(problem: Exception, files: OrderFiles):
@@ -151,12 +163,16 @@ def _number_positions(connection, files: OrderFiles) -> None:
     """View ``numbered``: ``line`` orders all records (file order, then record order);
     ``file_position`` is the record's 0-based place among the records read from its file."""
     cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
-    if files.kind == "csv":
-        connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM raw GROUP BY file")
+    if files.kind == "csv" and len(files.paths) > 1:
+        connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM records GROUP BY file")
         connection.execute(f"CREATE VIEW numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
-                           f"AS file_position, {cells} FROM raw r JOIN file_start s USING (file)")
+                           f"AS file_position, {cells} FROM records r JOIN file_start s USING (file)")
+    elif files.kind == "csv":
+        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, rowid AS file_position, {cells} "
+                           "FROM records")
     else:
-        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, file_position, {cells} FROM raw")
+        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, file_position, {cells} "
+                           "FROM records")
 
 
 def _row_of(files: OrderFiles, file: str, position) -> int | None:
@@ -165,19 +181,26 @@ def _row_of(files: OrderFiles, file: str, position) -> int | None:
     return files.spreadsheet_row(file, int(position))
 
 
-def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
-    """Tables ``kept`` (rows that are not blank, over-long or duplicates) and ``classified``."""
-    cells = [f"c{i}" for i in range(len(files.columns))]
-    blank = " AND ".join(_is_blank(c) for c in cells)
-    too_long = " OR ".join(f"length({c}) > {rules.MAX_FIELD_CHARS}" for c in cells)
-    connection.execute(f"CREATE TABLE marked AS SELECT *, ({blank}) AS blank, "
-                       f"({too_long}) AS too_long FROM numbered")
-    # Exact copies of an earlier row: one group per distinct row, the earliest copy kept.
-    connection.execute(
-        "CREATE TABLE kept AS SELECT min(line) AS line, arg_min(file, line) AS file, "
-        f"arg_min(file_position, line) AS file_position, count(*) - 1 AS copies, {', '.join(cells)} "
-        f"FROM marked WHERE NOT blank AND NOT too_long GROUP BY {', '.join(cells)}")
+def _where(connection, files: OrderFiles, line: int, role: str | None = None):
+    """``(file label, spreadsheet row, the role's cell as the reader strips it)`` of one record."""
+    cell = f"c{files.columns.index(getattr(files.mapping, role))}" if role else "NULL"
+    file, position, value = connection.execute(
+        f"SELECT file, file_position, {cell} FROM numbered WHERE line = ?", [line]).fetchone()
+    return files.file_label(file), _row_of(files, file, position), \
+        value.strip() if isinstance(value, str) else value
 
+
+def _classify(connection, files: OrderFiles, source: str, *, currency: str | None) -> None:
+    """Table ``records``: one row per record of ``source`` (a query, see :func:`_reader`) in file order,
+    with its cells, its reason code ('' = used) and its parsed cells; view ``classified`` adds ``line``.
+
+    ``kept`` is false for blank, over-long and (after :func:`_mark_copies`) duplicate rows;
+    ``row_key`` hashes every cell, so that exact copies are looked for among few rows only."""
+    cells = [f"c{i}" for i in range(len(files.columns))]
+    blank = _all([_is_blank(c) for c in cells])
+    # length() counts characters; a cell has at least as many bytes (strlen) as characters.
+    short = _all([f"strlen({c}) <= {rules.MAX_FIELD_CHARS}" for c in cells])
+    too_long = f"(NOT {short} AND NOT {_all([f'length({c}) <= {rules.MAX_FIELD_CHARS}' for c in cells])})"
     index = {name: i for i, name in enumerate(files.columns)}
     mapping = files.mapping
 
@@ -196,9 +219,11 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
         row_currency = "upper(currency_text)"
     else:
         # The currency an amount names (the pandas reader's rule): a three-letter code, else a symbol.
+        # A plain number names none, so the patterns only run on the other amounts.
         symbols = " ".join(f"WHEN contains(amount_text, {_literal(s)}) THEN {_literal(iso)}"
                            for s, iso in rules.CURRENCY_SYMBOLS.items())
-        row_currency = (f"CASE WHEN NOT regexp_matches(amount_text, {_literal(rules.wordy_pattern_sql())}) "
+        row_currency = (f"CASE WHEN plain_amount THEN '' "
+                        f"WHEN NOT regexp_matches(amount_text, {_literal(rules.wordy_pattern_sql())}) "
                         "THEN '' WHEN regexp_matches(upper(amount_text), '\\b[A-Z]{3}\\b') "
                         "THEN regexp_extract(upper(amount_text), '\\b([A-Z]{3})\\b', 1) "
                         f"{symbols} ELSE '' END")
@@ -213,19 +238,17 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
         early.append(f"WHEN row_currency <> '' AND row_currency <> {_literal(wanted)} THEN 'other_currency'")
     refund = "false"
     if mapping.status:
-        refund = f"regexp_full_match({status}, {_literal(rules.REFUND_PATTERN)})"
-    connection.execute(f"""
-        CREATE VIEW staged AS
-        SELECT *, {row_currency} AS row_currency
-        FROM (SELECT line, file, file_position, copies,
-                     {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
-                     {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
-                     {status} AS status_word, {currency_text} AS currency_text
-              FROM kept)""")
-    connection.execute(f"""
-        CREATE TABLE classified AS
-        SELECT *,
-               CASE WHEN early_reason <> '' THEN early_reason
+        refund = f"regexp_full_match(status_word, {_literal(rules.REFUND_PATTERN)})"
+    text_columns = ("order_text, " if mapping.order_id else "") + ("segment_text, " if mapping.segment else "")
+    # Innermost first: the cells as the reader strips them, then their readings, then the reasons.
+    sql = f"""
+        CREATE TABLE records AS
+        SELECT file, file_position, {', '.join(cells)}, kept, row_key, customer, {text_columns}row_currency, order_date,
+               (amount < 0 OR refund_status) AS is_refund,
+               CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed,
+               CASE WHEN blank THEN 'blank_row'
+                    WHEN NOT kept THEN 'malformed_row'
+                    WHEN early_reason <> '' THEN early_reason
                     WHEN amount_kind = 'missing' THEN 'missing_amount'
                     WHEN amount_kind = 'formatted' THEN 'formatted_amount'
                     WHEN amount_kind = 'unreadable' THEN 'bad_amount'
@@ -237,8 +260,7 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
             SELECT *,
                    CASE {' '.join(early)} ELSE '' END AS early_reason,
                    CASE WHEN amount_text = '' THEN 'missing'
-                        WHEN regexp_full_match(amount_text, {_literal(rules.PLAIN_NUMBER)})
-                             THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'formatted' END
+                        WHEN plain_amount THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'formatted' END
                         WHEN regexp_matches(amount_text, '\\p{{Nd}}') THEN 'formatted'
                         ELSE 'unreadable' END AS amount_kind,
                    CASE WHEN date_text = '' THEN 'missing'
@@ -249,20 +271,56 @@ def _classify(connection, files: OrderFiles, *, currency: str | None) -> None:
                                        ELSE 'iso' END
                         WHEN regexp_matches(date_text, '[\\pL\\pN]') THEN 'other'
                         ELSE 'unreadable' END AS date_kind
-            FROM (SELECT *, TRY_CAST(amount_text AS DOUBLE) AS amount,
-                            TRY_CAST(date_text AS TIMESTAMP) AS order_date FROM staged))""")
+            FROM (
+                SELECT *, {row_currency} AS row_currency
+                FROM (
+                    SELECT *, regexp_full_match(amount_text, {_literal(rules.PLAIN_NUMBER)}) AS plain_amount,
+                           TRY_CAST(amount_text AS DOUBLE) AS amount,
+                           TRY_CAST(date_text AS TIMESTAMP) AS order_date
+                    FROM (
+                        SELECT *, NOT blank AND NOT too_long AS kept,
+                               hash({', '.join(cells)}) AS row_key,
+                               {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
+                               {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
+                               status_word, {currency_text} AS currency_text
+                        FROM (SELECT *, ({blank}) AS blank, ({too_long}) AS too_long,
+                                     {status} AS status_word
+                              FROM ({source}))))))"""
+    try:
+        connection.execute(sql)
+    except Exception as problem:  # duckdb.Error and its subclasses: the file could not be read
+        _raise_read_problem(problem, files)
+    connection.execute("CREATE VIEW classified AS SELECT rowid AS line, * FROM records")
 
 
-def _first(connection, where: str, column: str):
-    found = connection.execute(f"SELECT file, file_position, {column} FROM classified WHERE {where} "
-                               "ORDER BY line LIMIT 1").fetchone()
-    return found
+def _mark_copies(connection, files: OrderFiles) -> None:
+    """Exact copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
+
+    Rows are compared cell by cell, but only those whose hash of every cell is shared."""
+    connection.execute("CREATE TABLE shared_keys AS SELECT row_key FROM classified WHERE kept "
+                       "GROUP BY row_key HAVING count(*) > 1")
+    if not connection.execute("SELECT count(*) FROM shared_keys").fetchone()[0]:
+        return
+    cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
+    connection.execute("CREATE TABLE candidates AS SELECT line FROM classified "
+                       "WHERE kept AND row_key IN (SELECT row_key FROM shared_keys)")
+    connection.execute(f"""
+        CREATE TABLE copies AS
+        SELECT line FROM (
+            SELECT line, row_number() OVER (PARTITION BY {cells} ORDER BY line) AS copy_number
+            FROM numbered WHERE line IN (SELECT line FROM candidates))
+        WHERE copy_number > 1""")
+    connection.execute("UPDATE records SET kept = false, reason = 'duplicate_row' "
+                       "WHERE rowid IN (SELECT line FROM copies)")
 
 
-def _raw_cell(connection, files: OrderFiles, line: int, role: str):
-    column = getattr(files.mapping, role)
-    index = files.columns.index(column)
-    return connection.execute(f"SELECT c{index} FROM raw WHERE rowid = ?", [line]).fetchone()[0]
+# Reasons decided before the amount and the date are looked at.
+_EARLY = "('missing_customer', 'test_order', 'cancelled_order', 'other_currency')"
+
+
+def _first_line(connection, where: str) -> int | None:
+    found = connection.execute(f"SELECT min(line) FROM classified WHERE kept AND {where}").fetchone()[0]
+    return None if found is None else int(found)
 
 
 def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None) -> None:
@@ -270,116 +328,171 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
     mapping = files.mapping
     if not currency:
         seen = [r[0] for r in connection.execute(
-            "SELECT DISTINCT row_currency FROM classified WHERE early_reason = '' AND row_currency <> '' "
+            f"SELECT DISTINCT row_currency FROM classified WHERE kept AND reason NOT IN {_EARLY} AND row_currency <> '' "
             "ORDER BY row_currency").fetchall()]
         if len(seen) > 1:
-            line, file, position = connection.execute(
-                "SELECT line, file, file_position FROM classified WHERE early_reason = '' AND row_currency = ? "
-                "ORDER BY line LIMIT 1", [seen[1]]).fetchone()
             role = "currency" if mapping.currency else "value"
+            line = _first_line(connection, f"reason NOT IN {_EARLY} AND row_currency = {_literal(seen[1])}")
+            file, row, value = _where(connection, files, line, role)
             raise OrderDataError(
-                f"the amounts are in several currencies ({', '.join(seen)})", file=files.file_label(file),
-                row=_row_of(files, file, position), column=mapping.currency or mapping.value,
-                value=_raw_cell(connection, files, line, role),
+                f"the amounts are in several currencies ({', '.join(seen)})", file=file, row=row,
+                column=mapping.currency or mapping.value, value=value,
                 fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
-    for kind, column, option, what, reading_rule, unreadable, values in (
-        ("formatted_amount", mapping.value, "--value", "amounts", "plain numbers such as 1234.50",
+    for kind, role, option, what, reading_rule, unreadable, values in (
+        ("formatted_amount", "value", "--value", "amounts", "plain numbers such as 1234.50",
          "reason = 'bad_amount'",
-         "early_reason = '' AND amount_kind <> 'missing'"),
-        ("other_date", mapping.date, "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30",
+         f"reason NOT IN {_EARLY} AND reason <> 'missing_amount'"),
+        ("other_date", "date", "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30",
          "reason = 'bad_date'",
-         "early_reason = '' AND amount_kind = 'plain' AND date_kind <> 'missing'"),
+         "reason IN ('', 'other_date', 'bad_date')"),
     ):
-        found = _first(connection, f"reason = '{kind}'", "amount_text" if kind == "formatted_amount" else "date_text")
-        if found is not None:
-            file, position, value = found
+        column = getattr(mapping, role)
+        line = _first_line(connection, f"reason = '{kind}'")
+        if line is not None:
+            file, row, value = _where(connection, files, line, role)
             raise OrderDataError(
                 f"the duckdb engine reads {reading_rule}; this value needs the pandas reader",
-                file=files.file_label(file), row=_row_of(files, file, position), column=column, value=value,
-                fix="Use --engine pandas for formatted exports")
+                file=file, row=row, column=column, value=value, fix="Use --engine pandas for formatted exports")
         total, bad = connection.execute(
-            f"SELECT count(*), count(*) FILTER (WHERE {unreadable}) FROM classified WHERE {values}").fetchone()
+            f"SELECT count(*), count(*) FILTER (WHERE {unreadable}) FROM classified WHERE kept AND {values}"
+        ).fetchone()
         if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
-            file, position, value = _first(connection, unreadable,
-                                           "amount_text" if what == "amounts" else "date_text")
-            raise OrderDataError(f"most {what} in this column cannot be read", file=files.file_label(file),
-                                 row=_row_of(files, file, position), column=column, value=value,
+            file, row, value = _where(connection, files, _first_line(connection, unreadable), role)
+            raise OrderDataError(f"most {what} in this column cannot be read", file=file, row=row,
+                                 column=column, value=value,
                                  fix=f"Pick the right column with {option}, or check the format")
 
 
 def _build_orders(connection, files: OrderFiles) -> None:
-    """Tables ``order_lines`` and ``orders``: lines summed by order id, refunds netted."""
+    """``orders``: lines summed by order id, refunds netted (a view when every line is an order)."""
     connection.execute("""
-        CREATE VIEW order_lines AS
-        SELECT line, file, file_position, customer, order_text, segment_text, order_date,
-               (amount < 0 OR refund_status) AS is_refund,
-               CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed
-        FROM classified WHERE reason = ''""")
+        CREATE VIEW order_lines AS SELECT * FROM classified WHERE reason = ''""")
     if files.mapping.order_id:
         # Lines sharing a customer and an order id are one order; a line without an id is its own.
-        connection.execute("""
+        segment = ("coalesce(first(segment_text ORDER BY line) FILTER (WHERE segment_text <> ''), 'unknown')"
+                   if files.mapping.segment else "''")
+        connection.execute(f"""
             CREATE TABLE orders AS
             SELECT customer, min(line) AS first_line, count(*) AS lines,
                    sum(signed ORDER BY line) AS order_value,
                    count(*) FILTER (WHERE NOT is_refund) AS purchases,
                    min(order_date) FILTER (WHERE NOT is_refund) AS order_date,
-                   coalesce(first(segment_text ORDER BY line) FILTER (WHERE segment_text <> ''), 'unknown')
-                       AS segment
+                   {segment} AS segment
             FROM order_lines
             GROUP BY customer, order_text, CASE WHEN order_text = '' THEN line END""")
     else:
-        connection.execute("""
-            CREATE TABLE orders AS
+        segment = "CASE WHEN segment_text = '' THEN 'unknown' ELSE segment_text END" if files.mapping.segment else "''"
+        connection.execute(f"""
+            CREATE VIEW orders AS
             SELECT customer, line AS first_line, 1 AS lines, signed AS order_value,
                    CASE WHEN is_refund THEN 0 ELSE 1 END AS purchases,
                    CASE WHEN is_refund THEN NULL ELSE order_date END AS order_date,
-                   CASE WHEN segment_text = '' THEN 'unknown' ELSE segment_text END AS segment
+                   {segment} AS segment
             FROM order_lines""")
-
-
-_STATISTICS_SQL = """
-    WITH kept_orders AS (
+    connection.execute("""
+        CREATE VIEW kept_orders AS
         SELECT customer, first_line, order_value, ln(order_value) AS log_value, order_date, segment
-        FROM orders WHERE purchases > 0 AND order_value > 0),
-    sums AS (
-        SELECT customer, count(*) AS orders, sum(order_value) AS total, sum(log_value) AS log_total,
-               min(order_date) AS first_order, max(order_date) AS last_order,
-               arg_max(segment, {'day': order_date, 'line': first_line}) AS segment
-        FROM kept_orders GROUP BY customer),
-    means AS (
-        SELECT *, total / orders AS mean, log_total / orders AS log_mean FROM sums)
-    -- Second pass: squared deviations from the customer's own mean (exact for values of any size).
-    SELECT m.customer, m.orders, m.total, m.mean,
-           sum((o.order_value - m.mean) * (o.order_value - m.mean)) AS sum_sq_dev,
-           m.log_mean,
-           sum((o.log_value - m.log_mean) * (o.log_value - m.log_mean)) AS log_sum_sq_dev,
-           m.first_order, m.last_order, m.segment
-    FROM kept_orders o JOIN means m USING (customer)
-    GROUP BY m.customer, m.orders, m.total, m.mean, m.log_mean, m.first_order, m.last_order, m.segment
-    ORDER BY m.customer
-"""
+        FROM orders WHERE purchases > 0 AND order_value > 0""")
+
+
+# When duckdb's one-pass sums of squares are as good as two passes (see _sum_by_customer).
+_EPSILON = float(np.finfo(np.float64).eps)
+_ONE_PASS_TOLERANCE = 1e-12
+
+
+def _sum_by_customer(connection, with_segment: bool) -> None:
+    """Table ``sums``: one pass per customer (its ``rowid`` numbers the customers).
+
+    The sums of squared deviations come from duckdb's ``var_pop``, an updating (Welford)
+    algorithm whose relative error is at most about n * kappa * eps, kappa being the
+    condition number sqrt(1 + mean^2 / variance) (Chan, Golub and LeVeque 1983). Where ten
+    times (1 + |mean| / sd) * n * eps exceeds 1e-12, or a customer's orders are all equal,
+    ``exact_needed`` marks the customer for the exact second pass of :func:`_statistics`.
+    Typical order values (spread of the order of the mean) never need it; wholesale orders
+    of about 1e9 that differ by a few units do.
+    """
+    segment = (", arg_max(segment, {'day': order_date, 'line': first_line}) AS segment" if with_segment else "")
+
+    def needs_exact(sum_sq: str, mean: str) -> str:
+        return (f"({sum_sq} <= 0 OR 10 * orders * {_EPSILON!r} * (1 + abs({mean}) / sqrt({sum_sq} / orders)) "
+                f"> {_ONE_PASS_TOLERANCE!r})")
+
+    connection.execute(f"""
+        CREATE TABLE sums AS
+        SELECT *, orders > 1 AND ({needs_exact('sum_sq_dev', 'mean')} OR {needs_exact('log_sum_sq_dev', 'log_mean')})
+                  AS exact_needed
+        FROM (SELECT *, total / orders AS mean, log_total / orders AS log_mean
+              FROM (SELECT customer, count(*) AS orders, sum(order_value) AS total, sum(log_value) AS log_total,
+                           var_pop(order_value) * count(*) AS sum_sq_dev,
+                           var_pop(log_value) * count(*) AS log_sum_sq_dev,
+                           min(order_date) AS first_order, max(order_date) AS last_order{segment}
+                    FROM kept_orders GROUP BY customer))""")
+
+
+def _statistics(connection, with_segment: bool) -> pd.DataFrame:
+    """The exact second pass where :func:`_sum_by_customer` asks for it (squared deviations from
+    each customer's own mean, exact for values of any size), then the table in the layout of
+    :func:`forecasting.customers.customer_statistics`."""
+    columns = ("rowid AS id, customer, orders, total, mean, sum_sq_dev, log_mean, log_sum_sq_dev, "
+               "first_order, last_order" + (", segment" if with_segment else ""))
+    with connection.cursor() as cursor:  # a fresh cursor: earlier results need not be fetched to the end
+        table = cursor.sql(f"SELECT {columns} FROM sums ORDER BY customer").to_arrow_table()
+    n = table.num_rows
+    sum_sq = table.column("sum_sq_dev").to_numpy().astype(np.float64)
+    log_sum_sq = table.column("log_sum_sq_dev").to_numpy().astype(np.float64)
+    if connection.execute("SELECT count(*) FROM sums WHERE exact_needed").fetchone()[0]:
+        exact = connection.execute("""
+            SELECT s.id, sum((o.order_value - s.mean) * (o.order_value - s.mean)) AS sum_sq_dev,
+                   sum((o.log_value - s.log_mean) * (o.log_value - s.log_mean)) AS log_sum_sq_dev
+            FROM kept_orders o
+            JOIN (SELECT rowid AS id, customer, mean, log_mean FROM sums WHERE exact_needed) s USING (customer)
+            GROUP BY s.id""").fetchnumpy()
+        # Customers in sorted order; place the second-pass sums by customer number.
+        place = np.empty(n, dtype=np.int64)
+        place[table.column("id").to_numpy()] = np.arange(n)
+        at = place[exact["id"].astype(np.int64)]
+        sum_sq[at] = exact["sum_sq_dev"]
+        log_sum_sq[at] = exact["log_sum_sq_dev"]
+    sum_sq[table.column("orders").to_numpy() == 1] = 0.0
+    log_sum_sq[table.column("orders").to_numpy() == 1] = 0.0
+    counts = table.column("orders").to_numpy().astype(np.int64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
+
+    def dates(name):
+        return table.column(name).to_pandas().to_numpy().astype("datetime64[ns]")
+
+    stats = pd.DataFrame(
+        {
+            "orders": counts,
+            "total": table.column("total").to_numpy().astype(np.float64),
+            "mean": table.column("mean").to_numpy().astype(np.float64),
+            "sum_sq_dev": sum_sq,
+            "log_mean": table.column("log_mean").to_numpy().astype(np.float64),
+            "log_sum_sq_dev": log_sum_sq,
+            "log_var": log_var,
+            "first_order": dates("first_order"),
+            "last_order": dates("last_order"),
+        },
+        columns=STATISTICS_COLUMNS,
+        index=pd.Index(table.column("customer").to_pandas(), name="customer"),
+    )
+    if with_segment:
+        stats["segment"] = table.column("segment").to_pandas().to_numpy(dtype=object)
+    return stats
 
 
 def _account(connection, files: OrderFiles) -> dict:
-    counts: dict[str, int] = {}
-    blank_marked, too_long = connection.execute(
-        "SELECT count(*) FILTER (WHERE blank), count(*) FILTER (WHERE too_long AND NOT blank) FROM marked"
-    ).fetchone()
-    counts["blank_row"] = int(blank_marked) + files.blank_lines
-    counts["malformed_row"] = int(too_long)
-    counts["duplicate_row"] = int(connection.execute("SELECT coalesce(sum(copies), 0) FROM kept").fetchone()[0])
-    for code, number in connection.execute(
-            "SELECT reason, count(*) FROM classified WHERE reason <> '' GROUP BY reason").fetchall():
-        counts[code] = int(number)
+    counts: dict[str, int] = dict(connection.execute(
+        "SELECT reason, count(*) FROM classified WHERE reason <> '' GROUP BY reason").fetchall())
+    counts["blank_row"] = counts.get("blank_row", 0) + files.blank_lines
     for code, number in connection.execute("""
             SELECT CASE WHEN purchases = 0 THEN 'unmatched_refund' ELSE 'refunded_in_full' END, sum(lines)
             FROM orders WHERE purchases = 0 OR order_value <= 0 GROUP BY 1""").fetchall():
         counts[code] = int(number)
-    rows_read = int(connection.execute("SELECT count(*) FROM raw").fetchone()[0]) + files.blank_lines
-    excluded = {code: counts[code] for code in REASONS if counts.get(code, 0) > 0}
-    orders, customers = connection.execute(
-        "SELECT count(*), count(DISTINCT customer) FROM orders WHERE purchases > 0 AND order_value > 0"
-    ).fetchone()
+    rows_read = int(connection.execute("SELECT count(*) FROM classified").fetchone()[0]) + files.blank_lines
+    excluded = {code: int(counts[code]) for code in REASONS if counts.get(code, 0) > 0}
+    orders, customers = connection.execute("SELECT coalesce(sum(orders), 0), count(*) FROM sums").fetchone()
     rows_excluded = sum(excluded.values())
     return {
         "file": files.display_name,
@@ -392,32 +505,6 @@ def _account(connection, files: OrderFiles) -> dict:
         "mapping": files.mapping.as_dict(),
         "notes": list(files.notes),
     }
-
-
-def _statistics_frame(table: pd.DataFrame, with_segment: bool) -> pd.DataFrame:
-    """The duckdb result in the layout of :func:`forecasting.customers.customer_statistics`."""
-    counts = table["orders"].to_numpy(dtype=np.int64)
-    log_sum_sq = table["log_sum_sq_dev"].to_numpy(dtype=np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
-    stats = pd.DataFrame(
-        {
-            "orders": counts,
-            "total": table["total"].to_numpy(dtype=np.float64),
-            "mean": table["mean"].to_numpy(dtype=np.float64),
-            "sum_sq_dev": table["sum_sq_dev"].to_numpy(dtype=np.float64),
-            "log_mean": table["log_mean"].to_numpy(dtype=np.float64),
-            "log_sum_sq_dev": log_sum_sq,
-            "log_var": log_var,
-            "first_order": pd.to_datetime(table["first_order"]).to_numpy().astype("datetime64[ns]"),
-            "last_order": pd.to_datetime(table["last_order"]).to_numpy().astype("datetime64[ns]"),
-        },
-        columns=STATISTICS_COLUMNS,
-        index=pd.Index(np.asarray(table["customer"].to_numpy(), dtype=object), name="customer"),
-    )
-    if with_segment:
-        stats["segment"] = table["segment"].to_numpy(dtype=object)
-    return stats
 
 
 def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, order_id=None, status=None,
@@ -511,12 +598,14 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
     with tempfile.TemporaryDirectory(prefix="order-engine-", dir=temp_directory) as directory:
         connection = _connect(directory, memory_limit=memory_limit, threads=threads)
         try:
-            _load_raw(connection, files)
+            _classify(connection, files, _reader(connection, files), currency=currency)
             _check_record_counts(connection, files)
             _number_positions(connection, files)
-            _classify(connection, files, currency=currency)
+            _mark_copies(connection, files)
             _check_whole_columns(connection, files, currency=currency)
             _build_orders(connection, files)
+            with_segment = files.mapping.segment is not None
+            _sum_by_customer(connection, with_segment)
             account = _account(connection, files)
             if account["orders"] == 0:
                 excluded = account["excluded"]
@@ -524,17 +613,17 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
                 why = f"; most rows were left out because {REASONS[top]}" if top else ""
                 raise OrderDataError(f"no usable orders were found{why}", file=files.display_name,
                                      fix="Check the column choices and the export")
-            table = connection.execute(_STATISTICS_SQL).df()
+            stats = _statistics(connection, with_segment)
         finally:
             connection.close()
-    return _statistics_frame(table, with_segment=files.mapping.segment is not None), account
+    return stats, account
 
 
 def _check_record_counts(connection, files: OrderFiles) -> None:
     """The blank-line scan and duckdb must agree on how many records each file has."""
     if files.kind != "csv":
         return
-    counted = dict(connection.execute("SELECT file, count(*) FROM raw GROUP BY file").fetchall())
+    counted = dict(connection.execute("SELECT file, count(*) FROM records GROUP BY file").fetchall())
     for path in files.paths:
         scanned = files.scanned_records.get(path)
         if scanned is not None and scanned != counted.get(path, 0):
