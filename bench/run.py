@@ -164,8 +164,28 @@ def bench_size(n_orders: int, seed: int, rows: list, *, every_pair_at_10m: bool 
         record(f"evaluate_methods: {len(pairs)} closed-form pairs, backtest, 500 bootstrap resamples",
                lambda: evaluation.evaluate_methods(orders, methods=list(evaluation.EXACT_METHODS),
                                                    variances=list(evaluation.EXACT_VARIANCES), bootstrap=500))
+    bench_forecast_steps(path, record)
     del result, orders, stats
     gc.collect()
+
+
+def bench_forecast_steps(path: Path, record) -> None:
+    """The steps of ``forecast --engine duckdb`` one by one, to show where its time goes."""
+    try:
+        import duckdb  # noqa: F401
+    except ImportError:
+        return
+    from forecasting.engines import customer_statistics_from_file
+    from forecasting.exports import write_csv
+    from forecasting.forecasts import forecast_customers
+
+    stats, _ = record("forecast step 1: duckdb engine (read, clean, row account, statistics)",
+                      lambda: customer_statistics_from_file(path, engine="duckdb"))
+    table = record(f"forecast step 2: forecast_customers, mta, {len(stats):,} customers",
+                   lambda: forecast_customers(stats, method="mta"))
+    with tempfile.TemporaryDirectory(prefix="bench-forecasts-") as folder:
+        record(f"forecast step 3: write_csv of {len(table):,} forecasts",
+               lambda: write_csv(table, Path(folder) / "forecasts.csv"))
 
 
 # ---------------------------------------------------------------------------
