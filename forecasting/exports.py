@@ -122,21 +122,25 @@ def csv_bytes(table: pd.DataFrame) -> bytes:
     when a column has one). Every column is turned into text at once (Arrow compute), so a
     table of millions of customers is written in seconds.
     """
-    safe = table  # text cells are neutralised column by column as they are encoded
+    return b"".join(_csv_pieces(table))
+
+
+def _csv_pieces(table: pd.DataFrame):
+    """The header, then the records in blocks of rows, as bytes, in order."""
     header = io.StringIO()
-    csv.writer(header, lineterminator="\r\n").writerow([neutralise_cell(str(c)) for c in safe.columns])
-    if len(safe) == 0 or len(safe.columns) == 0:
-        return header.getvalue().encode("utf-8")
-    # Arrow compute releases the GIL: big tables are encoded in row blocks side by side.
-    blocks = max(1, min(os.cpu_count() or 1, len(safe) // _ROWS_PER_BLOCK))
-    edges = np.linspace(0, len(safe), blocks + 1).astype(int)
-    parts = [safe.iloc[start:stop] for start, stop in zip(edges[:-1], edges[1:])]
-    if blocks == 1:
-        bodies = [_csv_body(parts[0])]
-    else:
-        with ThreadPoolExecutor(max_workers=blocks) as pool:
-            bodies = list(pool.map(_csv_body, parts))
-    return b"".join([header.getvalue().encode("utf-8"), *bodies])
+    csv.writer(header, lineterminator="\r\n").writerow([neutralise_cell(str(c)) for c in table.columns])
+    yield header.getvalue().encode("utf-8")
+    if len(table) == 0 or len(table.columns) == 0:
+        return
+    # Arrow compute releases the GIL: blocks of rows are encoded side by side, and the caller
+    # can write one block while the next are being encoded.
+    edges = list(range(0, len(table), _ROWS_PER_BLOCK)) + [len(table)]
+    blocks = [table.iloc[start:stop] for start, stop in zip(edges[:-1], edges[1:])]
+    if len(blocks) == 1:
+        yield _csv_body(blocks[0])
+        return
+    with ThreadPoolExecutor(max_workers=min(len(blocks), os.cpu_count() or 1)) as pool:
+        yield from pool.map(_csv_body, blocks)
 
 
 _ROWS_PER_BLOCK = 200_000
@@ -162,7 +166,9 @@ def csv_text(table: pd.DataFrame) -> str:
 def write_csv(table: pd.DataFrame, path) -> Path:
     """Write ``table`` as safe CSV to ``path`` and return the path."""
     path = Path(path)
-    path.write_bytes(csv_bytes(table))
+    with open(path, "wb") as handle:
+        for piece in _csv_pieces(table):
+            handle.write(piece)
     return path
 
 
