@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import os
 import tempfile
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -594,11 +595,15 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
                                  "or use --engine pandas") from None
     overrides = {"customer": customer, "date": date, "value": value, "order_id": order_id,
                  "status": status, "currency": currency_column, "segment": segment}
-    files = open_order_files(source, overrides=overrides, file_name=file_name)
-    with tempfile.TemporaryDirectory(prefix="order-engine-", dir=temp_directory) as directory:
+    files = open_order_files(source, overrides=overrides, file_name=file_name, scan=False)
+    with tempfile.TemporaryDirectory(prefix="order-engine-", dir=temp_directory) as directory, \
+            ThreadPoolExecutor(max_workers=1) as helper:
         connection = _connect(directory, memory_limit=memory_limit, threads=threads)
+        # duckdb skips blank lines; they are found (to be counted) while duckdb reads the file.
+        scanned = helper.submit(files.scan_blank_lines)
         try:
             _classify(connection, files, _reader(connection, files), currency=currency)
+            scanned.result()
             _check_record_counts(connection, files)
             _number_positions(connection, files)
             _mark_copies(connection, files)

@@ -49,6 +49,12 @@ class OrderFiles:
     def blank_lines(self) -> int:
         return int(sum(len(b) for b in self.blank_records.values()))
 
+    def scan_blank_lines(self) -> None:
+        """Fill ``blank_records`` and ``scanned_records`` for CSV files (see :func:`scan_records`)."""
+        if self.kind == "csv":
+            for path in self.paths:
+                self.blank_records[path], self.scanned_records[path] = scan_records(path)
+
     def file_label(self, path: str) -> str:
         return Path(path).name if len(self.paths) > 1 else self.display_name
 
@@ -154,7 +160,7 @@ def _parquet_sample(path: str) -> pd.DataFrame:
     return text_cells(frame)
 
 
-def open_order_files(source, *, overrides: dict, file_name: str | None = None) -> OrderFiles:
+def open_order_files(source, *, overrides: dict, file_name: str | None = None, scan: bool = True) -> OrderFiles:
     """Check the files, guess the column mapping as the pandas reader would, find blank lines.
 
     Parameters
@@ -165,6 +171,9 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None) -
         Role -> column chosen by the user (as for :func:`forecasting.reading.guess_mapping`).
     file_name : str, optional
         The name shown in messages (default: the file's name, or the pattern).
+    scan : bool, default True
+        Find the blank lines of CSV files now; with False the caller runs
+        :meth:`OrderFiles.scan_blank_lines` (for example beside other work).
     """
     paths = resolve_paths(source)
     kinds = {_file_kind(p) for p in paths}
@@ -211,9 +220,8 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None) -
     if kind == "csv" and delimiter != ",":
         # The pandas reader's note, word for word.
         files.notes.append(f"Fields are separated by {'a tab' if delimiter == chr(9) else repr(delimiter)}.")
-    if kind == "csv":
-        for path in paths:
-            files.blank_records[path], files.scanned_records[path] = scan_records(path)
+    if kind == "csv" and scan:
+        files.scan_blank_lines()
     return files
 
 
