@@ -75,3 +75,17 @@ class TestProgress:
             progress.finish()
         assert "2/2 fitting" in terminal.getvalue() and "done in" in terminal.getvalue()
         assert captured.getvalue() == ""
+
+
+class TestLargeFileNote:
+    def test_pandas_engine_suggests_duckdb_for_large_files_only(self, tmp_path, monkeypatch, capsys):
+        import forecasting.cli as cli
+
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,date,amount\nC1,2025-01-02,10\nC1,2025-02-02,12\n")
+        assert cli.main(["check", str(path)]) == 0
+        assert "--engine duckdb" not in capsys.readouterr().err
+        monkeypatch.setattr(cli, "LARGE_FILE_BYTES", path.stat().st_size)
+        assert cli.main(["check", str(path)]) == 0
+        err = capsys.readouterr().err
+        assert "note: orders.csv is 0 MB" in err and "--engine duckdb" in err

@@ -52,9 +52,24 @@ def add_column_options(parser: argparse.ArgumentParser) -> None:
     reading.add_argument("--sheet", help="Excel sheet name (default: the first sheet)")
 
 
+# From this size on, the pandas engine's run suggests the duckdb engine (bytes; a rule of thumb).
+LARGE_FILE_BYTES = 200 * 1024 * 1024
+
+
 def load_from_args(args: argparse.Namespace) -> ReadResult:
     """Read the file named on the command line with the column options given."""
+    _suggest_duckdb_for_large_files(args.file)
     return read_orders(args.file, **column_options(args))
+
+
+def _suggest_duckdb_for_large_files(path) -> None:
+    try:
+        size = os.path.getsize(path)
+    except (OSError, TypeError, ValueError):
+        return  # the reader reports a missing file with its own message
+    if size >= LARGE_FILE_BYTES:
+        print(f"note: {os.path.basename(path)} is {size / 1024 ** 2:,.0f} MB; for a plain CSV or Parquet export "
+              "this size, --engine duckdb is several times faster and needs less memory", file=sys.stderr)
 
 
 ENGINE_CHOICES = ("pandas", "duckdb", "dask")
