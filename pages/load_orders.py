@@ -154,9 +154,9 @@ if result is not None:
         )
         st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons",
                      height=layout.table_height(len(reasons)))
-        left_out = result.excluded
-        if "raw_text" in left_out.columns and left_out["raw_text"].isna().any():
-            left_out = left_out.assign(raw_text=left_out["raw_text"].fillna(""))
+        # A row that did not split into fields has its text in "Row as written" and no cells: show
+        # its cells empty rather than as "None".
+        left_out = result.excluded.fillna("")
         st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
                     "(the header is row 1) and the reason:")
         st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True,

@@ -119,6 +119,11 @@ class TestLoadOrders:
         assert metric(at, "Rows used") == audit["rows_used"]
         assert metric(at, "Orders") == audit["orders"] == 32  # demo_data/README.md: 32 orders from 9 customers
         assert metric(at, "Customers") == audit["customers"] == 9
+        # The row that did not split into fields shows its text, and empty cells rather than "None".
+        left_out = table_with(at, "reason")
+        split_failed = left_out[left_out["raw_text"] != ""]
+        assert len(split_failed) == audit["excluded"]["malformed_row"]
+        assert not left_out.isna().any().any()
 
     def test_messy_export_shows_euros(self):
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())
