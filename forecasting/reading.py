@@ -777,10 +777,12 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
     cells, rows, notes = raw.cells, raw.row_numbers, list(raw.notes)
     n = len(cells)
     reason = np.full(n, "", dtype=object)
+    open_rows = np.ones(n, dtype=bool)  # reason == "", kept as booleans (comparing text is slow)
 
     def exclude(mask, code: str) -> None:
-        mask = np.asarray(mask, dtype=bool) & (reason == "")
+        mask = np.asarray(mask, dtype=bool) & open_rows
         reason[mask] = code
+        open_rows[mask] = False
 
     text = {role: cells[col].astype(str).str.strip() if col else None for role, col in mapping.as_dict().items()}
     long_field = np.zeros(n, dtype=bool)
@@ -792,7 +794,7 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
     exclude(blank, "blank_row")
     exclude(long_field, "oversized_field")
     exclude(cells.duplicated(keep="first").to_numpy() & ~blank, "duplicate_row")
-    exclude(text["customer"].to_numpy() == "", "missing_customer")
+    exclude(_is_empty(text["customer"]), "missing_customer")
     status = _status_text(cells, mapping)
     if mapping.status:
         exclude(status.str.fullmatch(_TEST_STATUS).to_numpy(), "test_order")
@@ -808,7 +810,7 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
         row_currency = pd.Series("", index=cells.index, dtype=object)
         if wordy.any():
             row_currency[wordy] = _currency_marks(amount_text[wordy])
-    alive = reason == ""
+    alive = open_rows.copy()
     seen = sorted(set(row_currency[alive & (row_currency != "").to_numpy()]))
     if currency:
         wanted = currency.strip().upper()
@@ -822,8 +824,8 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
             column=mapping.currency or mapping.value, value=cells[mapping.currency or mapping.value].iloc[at],
             fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
 
-    exclude(amount_text.to_numpy() == "", "missing_amount")
-    alive = reason == ""
+    exclude(_is_empty(amount_text), "missing_amount")
+    alive = open_rows.copy()
     amounts = pd.Series(np.nan, index=cells.index)
     amounts[alive] = parse_money(amount_text[alive], decimal=decimal, column=mapping.value,
                                  file_name=file_name, row_numbers=rows[alive], notes=notes)
@@ -831,8 +833,8 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
                                  mapping.value, "amounts", "--value")
     exclude(amounts.isna().to_numpy(), "bad_amount")
 
-    exclude(text["date"].to_numpy() == "", "missing_date")
-    alive = reason == ""
+    exclude(_is_empty(text["date"]), "missing_date")
+    alive = open_rows.copy()
     dates = pd.Series(pd.NaT, index=cells.index, dtype="datetime64[ns]")
     if alive.any():
         dates[alive] = parse_dates(text["date"][alive], date_order=date_order, column=mapping.date,
@@ -841,7 +843,7 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
                                      mapping.date, "dates", "--date")
     exclude(dates.isna().to_numpy(), "bad_date")
 
-    orders, reason = _build_orders(cells, mapping, text, status, amounts, dates, rows, reason)
+    orders, reason = _build_orders(cells, mapping, text, status, amounts, dates, rows, reason, open_rows)
     excluded = _excluded_table(cells, rows, reason, raw.malformed)
     rows_read = n + len(raw.malformed)
     result = ReadResult(orders=orders, excluded=excluded, mapping=mapping, rows_read=rows_read,
@@ -864,9 +866,14 @@ def _refuse_if_mostly_unreadable(unreadable: pd.Series, text: pd.Series, rows: n
                              fix=f"Pick the right column with {option}, or check the format")
 
 
-def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason):
+def _is_empty(text: pd.Series) -> np.ndarray:
+    """``text == ""`` as a boolean array, compared inside the string array (no Python strings)."""
+    return (text == "").to_numpy(dtype=bool, na_value=False)
+
+
+def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason, open_rows):
     """Group surviving lines into orders, net refunds, and drop orders that net to nothing."""
-    position = np.flatnonzero(reason == "")
+    position = np.flatnonzero(open_rows)
     value = amounts.to_numpy()[position]
     is_refund = value < 0
     if mapping.status:
@@ -891,12 +898,14 @@ def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason):
     by_order = pd.DataFrame({"date": pd.Series(dates.to_numpy()[position]).where(~is_refund).to_numpy(),
                              "line": np.arange(len(position))}).groupby(order_code, sort=True)
     first = by_order.agg(order_date=("date", "min"), line=("line", "min"))
-    verdict = np.where(purchases == 0, "unmatched_refund", np.where(order_value <= 0, "refunded_in_full", ""))
+    # 0: kept, 1: a refund without a purchase, 2: refunded in full or less (small codes, not text).
+    verdict = np.where(purchases == 0, 1, np.where(order_value <= 0, 2, 0)).astype(np.int8)
     reason = reason.copy()
     line_verdict = verdict[order_code]
-    reason[position] = np.where(line_verdict == "", reason[position], line_verdict)
+    for code, name in ((1, "unmatched_refund"), (2, "refunded_in_full")):
+        reason[position[line_verdict == code]] = name
 
-    kept = np.flatnonzero(verdict == "")
+    kept = np.flatnonzero(verdict == 0)
     first_line = first["line"].to_numpy()[kept]
     order_rows = rows[position][first_line]
     if order_text is None:
