@@ -12,6 +12,18 @@ which would lose the cents of amounts that only appear late in a file.
 
 The cleaning rules are the pandas reader's, for plain exports (see
 :mod:`forecasting.engines.rules` for what "plain" means and what stops a run).
+
+The work, in the order :func:`customer_statistics_duckdb` runs it (each step one SQL
+statement over the whole file, so that it scales with the number of rows):
+
+1. ``records``: the file read once, each record with its cells, its reason code and
+   its parsed customer, amount and date (:func:`_classify`);
+2. exact copies of earlier rows, looked for among the few rows whose hash of every
+   cell is shared (:func:`_mark_copies`);
+3. the whole-column checks, on counts (:func:`_check_whole_columns`);
+4. ``orders``: order lines summed, refunds netted (:func:`_build_orders`);
+5. ``sums``: one pass per customer, and an exact second pass for the customers
+   whose one-pass spread could be off (:func:`_sum_by_customer`, :func:`_statistics`).
 """
 
 from __future__ import annotations
@@ -556,10 +568,11 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
     :class:`~forecasting.errors.OrderDataError` naming ``--engine pandas``. See
     :mod:`forecasting.engines.rules` for the exact subset.
 
-    The sums of squares are computed in two passes, first each customer's mean,
-    then the squared deviations from it joined back to the orders, never as
-    sum(x^2) - n mean^2, which loses every digit of the spread of values near 1e9.
-    Lines of one order are summed in file order, as the pandas reader sums them, so
+    The sums of squares are never computed as sum(x^2) - n mean^2, which loses every
+    digit of the spread of values near 1e9. duckdb's updating (Welford) sums are kept
+    where their error bound is below 1e-12 relative; every other customer (all orders
+    equal, or a spread tiny next to the amounts) gets two passes, first the mean, then
+    the squared deviations from it joined back to the orders. Lines of one order are summed in file order, as the pandas reader sums them, so
     that an order which nets to exactly zero is treated the same by both.
 
     Blank lines are skipped by duckdb's CSV reader; they are counted (as
