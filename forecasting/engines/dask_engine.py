@@ -255,8 +255,10 @@ def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, curren
     exclude(other, "other_date")
     exclude(unreadable, "bad_date")
 
-    if (reason == "").any():
-        orders, reason = reading._build_orders(cells, mapping, text, status, amounts, dates, lines, reason)
+    open_rows = reason == ""
+    if open_rows.any():
+        orders, reason = reading._build_orders(cells, mapping, text, status, amounts, dates, lines, reason,
+                                               open_rows)
     else:
         orders = pd.DataFrame({"customer": pd.Series([], dtype=str), "order_value": pd.Series([], dtype=float),
                                "order_date": pd.Series([], dtype="datetime64[ns]")})
