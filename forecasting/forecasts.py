@@ -245,8 +245,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     variance_name = "gamma-model" if method == "gamma-gamma" else variance
     table = pd.DataFrame({
         "customer": stats.index.to_numpy(),
-        "orders": n,
-        "average_order_value": money_mean,
+        "orders": n.copy(),
+        "average_order_value": money_mean.copy(),
         "expected_next_order": expected,
         "own_history_weight": weight,
         "expected_low": expected_low,
@@ -256,7 +256,7 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
         "low_confidence": (weight < 0.5) | (n == 1),
         "method": method,
         "variance": variance_name,
-    }, columns=FORECAST_COLUMNS)
+    }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block
 
     fit.update({
         "method": method,

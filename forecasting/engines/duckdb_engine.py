@@ -489,6 +489,7 @@ def _statistics(connection, with_segment: bool) -> pd.DataFrame:
         },
         columns=STATISTICS_COLUMNS,
         index=pd.Index(table.column("customer").to_pandas(), name="customer"),
+        copy=False,  # every array above is this table's own; gathering them into one block costs a copy
     )
     if with_segment:
         stats["segment"] = table.column("segment").to_pandas().to_numpy(dtype=object)
