@@ -341,8 +341,8 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
     mapping = files.mapping
     if not currency:
         seen = [r[0] for r in connection.execute(
-            f"SELECT DISTINCT row_currency FROM classified WHERE kept AND reason NOT IN {_EARLY} AND row_currency <> '' "
-            "ORDER BY row_currency").fetchall()]
+            f"SELECT DISTINCT row_currency FROM classified "
+            f"WHERE kept AND reason NOT IN {_EARLY} AND row_currency <> '' ORDER BY row_currency").fetchall()]
         if len(seen) > 1:
             role = "currency" if mapping.currency else "value"
             line = _first_line(connection, f"reason NOT IN {_EARLY} AND row_currency = {_literal(seen[1])}")
@@ -573,7 +573,9 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
     digit of the spread of values near 1e9. duckdb's updating (Welford) sums are kept
     where their error bound is below 1e-12 relative; every other customer (all orders
     equal, or a spread tiny next to the amounts) gets two passes, first the mean, then
-    the squared deviations from it joined back to the orders. Lines of one order are summed in file order, as the pandas reader sums them, so
+    the squared deviations from it joined back to the orders.
+
+    Lines of one order are summed in file order, as the pandas reader sums them, so
     that an order which nets to exactly zero is treated the same by both.
 
     Blank lines are skipped by duckdb's CSV reader; they are counted (as
