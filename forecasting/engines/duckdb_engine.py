@@ -108,19 +108,26 @@ def _connect(directory: str, *, memory_limit: str, threads: int | None):
     return connection
 
 
+def _stored_place(files: OrderFiles) -> str:
+    """The columns of ``records`` that say where a record came from. With one file its name is
+    not stored on every row (10 million copies of a path cost half a gigabyte)."""
+    return "file, file_position" if len(files.paths) > 1 else "file_position"
+
+
 def _reader(connection, files: OrderFiles) -> str:
     """A query giving one row per record, every cell as text ('' for empty), in file order:
-    ``file, file_position, c0, c1, ...``."""
+    the columns of :func:`_stored_place`, then ``c0, c1, ...``."""
     paths = "[" + ", ".join(_literal(p) for p in files.paths) + "]"
+    name = "true" if len(files.paths) > 1 else "false"
     if files.kind == "csv":
         names = "[" + ", ".join(_literal(n) for n in files.columns) + "]"
         reader = (f"read_csv({paths}, all_varchar = true, header = true, names = {names}, "
                   f"delim = {_literal(files.delimiter)}, quote = '\"', escape = '\"', comment = '', skip = 0, "
-                  "strict_mode = true, allow_quoted_nulls = false, encoding = 'utf-8', filename = true)")
+                  f"strict_mode = true, allow_quoted_nulls = false, encoding = 'utf-8', filename = {name})")
         cells = [f"coalesce({_quote_identifier(n)}, '') AS c{i}" for i, n in enumerate(files.columns)]
         position = "NULL::BIGINT"
     else:
-        reader = f"read_parquet({paths}, filename = true, file_row_number = true)"
+        reader = f"read_parquet({paths}, filename = {name}, file_row_number = true)"
         try:
             types = {row[0]: str(row[1]).upper()
                      for row in connection.execute(f"DESCRIBE SELECT * FROM {reader}").fetchall()}
@@ -150,7 +157,9 @@ def _reader(connection, files: OrderFiles) -> str:
                 text = f"CAST({column} AS VARCHAR)"
             cells.append(f"coalesce({text}, '') AS c{i}")
         position = "file_row_number"
-    return f"SELECT filename AS file, {position} AS file_position, {', '.join(cells)} FROM {reader}"
+    place = f"filename AS file, {position} AS file_position" if len(files.paths) > 1 else \
+        f"{position} AS file_position"
+    return f"SELECT {place}, {', '.join(cells)} FROM {reader}"
 
 
 def _raise_read_problem(problem: Exception, files: OrderFiles):
@@ -180,12 +189,11 @@ def _number_positions(connection, files: OrderFiles) -> None:
         connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM records GROUP BY file")
         connection.execute(f"CREATE VIEW numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
                            f"AS file_position, {cells} FROM records r JOIN file_start s USING (file)")
-    elif files.kind == "csv":
-        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, rowid AS file_position, {cells} "
-                           "FROM records")
     else:
-        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, file, file_position, {cells} "
-                           "FROM records")
+        file = "file" if len(files.paths) > 1 else f"{_literal(files.paths[0])} AS file"
+        position = "rowid" if files.kind == "csv" else "file_position"
+        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, {file}, {position} AS file_position, "
+                           f"{cells} FROM records")
 
 
 def _row_of(files: OrderFiles, file: str, position) -> int | None:
@@ -256,7 +264,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
     # Innermost first: the cells as the reader strips them, then their readings, then the reasons.
     sql = f"""
         CREATE TABLE records AS
-        SELECT file, file_position, {', '.join(cells)}, kept, row_key, customer, {text_columns}row_currency, order_date,
+        SELECT {_stored_place(files)}, {', '.join(cells)}, kept, row_key, customer, {text_columns}row_currency, order_date,
                (amount < 0 OR refund_status) AS is_refund,
                CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed,
                CASE WHEN blank THEN 'blank_row'
@@ -620,8 +628,8 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
         try:
             _classify(connection, files, _reader(connection, files), currency=currency)
             scanned.result()
-            _check_record_counts(connection, files)
             _number_positions(connection, files)
+            _check_record_counts(connection, files)
             _mark_copies(connection, files)
             _check_whole_columns(connection, files, currency=currency)
             _build_orders(connection, files)
@@ -644,7 +652,7 @@ def _check_record_counts(connection, files: OrderFiles) -> None:
     """The blank-line scan and duckdb must agree on how many records each file has."""
     if files.kind != "csv":
         return
-    counted = dict(connection.execute("SELECT file, count(*) FROM records GROUP BY file").fetchall())
+    counted = dict(connection.execute("SELECT file, count(*) FROM numbered GROUP BY file").fetchall())
     for path in files.paths:
         scanned = files.scanned_records.get(path)
         if scanned is not None and scanned != counted.get(path, 0):
