@@ -275,20 +275,30 @@ def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n
     standard deviation value_sd; revenue is expected orders(d) x value(d).
     """
     draws = params_draws.shape[0]
-    n = len(x)
+
+    def revenue_of(part):
+        orders_ahead = expected_orders_for_draws(params_draws, x[part], t_x[part], age[part], horizon)
+        return orders_ahead * _value_draws(value_mean[part], value_sd[part], draws, rng)
+
+    return _quantiles_of_draws(revenue_of, len(x), draws, _CELLS_PER_CHUNK, codes, n_groups, level)
+
+
+def _quantiles_of_draws(revenue_of, n, draws, cells_per_chunk, codes, n_groups, level):
+    """Per-customer, per-group and total ends of the central ``level`` interval of revenue draws.
+
+    ``revenue_of(part)`` gives the draws (draws x customers) for the customers in the slice
+    ``part``; customers are taken a chunk at a time so that memory stays bounded.
+    """
     low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
     cust_low = np.empty(n)
     cust_high = np.empty(n)
     group_sums = np.zeros((draws, n_groups))
-    chunk = max(1, _CELLS_PER_CHUNK // draws)
+    chunk = max(1, cells_per_chunk // draws)
     for start in range(0, n, chunk):
-        stop = min(n, start + chunk)
-        orders_ahead = expected_orders_for_draws(params_draws, x[start:stop], t_x[start:stop], age[start:stop],
-                                                 horizon)
-        values = _value_draws(value_mean[start:stop], value_sd[start:stop], draws, rng)
-        revenue = orders_ahead * values
-        cust_low[start:stop], cust_high[start:stop] = np.quantile(revenue, [low_q, high_q], axis=0)
-        group_sums += _group_sums(revenue, codes[start:stop], n_groups)
+        part = slice(start, min(n, start + chunk))
+        revenue = revenue_of(part)
+        cust_low[part], cust_high[part] = np.quantile(revenue, [low_q, high_q], axis=0)
+        group_sums += _group_sums(revenue, codes[part], n_groups)
     group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
     total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
     return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
@@ -393,24 +403,14 @@ def _simulate_revenue(params_draws, x, t_x, age, horizon, centre, level_sd, orde
     from the customer's lognormal (_order_value_model).
     """
     draws = params_draws.shape[0]
-    n = len(x)
-    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
-    cust_low = np.empty(n)
-    cust_high = np.empty(n)
-    group_sums = np.zeros((draws, n_groups))
-    chunk = max(1, _SIMULATION_CELLS_PER_CHUNK // draws)
-    for start in range(0, n, chunk):
-        stop = min(n, start + chunk)
-        part = slice(start, stop)
+
+    def revenue_of(part):
         counts = simulate_orders_ahead(params_draws, x[part], t_x[part], age[part], horizon, seed=rng)
         spend = _spend_draws(counts, order_sd[part], rng)
-        level_shift = level_sd[part] * rng.standard_normal((draws, stop - start))
-        revenue = spend * np.exp(centre[part] + level_shift)
-        cust_low[part], cust_high[part] = np.quantile(revenue, [low_q, high_q], axis=0)
-        group_sums += _group_sums(revenue, codes[part], n_groups)
-    group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
-    total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
-    return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
+        level_shift = level_sd[part] * rng.standard_normal((draws, part.stop - part.start))
+        return spend * np.exp(centre[part] + level_shift)
+
+    return _quantiles_of_draws(revenue_of, len(x), draws, _SIMULATION_CELLS_PER_CHUNK, codes, n_groups, level)
 
 
 def _seasonal_horizon(orders, stats, fit, *, seasons, as_of, horizon):
