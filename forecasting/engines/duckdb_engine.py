@@ -474,9 +474,10 @@ def _statistics(connection, with_segment: bool) -> pd.DataFrame:
         at = place[exact["id"].astype(np.int64)]
         sum_sq[at] = exact["sum_sq_dev"]
         log_sum_sq[at] = exact["log_sum_sq_dev"]
-    sum_sq[table.column("orders").to_numpy() == 1] = 0.0
-    log_sum_sq[table.column("orders").to_numpy() == 1] = 0.0
     counts = table.column("orders").to_numpy().astype(np.int64)
+    # A single order has no spread (var_pop of one value can come back as a rounding speck).
+    sum_sq[counts == 1] = 0.0
+    log_sum_sq[counts == 1] = 0.0
     with np.errstate(invalid="ignore", divide="ignore"):
         log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
 
