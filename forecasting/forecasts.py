@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 from scipy import special
 
 from forecasting.errors import OrderDataError
@@ -243,8 +244,14 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     next_high = median * np.exp(z_next * spread)
 
     variance_name = "gamma-model" if method == "gamma-gamma" else variance
+    def repeated(text):  # one text in every row: a one-word dictionary, decoded at once
+        words = pa.DictionaryArray.from_arrays(np.zeros(len(n), dtype=np.int8), [text])
+        return pd.array(words.cast(pa.string()), dtype="str")
+
     table = pd.DataFrame({
-        "customer": stats.index.to_numpy(),
+        # A copy of the index's array (Arrow text is shared until written to): no round trip
+        # through Python objects, and the table can be edited without touching the statistics.
+        "customer": stats.index.array.copy(),
         "orders": n.copy(),
         "average_order_value": money_mean.copy(),
         "expected_next_order": expected,
@@ -254,8 +261,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
         "next_order_low": next_low,
         "next_order_high": next_high,
         "low_confidence": (weight < 0.5) | (n == 1),
-        "method": method,
-        "variance": variance_name,
+        "method": repeated(method),
+        "variance": repeated(variance_name),
     }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block
 
     fit.update({

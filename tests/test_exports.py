@@ -38,6 +38,13 @@ class TestCsvText:
         text = csv_text(table)
         assert text == 'customer,orders\r\n"Smith, Jo",1\r\n"say ""hi""",2\r\n"two\nlines",3\r\n'
 
+    @pytest.mark.parametrize("special", [",", '"', "\r", "\n"])
+    @pytest.mark.parametrize("dtype", ["str", object])
+    def test_only_the_fields_that_need_quotes_get_them(self, special, dtype):
+        # RFC 4180 section 2, rule 6: each of comma, double quote, CR and LF needs the quotes alone.
+        table = pd.DataFrame({"customer": pd.Series(["fern", f"ivy{special}moss", "=pot", "\tTAB"], dtype=dtype)})
+        inner = f"ivy{special}moss".replace('"', '""')
+        assert csv_text(table) == f'customer\r\nfern\r\n"{inner}"\r\n\'=pot\r\n\'\tTAB\r\n'
 
     def test_every_kind_of_column_reads_back_through_the_csv_module(self):
         # Reference: Python's csv module (its default dialect follows RFC 4180 quoting) and float(),

@@ -43,6 +43,19 @@ class TestForecastCustomers:
         np.testing.assert_array_equal(table["orders"], st["orders"])
         np.testing.assert_array_equal(table["average_order_value"], st["mean"])
         assert (table["method"] == "mta").all() and (table["variance"] == "classic").all()
+        for column in ("customer", "method", "variance"):
+            assert table[column].dtype == "str", column
+
+    @pytest.mark.parametrize("index_kind", ["str", "object"])
+    def test_the_customer_column_is_the_tables_own(self, index_kind):
+        st = customer_statistics(garden_orders(3))
+        st.index = st.index.astype(index_kind)
+        before = st.index.tolist()
+        table = forecast_customers(st)
+        assert table["customer"].tolist() == before and table["customer"].dtype == "str"
+        table.loc[0, "customer"] = "changed"  # a front end may edit its copy
+        table.loc[1, "method"] = "edited"
+        assert st.index.tolist() == before and table["method"].tolist()[:3] == ["mta", "edited", "mta"]
 
     @pytest.mark.parametrize("method, variance", ALL_PAIRS)
     def test_every_method_and_variance_gives_sane_numbers(self, method, variance):
