@@ -163,13 +163,19 @@ _ROWS_PER_BLOCK = 200_000
 def _csv_body(block: pd.DataFrame) -> bytes:
     """The records of ``block`` as CSV bytes, each ending in CRLF."""
     # 64-bit offsets: the body of a big table may pass 2 GB.
-    fields = [pc.cast(_cells_as_text(block.iloc[:, i]), pa.large_string()) for i in range(len(block.columns))]
+    fields = [pc.cast(_contiguous(_cells_as_text(block.iloc[:, i])), pa.large_string())
+              for i in range(len(block.columns))]
     comma, crlf, nothing = (pa.scalar(t, pa.large_string()) for t in (",", "\r\n", ""))
     fields[-1] = pc.binary_join_element_wise(fields[-1], crlf, nothing)
     rows = pc.binary_join_element_wise(*fields, comma) if len(fields) > 1 else fields[0]
     # The values of an Arrow string array sit end to end in one buffer: that buffer is the body.
     bounds = np.frombuffer(rows.buffers()[1], dtype=np.int64, count=len(rows) + 1, offset=rows.offset * 8)
     return bytes(memoryview(rows.buffers()[2])[int(bounds[0]):int(bounds[-1])])
+
+
+def _contiguous(array):
+    """One Arrow array (a column backed by Arrow data may come in several chunks)."""
+    return array.combine_chunks() if isinstance(array, pa.ChunkedArray) else array
 
 
 def csv_text(table: pd.DataFrame) -> str:

@@ -46,6 +46,20 @@ class TestCsvText:
         inner = f"ivy{special}moss".replace('"', '""')
         assert csv_text(table) == f'customer\r\nfern\r\n"{inner}"\r\n\'=pot\r\n\'\tTAB\r\n'
 
+    def test_text_held_in_several_arrow_chunks(self):
+        # Text columns read through Arrow (the duckdb engine's customer ids) may be split into
+        # chunks; row blocks of the writer then cross chunk edges.
+        import pyarrow as pa
+
+        names = [f"G-{i:06d}" for i in range(450_000)]
+        names[3] = "=SUM(A1)"
+        names[300_001] = "Smith, Jo"
+        chunks = pa.chunked_array([pa.array(names[:250_000]), pa.array(names[250_000:])])
+        table = pd.DataFrame({"customer": pd.array(chunks, dtype="str"), "orders": range(len(names))})
+        rows = list(csv.reader(io.StringIO(csv_text(table), newline="")))
+        assert [r[0] for r in rows[1:]] == [neutralise_cell(n) for n in names]
+        assert [int(r[1]) for r in rows[1:]] == list(range(len(names)))
+
     def test_every_kind_of_column_reads_back_through_the_csv_module(self):
         # Reference: Python's csv module (its default dialect follows RFC 4180 quoting) and float(),
         # which must give back every number exactly; 450,000 rows are encoded in several row blocks.
