@@ -18,10 +18,11 @@ floats and strings, so that a front end can explain them.
 
 from __future__ import annotations
 
+from statistics import NormalDist
+
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-from scipy import special
 
 from forecasting.errors import OrderDataError
 from forecasting.shrinkage import METHODS, check_method, shrink
@@ -224,9 +225,10 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     estimate = result.estimate
     weight = np.clip(result.weight, 0.0, 1.0)
     v = np.maximum(result.estimate_var, 0.0)
-    # Normal quantiles (scipy.special.ndtri is what scipy.stats.norm.ppf computes).
-    z = float(special.ndtri(0.5 + level / 2.0))
-    z_next = float(special.ndtri(0.5 + next_level / 2.0))
+    # Normal quantiles from the standard library (Wichura's AS 241, accurate to about 1e-16),
+    # which spares the command line the start-up time of scipy.
+    z = NormalDist().inv_cdf(0.5 + level / 2.0)
+    z_next = NormalDist().inv_cdf(0.5 + next_level / 2.0)
     half = z * np.sqrt(v)
     if on_log:
         expected = np.exp(estimate + (sigma2_log + v) / 2.0)

@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import special
 
 from forecasting.errors import OrderDataError
 from forecasting.variance import classic_pooled_variance
@@ -506,6 +505,7 @@ def _tau2_reml(m, s) -> float:
 
 def _gamma_gamma_negloglik(theta, counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
     """Negative log-likelihood of the customers' averages and its gradient in log-parameters."""
+    from scipy import special  # slow to import: only the gamma-gamma fit needs it
     p, q, gam = np.exp(theta)
     T = float(m.size)
     u = gam + n * m

@@ -36,7 +36,6 @@ from typing import Callable
 
 import numpy as np
 import pandas as pd
-from scipy import special
 
 from forecasting.errors import OrderDataError
 
@@ -158,7 +157,8 @@ def normal_clip_consistency(c: float) -> float:
     """
     c = float(c)
     phi = math.exp(-c * c / 2.0) / math.sqrt(2.0 * math.pi)
-    return float((2 * special.ndtr(c) - 1) - 2 * c * phi + 2 * c * c * special.ndtr(-c))
+    upper = 0.5 * math.erfc(c / math.sqrt(2.0))  # 1 - Phi(c)
+    return float((1.0 - 2.0 * upper) - 2 * c * phi + 2 * c * c * upper)
 
 
 def _customer_codes(stats: pd.DataFrame, orders: pd.DataFrame) -> np.ndarray:
