@@ -338,6 +338,22 @@ class TestCustomerStatisticsDuckdb:
         assert_same_account(account, expected_account)
         assert account["excluded"] == {"other_currency": 1}
 
+    def test_currencies_named_in_the_amounts_as_the_pandas_reader(self, tmp_path):
+        # No currency column: the amounts name them. The row without a customer is left out
+        # before currencies are looked at, so its dollar sign does not count.
+        path = tmp_path / "named.csv"
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n,2025-03-02,$5.00\n"
+                        "ivy,2025-03-05,EUR 12.00\nmoss,2025-03-06,\nfern,2025-03-09,\u00a330.00\n")
+        for engine in ("pandas", "duckdb"):
+            with pytest.raises(OrderDataError, match=r"several currencies \(EUR, GBP\)") as raised:
+                customer_statistics_from_file(path, engine=engine)
+            assert (raised.value.row, raised.value.column) == (6, "order_value"), engine
+        path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n,2025-03-02,$5.00\n"
+                        "ivy,2025-03-05, EUR 12.00\n")
+        with pytest.raises(OrderDataError, match="needs the pandas reader") as raised:
+            customer_statistics_from_file(path, engine="duckdb")
+        assert raised.value.row == 4
+
     def test_order_lines_that_net_to_exactly_nothing(self, tmp_path):
         # 0.1 + 0.2 - 0.3 is 5.55e-17 when added in file order, 0 in another order:
         # both engines add an order's lines in file order, so both keep the order.
@@ -400,6 +416,16 @@ class TestCustomerStatisticsDuckdb:
         assert_same_statistics(stats, expected_stats)
         # A header is not a row: the two files hold the same rows as the one export.
         assert_same_account(account, expected_account)
+
+    def test_messages_name_the_file_and_its_own_row(self, tmp_path):
+        # Several files: a row number counts within its own file (header = row 1).
+        header = "customer,order_date,order_value\n"
+        (tmp_path / "orders_1.csv").write_text(header + "fern,2025-03-01,24.00\nivy,2025-03-02,12.00\n")
+        (tmp_path / "orders_2.csv").write_text(header + "moss,2025-03-03,5.00\nfern,2025-03-04,8.00\n"
+                                               "ivy,2025-03-05,\"1,234.50\"\n")
+        with pytest.raises(OrderDataError, match="needs the pandas reader") as raised:
+            customer_statistics_from_file(str(tmp_path / "orders_*.csv"), engine="duckdb")
+        assert raised.value.row == 4 and "orders_2.csv" in str(raised.value.file)
 
     def test_files_with_different_columns_are_refused(self, tmp_path):
         (tmp_path / "a.csv").write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n")

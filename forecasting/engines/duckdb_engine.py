@@ -16,8 +16,10 @@ The cleaning rules are the pandas reader's, for plain exports (see
 The work, in the order :func:`customer_statistics_duckdb` runs it (each step one SQL
 statement over the whole file, so that it scales with the number of rows):
 
-1. ``records``: the file read once, each record with its cells, its reason code and
-   its parsed customer, amount and date (:func:`_classify`);
+1. ``records``: the file read once, each record with its cells, its reason code (a one-byte
+   ENUM) and its parsed customer, amount and date; what follows from those (kept or not,
+   refund or not, the currency a row names) is derived in the view ``classified``, since every
+   stored column costs time on millions of rows (:func:`_classify`);
 2. exact copies of earlier rows, looked for among the few rows whose hash of every
    cell is shared (:func:`_mark_copies`);
 3. the whole-column checks, on counts (:func:`_check_whole_columns`);
@@ -108,10 +110,11 @@ def _connect(directory: str, *, memory_limit: str, threads: int | None):
     return connection
 
 
-def _stored_place(files: OrderFiles) -> str:
+def _stored_place(files: OrderFiles) -> list[str]:
     """The columns of ``records`` that say where a record came from. With one file its name is
-    not stored on every row (10 million copies of a path cost half a gigabyte)."""
-    return "file, file_position" if len(files.paths) > 1 else "file_position"
+    not stored on every row (10 million copies of a path cost half a gigabyte), and a CSV
+    record's place in its file follows from its row number in ``records`` (:func:`_number_positions`)."""
+    return (["file"] if len(files.paths) > 1 else []) + ([] if files.kind == "csv" else ["file_position"])
 
 
 def _reader(connection, files: OrderFiles) -> str:
@@ -125,7 +128,7 @@ def _reader(connection, files: OrderFiles) -> str:
                   f"delim = {_literal(files.delimiter)}, quote = '\"', escape = '\"', comment = '', skip = 0, "
                   f"strict_mode = true, allow_quoted_nulls = false, encoding = 'utf-8', filename = {name})")
         cells = [f"coalesce({_quote_identifier(n)}, '') AS c{i}" for i, n in enumerate(files.columns)]
-        position = "NULL::BIGINT"
+        position = None  # not stored: see _stored_place
     else:
         reader = f"read_parquet({paths}, filename = {name}, file_row_number = true)"
         try:
@@ -157,9 +160,8 @@ def _reader(connection, files: OrderFiles) -> str:
                 text = f"CAST({column} AS VARCHAR)"
             cells.append(f"coalesce({text}, '') AS c{i}")
         position = "file_row_number"
-    place = f"filename AS file, {position} AS file_position" if len(files.paths) > 1 else \
-        f"{position} AS file_position"
-    return f"SELECT {place}, {', '.join(cells)} FROM {reader}"
+    place = {"file": "filename AS file", "file_position": f"{position} AS file_position"}
+    return f"SELECT {', '.join([place[c] for c in _stored_place(files)] + cells)} FROM {reader}"
 
 
 def _raise_read_problem(problem: Exception, files: OrderFiles):
@@ -215,8 +217,8 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
     """Table ``records``: one row per record of ``source`` (a query, see :func:`_reader`) in file order,
     with its cells, its reason code ('' = used) and its parsed cells; view ``classified`` adds ``line``.
 
-    ``kept`` is false for blank, over-long and (after :func:`_mark_copies`) duplicate rows;
-    ``row_key`` hashes every cell, so that exact copies are looked for among few rows only."""
+    ``kept`` (in the view) is false for blank, over-long and (after :func:`_mark_copies`) duplicate
+    rows; ``row_key`` hashes every cell, so that exact copies are looked for among few rows only."""
     cells = [f"c{i}" for i in range(len(files.columns))]
     blank = _all([_is_blank(c) for c in cells])
     # length() counts characters; a cell has at least as many bytes (strlen) as characters.
@@ -230,62 +232,62 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         return f"c{index[column]}" if column else None
 
     customer = _strip(cell("customer"))
-    amount = _strip(cell("value"))
-    date = _strip(cell("date"))
+    # A cell that is a plain number (or an ISO date) as it stands has no whitespace to strip:
+    # the pattern test doubles as the edge test for almost every cell.
+    plain_pattern, iso_pattern = _literal(rules.PLAIN_NUMBER), _literal(rules.ISO_DATE)
+    plain_cell = f"regexp_full_match({cell('value')}, {plain_pattern})"
+    iso_cell = f"regexp_full_match({cell('date')}, {iso_pattern})"
+    amount = f"CASE WHEN plain_cell THEN {cell('value')} ELSE {_strip(cell('value'))} END"
+    date = f"CASE WHEN iso_cell THEN {cell('date')} ELSE {_strip(cell('date'))} END"
     status = _status_word(cell("status")) if mapping.status else "''"
     order_text = _strip(cell("order_id")) if mapping.order_id else "''"
     segment = _strip(cell("segment")) if mapping.segment else "''"
     currency_text = _strip(cell("currency")) if mapping.currency else "''"
-    if mapping.currency:
-        row_currency = "upper(currency_text)"
-    else:
-        # The currency an amount names (the pandas reader's rule): a three-letter code, else a symbol.
-        # A plain number names none, so the patterns only run on the other amounts.
-        symbols = " ".join(f"WHEN contains(amount_text, {_literal(s)}) THEN {_literal(iso)}"
-                           for s, iso in rules.CURRENCY_SYMBOLS.items())
-        row_currency = (f"CASE WHEN plain_amount THEN '' "
-                        f"WHEN NOT regexp_matches(amount_text, {_literal(rules.wordy_pattern_sql())}) "
-                        "THEN '' WHEN regexp_matches(upper(amount_text), '\\b[A-Z]{3}\\b') "
-                        "THEN regexp_extract(upper(amount_text), '\\b([A-Z]{3})\\b', 1) "
-                        f"{symbols} ELSE '' END")
-    early = ["WHEN customer = '' THEN 'missing_customer'"]
+    row_currency = "upper(currency_text)" if mapping.currency else _named_currency("amount_text", "plain_amount")
+    code = _reason_code
+    early = [f"WHEN customer = '' THEN {code('missing_customer')}"]
     if mapping.status:
-        early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.TEST_PATTERN)}) THEN 'test_order'")
+        early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.TEST_PATTERN)}) THEN {code('test_order')}")
         early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.CANCELLED_PATTERN)}) "
-                     "THEN 'cancelled_order'")
+                     f"THEN {code('cancelled_order')}")
     if currency:
         wanted = currency.strip().upper()
         wanted = rules.CURRENCY_SYMBOLS.get(wanted, wanted)
-        early.append(f"WHEN row_currency <> '' AND row_currency <> {_literal(wanted)} THEN 'other_currency'")
+        early.append(f"WHEN row_currency <> '' AND row_currency <> {_literal(wanted)} THEN {code('other_currency')}")
     refund = "false"
     if mapping.status:
         refund = f"regexp_full_match(status_word, {_literal(rules.REFUND_PATTERN)})"
-    text_columns = ("order_text, " if mapping.order_id else "") + ("segment_text, " if mapping.segment else "")
+    # Every stored column costs time on ten million rows: what follows from the others is derived
+    # in the view ``classified`` instead (see _derived_columns).
+    stored = _stored_place(files) + cells + ["row_key", "customer"]
+    stored += (["order_text"] if mapping.order_id else []) + (["segment_text"] if mapping.segment else [])
+    stored += (["row_currency"] if currency else []) + ["order_date"]
+    stored += ["(amount < 0 OR refund_status) AS is_refund"] if mapping.status else []
+    connection.execute(f"CREATE TYPE reason_code AS ENUM ({', '.join(_literal(c) for c in _REASON_CODES)})")
     # Innermost first: the cells as the reader strips them, then their readings, then the reasons.
     sql = f"""
         CREATE TABLE records AS
-        SELECT {_stored_place(files)}, {', '.join(cells)}, kept, row_key, customer, {text_columns}row_currency, order_date,
-               (amount < 0 OR refund_status) AS is_refund,
+        SELECT {', '.join(stored)},
                CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed,
-               CASE WHEN blank THEN 'blank_row'
-                    WHEN NOT kept THEN 'malformed_row'
+               CASE WHEN blank THEN {code('blank_row')}
+                    WHEN NOT kept THEN {code('malformed_row')}
                     WHEN early_reason <> '' THEN early_reason
-                    WHEN amount_kind = 'missing' THEN 'missing_amount'
-                    WHEN amount_kind = 'formatted' THEN 'formatted_amount'
-                    WHEN amount_kind = 'unreadable' THEN 'bad_amount'
-                    WHEN date_kind = 'missing' THEN 'missing_date'
-                    WHEN date_kind = 'other' THEN 'other_date'
-                    WHEN date_kind = 'unreadable' THEN 'bad_date'
-                    ELSE '' END AS reason
+                    WHEN amount_kind = 'missing' THEN {code('missing_amount')}
+                    WHEN amount_kind = 'formatted' THEN {code('formatted_amount')}
+                    WHEN amount_kind = 'unreadable' THEN {code('bad_amount')}
+                    WHEN date_kind = 'missing' THEN {code('missing_date')}
+                    WHEN date_kind = 'other' THEN {code('other_date')}
+                    WHEN date_kind = 'unreadable' THEN {code('bad_date')}
+                    ELSE {code('')} END AS reason
         FROM (
             SELECT *,
-                   CASE {' '.join(early)} ELSE '' END AS early_reason,
+                   CASE {' '.join(early)} ELSE {code('')} END AS early_reason,
                    CASE WHEN amount_text = '' THEN 'missing'
                         WHEN plain_amount THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'formatted' END
                         WHEN regexp_matches(amount_text, '\\p{{Nd}}') THEN 'formatted'
                         ELSE 'unreadable' END AS amount_kind,
                    CASE WHEN date_text = '' THEN 'missing'
-                        WHEN regexp_full_match(date_text, {_literal(rules.ISO_DATE)})
+                        WHEN iso_date
                              THEN CASE WHEN order_date IS NULL THEN 'other'
                                        WHEN order_date < TIMESTAMP '{rules.FIRST_DATE}'
                                          OR order_date > TIMESTAMP '{rules.LAST_DATE}' THEN 'unreadable'
@@ -295,7 +297,11 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
             FROM (
                 SELECT *, {row_currency} AS row_currency
                 FROM (
-                    SELECT *, regexp_full_match(amount_text, {_literal(rules.PLAIN_NUMBER)}) AS plain_amount,
+                    SELECT *,
+                           CASE WHEN plain_cell THEN true WHEN amount_text = {cell('value')} THEN false
+                                ELSE regexp_full_match(amount_text, {plain_pattern}) END AS plain_amount,
+                           CASE WHEN iso_cell THEN true WHEN date_text = {cell('date')} THEN false
+                                ELSE regexp_full_match(date_text, {iso_pattern}) END AS iso_date,
                            TRY_CAST(amount_text AS DOUBLE) AS amount,
                            TRY_CAST(date_text AS TIMESTAMP) AS order_date
                     FROM (
@@ -305,20 +311,71 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                                {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
                                status_word, {currency_text} AS currency_text
                         FROM (SELECT *, ({blank}) AS blank, ({too_long}) AS too_long,
-                                     {status} AS status_word
+                                     {status} AS status_word, {plain_cell} AS plain_cell, {iso_cell} AS iso_cell
                               FROM ({source}))))))"""
     try:
         connection.execute(sql)
     except Exception as problem:  # duckdb.Error and its subclasses: the file could not be read
         _raise_read_problem(problem, files)
-    connection.execute("CREATE VIEW classified AS SELECT rowid AS line, * FROM records")
+    derived = _derived_columns(files, stored_currency=bool(currency))
+    connection.execute(f"CREATE VIEW classified AS SELECT rowid AS line, *, {', '.join(derived)} FROM records")
+
+
+# Every reason a record can get: '' (used), the row account's codes and the two that stop a run
+# (formatted amounts or dates, which need the pandas reader). Stored as a duckdb ENUM (one byte).
+_REASON_CODES = ("",) + tuple(REASONS) + ("formatted_amount", "other_date")
+
+
+def _reason_code(name: str) -> str:
+    return f"{_literal(name)}::reason_code"
+
+
+def _named_currency(amount_text: str, plain: str) -> str:
+    """SQL for the currency an amount names (the pandas reader's rule): a three-letter code, else
+    a symbol, else ''. A plain number names none, so the patterns only run on the other amounts."""
+    symbols = " ".join(f"WHEN contains({amount_text}, {_literal(s)}) THEN {_literal(iso)}"
+                       for s, iso in rules.CURRENCY_SYMBOLS.items())
+    return (f"CASE WHEN {plain} THEN '' "
+            f"WHEN NOT regexp_matches({amount_text}, {_literal(rules.wordy_pattern_sql())}) "
+            f"THEN '' WHEN regexp_matches(upper({amount_text}), '\\b[A-Z]{{3}}\\b') "
+            f"THEN regexp_extract(upper({amount_text}), '\\b([A-Z]{{3}})\\b', 1) "
+            f"{symbols} ELSE '' END")
+
+
+# A record that is not blank, not over-long and not a copy of an earlier one.
+_KEPT = "reason NOT IN ('blank_row', 'malformed_row', 'duplicate_row')"
+
+
+def _derived_columns(files: OrderFiles, *, stored_currency: bool) -> list[str]:
+    """The columns of ``classified`` computed from ``records`` when a query asks for them.
+
+    * ``kept``: not blank, not over-long, not a copy (those are the reasons that say so);
+    * ``is_refund``: without a status column, a negative amount (stored otherwise);
+    * ``row_currency``: the currency a row names, needed by the whole-column check only
+      (stored when --currency leaves rows out by it). Without a currency column it comes
+      from the amount, and only an amount that stopped being read can name one: rows used,
+      and rows left out for their date or a missing amount, name none."""
+    derived = [f"{_KEPT} AS kept"]
+    if not files.mapping.status:
+        derived.append("signed < 0 AS is_refund")
+    if not stored_currency:
+        index = files.columns.index
+        if files.mapping.currency:
+            derived.append(f"upper({_strip(f'c{index(files.mapping.currency)}')}) AS row_currency")
+        else:
+            amount_text = _strip(f"c{index(files.mapping.value)}")
+            plain = f"regexp_full_match({amount_text}, {_literal(rules.PLAIN_NUMBER)})"
+            derived.append(f"CASE WHEN reason IN ('', 'missing_amount', 'missing_date', 'other_date', 'bad_date') "
+                           f"THEN '' ELSE {_named_currency(amount_text, plain)} END AS row_currency")
+    return derived
 
 
 def _mark_copies(connection, files: OrderFiles) -> None:
     """Exact copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
 
     Rows are compared cell by cell, but only those whose hash of every cell is shared."""
-    connection.execute("CREATE TABLE shared_keys AS SELECT row_key FROM classified WHERE kept "
+    # Straight from the table: the view's extra columns cost time on every row.
+    connection.execute(f"CREATE TABLE shared_keys AS SELECT row_key FROM records WHERE {_KEPT} "
                        "GROUP BY row_key HAVING count(*) > 1")
     if not connection.execute("SELECT count(*) FROM shared_keys").fetchone()[0]:
         return
@@ -331,7 +388,7 @@ def _mark_copies(connection, files: OrderFiles) -> None:
             SELECT line, row_number() OVER (PARTITION BY {cells} ORDER BY line) AS copy_number
             FROM numbered WHERE line IN (SELECT line FROM candidates))
         WHERE copy_number > 1""")
-    connection.execute("UPDATE records SET kept = false, reason = 'duplicate_row' "
+    connection.execute("UPDATE records SET reason = 'duplicate_row' "
                        "WHERE rowid IN (SELECT line FROM copies)")
 
 
