@@ -140,7 +140,7 @@ def csv_bytes(table: pd.DataFrame) -> bytes:
 
 
 def _csv_pieces(table: pd.DataFrame):
-    """The header, then the records in blocks of rows, as bytes, in order."""
+    """The header, then the records in blocks of rows, as bytes-like pieces, in order."""
     header = io.StringIO()
     csv.writer(header, lineterminator="\r\n").writerow([neutralise_cell(str(c)) for c in table.columns])
     yield header.getvalue().encode("utf-8")
@@ -160,8 +160,9 @@ def _csv_pieces(table: pd.DataFrame):
 _ROWS_PER_BLOCK = 200_000
 
 
-def _csv_body(block: pd.DataFrame) -> bytes:
-    """The records of ``block`` as CSV bytes, each ending in CRLF."""
+def _csv_body(block: pd.DataFrame) -> memoryview:
+    """The records of ``block`` as CSV bytes, each ending in CRLF (a view of Arrow's buffer, not a
+    copy: fresh memory for hundreds of megabytes of copies costs more than the encoding)."""
     # 64-bit offsets: the body of a big table may pass 2 GB.
     fields = [pc.cast(_contiguous(_cells_as_text(block.iloc[:, i])), pa.large_string())
               for i in range(len(block.columns))]
@@ -170,7 +171,7 @@ def _csv_body(block: pd.DataFrame) -> bytes:
     rows = pc.binary_join_element_wise(*fields, comma) if len(fields) > 1 else fields[0]
     # The values of an Arrow string array sit end to end in one buffer: that buffer is the body.
     bounds = np.frombuffer(rows.buffers()[1], dtype=np.int64, count=len(rows) + 1, offset=rows.offset * 8)
-    return bytes(memoryview(rows.buffers()[2])[int(bounds[0]):int(bounds[-1])])
+    return memoryview(rows.buffers()[2])[int(bounds[0]):int(bounds[-1])]
 
 
 def _contiguous(array):
