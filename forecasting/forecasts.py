@@ -229,7 +229,9 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     # which spares the command line the start-up time of scipy.
     z = NormalDist().inv_cdf(0.5 + level / 2.0)
     z_next = NormalDist().inv_cdf(0.5 + next_level / 2.0)
-    half = z * np.sqrt(v)
+    # In-place steps below: on millions of customers every temporary array is fresh memory.
+    half = np.sqrt(v)
+    half *= z
     if on_log:
         expected = np.exp(estimate + (sigma2_log + v) / 2.0)
         expected_low = np.exp(estimate + sigma2_log / 2.0 - half)
@@ -237,13 +239,20 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
         centre_money = float(np.exp(result.centre + sigma2_log / 2.0))
     else:
         expected = estimate
-        expected_low = np.maximum(estimate - half, 0.0)
+        expected_low = estimate - half
+        np.maximum(expected_low, 0.0, out=expected_low)
         expected_high = estimate + half
         centre_money = float(result.centre)
     median = expected * np.exp(-sigma2_log / 2.0)
-    spread = np.sqrt(sigma2_log + weight * sigma2_log / n_float)
-    next_low = median * np.exp(-z_next * spread)
-    next_high = median * np.exp(z_next * spread)
+    spread = weight * sigma2_log  # z_next * sqrt(sigma2_log + weight * sigma2_log / n)
+    spread /= n_float
+    spread += sigma2_log
+    np.sqrt(spread, out=spread)
+    spread *= z_next
+    next_high = np.exp(spread)
+    next_high *= median
+    next_low = np.exp(np.negative(spread, out=spread), out=spread)
+    next_low *= median
 
     variance_name = "gamma-model" if method == "gamma-gamma" else variance
     def repeated(text):  # one text in every row: a one-word dictionary, decoded at once
