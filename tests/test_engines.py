@@ -502,6 +502,20 @@ class TestScanRecords:
         blank, records = scan_records(str(path))
         assert blank.tolist() == [] and records is None
 
+    @settings(max_examples=200, deadline=None)
+    @given(text=st.lists(st.sampled_from(["a", ",", "\n", "\r", "\r\n"]), max_size=14).map("".join),
+           chunk=st.integers(1, 5))
+    def test_the_empty_line_check_sees_across_block_edges(self, tmp_path_factory, text, chunk):
+        # The quick check reads the file in blocks; an empty line (LF LF or LF CR LF) split over two
+        # blocks must still be found. Reference: Python's own substring search on the whole text.
+        from forecasting.engines import sources
+
+        path = tmp_path_factory.mktemp("edges") / "rows.csv"
+        path.write_bytes(text.encode("ascii"))
+        with pytest.MonkeyPatch.context() as patch:
+            patch.setattr(sources, "_FIND_CHUNK", chunk)
+            assert sources._has_empty_line(str(path)) == ("\n\n" in text or "\n\r\n" in text)
+
     # Field text: letters, delimiters, quotes and line breaks (\n or \r\n; a lone \r is not a line break here).
     _field = st.lists(st.sampled_from(["a", "b", ",", '"', "\n", "\r\n", " "]), max_size=4).map("".join)
 

@@ -225,6 +225,29 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None, s
     return files
 
 
+def _has_empty_line(path: str) -> bool:
+    """Whether the file holds an empty line (LF LF or LF CR LF), quoted or not.
+
+    Read in blocks into one reused buffer and compared as bytes with numpy: most files
+    have no empty line, and this is several times faster than mapping the file and
+    searching it as text."""
+    buffer = bytearray(2 + _FIND_CHUNK)  # two bytes of the previous block, then the block
+    data = np.frombuffer(buffer, dtype=np.uint8)
+    with open(path, "rb") as handle:
+        while size := handle.readinto(memoryview(buffer)[2:]):
+            block = data[:2 + size]
+            line_feed = block == 10
+            if (line_feed[:-1] & line_feed[1:]).any():
+                return True
+            if (line_feed[:-2] & (block[1:-1] == 13) & line_feed[2:]).any():
+                return True
+            buffer[:2] = buffer[size:size + 2]  # an empty line may straddle two blocks
+    return False
+
+
+_FIND_CHUNK = 1 << 22  # bytes per read of _has_empty_line (small enough to stay in cache)
+
+
 def scan_records(path: str, *, quote: bytes = b'"') -> tuple[np.ndarray, int | None]:
     """Record numbers (header = 0) of the empty lines of a CSV file, outside quoted fields,
     and the number of non-blank data records (``None`` when the file has no empty line).
@@ -248,9 +271,9 @@ def scan_records(path: str, *, quote: bytes = b'"') -> tuple[np.ndarray, int | N
     none = np.zeros(0, dtype=np.int64)
     if size == 0:
         return none, None
+    if not _has_empty_line(path):
+        return none, None
     with open(path, "rb") as handle, mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as data:
-        if data.find(b"\n\n") < 0 and data.find(b"\n\r\n") < 0:
-            return none, None
         last_byte = data[size - 1]
         q = quote[0]
         found: list[np.ndarray] = []
