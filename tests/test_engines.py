@@ -213,6 +213,16 @@ class TestCustomerStatisticsFromFile:
             customer_statistics_from_file(str(tmp_path / "*.csv"))
 
 
+def refusals_of_both_engines(path, match):
+    """The errors with which the pandas and the duckdb engines refuse ``path`` (both must match)."""
+    problems = []
+    for engine in ("pandas", "duckdb"):
+        with pytest.raises(OrderDataError, match=match) as raised:
+            customer_statistics_from_file(path, engine=engine)
+        problems.append(raised.value)
+    return problems
+
+
 @needs_duckdb
 class TestCustomerStatisticsDuckdb:
     @pytest.mark.parametrize("seed,order_ids,segments,line_ending", [
@@ -328,10 +338,8 @@ class TestCustomerStatisticsDuckdb:
         path = tmp_path / "currencies.csv"
         path.write_text("customer,order_date,order_value,currency\nfern,2025-03-01,24.00,EUR\n"
                         "ivy,2025-03-05,12.00,GBP\nfern,2025-03-09,30.00,eur \n")
-        for engine in ("pandas", "duckdb"):
-            with pytest.raises(OrderDataError, match=r"several currencies \(EUR, GBP\)") as raised:
-                customer_statistics_from_file(path, engine=engine)
-            assert raised.value.row == 3
+        for problem in refusals_of_both_engines(path, r"several currencies \(EUR, GBP\)"):
+            assert problem.row == 3
         stats, account = customer_statistics_from_file(path, engine="duckdb", currency="EUR")
         expected_stats, expected_account = pandas_engine(path, currency="EUR")
         assert_same_statistics(stats, expected_stats)
@@ -344,10 +352,8 @@ class TestCustomerStatisticsDuckdb:
         path = tmp_path / "named.csv"
         path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n,2025-03-02,$5.00\n"
                         "ivy,2025-03-05,EUR 12.00\nmoss,2025-03-06,\nfern,2025-03-09,\u00a330.00\n")
-        for engine in ("pandas", "duckdb"):
-            with pytest.raises(OrderDataError, match=r"several currencies \(EUR, GBP\)") as raised:
-                customer_statistics_from_file(path, engine=engine)
-            assert (raised.value.row, raised.value.column) == (6, "order_value"), engine
+        for problem in refusals_of_both_engines(path, r"several currencies \(EUR, GBP\)"):
+            assert (problem.row, problem.column) == (6, "order_value")
         path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n,2025-03-02,$5.00\n"
                         "ivy,2025-03-05, EUR 12.00\n")
         with pytest.raises(OrderDataError, match="needs the pandas reader") as raised:
