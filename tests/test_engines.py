@@ -360,6 +360,21 @@ class TestCustomerStatisticsDuckdb:
             customer_statistics_from_file(path, engine="duckdb")
         assert raised.value.row == 4
 
+    def test_only_exact_copies_are_duplicates(self, tmp_path):
+        # Rows that read as the same customer, amount and date but differ in any cell (the amount's
+        # text, spacing, another column) are different rows; only the cell-for-cell copy is left out.
+        path = tmp_path / "near_copies.csv"
+        path.write_text("customer,order_date,order_value,product\n"
+                        "fern,2025-03-01,24.00,fern pot\nfern,2025-03-01,24.00,fern pot\n"
+                        "fern,2025-03-01,24.0,fern pot\nfern,2025-03-01,24.00,ivy pot\n"
+                        "fern ,2025-03-01,24.00,fern pot\nfern,2025-03-01, 24.00,fern pot\n"
+                        "ivy,2025-03-02,12.00,trowel\n")
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(path)
+        assert account["excluded"] == {"duplicate_row": 1}
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
     def test_order_lines_that_net_to_exactly_nothing(self, tmp_path):
         # 0.1 + 0.2 - 0.3 is 5.55e-17 when added in file order, 0 in another order:
         # both engines add an order's lines in file order, so both keep the order.

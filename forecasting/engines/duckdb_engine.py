@@ -20,8 +20,8 @@ statement over the whole file, so that it scales with the number of rows):
    ENUM) and its parsed customer, amount and date; what follows from those (kept or not,
    refund or not, the currency a row names) is derived in the view ``classified``, since every
    stored column costs time on millions of rows (:func:`_classify`);
-2. exact copies of earlier rows, looked for among the few rows whose hash of every
-   cell is shared (:func:`_mark_copies`);
+2. exact copies of earlier rows, looked for among the few rows that share a hash of their
+   customer, amount and date, then compared cell by cell (:func:`_mark_copies`);
 3. the whole-column checks, on counts (:func:`_check_whole_columns`);
 4. ``orders``: order lines summed, refunds netted (:func:`_build_orders`);
 5. ``sums``: one pass per customer, and an exact second pass for the customers
@@ -218,7 +218,9 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
     with its cells, its reason code ('' = used) and its parsed cells; view ``classified`` adds ``line``.
 
     ``kept`` (in the view) is false for blank, over-long and (after :func:`_mark_copies`) duplicate
-    rows; ``row_key`` hashes every cell, so that exact copies are looked for among few rows only."""
+    rows; ``row_key`` hashes the customer cell and the amount and date read from theirs: exact copies
+    share it, so they are looked for among the few rows that do (hashing three parsed values costs
+    less than hashing every text cell, above all in wide exports)."""
     cells = [f"c{i}" for i in range(len(files.columns))]
     blank = _all([_is_blank(c) for c in cells])
     # length() counts characters; a cell has at least as many bytes (strlen) as characters.
@@ -259,7 +261,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         refund = f"regexp_full_match(status_word, {_literal(rules.REFUND_PATTERN)})"
     # Every stored column costs time on ten million rows: what follows from the others is derived
     # in the view ``classified`` instead (see _derived_columns).
-    stored = _stored_place(files) + cells + ["row_key", "customer"]
+    stored = _stored_place(files) + cells + [f"hash({cell('customer')}, amount, order_date) AS row_key", "customer"]
     stored += (["order_text"] if mapping.order_id else []) + (["segment_text"] if mapping.segment else [])
     stored += (["row_currency"] if currency else []) + ["order_date"]
     stored += ["(amount < 0 OR refund_status) AS is_refund"] if mapping.status else []
@@ -306,7 +308,6 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                            TRY_CAST(date_text AS TIMESTAMP) AS order_date
                     FROM (
                         SELECT *, NOT blank AND NOT too_long AS kept,
-                               hash({', '.join(cells)}) AS row_key,
                                {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
                                {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
                                status_word, {currency_text} AS currency_text
@@ -373,7 +374,7 @@ def _derived_columns(files: OrderFiles, *, stored_currency: bool) -> list[str]:
 def _mark_copies(connection, files: OrderFiles) -> None:
     """Exact copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
 
-    Rows are compared cell by cell, but only those whose hash of every cell is shared."""
+    Rows are compared cell by cell, but only those whose ``row_key`` (see :func:`_classify`) is shared."""
     # Straight from the table: the view's extra columns cost time on every row.
     connection.execute(f"CREATE TABLE shared_keys AS SELECT row_key FROM records WHERE {_KEPT} "
                        "GROUP BY row_key HAVING count(*) > 1")
