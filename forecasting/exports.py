@@ -113,8 +113,7 @@ def _cells_as_text(series: pd.Series):
         # The shortest text that reads back as exactly the same number.
         return pc.fill_null(pc.cast(pa.array(series.to_numpy(), from_pandas=True), pa.string()), "")
     if pd.api.types.is_string_dtype(series) and not pd.api.types.is_object_dtype(series):
-        text = _neutralised(pa.array(series.fillna("").to_numpy(dtype=object) if series.isna().any()
-                                     else series.array, type=pa.string()))
+        text = _neutralised(pc.fill_null(pa.array(series.array, type=pa.string()), ""))
     else:
         text = pa.array(["" if _is_missing(v) else str(neutralise_cell(v)) for v in series.to_numpy(dtype=object)],
                         type=pa.string())

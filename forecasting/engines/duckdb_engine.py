@@ -375,14 +375,14 @@ def _mark_copies(connection, files: OrderFiles) -> None:
     """Exact copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
 
     Rows are compared cell by cell, but only those whose ``row_key`` (see :func:`_classify`) is shared."""
-    # Straight from the table: the view's extra columns cost time on every row.
+    # Both passes over every row read the table itself: the view's extra columns cost time per row.
     connection.execute(f"CREATE TABLE shared_keys AS SELECT row_key FROM records WHERE {_KEPT} "
                        "GROUP BY row_key HAVING count(*) > 1")
     if not connection.execute("SELECT count(*) FROM shared_keys").fetchone()[0]:
         return
     cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
-    connection.execute("CREATE TABLE candidates AS SELECT line FROM classified "
-                       "WHERE kept AND row_key IN (SELECT row_key FROM shared_keys)")
+    connection.execute(f"CREATE TABLE candidates AS SELECT rowid AS line FROM records "
+                       f"WHERE {_KEPT} AND row_key IN (SELECT row_key FROM shared_keys)")
     connection.execute(f"""
         CREATE TABLE copies AS
         SELECT line FROM (
