@@ -50,6 +50,13 @@ def _group_mean_and_ss(codes: np.ndarray, values: np.ndarray, counts: np.ndarray
     return totals, means, sum_sq
 
 
+def _all_equal(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
+    """Per group: are all its values equal? (Compared with one of them, whichever was stored last.)"""
+    member = np.empty(n_groups, dtype=values.dtype)
+    member[codes] = values
+    return np.bincount(codes, weights=values != member[codes], minlength=n_groups) == 0
+
+
 def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
     """Summarise cleaned orders into one row per customer.
 
@@ -82,6 +89,11 @@ def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
     counts = np.bincount(codes, minlength=n_groups)
     totals, means, sum_sq = _group_mean_and_ss(codes, values, counts, n_groups)
     _, log_means, log_sum_sq = _group_mean_and_ss(codes, np.log(values), counts, n_groups)
+    # Orders all of one value have no spread, exactly (their deviations from a rounded mean need
+    # not be zero); every engine applies this rule.
+    no_spread = _all_equal(codes, values, n_groups)
+    sum_sq[no_spread] = 0.0
+    log_sum_sq[no_spread] = 0.0
     with np.errstate(invalid="ignore", divide="ignore"):
         log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
 

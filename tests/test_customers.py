@@ -47,6 +47,17 @@ class TestCustomerStatistics:
                                "order_date": pd.to_datetime(["2025-01-01"] * 3)})
         assert customer_statistics(orders)["sum_sq_dev"].iloc[0] == pytest.approx(2.0)
 
+    def test_orders_all_of_one_value_have_no_spread_exactly(self):
+        # Three orders of 0.10: their float mean is 0.10000000000000002, so deviations from it are
+        # not zero; the true spread is, on both scales.
+        orders = pd.DataFrame({"customer": ["a"] * 3 + ["b"] * 2, "order_value": [0.1, 0.1, 0.1, 0.1, 0.2],
+                               "order_date": pd.to_datetime(["2025-01-01"] * 5)})
+        assert np.sum((np.full(3, 0.1) - np.full(3, 0.1).mean()) ** 2) > 0  # what a plain two-pass gives
+        stats = customer_statistics(orders)
+        assert stats.loc["a", "sum_sq_dev"] == 0.0
+        assert stats.loc["a", "log_sum_sq_dev"] == 0.0
+        assert stats.loc["b", "sum_sq_dev"] == pytest.approx(0.005)  # (0.2 - 0.1)^2 / 2
+
     def test_one_order_customers(self):
         stats = customer_statistics(random_orders().drop_duplicates("customer"))
         assert (stats["orders"] == 1).all()

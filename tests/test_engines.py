@@ -15,6 +15,7 @@ from __future__ import annotations
 import csv
 import importlib.util
 import io
+import math
 import os
 import statistics
 from decimal import Decimal
@@ -303,6 +304,34 @@ class TestCustomerStatisticsDuckdb:
         for name, value in exact.items():
             got = stats.loc[name, "sum_sq_dev"]
             assert got == pytest.approx(value, rel=1e-9, abs=1e-18), name
+        assert_same_statistics(stats, pandas_engine(path)[0])
+
+    def test_spreads_without_a_second_pass_match_exact_arithmetic(self, tmp_path):
+        # The cases the one pass answers alone: orders all of one value (no spread), two orders a
+        # cent or a unit apart ((a - b)^2 / 2), and thousands of orders of a typical spread (kept
+        # from the one pass). Checked against exact fractions of the stored numbers (Python's
+        # fractions module), on the money and the log scale, and against the pandas engine.
+        rng = np.random.default_rng(5)
+        groups = {"same-price": [19.99] * 7, "same-tenth": [0.1] * 3, "cent-apart": [81.88, 81.89],
+                  "unit-apart": [1e9, 1e9 + 1.0], "many-orders": [round(float(v), 2) for v in rng.lognormal(4, 0.8, 4000)]}
+        lines = ["customer,order_date,order_value"]
+        for name, values in groups.items():
+            days = pd.date_range("2014-01-01", periods=len(values), freq="D").strftime("%Y-%m-%d")
+            lines += [f"{name},{day},{v!r}" for day, v in zip(days, values)]  # no row is a copy of another
+        path = tmp_path / "spreads.csv"
+        path.write_text("\n".join(lines) + "\n")
+        stats, _ = customer_statistics_from_file(path, engine="duckdb", threads=2)
+
+        def exact_ss(numbers):
+            fractions = [Fraction(x) for x in numbers]
+            mean = sum(fractions) / len(fractions)
+            return float(sum((f - mean) ** 2 for f in fractions))
+
+        for name, values in groups.items():
+            assert stats.loc[name, "sum_sq_dev"] == pytest.approx(exact_ss(values), rel=1e-9, abs=0), name
+            logs = [math.log(v) for v in values]
+            assert stats.loc[name, "log_sum_sq_dev"] == pytest.approx(exact_ss(logs), rel=1e-9, abs=0), name
+        assert stats.loc["same-price", "sum_sq_dev"] == 0.0 and stats.loc["same-tenth", "log_sum_sq_dev"] == 0.0
         assert_same_statistics(stats, pandas_engine(path)[0])
 
     def test_formatted_money_names_the_pandas_engine_and_the_row(self, tmp_path):

@@ -476,7 +476,7 @@ def _build_orders(connection, files: OrderFiles) -> None:
 
 # When duckdb's one-pass sums of squares are as good as two passes (see _sum_by_customer).
 _EPSILON = float(np.finfo(np.float64).eps)
-_ONE_PASS_TOLERANCE = 1e-12
+_ONE_PASS_TOLERANCE = 1e-10
 
 
 def _sum_by_customer(connection, with_segment: bool) -> None:
@@ -485,10 +485,16 @@ def _sum_by_customer(connection, with_segment: bool) -> None:
     The sums of squared deviations come from duckdb's ``var_pop``, an updating (Welford)
     algorithm whose relative error is at most about n * kappa * eps, kappa being the
     condition number sqrt(1 + mean^2 / variance) (Chan, Golub and LeVeque 1983). Where ten
-    times (1 + |mean| / sd) * n * eps exceeds 1e-12, or a customer's orders are all equal,
+    times (1 + |mean| / sd) * n * eps exceeds 1e-10 (ten times below the 1e-9 to which the
+    engines must agree), or the sum comes out as zero although the orders differ,
     ``exact_needed`` marks the customer for the exact second pass of :func:`_statistics`.
-    Typical order values (spread of the order of the mean) never need it; wholesale orders
-    of about 1e9 that differ by a few units do.
+    Two cases need no second pass: orders all of one value have no spread, exactly, and two
+    orders a and b have (a - b)^2 / 2, and (ln a - ln b)^2 / 2 on the log scale (the difference
+    of two close numbers is exact, so this is as good as two passes; two orders a cent apart
+    are the commonest ill-conditioned case).
+    Typical order values (spread of the order of the mean) never need the second pass, even
+    with thousands of orders; three or more wholesale orders of about 1e9 that differ by a
+    few units do.
     """
     segment = (", arg_max(segment, {'day': order_date, 'line': first_line}) AS segment" if with_segment else "")
 
@@ -496,14 +502,22 @@ def _sum_by_customer(connection, with_segment: bool) -> None:
         return (f"({sum_sq} <= 0 OR 10 * orders * {_EPSILON!r} * (1 + abs({mean}) / sqrt({sum_sq} / orders)) "
                 f"> {_ONE_PASS_TOLERANCE!r})")
 
+    def spread(sum_sq: str, low: str, high: str) -> str:
+        return (f"CASE WHEN lowest = highest THEN 0.0 WHEN orders = 2 THEN ({high} - {low}) * ({high} - {low}) / 2 "
+                f"ELSE {sum_sq} END")
+
     connection.execute(f"""
         CREATE TABLE sums AS
-        SELECT *, orders > 1 AND ({needs_exact('sum_sq_dev', 'mean')} OR {needs_exact('log_sum_sq_dev', 'log_mean')})
-                  AS exact_needed
-        FROM (SELECT *, total / orders AS mean, log_total / orders AS log_mean
+        SELECT * EXCLUDE (lowest, highest),
+               orders > 2 AND lowest < highest
+               AND ({needs_exact('sum_sq_dev', 'mean')} OR {needs_exact('log_sum_sq_dev', 'log_mean')}) AS exact_needed
+        FROM (SELECT * REPLACE ({spread('sum_sq_dev', 'lowest', 'highest')} AS sum_sq_dev,
+                                {spread('log_sum_sq_dev', 'ln(lowest)', 'ln(highest)')} AS log_sum_sq_dev),
+                     total / orders AS mean, log_total / orders AS log_mean
               FROM (SELECT customer, count(*) AS orders, sum(order_value) AS total, sum(log_value) AS log_total,
                            var_pop(order_value) * count(*) AS sum_sq_dev,
                            var_pop(log_value) * count(*) AS log_sum_sq_dev,
+                           min(order_value) AS lowest, max(order_value) AS highest,
                            min(order_date) AS first_order, max(order_date) AS last_order{segment}
                     FROM kept_orders GROUP BY customer))""")
 
