@@ -250,6 +250,12 @@ def robust_pooled_variance(codes, values, orders, means, *, clip=ROBUST_CLIP):
     return sigma2, details
 
 
+def _column(stats: pd.DataFrame, name: str) -> np.ndarray:
+    """A statistics column as float64 numbers. ``np.asarray`` on the Series itself would make pandas
+    look its attribute probes up among the customer ids, which builds a hash table of them."""
+    return stats[name].to_numpy(dtype=np.float64)
+
+
 def pooled_variance(stats: pd.DataFrame, *, model: str = "classic", orders: pd.DataFrame | None = None) -> VarianceFit:
     """Fit a shop-wide variance model.
 
@@ -299,10 +305,10 @@ def pooled_variance(stats: pd.DataFrame, *, model: str = "classic", orders: pd.D
     check_variance_model(model)
     n = stats["orders"].to_numpy(dtype=np.float64)
     if model == "classic":
-        sigma2, notes = classic_pooled_variance(n, stats["sum_sq_dev"], stats["mean"])
+        sigma2, notes = classic_pooled_variance(n, _column(stats, "sum_sq_dev"), _column(stats, "mean"))
         return VarianceFit("classic", sigma2, notes)
     if model == "log":
-        sigma2, notes = classic_pooled_variance(n, stats["log_sum_sq_dev"], stats["log_mean"])
+        sigma2, notes = classic_pooled_variance(n, _column(stats, "log_sum_sq_dev"), _column(stats, "log_mean"))
         return VarianceFit("log", sigma2, notes)
     if model == "proportional":
         m = stats["mean"].to_numpy(dtype=np.float64)
