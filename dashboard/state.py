@@ -19,6 +19,7 @@ import streamlit as st
 
 from forecasting import OrderDataError, csv_text, customer_statistics, excel_bytes, read_orders
 from forecasting.exports import pseudonymise
+from forecasting.forecasts import forecasts_for_reading
 from forecasting import reading
 
 from .words import SYMBOLS, on_screen
@@ -200,11 +201,11 @@ def forecasts(dataset: Dataset, method: str = "auto", variance: str = "auto") ->
 
 @st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
 def forecast_files(dataset: Dataset, method: str, variance: str, salt: str = "") -> tuple[str, bytes]:
-    """The forecasts as safe CSV text and Excel bytes, for the download buttons.
+    """The forecasts as safe CSV text and Excel bytes, for the download buttons (money to the cent).
 
     With a ``salt``, customer ids are replaced by salted pseudonyms (for sharing with an agency).
     """
-    table = forecasts(dataset, method, variance).value
+    table = forecasts_for_reading(forecasts(dataset, method, variance).value)
     if salt:
         table = pseudonymise(table, salt=salt)
     return csv_text(table), excel_bytes(table)

@@ -32,6 +32,34 @@ import pyarrow.compute as pc
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 
 
+#: Decimals kept in files people read: money to the cent, shares (weights, chances) to three.
+MONEY_DECIMALS = 2
+SHARE_DECIMALS = 3
+
+
+def rounded_for_reading(table: pd.DataFrame, *, money=(), shares=()) -> pd.DataFrame:
+    """A copy of ``table`` with the ``money`` columns rounded to cents and the ``shares`` to three
+    decimals, for the files people read and share (``70.49``, not ``70.48625530890325``).
+
+    Estimates come with ranges many cents wide, so the last digits say nothing; they also make
+    a file of millions of customers twice as long to write. Columns not named keep every digit,
+    and the table itself is not changed.
+
+    Examples
+    --------
+    >>> table = pd.DataFrame({"customer": ["fern"], "expected": [70.48625530890325], "weight": [0.55496]})
+    >>> rounded_for_reading(table, money=["expected"], shares=["weight"])
+      customer  expected  weight
+    0     fern     70.49   0.555
+    """
+    out = table.copy(deep=False)  # columns are replaced, never written to
+    for names, decimals in ((money, MONEY_DECIMALS), (shares, SHARE_DECIMALS)):
+        for name in names:
+            if name in out.columns:
+                out[name] = np.round(out[name].to_numpy(dtype=np.float64), decimals)
+    return out
+
+
 def neutralise_cell(value):
     """Prefix a text value that a spreadsheet would treat as a formula.
 

@@ -34,7 +34,7 @@ from forecasting.variance import (
     tail_report,
 )
 
-__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "forecast_customers"]
+__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "forecast_customers", "forecasts_for_reading"]
 
 FORECAST_COLUMNS = [
     "customer",
@@ -50,6 +50,10 @@ FORECAST_COLUMNS = [
     "method",
     "variance",
 ]
+
+#: The forecast columns in money, rounded to cents in files (see forecasts_for_reading).
+MONEY_COLUMNS = ["average_order_value", "expected_next_order", "expected_low", "expected_high",
+                 "next_order_low", "next_order_high"]
 
 #: Used when method="auto" and the evaluation module cannot choose.
 DEFAULT_CHOICE = ("mta", "classic")
@@ -306,3 +310,21 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     fit["notes"] = " ".join(notes)
     table.attrs["fit"] = fit
     return table
+
+
+def forecasts_for_reading(table: pd.DataFrame) -> pd.DataFrame:
+    """The forecast table as its files give it: money to the cent, the own-history weight to three
+    decimals (:func:`forecasting.exports.rounded_for_reading`); ``attrs`` are kept.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> table = pd.DataFrame({"customer": ["fern"], "expected_next_order": [70.48625530890325],
+    ...                       "own_history_weight": [0.5549598407592873]})
+    >>> forecasts_for_reading(table)
+      customer  expected_next_order  own_history_weight
+    0     fern                70.49               0.555
+    """
+    from .exports import rounded_for_reading
+
+    return rounded_for_reading(table, money=MONEY_COLUMNS, shares=["own_history_weight"])

@@ -1220,15 +1220,14 @@ def tier_lists(tiered: pd.DataFrame) -> dict:
     """
     if "tiers" not in tiered.attrs:
         raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
+    from .exports import rounded_for_reading
+
     columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
-    table = tiered[columns].copy()
-    for name in ("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
-                 "projected_high", "revenue_range_low", "revenue_range_high"):
-        if name in table.columns:
-            table[name] = table[name].round(2)
-    for name in ("own_history_weight", "chance_active", "expected_orders"):
-        if name in table.columns:
-            table[name] = table[name].round(3)
+    table = rounded_for_reading(
+        tiered[columns],
+        money=("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
+               "projected_high", "revenue_range_low", "revenue_range_high"),
+        shares=("own_history_weight", "chance_active", "expected_orders"))
     lists = {"all": table}
     for spec in tiered.attrs["tiers"]:
         lists[spec["tier"]] = table.loc[table["tier"] == spec["tier"]]

@@ -317,6 +317,8 @@ class TestForecasts:
         shared = pd.read_csv(io.StringIO(text))
         plain = state.forecasts(dataset, method, variance).value
         assert shared["customer"].tolist() == pseudonymise(plain, salt="fernhollow-secret")["customer"].tolist()
+        # The download gives money to the cent, as the command line's file does.
+        np.testing.assert_allclose(shared["expected_next_order"], plain["expected_next_order"].round(2), atol=1e-9)
 
 
 class TestAccuracy:

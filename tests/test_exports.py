@@ -3,10 +3,11 @@
 import csv
 import io
 
+import numpy as np
 import pandas as pd
 import pytest
 
-from forecasting.exports import csv_text, excel_bytes, neutralise_cell
+from forecasting.exports import csv_text, excel_bytes, neutralise_cell, rounded_for_reading
 
 HOSTILE = ["=1+1", "+SUM(A1)", "-2+3", "@cmd", "\tTAB", "\rCR", "=HYPERLINK(\"http://x\")", "C-001", "plain"]
 
@@ -95,6 +96,32 @@ class TestCsvText:
         table = pd.DataFrame({"at": pd.to_datetime(["2025-03-01 10:30", None]), "n": [1, 2]})
         assert csv_text(table) == "at,n\r\n2025-03-01 10:30:00,1\r\n,2\r\n"
         assert csv_text(table.iloc[:0]) == "at,n\r\n"
+
+
+class TestRoundedForReading:
+    def test_money_to_the_cent_shares_to_three_decimals_the_rest_untouched(self):
+        table = pd.DataFrame({"customer": ["fern", "ivy", "moss"], "expected": [70.48625530890325, 0.285, np.nan],
+                              "weight": [0.5549598407592873, 1.0, 0.0004], "orders": [3, 1, 2],
+                              "spread": [1.23456789, 2.0, 3.0]})
+        before = table.copy()
+        out = rounded_for_reading(table, money=["expected"], shares=["weight"])
+        # 0.285 is stored as 0.28499999999999998 (IEEE 754 double), so it rounds down.
+        assert out["expected"].tolist()[:2] == [70.49, 0.28] and np.isnan(out["expected"].iloc[2])
+        assert out["weight"].tolist() == [0.555, 1.0, 0.0]
+        pd.testing.assert_frame_equal(out[["customer", "orders", "spread"]], before[["customer", "orders", "spread"]])
+        pd.testing.assert_frame_equal(table, before)  # the table itself is not changed
+
+    def test_rounded_numbers_are_written_with_at_most_those_decimals(self):
+        rng = np.random.default_rng(3)
+        table = pd.DataFrame({"expected": rng.lognormal(3, 2, 2000), "weight": rng.uniform(0, 1, 2000)})
+        rows = list(csv.reader(io.StringIO(csv_text(rounded_for_reading(table, money=["expected"],
+                                                                        shares=["weight"])))))[1:]
+        assert max(len(r[0].partition(".")[2]) for r in rows) == 2
+        assert max(len(r[1].partition(".")[2]) for r in rows) == 3
+
+    def test_columns_not_in_the_table_are_skipped(self):
+        table = pd.DataFrame({"expected": [1.234]})
+        assert rounded_for_reading(table, money=["expected", "projected"])["expected"].tolist() == [1.23]
 
 
 class TestExcelBytes:

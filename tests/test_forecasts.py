@@ -10,7 +10,8 @@ from scipy import stats
 from forecasting import shrinkage as sh
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.forecasts import FORECAST_COLUMNS, METHODS, forecast_customers
+from forecasting.reading import read_orders
+from forecasting.forecasts import FORECAST_COLUMNS, METHODS, MONEY_COLUMNS, forecast_customers
 from forecasting.variance import VARIANCE_MODELS, pooled_variance
 
 
@@ -309,6 +310,12 @@ class TestForecastCommand:
         assert list(written.columns) == FORECAST_COLUMNS
         assert len(written) == payload["customers"]
         assert "'=HYPERLINK(1)" in written["customer"].tolist()
+        # The file gives money to the cent and the weight to three decimals, of the library's numbers.
+        result = read_orders(source, customer="Customer", value="Total", date="Order Date", segment="Channel")
+        table = forecast_customers(customer_statistics(result.orders), method="mta-segments", orders=result.orders)
+        for column, decimals in [(c, 2) for c in MONEY_COLUMNS] + [("own_history_weight", 3)]:
+            np.testing.assert_allclose(written[column], table[column].round(decimals), rtol=0, atol=1e-9)
+            assert not np.allclose(written[column], table[column], rtol=0, atol=1e-9)  # rounding did happen
 
     def test_bad_method_exits_2_with_the_allowed_names(self, tmp_path):
         source = tmp_path / "orders.csv"

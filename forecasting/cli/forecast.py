@@ -10,7 +10,7 @@ from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine
                json_number, load_statistics_from_args, print_json)
 from ..errors import OrderDataError
 from ..exports import pseudonymise, write_csv
-from ..forecasts import forecast_customers
+from ..forecasts import forecast_customers, forecasts_for_reading
 
 
 def add_arguments(parser) -> None:
@@ -58,7 +58,7 @@ def run(args) -> int:
                                  value=f"{len(args.pseudonym_salt)} characters",
                                  fix="Choose a longer secret phrase and keep it")
         table = pseudonymise(table, salt=args.pseudonym_salt)
-    written = write_csv(table, args.out)
+    written = write_csv(forecasts_for_reading(table), args.out)
     progress.finish()
     fit = {key: json_number(value) for key, value in table.attrs["fit"].items()}
     method, variance = fit["method"], fit["variance"]
