@@ -526,13 +526,21 @@ def _statistics(connection, with_segment: bool) -> pd.DataFrame:
     """The exact second pass where :func:`_sum_by_customer` asks for it (squared deviations from
     each customer's own mean, exact for values of any size), then the table in the layout of
     :func:`forecasting.customers.customer_statistics`."""
+    # Dates in nanoseconds, the unit of the pandas engine's table, so that they arrive without a conversion.
     columns = ("rowid AS id, customer, orders, total, mean, sum_sq_dev, log_mean, log_sum_sq_dev, "
-               "first_order, last_order" + (", segment" if with_segment else ""))
+               "CAST(first_order AS TIMESTAMP_NS) AS first_order, CAST(last_order AS TIMESTAMP_NS) AS last_order"
+               + (", segment" if with_segment else ""))
     with connection.cursor() as cursor:  # a fresh cursor: earlier results need not be fetched to the end
+        cursor.execute("SET arrow_large_buffer_size = true")  # text as pandas keeps it: no conversion
         table = cursor.sql(f"SELECT {columns} FROM sums ORDER BY customer").to_arrow_table()
     n = table.num_rows
-    sum_sq = table.column("sum_sq_dev").to_numpy().astype(np.float64)
-    log_sum_sq = table.column("log_sum_sq_dev").to_numpy().astype(np.float64)
+
+    def numbers(name, dtype=np.float64):
+        # One array per column, the table's own and writable (a single Arrow chunk comes as a read-only view).
+        values = table.column(name).to_numpy().astype(dtype, copy=False)
+        return values if values.flags.writeable else values.copy()
+
+    sum_sq, log_sum_sq = numbers("sum_sq_dev"), numbers("log_sum_sq_dev")
     if connection.execute("SELECT count(*) FROM sums WHERE exact_needed").fetchone()[0]:
         exact = connection.execute("""
             SELECT s.id, sum((o.order_value - s.mean) * (o.order_value - s.mean)) AS sum_sq_dev,
@@ -546,27 +554,21 @@ def _statistics(connection, with_segment: bool) -> pd.DataFrame:
         at = place[exact["id"].astype(np.int64)]
         sum_sq[at] = exact["sum_sq_dev"]
         log_sum_sq[at] = exact["log_sum_sq_dev"]
-    counts = table.column("orders").to_numpy().astype(np.int64)
-    # A single order has no spread (var_pop of one value can come back as a rounding speck).
-    sum_sq[counts == 1] = 0.0
-    log_sum_sq[counts == 1] = 0.0
+    counts = numbers("orders", np.int64)
     with np.errstate(invalid="ignore", divide="ignore"):
         log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
-
-    def dates(name):
-        return table.column(name).to_pandas().to_numpy().astype("datetime64[ns]")
 
     stats = pd.DataFrame(
         {
             "orders": counts,
-            "total": table.column("total").to_numpy().astype(np.float64),
-            "mean": table.column("mean").to_numpy().astype(np.float64),
+            "total": numbers("total"),
+            "mean": numbers("mean"),
             "sum_sq_dev": sum_sq,
-            "log_mean": table.column("log_mean").to_numpy().astype(np.float64),
+            "log_mean": numbers("log_mean"),
             "log_sum_sq_dev": log_sum_sq,
             "log_var": log_var,
-            "first_order": dates("first_order"),
-            "last_order": dates("last_order"),
+            "first_order": numbers("first_order", "datetime64[ns]"),
+            "last_order": numbers("last_order", "datetime64[ns]"),
         },
         columns=STATISTICS_COLUMNS,
         index=pd.Index(table.column("customer").to_pandas(), name="customer"),
