@@ -174,6 +174,14 @@ class TestCheckMemoryLimit:
             check_memory_limit(text)
 
 
+def test_whitespace_is_what_python_strips():
+    # The duckdb engine strips exactly what str.strip() strips; the list is written out in the rules.
+    from forecasting.engines.rules import WHITESPACE
+
+    assert WHITESPACE == "".join(chr(code) for code in range(0x110000) if chr(code).isspace())
+    assert ("x" + WHITESPACE + "x").strip(WHITESPACE) == ("x" + WHITESPACE + "x").strip()
+
+
 class TestCheckThreads:
     def test_none_and_whole_numbers(self):
         assert check_threads(None) is None
