@@ -177,15 +177,15 @@ def bench_forecast_steps(path: Path, record) -> None:
         return
     from forecasting.engines import customer_statistics_from_file
     from forecasting.exports import write_csv
-    from forecasting.forecasts import forecast_customers
+    from forecasting.forecasts import forecast_customers, forecasts_for_reading
 
     stats, _ = record("forecast step 1: duckdb engine (read, clean, row account, statistics)",
                       lambda: customer_statistics_from_file(path, engine="duckdb"))
     table = record(f"forecast step 2: forecast_customers, mta, {len(stats):,} customers",
                    lambda: forecast_customers(stats, method="mta"))
     with tempfile.TemporaryDirectory(prefix="bench-forecasts-") as folder:
-        record(f"forecast step 3: write_csv of {len(table):,} forecasts",
-               lambda: write_csv(table, Path(folder) / "forecasts.csv"))
+        record(f"forecast step 3: write_csv of {len(table):,} forecasts, rounded for reading as the command does",
+               lambda: write_csv(forecasts_for_reading(table), Path(folder) / "forecasts.csv"))
 
 
 # ---------------------------------------------------------------------------
