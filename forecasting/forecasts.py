@@ -25,6 +25,7 @@ import pandas as pd
 import pyarrow as pa
 
 from forecasting.errors import OrderDataError
+from forecasting.exports import rounded_for_reading
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
     VARIANCE_MODELS,
@@ -325,6 +326,4 @@ def forecasts_for_reading(table: pd.DataFrame) -> pd.DataFrame:
       customer  expected_next_order  own_history_weight
     0     fern                70.49               0.555
     """
-    from .exports import rounded_for_reading
-
     return rounded_for_reading(table, money=MONEY_COLUMNS, shares=["own_history_weight"])
