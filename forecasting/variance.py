@@ -250,12 +250,6 @@ def robust_pooled_variance(codes, values, orders, means, *, clip=ROBUST_CLIP):
     return sigma2, details
 
 
-def _column(stats: pd.DataFrame, name: str) -> np.ndarray:
-    """A statistics column as float64 numbers. ``np.asarray`` on the Series itself would make pandas
-    look its attribute probes up among the customer ids, which builds a hash table of them."""
-    return stats[name].to_numpy(dtype=np.float64)
-
-
 def pooled_variance(stats: pd.DataFrame, *, model: str = "classic", orders: pd.DataFrame | None = None) -> VarianceFit:
     """Fit a shop-wide variance model.
 
@@ -303,16 +297,21 @@ def pooled_variance(stats: pd.DataFrame, *, model: str = "classic", orders: pd.D
     69.33333333333333
     """
     check_variance_model(model)
-    n = stats["orders"].to_numpy(dtype=np.float64)
+    # Columns go on as arrays: np.asarray on a Series would make pandas look numpy's attribute
+    # probes up among the customer ids, which builds a hash table of them (see DEVELOPERS.md).
+    def column(name):
+        return stats[name].to_numpy(dtype=np.float64)
+
+    n = column("orders")
     if model == "classic":
-        sigma2, notes = classic_pooled_variance(n, _column(stats, "sum_sq_dev"), _column(stats, "mean"))
+        sigma2, notes = classic_pooled_variance(n, column("sum_sq_dev"), column("mean"))
         return VarianceFit("classic", sigma2, notes)
     if model == "log":
-        sigma2, notes = classic_pooled_variance(n, _column(stats, "log_sum_sq_dev"), _column(stats, "log_mean"))
+        sigma2, notes = classic_pooled_variance(n, column("log_sum_sq_dev"), column("log_mean"))
         return VarianceFit("log", sigma2, notes)
     if model == "proportional":
-        m = stats["mean"].to_numpy(dtype=np.float64)
-        ss = stats["sum_sq_dev"].to_numpy(dtype=np.float64)
+        m = column("mean")
+        ss = column("sum_sq_dev")
         dof = float(np.sum(n - 1.0))
         if dof > 0:
             return VarianceFit("proportional", float(np.sum(ss / (m * m)) / dof))
@@ -331,10 +330,10 @@ def pooled_variance(stats: pd.DataFrame, *, model: str = "classic", orders: pd.D
         )
     codes = _customer_codes(stats, orders)
     sigma2, details = robust_pooled_variance(
-        codes, orders["order_value"].to_numpy(dtype=np.float64), n, stats["mean"].to_numpy(dtype=np.float64)
+        codes, orders["order_value"].to_numpy(dtype=np.float64), n, column("mean")
     )
     if sigma2 is None:
-        classic, notes = classic_pooled_variance(n, stats["sum_sq_dev"], stats["mean"])
+        classic, notes = classic_pooled_variance(n, column("sum_sq_dev"), column("mean"))
         return VarianceFit(
             "robust",
             classic,
