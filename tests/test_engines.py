@@ -484,6 +484,39 @@ class TestCustomerStatisticsDuckdb:
         with pytest.raises(OrderDataError, match="needs the pandas reader") as raised:
             customer_statistics_from_file(str(tmp_path / "orders_*.csv"), engine="duckdb")
         assert raised.value.row == 4 and "orders_2.csv" in str(raised.value.file)
+        assert raised.value.value == "1,234.50"  # read again from its file: the engine keeps no cells
+
+    def test_messages_from_parquet_name_the_row_and_the_value(self, tmp_path):
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        dates = ["2025-03-01"] * 40 + ["14/03/2025"] + ["2025-03-02"] * 9
+        table = pa.table({"customer": [f"c{i % 7}" for i in range(50)], "order_date": dates,
+                          "order_value": [12.5] * 50})
+        path = tmp_path / "orders.parquet"
+        pq.write_table(table, path, row_group_size=16)  # the odd date sits in the third row group
+        with pytest.raises(OrderDataError, match="ISO dates") as raised:
+            customer_statistics_from_file(path, engine="duckdb")
+        assert raised.value.row == 42 and raised.value.value == "14/03/2025"  # header = row 1
+
+    def test_copies_across_files_and_wide_rows(self, tmp_path):
+        # A copy in a later file of a row in an earlier one is left out; in a wide export a row
+        # differing from another only in its last cell (a column no role reads) is kept.
+        names = [f"note_{i}" for i in range(30)]
+        header = "customer,order_date,order_value," + ",".join(names) + "\n"
+        notes = ",".join(f"n{i}" for i in range(30))
+        last_differs = ",".join(f"n{i}" for i in range(29)) + ",other"
+        first = f"fern,2025-03-01,24.00,{notes}\nivy,2025-03-02,12.00,{notes}\n"
+        second = f"moss,2025-03-03,5.00,{notes}\nfern,2025-03-01,24.00,{notes}\nivy,2025-03-02,12.00,{last_differs}\n"
+        (tmp_path / "orders_1.csv").write_text(header + first)
+        (tmp_path / "orders_2.csv").write_text(header + second)
+        (tmp_path / "together.csv").write_text(header + first + second)
+        stats, account = customer_statistics_from_file(str(tmp_path / "orders_*.csv"), engine="duckdb")
+        expected_stats, expected_account = pandas_engine(tmp_path / "together.csv")
+        assert account["excluded"] == {"duplicate_row": 1}
+        assert stats.loc["ivy", "orders"] == 2 and stats.loc["fern", "orders"] == 1
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
 
     def test_files_with_different_columns_are_refused(self, tmp_path):
         (tmp_path / "a.csv").write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\n")

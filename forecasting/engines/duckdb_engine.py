@@ -16,12 +16,12 @@ The cleaning rules are the pandas reader's, for plain exports (see
 The work, in the order :func:`customer_statistics_duckdb` runs it (each step one SQL
 statement over the whole file, so that it scales with the number of rows):
 
-1. ``records``: the file read once, each record with its cells, its reason code (a one-byte
-   ENUM) and its parsed customer, amount and date; what follows from those (kept or not,
-   refund or not, the currency a row names) is derived in the view ``classified``, since every
+1. ``records``: the file read once, each record with its reason code (a one-byte ENUM), its
+   readings (customer, amount, date, the currency it names) and a hash of all its cells; the
+   cells themselves are not kept (they would double the table), and what follows from the
+   readings (kept or not, refund or not) is derived in the view ``classified``, since every
    stored column costs time on millions of rows (:func:`_classify`);
-2. exact copies of earlier rows, looked for among the few rows that share a hash of their
-   customer, amount and date, then compared cell by cell (:func:`_mark_copies`);
+2. copies of earlier rows: equal readings and an equal hash of every cell (:func:`_mark_copies`);
 3. the whole-column checks, on counts (:func:`_check_whole_columns`);
 4. ``orders``: order lines summed, refunds netted (:func:`_build_orders`);
 5. ``sums``: one pass per customer, and an exact second pass for the customers
@@ -186,16 +186,15 @@ def _raise_read_problem(problem: Exception, files: OrderFiles):
 def _number_positions(connection, files: OrderFiles) -> None:
     """View ``numbered``: ``line`` orders all records (file order, then record order);
     ``file_position`` is the record's 0-based place among the records read from its file."""
-    cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
     if files.kind == "csv" and len(files.paths) > 1:
         connection.execute("CREATE TABLE file_start AS SELECT file, min(rowid) AS start FROM records GROUP BY file")
         connection.execute(f"CREATE VIEW numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
-                           f"AS file_position, {cells} FROM records r JOIN file_start s USING (file)")
+                           f"AS file_position FROM records r JOIN file_start s USING (file)")
     else:
         file = "file" if len(files.paths) > 1 else f"{_literal(files.paths[0])} AS file"
         position = "rowid" if files.kind == "csv" else "file_position"
-        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, {file}, {position} AS file_position, "
-                           f"{cells} FROM records")
+        connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, {file}, {position} AS file_position "
+                           f"FROM records")
 
 
 def _row_of(files: OrderFiles, file: str, position) -> int | None:
@@ -204,23 +203,26 @@ def _row_of(files: OrderFiles, file: str, position) -> int | None:
     return files.spreadsheet_row(file, int(position))
 
 
-def _where(connection, files: OrderFiles, line: int, role: str | None = None):
-    """``(file label, spreadsheet row, the role's cell as the reader strips it)`` of one record."""
-    cell = f"c{files.columns.index(getattr(files.mapping, role))}" if role else "NULL"
-    file, position, value = connection.execute(
-        f"SELECT file, file_position, {cell} FROM numbered WHERE line = ?", [line]).fetchone()
+def _where(connection, files: OrderFiles, source: str, line: int, role: str):
+    """``(file label, spreadsheet row, the role's cell as the reader strips it)`` of one record.
+
+    ``records`` keeps no cells: the cell is read again from ``source`` (the query of :func:`_reader`,
+    whose rows come in the order ``records`` numbers them). Only messages need it."""
+    file, position = connection.execute("SELECT file, file_position FROM numbered WHERE line = ?", [line]).fetchone()
+    cell = f"c{files.columns.index(getattr(files.mapping, role))}"
+    value = connection.execute(f"SELECT {cell} FROM ({source}) LIMIT 1 OFFSET ?", [line]).fetchone()[0]
     return files.file_label(file), _row_of(files, file, position), \
         value.strip() if isinstance(value, str) else value
 
 
 def _classify(connection, files: OrderFiles, source: str, *, currency: str | None) -> None:
     """Table ``records``: one row per record of ``source`` (a query, see :func:`_reader`) in file order,
-    with its cells, its reason code ('' = used) and its parsed cells; view ``classified`` adds ``line``.
+    with its reason code ('' = used), its readings and ``row_key``, a hash of all its cells; view
+    ``classified`` adds ``line``.
 
     ``kept`` (in the view) is false for blank, over-long and (after :func:`_mark_copies`) duplicate
-    rows; ``row_key`` hashes the customer cell and the amount and date read from theirs: exact copies
-    share it, so they are looked for among the few rows that do (hashing three parsed values costs
-    less than hashing every text cell, above all in wide exports)."""
+    rows. ``row_currency`` is the currency the row names: its currency cell, or without a currency
+    column the code or symbol in an amount that is not a plain number ('' for every plain amount)."""
     cells = [f"c{i}" for i in range(len(files.columns))]
     blank = _all([_is_blank(c) for c in cells])
     # length() counts characters; a cell has at least as many bytes (strlen) as characters.
@@ -261,16 +263,15 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         refund = f"regexp_full_match(status_word, {_literal(rules.REFUND_PATTERN)})"
     # Every stored column costs time on ten million rows: what follows from the others is derived
     # in the view ``classified`` instead (see _derived_columns).
-    stored = _stored_place(files) + cells + [f"hash({cell('customer')}, amount, order_date) AS row_key", "customer"]
-    stored += (["order_text"] if mapping.order_id else []) + (["segment_text"] if mapping.segment else [])
-    stored += (["row_currency"] if currency else []) + ["order_date"]
-    stored += ["(amount < 0 OR refund_status) AS is_refund"] if mapping.status else []
+    computed = {"row_key": f"hash({', '.join(cells)})", "is_refund": "(amount < 0 OR refund_status)",
+                "signed": "CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END"}
+    stored = _stored_place(files) + [f"{computed[name]} AS {name}" if name in computed else name
+                                     for name in _readings(mapping)]
     connection.execute(f"CREATE TYPE reason_code AS ENUM ({', '.join(_literal(c) for c in _REASON_CODES)})")
     # Innermost first: the cells as the reader strips them, then their readings, then the reasons.
     sql = f"""
         CREATE TABLE records AS
         SELECT {', '.join(stored)},
-               CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END AS signed,
                CASE WHEN blank THEN {code('blank_row')}
                     WHEN NOT kept THEN {code('malformed_row')}
                     WHEN early_reason <> '' THEN early_reason
@@ -318,8 +319,15 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         connection.execute(sql)
     except Exception as problem:  # duckdb.Error and its subclasses: the file could not be read
         _raise_read_problem(problem, files)
-    derived = _derived_columns(files, stored_currency=bool(currency))
+    derived = _derived_columns(files)
     connection.execute(f"CREATE VIEW classified AS SELECT rowid AS line, *, {', '.join(derived)} FROM records")
+
+
+def _readings(mapping) -> list[str]:
+    """The columns of ``records`` that are read from a record's cells (all but its place and reason)."""
+    return (["row_key", "customer"] + (["order_text"] if mapping.order_id else [])
+            + (["segment_text"] if mapping.segment else []) + ["row_currency", "order_date"]
+            + (["is_refund"] if mapping.status else []) + ["signed"])
 
 
 # Every reason a record can get: '' (used), the row account's codes and the two that stop a run
@@ -347,47 +355,36 @@ def _named_currency(amount_text: str, plain: str) -> str:
 _KEPT = "reason NOT IN ('blank_row', 'malformed_row', 'duplicate_row')"
 
 
-def _derived_columns(files: OrderFiles, *, stored_currency: bool) -> list[str]:
+def _derived_columns(files: OrderFiles) -> list[str]:
     """The columns of ``classified`` computed from ``records`` when a query asks for them.
 
     * ``kept``: not blank, not over-long, not a copy (those are the reasons that say so);
-    * ``is_refund``: without a status column, a negative amount (stored otherwise);
-    * ``row_currency``: the currency a row names, needed by the whole-column check only
-      (stored when --currency leaves rows out by it). Without a currency column it comes
-      from the amount, and only an amount that stopped being read can name one: rows used,
-      and rows left out for their date or a missing amount, name none."""
+    * ``is_refund``: without a status column, a negative amount (stored otherwise)."""
     derived = [f"{_KEPT} AS kept"]
     if not files.mapping.status:
         derived.append("signed < 0 AS is_refund")
-    if not stored_currency:
-        index = files.columns.index
-        if files.mapping.currency:
-            derived.append(f"upper({_strip(f'c{index(files.mapping.currency)}')}) AS row_currency")
-        else:
-            amount_text = _strip(f"c{index(files.mapping.value)}")
-            plain = f"regexp_full_match({amount_text}, {_literal(rules.PLAIN_NUMBER)})"
-            derived.append(f"CASE WHEN reason IN ('', 'missing_amount', 'missing_date', 'other_date', 'bad_date') "
-                           f"THEN '' ELSE {_named_currency(amount_text, plain)} END AS row_currency")
     return derived
 
 
 def _mark_copies(connection, files: OrderFiles) -> None:
-    """Exact copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
+    """Copies of an earlier kept row get reason ``duplicate_row`` (the earliest copy is kept).
 
-    Rows are compared cell by cell, but only those whose ``row_key`` (see :func:`_classify`) is shared."""
+    Two rows are copies when every reading stored for them is equal (customer, amount, date and
+    the others of :func:`_classify`) and so is ``row_key``, the 64-bit hash of all their cells: the
+    readings are compared exactly, and what they do not show (how an amount or a date is written,
+    the columns no role reads) through the hash. Two different rows of one customer with the same
+    amount and date pass only if their hashes collide, a chance of about 1 in 2^64 (5e-20) for
+    each such pair. The cells themselves are not kept: comparing them would double ``records``."""
     # Both passes over every row read the table itself: the view's extra columns cost time per row.
     connection.execute(f"CREATE TABLE shared_keys AS SELECT row_key FROM records WHERE {_KEPT} "
                        "GROUP BY row_key HAVING count(*) > 1")
     if not connection.execute("SELECT count(*) FROM shared_keys").fetchone()[0]:
         return
-    cells = ", ".join(f"c{i}" for i in range(len(files.columns)))
-    connection.execute(f"CREATE TABLE candidates AS SELECT rowid AS line FROM records "
-                       f"WHERE {_KEPT} AND row_key IN (SELECT row_key FROM shared_keys)")
     connection.execute(f"""
         CREATE TABLE copies AS
         SELECT line FROM (
-            SELECT line, row_number() OVER (PARTITION BY {cells} ORDER BY line) AS copy_number
-            FROM numbered WHERE line IN (SELECT line FROM candidates))
+            SELECT rowid AS line, row_number() OVER (PARTITION BY {', '.join(_readings(files.mapping))} ORDER BY rowid) AS copy_number
+            FROM records WHERE {_KEPT} AND row_key IN (SELECT row_key FROM shared_keys))
         WHERE copy_number > 1""")
     connection.execute("UPDATE records SET reason = 'duplicate_row' "
                        "WHERE rowid IN (SELECT line FROM copies)")
@@ -402,8 +399,8 @@ def _first_line(connection, where: str) -> int | None:
     return None if found is None else int(found)
 
 
-def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None) -> None:
-    """The rules that look at a whole column, as the pandas reader applies them."""
+def _check_whole_columns(connection, files: OrderFiles, source: str, *, currency: str | None) -> None:
+    """The rules that look at a whole column, as the pandas reader applies them (``source``: see :func:`_where`)."""
     mapping = files.mapping
     if not currency:
         seen = [r[0] for r in connection.execute(
@@ -412,7 +409,7 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
         if len(seen) > 1:
             role = "currency" if mapping.currency else "value"
             line = _first_line(connection, f"reason NOT IN {_EARLY} AND row_currency = {_literal(seen[1])}")
-            file, row, value = _where(connection, files, line, role)
+            file, row, value = _where(connection, files, source, line, role)
             raise OrderDataError(
                 f"the amounts are in several currencies ({', '.join(seen)})", file=file, row=row,
                 column=mapping.currency or mapping.value, value=value,
@@ -428,7 +425,7 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
         column = getattr(mapping, role)
         line = _first_line(connection, f"reason = '{kind}'")
         if line is not None:
-            file, row, value = _where(connection, files, line, role)
+            file, row, value = _where(connection, files, source, line, role)
             raise OrderDataError(
                 f"the duckdb engine reads {reading_rule}; this value needs the pandas reader",
                 file=file, row=row, column=column, value=value, fix="Use --engine pandas for formatted exports")
@@ -436,7 +433,7 @@ def _check_whole_columns(connection, files: OrderFiles, *, currency: str | None)
             f"SELECT count(*), count(*) FILTER (WHERE {unreadable}) FROM classified WHERE kept AND {values}"
         ).fetchone()
         if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
-            file, row, value = _where(connection, files, _first_line(connection, unreadable), role)
+            file, row, value = _where(connection, files, source, _first_line(connection, unreadable), role)
             raise OrderDataError(f"most {what} in this column cannot be read", file=file, row=row,
                                  column=column, value=value,
                                  fix=f"Pick the right column with {option}, or check the format")
@@ -654,9 +651,14 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
 
     The sums of squares are never computed as sum(x^2) - n mean^2, which loses every
     digit of the spread of values near 1e9. duckdb's updating (Welford) sums are kept
-    where their error bound is below 1e-12 relative; every other customer (all orders
-    equal, or a spread tiny next to the amounts) gets two passes, first the mean, then
-    the squared deviations from it joined back to the orders.
+    where ten times their error bound is below 1e-10 relative; the few other customers (a
+    spread tiny next to the amounts) get two passes, first the mean, then the squared
+    deviations from it joined back to the orders.
+
+    A row is a copy of an earlier one when its readings (customer, amount, date and the
+    other roles) are equal and so is a 64-bit hash of all its cells; the cells are not kept
+    (see :func:`_mark_copies` for the chance of a false match, about 5e-20 per pair of rows
+    of one customer with the same amount and date).
 
     Lines of one order are summed in file order, as the pandas reader sums them, so
     that an order which nets to exactly zero is treated the same by both.
@@ -701,12 +703,13 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
         # duckdb skips blank lines; they are found (to be counted) while duckdb reads the file.
         scanned = helper.submit(files.scan_blank_lines)
         try:
-            _classify(connection, files, _reader(connection, files), currency=currency)
+            source = _reader(connection, files)
+            _classify(connection, files, source, currency=currency)
             scanned.result()
             _number_positions(connection, files)
             _check_record_counts(connection, files)
             _mark_copies(connection, files)
-            _check_whole_columns(connection, files, currency=currency)
+            _check_whole_columns(connection, files, source, currency=currency)
             _build_orders(connection, files)
             with_segment = files.mapping.segment is not None
             _sum_by_customer(connection, with_segment)
