@@ -412,6 +412,11 @@ class TestCustomerStatisticsDuckdb:
         assert_same_statistics(stats, expected_stats)
         assert_same_account(account, expected_account)
 
+    def test_oversized_cells_as_the_pandas_reader(self, tmp_path):
+        path = write_long_cells(tmp_path / "long_cells.csv")
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        assert_long_cells_read_as_the_pandas_reader(path, stats, account)
+
     def test_order_lines_that_net_to_exactly_nothing(self, tmp_path):
         # 0.1 + 0.2 - 0.3 is 5.55e-17 when added in file order, 0 in another order:
         # both engines add an order's lines in file order, so both keep the order.
@@ -638,8 +643,34 @@ def cluster():
         yield client
 
 
+def write_long_cells(path):
+    """A cell over the limit (counted in characters) leaves its row out as oversized_field; a row
+    whose cells only add up to more than the limit, and a cell of more bytes than the limit but
+    fewer characters (two-byte letters), are kept."""
+    limit = 100_000  # the pandas reader's MAX_FIELD_CHARS
+    path.write_text("customer,order_date,order_value,note,extra\n"
+                    f"fern,2025-03-01,24.00,{'x' * (limit + 1)},\n"
+                    f"fern,2025-03-02,20.00,{'y' * 60_000},{'z' * 60_000}\n"
+                    f"moss,2025-03-05,12.00,{'é' * 60_000},\n"
+                    "ivy,2025-03-05,12.00,ok,\n", encoding="utf-8")
+    return path
+
+
+def assert_long_cells_read_as_the_pandas_reader(path, stats, account):
+    expected_stats, expected_account = pandas_engine(path)
+    assert account["excluded"] == {"oversized_field": 1}
+    assert stats["orders"].to_dict() == {"fern": 1, "ivy": 1, "moss": 1}
+    assert_same_statistics(stats, expected_stats)
+    assert_same_account(account, expected_account)
+
+
 @needs_dask
 class TestCustomerStatisticsDask:
+    def test_oversized_cells_as_the_pandas_reader(self, cluster, tmp_path):
+        path = write_long_cells(tmp_path / "long_cells.csv")
+        stats, account = customer_statistics_from_file(path, engine="dask", scheduler=cluster)
+        assert_long_cells_read_as_the_pandas_reader(path, stats, account)
+
     def test_same_as_pandas_over_several_partitions(self, cluster, shop_export):
         from forecasting.engines.dask_engine import customer_statistics_dask
 

@@ -194,7 +194,7 @@ def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, curren
         too_long |= column.str.len().to_numpy() > rules.MAX_FIELD_CHARS
         blank &= (column.str.strip() == "").to_numpy()
     exclude(blank, "blank_row")
-    exclude(too_long, "malformed_row")
+    exclude(too_long, "oversized_field")
     exclude(cells.duplicated(keep="first").to_numpy() & ~blank, "duplicate_row")
     exclude(text["customer"].to_numpy() == "", "missing_customer")
     status = reading._status_text(cells, mapping)

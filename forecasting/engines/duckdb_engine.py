@@ -273,7 +273,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         CREATE TABLE records AS
         SELECT {', '.join(stored)},
                CASE WHEN blank THEN {code('blank_row')}
-                    WHEN NOT kept THEN {code('malformed_row')}
+                    WHEN too_long THEN {code('oversized_field')}
                     WHEN early_reason <> '' THEN early_reason
                     WHEN amount_kind = 'missing' THEN {code('missing_amount')}
                     WHEN amount_kind = 'formatted' THEN {code('formatted_amount')}
@@ -352,7 +352,7 @@ def _named_currency(amount_text: str, plain: str) -> str:
 
 
 # A record that is not blank, not over-long and not a copy of an earlier one.
-_KEPT = "reason NOT IN ('blank_row', 'malformed_row', 'duplicate_row')"
+_KEPT = "reason NOT IN ('blank_row', 'oversized_field', 'duplicate_row')"
 
 
 def _derived_columns(files: OrderFiles) -> list[str]:
