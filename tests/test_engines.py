@@ -417,6 +417,22 @@ class TestCustomerStatisticsDuckdb:
         stats, account = customer_statistics_from_file(path, engine="duckdb")
         assert_long_cells_read_as_the_pandas_reader(path, stats, account)
 
+    def test_customer_cells_with_edges_that_are_not_plain(self, tmp_path):
+        # The quick tests read the customer cell's first and last character; cells that start or
+        # end with a letter outside ASCII, with Unicode spaces, or are only spaces, take the full
+        # rules of the pandas reader (Python's str.strip).
+        path = tmp_path / "edges.csv"
+        path.write_text("customer,order_date,order_value\n"
+                        "Ñuñez,2025-03-01,24.00\n\u00a0fern\u00a0,2025-03-02,20.00\n\u3000ivy,2025-03-03,8.00\n"
+                        "fern,2025-03-04,6.00\nivy\u3000,2025-03-05,5.00\n   ,2025-03-06,3.00\n"
+                        "\u00a0,\u00a0, \nmossé,2025-03-07,2.50\n", encoding="utf-8")
+        stats, account = customer_statistics_from_file(path, engine="duckdb")
+        expected_stats, expected_account = pandas_engine(path)
+        assert stats["orders"].to_dict() == {"fern": 2, "ivy": 2, "mossé": 1, "Ñuñez": 1}
+        assert account["excluded"] == {"missing_customer": 1, "blank_row": 1}
+        assert_same_statistics(stats, expected_stats)
+        assert_same_account(account, expected_account)
+
     def test_order_lines_that_net_to_exactly_nothing(self, tmp_path):
         # 0.1 + 0.2 - 0.3 is 5.55e-17 when added in file order, 0 in another order:
         # both engines add an order's lines in file order, so both keep the order.

@@ -224,10 +224,13 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
     rows. ``row_currency`` is the currency the row names: its currency cell, or without a currency
     column the code or symbol in an amount that is not a plain number ('' for every plain amount)."""
     cells = [f"c{i}" for i in range(len(files.columns))]
-    blank = _all([_is_blank(c) for c in cells])
-    # length() counts characters; a cell has at least as many bytes (strlen) as characters.
-    short = _all([f"strlen({c}) <= {rules.MAX_FIELD_CHARS}" for c in cells])
-    too_long = f"(NOT {short} AND NOT {_all([f'length({c}) <= {rules.MAX_FIELD_CHARS}' for c in cells])})"
+    # length() counts characters; a cell has at least as many bytes (strlen) as characters, and
+    # a record whose cells add up to fewer bytes than the limit has no cell over it (one sum, not
+    # one test per cell, for almost every record).
+    limit = rules.MAX_FIELD_CHARS
+    short = _all([f"strlen({c}) <= {limit}" for c in cells])
+    too_long = (f"(CASE WHEN {' + '.join(f'strlen({c})' for c in cells)} <= {limit} THEN false "
+                f"ELSE NOT {short} AND NOT {_all([f'length({c}) <= {limit}' for c in cells])} END)")
     index = {name: i for i, name in enumerate(files.columns)}
     mapping = files.mapping
 
@@ -235,7 +238,13 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         column = getattr(mapping, role)
         return f"c{index[column]}" if column else None
 
-    customer = _strip(cell("customer"))
+    # The first character of the customer cell answers two questions for almost every record: the
+    # record is not blank, and (with the last one) the cell has no whitespace to strip.
+    customer_cell = cell("customer")
+    starts_plain = f"ascii({customer_cell}) BETWEEN 33 AND 126"
+    blank = f"(CASE WHEN customer_starts_plain THEN false ELSE {_all([_is_blank(c) for c in cells])} END)"
+    customer = (f"(CASE WHEN customer_starts_plain AND ascii({customer_cell}[-1]) BETWEEN 33 AND 126 "
+                f"THEN {customer_cell} ELSE {_strip(customer_cell)} END)")
     # A cell that is a plain number (or an ISO date) as it stands has no whitespace to strip:
     # the pattern test doubles as the edge test for almost every cell.
     plain_pattern, iso_pattern = _literal(rules.PLAIN_NUMBER), _literal(rules.ISO_DATE)
@@ -314,7 +323,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                                status_word, {currency_text} AS currency_text
                         FROM (SELECT *, ({blank}) AS blank, ({too_long}) AS too_long,
                                      {status} AS status_word, {plain_cell} AS plain_cell, {iso_cell} AS iso_cell
-                              FROM ({source}))))))"""
+                              FROM (SELECT *, {starts_plain} AS customer_starts_plain FROM ({source})))))))"""
     try:
         connection.execute(sql)
     except Exception as problem:  # duckdb.Error and its subclasses: the file could not be read
