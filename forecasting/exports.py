@@ -191,14 +191,34 @@ def _csv_body(block: pd.DataFrame) -> memoryview:
     """The records of ``block`` as CSV bytes, each ending in CRLF (a view of Arrow's buffer, not a
     copy: fresh memory for hundreds of megabytes of copies costs more than the encoding)."""
     # 64-bit offsets: the body of a big table may pass 2 GB.
-    fields = [pc.cast(_contiguous(_cells_as_text(block.iloc[:, i])), pa.large_string())
-              for i in range(len(block.columns))]
+    fields = []
+    for i in range(len(block.columns)):
+        column = block.iloc[:, i]
+        if _holds_one_value(column):  # its text is made once and repeated by the join
+            fields.append(pc.cast(_cells_as_text(column.iloc[:1]), pa.large_string())[0])
+        else:
+            fields.append(pc.cast(_contiguous(_cells_as_text(column)), pa.large_string()))
+    if not any(isinstance(field, pa.Array) for field in fields):
+        fields[0] = pa.repeat(fields[0], len(block))  # the join needs one column to give the rows
     comma, crlf, nothing = (pa.scalar(t, pa.large_string()) for t in (",", "\r\n", ""))
     fields[-1] = pc.binary_join_element_wise(fields[-1], crlf, nothing)
     rows = pc.binary_join_element_wise(*fields, comma) if len(fields) > 1 else fields[0]
     # The values of an Arrow string array sit end to end in one buffer: that buffer is the body.
     bounds = np.frombuffer(rows.buffers()[1], dtype=np.int64, count=len(rows) + 1, offset=rows.offset * 8)
     return memoryview(rows.buffers()[2])[int(bounds[0]):int(bounds[-1])]
+
+
+def _holds_one_value(series: pd.Series) -> bool:
+    """True when a column of numbers or Arrow text has two or more cells, all the same value (no gaps)."""
+    if len(series) < 2 or pd.api.types.is_bool_dtype(series):
+        return False
+    if pd.api.types.is_numeric_dtype(series):
+        values = series.to_numpy()
+        return bool((values == values[0]).all())  # NaN equals nothing, so a gap is never "one value"
+    if pd.api.types.is_string_dtype(series) and not pd.api.types.is_object_dtype(series):
+        text = _contiguous(pa.array(series.array, type=pa.large_string()))
+        return text.null_count == 0 and bool(pc.all(pc.equal(text, text[0])).as_py())
+    return False
 
 
 def _contiguous(array):

@@ -92,6 +92,29 @@ class TestCsvText:
         assert list(body[5]) == [str(b) for b in table["low_confidence"]]
         assert list(body[6]) == table["first_order"].dt.strftime("%Y-%m-%d").tolist()
 
+    def test_columns_holding_one_value_are_written_as_every_other(self):
+        # A column with one value in every row (the forecast's method and variance) is encoded once
+        # and repeated: the cells must still be neutralised, quoted (RFC 4180 section 2, rule 6)
+        # and read back through Python's csv module; a column of gaps stays empty; a table of such
+        # columns only, and a value that changes in a later block of rows, are written as well.
+        n = 450_000
+        table = pd.DataFrame({
+            "customer": pd.Series([f"G-{i}" for i in range(n)], dtype="str"),
+            "method": pd.Series(["mta"] * n, dtype="str"),
+            "formula": pd.Series(["=cmd"] * n, dtype="str"),
+            "comma": pd.Series(["Smith, Jo"] * n, dtype="str"),
+            "level": np.full(n, 0.9),
+            "gap": np.full(n, np.nan),
+            "late_change": np.r_[np.zeros(n - 1, dtype=np.int64), 7],
+        })
+        rows = list(csv.reader(io.StringIO(csv_text(table), newline="")))
+        assert len(rows) == n + 1
+        body = list(zip(*rows[1:]))
+        assert set(body[1]) == {"mta"} and set(body[2]) == {"'=cmd"} and set(body[3]) == {"Smith, Jo"}
+        assert set(body[4]) == {"0.9"} and set(body[5]) == {""}
+        assert body[6][-1] == "7" and set(body[6][:-1]) == {"0"}
+        assert csv_text(table.iloc[:2, 1:3]) == "method,formula\r\nmta,'=cmd\r\nmta,'=cmd\r\n"
+
     def test_times_of_day_are_kept_and_an_empty_table_is_its_header(self):
         table = pd.DataFrame({"at": pd.to_datetime(["2025-03-01 10:30", None]), "n": [1, 2]})
         assert csv_text(table) == "at,n\r\n2025-03-01 10:30:00,1\r\n,2\r\n"
