@@ -212,7 +212,7 @@ def _holds_one_value(series: pd.Series) -> bool:
     """True when a column of numbers or Arrow text has two or more cells, all the same value (no gaps)."""
     if len(series) < 2 or pd.api.types.is_bool_dtype(series):
         return False
-    if pd.api.types.is_numeric_dtype(series):
+    if pd.api.types.is_numeric_dtype(series) and isinstance(series.dtype, np.dtype):
         values = series.to_numpy()
         return bool((values == values[0]).all())  # NaN equals nothing, so a gap is never "one value"
     if pd.api.types.is_string_dtype(series) and not pd.api.types.is_object_dtype(series):

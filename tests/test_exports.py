@@ -114,6 +114,10 @@ class TestCsvText:
         assert set(body[4]) == {"0.9"} and set(body[5]) == {""}
         assert body[6][-1] == "7" and set(body[6][:-1]) == {"0"}
         assert csv_text(table.iloc[:2, 1:3]) == "method,formula\r\nmta,'=cmd\r\nmta,'=cmd\r\n"
+        # Columns of pandas' nullable and Arrow number types are written cell by cell, gaps empty.
+        typed = pd.DataFrame({"n": pd.array([2, 2, None], dtype="Int64"),
+                              "x": pd.Series([1.5, 1.5, 1.5], dtype="float64[pyarrow]")})
+        assert csv_text(typed) == "n,x\r\n2,1.5\r\n2,1.5\r\n,1.5\r\n"
 
     def test_times_of_day_are_kept_and_an_empty_table_is_its_header(self):
         table = pd.DataFrame({"at": pd.to_datetime(["2025-03-01 10:30", None]), "n": [1, 2]})
