@@ -217,7 +217,9 @@ def _holds_one_value(series: pd.Series) -> bool:
         return bool((values == values[0]).all())  # NaN equals nothing, so a gap is never "one value"
     if pd.api.types.is_string_dtype(series) and not pd.api.types.is_object_dtype(series):
         text = _contiguous(pa.array(series.array, type=pa.large_string()))
-        return text.null_count == 0 and bool(pc.all(pc.equal(text, text[0])).as_py())
+        if text.null_count or text[0] != text[-1]:  # most columns answer here, without a pass over every cell
+            return False
+        return bool(pc.all(pc.equal(text, text[0])).as_py())
     return False
 
 

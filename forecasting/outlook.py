@@ -37,6 +37,7 @@ from scipy import sparse, stats as sps
 
 from .customers import customer_statistics
 from .errors import OrderDataError
+from .exports import rounded_for_reading
 from .frequency import (
     MIN_SEASON_DAYS,
     FrequencyFit,
@@ -1220,8 +1221,6 @@ def tier_lists(tiered: pd.DataFrame) -> dict:
     """
     if "tiers" not in tiered.attrs:
         raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
-    from .exports import rounded_for_reading
-
     columns = [c for c in _EXPORT_COLUMNS if c in tiered.columns]
     table = rounded_for_reading(
         tiered[columns],
