@@ -51,6 +51,7 @@ __all__ = [
     "expected_new_customer_orders",
     "chance_still_active",
     "frequency_forecast",
+    "judge_optimum",
     "MIN_SEASON_DAYS",
     "SEASON_COLUMNS",
     "month_of_year_index",
@@ -623,7 +624,8 @@ class FrequencyFit:
     customers : int
         Number of customers the fit used.
     converged : bool
-        Whether the optimiser reported success away from the bounds.
+        Whether the fit sits at an optimum (see :func:`judge_optimum`): small
+        projected gradient, positive definite Hessian, away from the bounds.
     notes : tuple of str
         Plain-words remarks about the fit.
     repeat_customers : int
@@ -718,6 +720,106 @@ class FrequencyFit:
         }
 
 
+@dataclass(frozen=True)
+class OptimumVerdict:
+    """Whether a maximum-likelihood fit sits at an optimum, judged by the optimum itself.
+
+    Attributes
+    ----------
+    reached : bool
+        The projected gradient is small and the Hessian positive definite.
+    covariance : numpy.ndarray
+        Inverse Hessian (NaN where ``reached`` is False or a parameter is not
+        pinned down by the data).
+    notes : tuple of str
+        Plain-words remarks, true to what was found.
+    """
+
+    reached: bool
+    covariance: np.ndarray
+    notes: tuple
+
+
+# Largest projected slope of the mean negative log-likelihood (per customer, on
+# the log-parameter scale) accepted at an optimum. The mean log-likelihood per
+# customer is of order 1-10; 1e-5 relative to it is far below the change one
+# customer more or less makes, yet well above the rounding noise of the sums.
+_GRADIENT_TOLERANCE = 1e-5
+
+
+def judge_optimum(log_params, mean_gradient, hessian, *, bound, names, scale=1.0) -> OptimumVerdict:
+    """Judge a fit by the optimum it reached, not by the optimiser's message.
+
+    Parameters
+    ----------
+    log_params : array of float
+        The fitted log-parameters.
+    mean_gradient : array of float
+        Gradient of the *mean* negative log-likelihood (per customer) there.
+    hessian : array of float
+        Hessian of the *summed* negative log-likelihood there.
+    bound : float
+        The box |log parameter| <= bound the fit was held in.
+    names : sequence of str
+        Parameter names, for the notes.
+    scale : float
+        Size of the mean log-likelihood; the gradient test is relative to
+        ``max(1, scale)``.
+
+    Returns
+    -------
+    OptimumVerdict
+
+    Notes
+    -----
+    A fit is accepted when the projected gradient (components pushing against
+    a bound they already sit on are dropped) is below
+    ``_GRADIENT_TOLERANCE * max(1, scale)`` and the Hessian is positive
+    definite (a Cholesky factorisation succeeds). Quasi-Newton optimisers can
+    end with a warning such as "ABNORMAL" from their line search at a point
+    that passes both tests; such a fit is sound, and its covariance is the
+    inverse Hessian. A parameter whose log standard error exceeds
+    ``_MAX_LOG_SE`` is reported as not pinned down.
+    """
+    log_params = np.asarray(log_params, dtype=np.float64)
+    gradient = np.asarray(mean_gradient, dtype=np.float64).copy()
+    at_upper = log_params > bound - 1e-6
+    at_lower = log_params < -bound + 1e-6
+    # At a bound, a slope pointing further out cannot be followed: it does not count.
+    gradient[at_upper & (gradient < 0)] = 0.0
+    gradient[at_lower & (gradient > 0)] = 0.0
+    nan = np.full(hessian.shape, np.nan)
+    notes = []
+    at_bound = at_upper | at_lower
+    if np.any(at_bound):
+        hit = ", ".join(n for n, h in zip(names, at_bound) if h)
+        notes.append(f"The order-frequency fit ran to the edge of the allowed range for {hit}; "
+                     "the data say little about it.")
+        return OptimumVerdict(False, nan, tuple(notes))
+    slope = float(np.max(np.abs(gradient))) if gradient.size else 0.0
+    if not np.isfinite(slope) or slope > _GRADIENT_TOLERANCE * max(1.0, abs(scale)):
+        notes.append(f"The order-frequency fit stopped before reaching the best fit "
+                     f"(the likelihood still slopes by {slope:.2g} per customer).")
+        return OptimumVerdict(False, nan, tuple(notes))
+    try:
+        np.linalg.cholesky(hessian)
+    except np.linalg.LinAlgError:
+        notes.append("The order-frequency fit is not at a clear peak of the likelihood (it is flat or "
+                     "saddle-shaped in some direction), so its parameters are not pinned down.")
+        return OptimumVerdict(False, nan, tuple(notes))
+    covariance = np.linalg.inv(hessian)
+    log_se = np.sqrt(np.diag(covariance))
+    loose = log_se > _MAX_LOG_SE
+    if np.any(loose):
+        # A standard error of e^5 ~ 150-fold either way: the data do not pin the
+        # parameter down, and draws from such a normal would be meaningless.
+        which = ", ".join(n for n, h in zip(names, loose) if h)
+        notes.append(f"The data barely pin down {which}, so the uncertainty of the order-frequency fit "
+                     "is not stated.")
+        return OptimumVerdict(True, nan, tuple(notes))
+    return OptimumVerdict(True, covariance, tuple(notes))
+
+
 def _negative_mean_ll(log_params, x, t_x, age):
     params = np.exp(log_params)
     value = -frequency_log_likelihood(params, x, t_x, age).sum() / len(x)
@@ -767,7 +869,9 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
     -----
     Maximises the summed log-likelihood of :func:`frequency_log_likelihood`
     over the log-parameters with L-BFGS-B and the analytic gradient, so every
-    parameter stays positive. The covariance of the log-parameters is the
+    parameter stays positive. Whether the fit reached the optimum is judged
+    at the point it returns (:func:`judge_optimum`), not by the optimiser's
+    own message. The covariance of the log-parameters is the
     inverse of the Hessian of the negative log-likelihood, taken by central
     differences of the analytic gradient; the parameter standard errors follow
     by the delta method. Every customer counts once; repeat orders on the same
@@ -807,29 +911,13 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
         options={"maxiter": 5000, "ftol": 1e-15, "gtol": 1e-10},
     )
     log_params = result.x
-    at_bound = np.abs(log_params) > _LOG_BOUND - 1e-6
-    converged = bool(result.success) and not np.any(at_bound)
-    names = ("r", "alpha", "a", "b")
-    if np.any(at_bound):
-        hit = ", ".join(n for n, hit_ in zip(names, at_bound) if hit_)
-        notes.append(f"The order-frequency fit ran to the edge of the allowed range for {hit}; "
-                     "the data say little about it.")
-    elif not result.success:
-        notes.append(f"The order-frequency optimiser stopped early: {result.message}.")
     hessian = _hessian_of_negative_ll(log_params, x, t_x, age)
-    try:
-        if not converged:
-            # Away from a proper optimum the curvature says nothing about uncertainty.
-            raise np.linalg.LinAlgError
-        np.linalg.cholesky(hessian)
-        covariance = np.linalg.inv(hessian)
-        if np.any(np.sqrt(np.diag(covariance)) > _MAX_LOG_SE):
-            # A standard error of e^5 ~ 150-fold either way: the data do not pin the
-            # parameter down, and draws from such a normal would be meaningless.
-            raise np.linalg.LinAlgError
-    except np.linalg.LinAlgError:
-        covariance = np.full((4, 4), np.nan)
-        notes.append("The likelihood is nearly flat in some direction, so parameter uncertainty is unknown.")
+    mean_value, gradient = _negative_mean_ll(log_params, x, t_x, age)
+    verdict = judge_optimum(log_params, gradient, hessian, bound=_LOG_BOUND,
+                            names=("r", "alpha", "a", "b"), scale=mean_value)
+    converged = verdict.reached
+    notes.extend(verdict.notes)
+    covariance = verdict.covariance
     params = np.exp(log_params)
     log_likelihood = float(frequency_log_likelihood(params, x, t_x, age).sum())
     return FrequencyFit(
