@@ -19,6 +19,9 @@ from streamlit.testing.v1 import AppTest
 
 from dashboard import charts, state, words
 from forecasting import OrderDataError, customer_statistics, read_orders
+from forecasting import evaluation as evaluation_module
+from forecasting import forecasts as forecasts_module
+from forecasting import outlook as outlook_module
 
 ROOT = Path(__file__).resolve().parent.parent
 APP = ROOT / "app.py"
@@ -27,8 +30,6 @@ MESSY = ROOT / "demo_data" / "messy_orders.csv"
 PAGES = ["pages/load_orders.py", "pages/forecasts.py", "pages/accuracy.py", "pages/value_tiers.py",
          "pages/cohort_outlook.py"]
 
-forecasts_module = pytest.importorskip("forecasting.forecasts")
-evaluation_module = pytest.importorskip("forecasting.evaluation")
 
 
 def new_app() -> AppTest:
@@ -352,7 +353,6 @@ class TestAccuracy:
         assert any("James-Stein with the classic spread model" in m.value for m in at.markdown)
 
 
-outlook_module = pytest.importorskip("forecasting.outlook")
 
 
 @pytest.fixture(scope="module")

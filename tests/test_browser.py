@@ -2,34 +2,34 @@
 
 Uploads the demo export and the messy one through the page's file input, visits
 every page, downloads the forecasts CSV and reads it back with Python's csv module
-(RFC 4180), and saves a screenshot of each page to docs/screenshots/.
+(RFC 4180), and saves a screenshot of each page to tests/screenshots/tmp/ (not tracked).
+``REFRESH_SCREENSHOTS=1 python -m pytest tests/test_browser.py`` writes them to
+docs/screenshots/ instead, for the README.
 """
 
 from __future__ import annotations
 
 import csv
 import io
+import os
 from pathlib import Path
 
 import pytest
 
 import browser_support as support
+from playwright import sync_api as playwright_sync
 from forecasting import customer_statistics, read_orders
+from forecasting import forecasts as forecasts_module
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = Path("/usr/bin/chromium")
-SHOTS = ROOT / "docs" / "screenshots"
+SHOTS = ROOT / ("docs/screenshots" if os.environ.get("REFRESH_SCREENSHOTS") == "1" else "tests/screenshots/tmp")
 DEMO = ROOT / "demo_data" / "plant_shop_orders.csv"
 MESSY = ROOT / "demo_data" / "messy_orders.csv"
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 
-if not CHROMIUM.exists():
-    pytest.skip("the browser test needs Debian's Chromium at /usr/bin/chromium (apt-get install chromium)",
-                allow_module_level=True)
-playwright_sync = pytest.importorskip("playwright.sync_api",
-                                      reason="the browser test needs playwright (pip install playwright)")
-forecasts_module = pytest.importorskip("forecasting.forecasts")
+support.require_browser()
 
 
 @pytest.fixture(scope="module")

@@ -228,7 +228,8 @@ class TestShopFileFormat:
 
 class TestShopFileEvents:
     @pytest.fixture(scope="class")
-    def lines(self):
+    @classmethod
+    def lines(cls):
         frame = pd.read_csv(SHOP_CSV, dtype=str, keep_default_na=False, on_bad_lines="skip")
         frame["value"] = _money_to_float(frame["Line Total"])
         return frame

@@ -408,7 +408,8 @@ class TestApproximateLeaveOneOut:
     where one order weighs most (on large shops the gap shrinks)."""
 
     @pytest.fixture(scope="class")
-    def shop(self):
+    @classmethod
+    def shop(cls):
         orders = simulated_shop(customers=60, seed=4)
         held = evaluation._held_out_orders(orders, customer_statistics(orders))
         return orders, held

@@ -344,7 +344,7 @@ class TestProjectRevenue:
             project_revenue(shop_orders, horizon=30, forecasts=forecasts)
 
     def test_with_the_shops_own_forecasts(self, shop_orders):
-        forecasts_module = pytest.importorskip("forecasting.forecasts")
+        import forecasting.forecasts as forecasts_module
         outlook = project_revenue(shop_orders, horizon=90, draws=50)
         direct = forecasts_module.forecast_customers(customer_statistics(shop_orders), method="mta",
                                                      variance="classic", orders=shop_orders)
@@ -390,7 +390,7 @@ class TestOrderValueModel:
         # The shop's own forecasts: the lognormal's total log-variance is read off the
         # 80% next-order range, split into the shop's per-order sigma2_log and the rest;
         # its mean (lognormal moments) is the expected next order.
-        forecasts_module = pytest.importorskip("forecasting.forecasts")
+        import forecasting.forecasts as forecasts_module
         orders = simulate_orders(SHOP, 300, seed=3)
         stats = customer_statistics(orders)
         table = forecasts_module.forecast_customers(stats, method="mta", variance="classic", orders=orders)
@@ -558,7 +558,8 @@ class TestSeasonalAdjustment:
 
 class TestBacktestOutlook:
     @pytest.fixture(scope="class")
-    def backtest(self, shop_orders):
+    @classmethod
+    def backtest(cls, shop_orders):
         return backtest_outlook(shop_orders, horizon=120, draws=100)
 
     def test_cutoff_and_window(self, shop_orders, backtest):
