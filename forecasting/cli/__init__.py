@@ -33,6 +33,35 @@ COMMANDS = {
 EXIT_OK = 0
 EXIT_DATA_ERROR = 2
 
+# The flag that chooses the column of each role (OrderDataError.role).
+ROLE_FLAGS = {
+    "customer": "--customer",
+    "date": "--date",
+    "value": "--value",
+    "order_id": "--order-id",
+    "status": "--status",
+    "currency": "--currency-column",
+    "segment": "--segment",
+}
+
+
+def flag_for(role: str | None, option: str | None) -> str | None:
+    """The command-line flag for the column role or library option an error concerns.
+
+    Library options are keyword arguments; their flags are the same words with dashes
+    (``date_order`` -> ``--date-order``).
+
+    Examples
+    --------
+    >>> flag_for("order_id", None), flag_for(None, "date_order")
+    ('--order-id', '--date-order')
+    """
+    if option is not None:
+        return "--" + option.replace("_", "-")
+    if role is not None:
+        return ROLE_FLAGS[role]
+    return None
+
 
 def add_column_options(parser: argparse.ArgumentParser) -> None:
     """The options every command shares: the file and which column is which."""
@@ -195,7 +224,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return args.run(args)
     except OrderDataError as problem:
-        print(f"error: {problem}", file=sys.stderr)
+        print(f"error: {problem.worded(flag_for)}", file=sys.stderr)
         return EXIT_DATA_ERROR
     except KeyboardInterrupt:
         print("stopped", file=sys.stderr)
