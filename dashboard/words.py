@@ -141,59 +141,7 @@ def verdict_sentence(reduction_pct: float, *, low: float | None = None, high: fl
             f"{abs(reduction_pct):.0f}% larger.")
 
 
-# What each method and spread model does, in a line a shop owner can read.
-METHOD_WORDS = {
-    "auto": "Tries every method on your own past orders (hiding one order at a time) and uses the one "
-            "that forecast best.",
-    "plain": "Each customer's own average, nothing borrowed from other customers: the baseline to beat.",
-    "pooled": "Every customer gets the shop-wide average order, whatever they spent before.",
-    "james-stein": "James-Stein: pulls every customer's average toward the shop-wide average by one shared "
-                   "share, set from how much averages differ.",
-    "mta": "Multi-task averaging: customers with few or very uneven orders are pulled more toward similar "
-           "customers; steady regulars keep their own average.",
-    "mta-minimax": "Multi-task averaging, cautious version: a smaller pull that is safe however much "
-                   "customers differ.",
-    "mta-segments": "Multi-task averaging within segments: customers are pulled toward customers of their own "
-                    "segment (needs a segment column).",
-    "empirical-bayes": "Empirical Bayes: measures how much customers truly differ and weights each average by "
-                       "how far it can be trusted.",
-    "gamma-gamma": "Gamma-Gamma spend model: each customer has their own spending level and order values "
-                   "scatter around it; fitted to the whole shop.",
-    "james-stein-cv": "James-Stein with the amount of pull tried out on your own orders (cross-validation).",
-    "mta-cv": "Multi-task averaging with the amount of pull tried out on your own orders (cross-validation).",
-}
-VARIANCE_WORDS = {
-    "auto": "Picks the spread model for you: with the automatic method, the one that forecast best on your "
-            "orders; otherwise the one the size of your big orders suggests (see below).",
-    "classic": "Classic: one spread of order values for the whole shop, measured within each customer's orders.",
-    "robust": "Robust: like classic, but a few huge orders cannot dominate the spread.",
-    "log": "Log scale: measures spread in proportions, for shops where some orders are many times the "
-           "typical one.",
-    "proportional": "Proportional: customers who spend more also vary more, in proportion.",
-}
-
-# Short names for the method and spread-model boxes, tables and charts.
-METHOD_LABELS = {
-    "auto": "automatic (recommended)",
-    "plain": "own average only",
-    "pooled": "shop-wide average",
-    "james-stein": "James-Stein",
-    "mta": "multi-task averaging (MTA)",
-    "mta-minimax": "cautious MTA",
-    "mta-segments": "MTA within segments",
-    "empirical-bayes": "empirical Bayes",
-    "gamma-gamma": "Gamma-Gamma spend model",
-    "james-stein-cv": "James-Stein tuned on your orders",
-    "mta-cv": "MTA tuned on your orders",
-}
-VARIANCE_LABELS = {
-    "auto": "automatic (recommended)",
-    "classic": "classic",
-    "robust": "robust",
-    "log": "log scale",
-    "proportional": "proportional",
-    "gamma-model": "Gamma-Gamma",
-}
+from forecasting.options import METHOD_LABELS, METHOD_WORDS, VARIANCE_LABELS, VARIANCE_WORDS  # noqa: E402
 
 
 def method_label(name: str) -> str:
