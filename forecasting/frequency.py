@@ -1,4 +1,4 @@
-"""How often customers order again: the BG/NBD order-frequency model.
+"""How often customers order again: the BG/NBD order-frequency model and its variant MBG/NBD.
 
 Input: the per-customer statistics table (``orders``, ``first_order``,
 ``last_order``; see :mod:`forecasting.customers`) and an "as of" date.
@@ -15,21 +15,34 @@ Output:
   the next ``horizon`` days and the chance the customer still shops here.
 * :func:`simulate_orders_ahead` -- draws of how many orders each customer
   places in the horizon, following the model's story from their posterior.
-* :func:`month_of_year_index` and :func:`seasonal_days` -- how much busier each
-  calendar month is for repeat orders than the model says, and the length of a
-  period on the seasonal clock that index defines.
+* :func:`choose_order_model` -- both models fitted, the one the shop's own
+  orders support better (higher likelihood; both have four parameters).
 
-The model (Fader, Hardie and Lee 2005): while a customer is active, orders
+BG/NBD (Fader, Hardie and Lee 2005): while a customer is active, orders
 arrive as a Poisson process with rate lambda; after each repeat order the
 customer stops for good with probability p. Across customers lambda follows a
 Gamma(r, rate alpha) and p a Beta(a, b) distribution. Because time is in days,
 alpha is in days too (the paper works in weeks: alpha_days = 7 alpha_weeks, r,
 a and b are unchanged).
+
+MBG/NBD (Batislam, Denizel and Filiztekin 2007; the same story is the
+"central variant" CBG/NBD of Hoppe and Wagner 2007): the same, except that the
+coin is also thrown right after the first order, so a customer may never come
+back at all. In BG/NBD a customer without a repeat order is certain to be
+still active; in MBG/NBD not. Every formula of the variant is BG/NBD's with
+the number of coins survived counted as ``x + 1`` instead of ``x`` in the
+Beta parts (the Gamma parts, which count orders, keep ``x``); the code
+writes each formula once with ``k`` = coins survived.
+
+Time is whatever clock the history is measured on: calendar days by default,
+or the shop's seasonal clock (:mod:`forecasting.seasons`), on which the same
+formulas hold.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import math
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -38,6 +51,8 @@ from scipy import optimize, special
 from .errors import OrderDataError
 
 __all__ = [
+    "FREQUENCY_MODELS",
+    "MODEL_NAMES",
     "HISTORY_COLUMNS",
     "MIN_REPEAT_CUSTOMERS",
     "FrequencyFit",
@@ -48,15 +63,30 @@ __all__ = [
     "expected_orders_ahead",
     "expected_orders_for_draws",
     "simulate_orders_ahead",
+    "simulate_new_customer_orders",
     "expected_new_customer_orders",
     "chance_still_active",
     "frequency_forecast",
     "judge_optimum",
-    "MIN_SEASON_DAYS",
-    "SEASON_COLUMNS",
-    "month_of_year_index",
-    "seasonal_days",
+    "hessian_by_differences",
+    "check_repeat_history",
+    "default_start",
+    "pick_by_likelihood",
+    "choose_order_model",
+    "MODEL_WORDS",
 ]
+
+#: The order-frequency models: BG/NBD, and MBG/NBD where a customer may stop right after the first order.
+FREQUENCY_MODELS = ("bg-nbd", "mbg-nbd")
+#: Their published names, for tables and text.
+MODEL_NAMES = {"bg-nbd": "BG/NBD", "mbg-nbd": "MBG/NBD"}
+#: What each one assumes, in a line a shop owner can read.
+MODEL_WORDS = {
+    "bg-nbd": "customers stop for good only right after a repeat order, so a one-time buyer counts as "
+              "still active",
+    "mbg-nbd": "customers may stop for good after any order, the first included, so a one-time buyer may "
+               "already be gone",
+}
 
 HISTORY_COLUMNS = ["repeat_orders", "days_to_last_order", "days_known"]
 
@@ -191,24 +221,39 @@ def _check_arrays(x, t_x, age):
 # --------------------------------------------------------------------------- #
 # Likelihood
 # --------------------------------------------------------------------------- #
-def _log_terms(params, x, t_x, age):
+def _check_model(model):
+    if model not in FREQUENCY_MODELS:
+        raise OrderDataError("the order-frequency model can be bg-nbd or mbg-nbd", value=model,
+                             option="frequency_model", fix="Choose bg-nbd, mbg-nbd, or let the data choose")
+    return model
+
+
+def _coins(x, model):
+    """k: the stop-or-go coins a customer with x repeat orders has survived (x, or x + 1 in MBG/NBD)."""
+    return x + 1.0 if model == "mbg-nbd" else x
+
+
+def _log_terms(params, x, t_x, age, model="bg-nbd"):
     """Return the three log-pieces of the published likelihood.
 
-    log L = base + log(exp(alive) + [x > 0] exp(stopped)).
+    log L = base + log(exp(alive) + [k > 0] exp(stopped)), k = coins survived
+    (see :func:`_coins`).
     """
     r, alpha, a, b = params
+    k = _coins(x, model)
     base = special.gammaln(r + x) - special.gammaln(r) + r * np.log(alpha)
     beta_ab = special.betaln(a, b)
-    alive = special.betaln(a, b + x) - beta_ab - (r + x) * np.log(alpha + age)
-    has_repeat = x > 0
-    x1 = np.where(has_repeat, x, 1.0)  # keeps b + x - 1 > 0 where the term is unused
-    stopped = special.betaln(a + 1.0, b + (x1 - 1.0)) - beta_ab - (r + x) * np.log(alpha + t_x)
-    stopped = np.where(has_repeat, stopped, -np.inf)
+    alive = special.betaln(a, b + k) - beta_ab - (r + x) * np.log(alpha + age)
+    has_coin = k > 0
+    k1 = np.where(has_coin, k, 1.0)  # keeps b + k - 1 > 0 where the term is unused
+    stopped = special.betaln(a + 1.0, b + (k1 - 1.0)) - beta_ab - (r + x) * np.log(alpha + t_x)
+    stopped = np.where(has_coin, stopped, -np.inf)
     return base, alive, stopped
 
 
-def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_known) -> np.ndarray:
-    """Log-likelihood of each customer's repeat history under BG/NBD.
+def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_known, *,
+                             model: str = "bg-nbd") -> np.ndarray:
+    """Log-likelihood of each customer's repeat history under BG/NBD or MBG/NBD.
 
     Parameters
     ----------
@@ -216,6 +261,8 @@ def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_kno
         ``(r, alpha, a, b)``, all positive; ``alpha`` in days.
     repeat_orders, days_to_last_order, days_known : array_like
         x, t_x and T per customer (days).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
@@ -224,7 +271,8 @@ def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_kno
 
     Notes
     -----
-    The likelihood of one customer (Fader, Hardie and Lee 2005, eq. 6) is
+    The likelihood of one customer under BG/NBD (Fader, Hardie and Lee 2005,
+    eq. 6) is
 
     .. math::
 
@@ -232,6 +280,13 @@ def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_kno
             \\left[\\frac{B(a, b+x)}{B(a,b)}\\,\\frac{1}{(\\alpha+T)^{r+x}}
             + \\delta_{x>0}\\,\\frac{B(a+1, b+x-1)}{B(a,b)}\\,
             \\frac{1}{(\\alpha+t_x)^{r+x}}\\right].
+
+    Under MBG/NBD (Batislam, Denizel and Filiztekin 2007) the Beta parts
+    read ``B(a, b+x+1)`` and ``B(a+1, b+x)`` and the second term is present
+    for every customer (at x = 0, t_x = 0 it is the chance a/(a+b) of
+    stopping right after the first order). This form is written from memory
+    of the paper and checked in the tests by integrating the model's story
+    numerically.
 
     It is evaluated on the log scale with ``gammaln``/``betaln`` and the two
     bracketed terms combined by ``logaddexp``, so customers with hundreds of
@@ -242,13 +297,54 @@ def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_kno
     Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). "Counting your
     customers" the easy way: an alternative to the Pareto/NBD model.
     Marketing Science 24(2), 275-284.
+
+    Batislam, E. P., Denizel, M. and Filiztekin, A. (2007). Empirical
+    validation and comparison of models for customer base analysis.
+    International Journal of Research in Marketing 24(3), 201-209.
+
+    Hoppe, D. and Wagner, U. (2007). Customer base analysis: the case for a
+    central variant of the Betageometric/NBD model. Marketing - Journal of
+    Research and Management 3(2), 75-90.
     """
+    model = _check_model(model)
     x, t_x, age = (np.asarray(v, dtype=np.float64) for v in (repeat_orders, days_to_last_order, days_known))
-    base, alive, stopped = _log_terms(params, x, t_x, age)
+    base, alive, stopped = _log_terms(params, x, t_x, age, model)
     return base + np.logaddexp(alive, stopped)
 
 
-def frequency_log_likelihood_gradient(params, repeat_orders, days_to_last_order, days_known) -> np.ndarray:
+def _slopes(params, x, t_x, age, model):
+    """Per-customer log-likelihood and its slopes in (r, alpha, a, b), T and t_x.
+
+    With w the share of each customer's likelihood in the "still active" term
+    and k the coins survived (:func:`_coins`):
+
+    * d/dr     = psi(r+x) - psi(r) + log(alpha) - w log(alpha+T) - (1-w) log(alpha+t_x)
+    * d/dalpha = r/alpha - (r+x) [w/(alpha+T) + (1-w)/(alpha+t_x)]
+    * d/da     = w [psi(a+b) - psi(a+b+k)] + (1-w) [psi(a+1) - psi(a) + psi(a+b) - psi(a+b+k)]
+    * d/db     = w [psi(b+k) - psi(b) + psi(a+b) - psi(a+b+k)]
+      + (1-w) [psi(b+k-1) - psi(b) + psi(a+b) - psi(a+b+k)]
+    * d/dT     = -w (r+x)/(alpha+T),   d/dt_x = -(1-w) (r+x)/(alpha+t_x)
+    """
+    r, alpha, a, b = params
+    k = _coins(x, model)
+    base, alive, stopped = _log_terms(params, x, t_x, age, model)
+    total = np.logaddexp(alive, stopped)
+    w_alive = np.exp(alive - total)
+    w_stop = 1.0 - w_alive
+    psi = special.digamma
+    k1 = np.where(k > 0, k, 1.0)
+    d_r = psi(r + x) - psi(r) + np.log(alpha) - w_alive * np.log(alpha + age) - w_stop * np.log(alpha + t_x)
+    d_alpha = r / alpha - (r + x) * (w_alive / (alpha + age) + w_stop / (alpha + t_x))
+    common = psi(a + b) - psi(a + b + k)
+    d_a = w_alive * common + w_stop * (psi(a + 1.0) - psi(a) + common)
+    d_b = w_alive * (psi(b + k) - psi(b) + common) + w_stop * (psi(b + (k1 - 1.0)) - psi(b) + common)
+    d_age = -w_alive * (r + x) / (alpha + age)
+    d_to_last = -w_stop * (r + x) / (alpha + t_x)
+    return base + total, (d_r, d_alpha, d_a, d_b), d_age, d_to_last
+
+
+def frequency_log_likelihood_gradient(params, repeat_orders, days_to_last_order, days_known, *,
+                                      model: str = "bg-nbd") -> np.ndarray:
     """Gradient of the summed log-likelihood with respect to (r, alpha, a, b).
 
     Parameters
@@ -257,6 +353,8 @@ def frequency_log_likelihood_gradient(params, repeat_orders, days_to_last_order,
         ``(r, alpha, a, b)``.
     repeat_orders, days_to_last_order, days_known : array_like
         x, t_x and T per customer (days).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
@@ -265,27 +363,19 @@ def frequency_log_likelihood_gradient(params, repeat_orders, days_to_last_order,
 
     Notes
     -----
-    With w the share of each customer's likelihood in the "still active" term,
+    With w the share of each customer's likelihood in the "still active" term
+    and k = x (BG/NBD) or x + 1 (MBG/NBD):
 
     * d/dr     = psi(r+x) - psi(r) + log(alpha) - w log(alpha+T) - (1-w) log(alpha+t_x)
     * d/dalpha = r/alpha - (r+x) [w/(alpha+T) + (1-w)/(alpha+t_x)]
-    * d/da     = w [psi(a+b) - psi(a+b+x)] + (1-w) [psi(a+1) - psi(a) + psi(a+b) - psi(a+b+x)]
-    * d/db     = w [psi(b+x) - psi(b) + psi(a+b) - psi(a+b+x)]
-      + (1-w) [psi(b+x-1) - psi(b) + psi(a+b) - psi(a+b+x)]
+    * d/da     = w [psi(a+b) - psi(a+b+k)] + (1-w) [psi(a+1) - psi(a) + psi(a+b) - psi(a+b+k)]
+    * d/db     = w [psi(b+k) - psi(b) + psi(a+b) - psi(a+b+k)]
+      + (1-w) [psi(b+k-1) - psi(b) + psi(a+b) - psi(a+b+k)]
     """
-    r, alpha, a, b = params
+    model = _check_model(model)
     x, t_x, age = (np.asarray(v, dtype=np.float64) for v in (repeat_orders, days_to_last_order, days_known))
-    _, alive, stopped = _log_terms(params, x, t_x, age)
-    w_alive = np.exp(alive - np.logaddexp(alive, stopped))
-    w_stop = 1.0 - w_alive
-    psi = special.digamma
-    x1 = np.where(x > 0, x, 1.0)
-    d_r = psi(r + x) - psi(r) + np.log(alpha) - w_alive * np.log(alpha + age) - w_stop * np.log(alpha + t_x)
-    d_alpha = r / alpha - (r + x) * (w_alive / (alpha + age) + w_stop / (alpha + t_x))
-    common = psi(a + b) - psi(a + b + x)
-    d_a = w_alive * common + w_stop * (psi(a + 1.0) - psi(a) + common)
-    d_b = w_alive * (psi(b + x) - psi(b) + common) + w_stop * (psi(b + (x1 - 1.0)) - psi(b) + common)
-    return np.array([d_r.sum(), d_alpha.sum(), d_a.sum(), d_b.sum()])
+    _, parts, _, _ = _slopes(params, x, t_x, age, model)
+    return np.array([part.sum() for part in parts])
 
 
 # --------------------------------------------------------------------------- #
@@ -319,38 +409,40 @@ def _gauss_hypergeometric(first, second, third, z, *, max_terms=5000):
     return value
 
 
-def _orders_while_active(params, x, age, horizon):
+def _orders_while_active(params, x, age, horizon, k=None):
     """Expected orders in (T, T + horizon] for a customer active at T.
 
-    Fader, Hardie and Lee (2005), numerator of eq. 10:
-    (a+b+x-1)/(a-1) [1 - ((alpha+T)/(alpha+T+h))^(r+x) 2F1(r+x, b+x; a+b+x-1; z)],
+    Fader, Hardie and Lee (2005), numerator of eq. 10, with k the coins
+    survived (k = x in BG/NBD, x + 1 in MBG/NBD):
+    (a+b+k-1)/(a-1) [1 - ((alpha+T)/(alpha+T+h))^(r+x) 2F1(r+x, b+k; a+b+k-1; z)],
     z = h/(alpha+T+h). Euler's transformation 2F1(A,B;C;z) =
     (1-z)^(C-A-B) 2F1(C-A, C-B; C; z) turns the bracket into
-    1 - (1-z)^(a-1) 2F1(a+b-1-r, a-1; a+b+x-1; z), whose first two
+    1 - (1-z)^(a-1) 2F1(a+b+k-1-r-x, a-1; a+b+k-1; z), whose first two
     hypergeometric parameters do not grow with x (better conditioned for
     regular customers). Parameters may be arrays broadcasting against x.
     """
     r, alpha, a, b = params
+    k = x if k is None else k
     near_one = np.abs(np.asarray(a, dtype=np.float64) - 1.0) < 1e-6
     if np.any(near_one):
-        # (a+b+x-1)/(a-1) [...] is 0/0 at a = 1; the expectation is smooth in a,
+        # (a+b+k-1)/(a-1) [...] is 0/0 at a = 1; the expectation is smooth in a,
         # so there it is the average of the two sides a = 1 +- 1e-5 (error ~1e-10).
         step = 1e-5
-        upper = _orders_while_active((r, alpha, np.where(near_one, 1.0 + step, a), b), x, age, horizon)
-        lower = _orders_while_active((r, alpha, np.where(near_one, 1.0 - step, a), b), x, age, horizon)
+        upper = _orders_while_active((r, alpha, np.where(near_one, 1.0 + step, a), b), x, age, horizon, k)
+        lower = _orders_while_active((r, alpha, np.where(near_one, 1.0 - step, a), b), x, age, horizon, k)
         return np.where(near_one, 0.5 * (upper + lower), upper)
     z = horizon / (alpha + age + horizon)
-    hyper = _gauss_hypergeometric(a + b - 1.0 - r, a - 1.0, a + b + x - 1.0, z)
+    hyper = _gauss_hypergeometric(a + b + k - 1.0 - r - x, a - 1.0, a + b + k - 1.0, z)
     bracket = 1.0 - np.exp((a - 1.0) * np.log1p(-z)) * hyper
-    factor = (a + b + x - 1.0) / (a - 1.0)
+    factor = (a + b + k - 1.0) / (a - 1.0)
     value = factor * bracket
     failed = ~np.isfinite(value)
     if np.any(failed):
         # With a and b in the thousands (a stop chance the data barely pin down,
         # met in parameter draws) the transformed 2F1 overflows although the
-        # product is modest; the printed form's parameters r+x, b+x stay tame there.
+        # product is modest; the printed form's parameters r+x, b+k stay tame there.
         shape = np.shape(value)
-        pick = [np.broadcast_to(v, shape)[failed] for v in (r + x, b + x, a + b + x - 1.0, z, factor)]
+        pick = [np.broadcast_to(v, shape)[failed] for v in (r + x, b + k, a + b + k - 1.0, z, factor)]
         printed = 1.0 - np.exp(pick[0] * np.log1p(-pick[3])) * _gauss_hypergeometric(*pick[:4])
         value = np.array(np.broadcast_to(value, shape), dtype=np.float64)
         value[failed] = pick[4] * printed
@@ -372,16 +464,23 @@ def _check_horizon(horizon):
     try:
         value = float(horizon)
     except (TypeError, ValueError):
-        raise OrderDataError("the horizon must be a number of days", column="horizon", value=horizon,
-                             fix="Use for example --horizon 90") from None
+        raise OrderDataError("the horizon must be a number of days", value=horizon, option="horizon",
+                             fix="Give a number of days such as 90") from None
     if not np.isfinite(value) or value < 0:
-        raise OrderDataError("the horizon must be zero or more days", column="horizon", value=horizon,
-                             fix="Use for example --horizon 90")
+        raise OrderDataError("the horizon must be zero or more days", value=horizon, option="horizon",
+                             fix="Give a number of days such as 90")
     return value
 
 
-def expected_new_customer_orders(params, days) -> np.ndarray:
-    """Expected repeat orders in the first ``days`` days of a new customer.
+def _check_draws_array(param_draws):
+    draws = np.asarray(param_draws, dtype=np.float64)
+    if draws.ndim != 2 or draws.shape[1] != 4 or not np.all(np.isfinite(draws)) or np.any(draws <= 0):
+        raise OrderDataError("parameter draws must be rows of four positive numbers (r, alpha, a, b)")
+    return draws
+
+
+def expected_new_customer_orders(params, days, *, model: str = "bg-nbd") -> np.ndarray:
+    r"""Expected repeat orders in the first ``days`` days of a new customer.
 
     Parameters
     ----------
@@ -389,6 +488,8 @@ def expected_new_customer_orders(params, days) -> np.ndarray:
         ``(r, alpha, a, b)`` with ``alpha`` in days.
     days : float or array_like
         Length of the period after the first order, in days (>= 0).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
@@ -397,39 +498,55 @@ def expected_new_customer_orders(params, days) -> np.ndarray:
 
     Notes
     -----
-    Fader, Hardie and Lee (2005), eq. 7:
+    BG/NBD: Fader, Hardie and Lee (2005), eq. 7:
 
     .. math::
 
-        E[X(t)] = \\frac{a+b-1}{a-1}\\left[1 - \\left(\\frac{\\alpha}{\\alpha+t}\\right)^r
-        {}_2F_1\\!\\left(r, b; a+b-1; \\frac{t}{\\alpha+t}\\right)\\right],
+        E[X(t)] = \frac{a+b-1}{a-1}\left[1 - \left(\frac{\alpha}{\alpha+t}\right)^r
+        {}_2F_1\!\left(r, b; a+b-1; \frac{t}{\alpha+t}\right)\right].
 
+    MBG/NBD (Batislam, Denizel and Filiztekin 2007):
+
+    .. math::
+
+        E[X(t)] = \frac{b}{a-1}\left[1 - \left(\frac{\alpha}{\alpha+t}\right)^r
+        {}_2F_1\!\left(r, b+1; a+b; \frac{t}{\alpha+t}\right)\right],
+
+    the chance b/(a+b) of not stopping at the first order times the BG/NBD
+    expression with b + 1. Both are eq. 10 with x = 0 and T = 0 and are
     evaluated through Euler's transformation of the hypergeometric function
-    (an identity; see :func:`expected_orders_ahead`). It is eq. 10 with
-    x = 0 and T = 0.
+    (an identity; see :func:`expected_orders_ahead`).
 
     References
     ----------
     Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). Marketing Science
     24(2), 275-284.
+
+    Batislam, E. P., Denizel, M. and Filiztekin, A. (2007). International
+    Journal of Research in Marketing 24(3), 201-209.
     """
     params = _check_params(params)
+    model = _check_model(model)
     days = np.asarray(days, dtype=np.float64)
     if np.any(days < 0) or not np.all(np.isfinite(days)):
         raise OrderDataError("the number of days must be zero or more", value=days)
-    return _orders_while_active(params, np.zeros_like(days), np.zeros_like(days), days)
+    zeros = np.zeros_like(days)
+    active = special.expit(-_log_stop_odds(params, zeros, zeros, zeros, model))
+    return _orders_while_active(params, zeros, zeros, days, _coins(zeros, model)) * active
 
 
-def _log_stop_odds(params, x, t_x, age):
-    """log of (a/(b+x-1)) ((alpha+T)/(alpha+t_x))^(r+x) for x > 0; -inf for x = 0."""
+def _log_stop_odds(params, x, t_x, age, model="bg-nbd"):
+    """log of (a/(b+k-1)) ((alpha+T)/(alpha+t_x))^(r+x) for k > 0; -inf for k = 0."""
     r, alpha, a, b = params
-    has_repeat = x > 0
-    x1 = np.where(has_repeat, x, 1.0)
-    odds = np.log(a) - np.log(b + (x1 - 1.0)) + (r + x) * (np.log(alpha + age) - np.log(alpha + t_x))
-    return np.where(has_repeat, odds, -np.inf)
+    k = _coins(x, model)
+    has_coin = k > 0
+    k1 = np.where(has_coin, k, 1.0)
+    odds = np.log(a) - np.log(b + (k1 - 1.0)) + (r + x) * (np.log(alpha + age) - np.log(alpha + t_x))
+    return np.where(has_coin, odds, -np.inf)
 
 
-def chance_still_active(params, repeat_orders, days_to_last_order, days_known) -> np.ndarray:
+def chance_still_active(params, repeat_orders, days_to_last_order, days_known, *,
+                        model: str = "bg-nbd") -> np.ndarray:
     """Probability each customer is still an active customer at T.
 
     Parameters
@@ -438,27 +555,33 @@ def chance_still_active(params, repeat_orders, days_to_last_order, days_known) -
         ``(r, alpha, a, b)``.
     repeat_orders, days_to_last_order, days_known : array_like
         x, t_x and T per customer (days).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
     numpy.ndarray
-        P(active | x, t_x, T) in (0, 1]; exactly 1 for customers without a
-        repeat order (in this model customers can only stop right after a
-        repeat order).
+        P(active | x, t_x, T) in (0, 1]. Under BG/NBD exactly 1 for customers
+        without a repeat order (they can only stop right after a repeat
+        order); under MBG/NBD below 1 for everyone.
 
     Notes
     -----
-    Fader, Hardie and Lee (2005), eq. 11:
-    1 / (1 + [x > 0] (a/(b+x-1)) ((alpha+T)/(alpha+t_x))^(r+x)), computed as a
-    logistic function of the log-odds so it never overflows.
+    BG/NBD: Fader, Hardie and Lee (2005), eq. 11:
+    1 / (1 + [x > 0] (a/(b+x-1)) ((alpha+T)/(alpha+t_x))^(r+x)). MBG/NBD
+    (Batislam, Denizel and Filiztekin 2007):
+    1 / (1 + (a/(b+x)) ((alpha+T)/(alpha+t_x))^(r+x)) for every x. Computed as
+    a logistic function of the log-odds so it never overflows.
     """
     params = _check_params(params)
+    model = _check_model(model)
     x, t_x, age = (np.asarray(v, dtype=np.float64) for v in (repeat_orders, days_to_last_order, days_known))
-    return special.expit(-_log_stop_odds(params, x, t_x, age))
+    return special.expit(-_log_stop_odds(params, x, t_x, age, model))
 
 
-def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known, horizon) -> np.ndarray:
-    """Expected number of orders in the next ``horizon`` days, per customer.
+def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known, horizon, *,
+                          model: str = "bg-nbd") -> np.ndarray:
+    r"""Expected number of orders in the next ``horizon`` days, per customer.
 
     Parameters
     ----------
@@ -468,6 +591,8 @@ def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known,
         x, t_x and T per customer (days).
     horizon : float
         Days ahead of T (>= 0).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
@@ -476,27 +601,35 @@ def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known,
 
     Notes
     -----
-    Fader, Hardie and Lee (2005), eq. 10:
+    BG/NBD: Fader, Hardie and Lee (2005), eq. 10:
 
     .. math::
 
-        E[Y(t)\\mid x, t_x, T] = \\frac{\\frac{a+b+x-1}{a-1}\\left[1 -
-        \\left(\\frac{\\alpha+T}{\\alpha+T+t}\\right)^{r+x}
-        {}_2F_1\\!\\left(r+x, b+x; a+b+x-1; \\frac{t}{\\alpha+T+t}\\right)\\right]}
-        {1 + \\delta_{x>0}\\frac{a}{b+x-1}\\left(\\frac{\\alpha+T}{\\alpha+t_x}\\right)^{r+x}}.
+        E[Y(t)\mid x, t_x, T] = \frac{\frac{a+b+x-1}{a-1}\left[1 -
+        \left(\frac{\alpha+T}{\alpha+T+t}\right)^{r+x}
+        {}_2F_1\!\left(r+x, b+x; a+b+x-1; \frac{t}{\alpha+T+t}\right)\right]}
+        {1 + \delta_{x>0}\frac{a}{b+x-1}\left(\frac{\alpha+T}{\alpha+t_x}\right)^{r+x}}.
+
+    MBG/NBD (Batislam, Denizel and Filiztekin 2007): the same with
+    ``a+b+x``, ``b+x+1`` in place of ``a+b+x-1``, ``b+x`` and the
+    denominator ``1 + a/(b+x) ((alpha+T)/(alpha+t_x))^(r+x)`` for every x.
 
     The code departs from the printed form in two harmless ways: the
     hypergeometric term is evaluated after Euler's transformation,
-    ``(1-z)^(a-1) 2F1(a+b-1-r, a-1; a+b+x-1; z)``, which equals the printed
-    ``(1-z)^(r+x) 2F1(r+x, b+x; a+b+x-1; z)`` but keeps its parameters small for
-    customers with many orders; and the denominator is applied as the chance
-    of still being active (eq. 11), a logistic function of log-odds. At a = 1
-    the formula is 0/0; the code then averages a = 1 +- 1e-5.
+    ``(1-z)^(a-1) 2F1(a+b+k-1-r-x, a-1; a+b+k-1; z)`` (k = x or x + 1), which
+    equals the printed ``(1-z)^(r+x) 2F1(r+x, b+k; a+b+k-1; z)`` but keeps its
+    parameters small for customers with many orders; and the denominator is
+    applied as the chance of still being active (eq. 11), a logistic
+    function of log-odds. At a = 1 the formula is 0/0; the code then averages
+    a = 1 +- 1e-5.
 
     References
     ----------
     Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). "Counting your
     customers" the easy way. Marketing Science 24(2), 275-284.
+
+    Batislam, E. P., Denizel, M. and Filiztekin, A. (2007). International
+    Journal of Research in Marketing 24(3), 201-209.
 
     Examples
     --------
@@ -507,13 +640,15 @@ def expected_orders_ahead(params, repeat_orders, days_to_last_order, days_known,
     1.226
     """
     params = _check_params(params)
+    model = _check_model(model)
     horizon = _check_horizon(horizon)
     x, t_x, age = (np.asarray(v, dtype=np.float64) for v in (repeat_orders, days_to_last_order, days_known))
-    active = special.expit(-_log_stop_odds(params, x, t_x, age))
-    return _orders_while_active(params, x, age, horizon) * active
+    active = special.expit(-_log_stop_odds(params, x, t_x, age, model))
+    return _orders_while_active(params, x, age, horizon, _coins(x, model)) * active
 
 
-def expected_orders_for_draws(param_draws, repeat_orders, days_to_last_order, days_known, horizon) -> np.ndarray:
+def expected_orders_for_draws(param_draws, repeat_orders, days_to_last_order, days_known, horizon, *,
+                              model: str = "bg-nbd") -> np.ndarray:
     """:func:`expected_orders_ahead` for many parameter sets at once.
 
     Parameters
@@ -522,26 +657,51 @@ def expected_orders_for_draws(param_draws, repeat_orders, days_to_last_order, da
         Rows of ``(r, alpha, a, b)``, e.g. from :meth:`FrequencyFit.draw_parameters`.
     repeat_orders, days_to_last_order, days_known : array_like, shape (N,)
         x, t_x and T per customer (days).
-    horizon : float
-        Days ahead of T.
+    horizon : float or array_like of shape (N,)
+        Days ahead of T (one for everyone, or one per customer).
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
     numpy.ndarray
         Shape (D, N): row d is ``expected_orders_ahead(param_draws[d], ...)``.
     """
-    draws = np.asarray(param_draws, dtype=np.float64)
-    if draws.ndim != 2 or draws.shape[1] != 4 or not np.all(np.isfinite(draws)) or np.any(draws <= 0):
-        raise OrderDataError("parameter draws must be rows of four positive numbers (r, alpha, a, b)")
-    horizon = _check_horizon(horizon)
+    draws = _check_draws_array(param_draws)
+    model = _check_model(model)
+    horizon = _check_horizons(horizon)
     x, t_x, age = (np.asarray(v, dtype=np.float64)[None, :] for v in (repeat_orders, days_to_last_order, days_known))
     params = tuple(draws[:, [k]] for k in range(4))
-    active = special.expit(-_log_stop_odds(params, x, t_x, age))
-    return _orders_while_active(params, x, age, horizon) * active
+    active = special.expit(-_log_stop_odds(params, x, t_x, age, model))
+    return _orders_while_active(params, x, age, horizon, _coins(x, model)) * active
+
+
+def _check_horizons(horizon):
+    """One horizon, or an array of them (each zero or more)."""
+    values = np.asarray(horizon, dtype=np.float64) if np.ndim(horizon) else None
+    if values is None:
+        return _check_horizon(horizon)
+    if not np.all(np.isfinite(values)) or np.any(values < 0):
+        raise OrderDataError("every horizon must be zero or more days", option="horizon")
+    return values
+
+
+def _draw_counts(rng, r, alpha, a, b, x, t_x, age, horizon, model):
+    """Orders placed in the horizon, drawn from each customer's posterior (arrays broadcast together)."""
+    shape = np.broadcast_shapes(*(np.shape(v) for v in (r, alpha, a, b, x, t_x, age, horizon)))
+    k = _coins(x, model)
+    active = rng.random(shape) < special.expit(-_log_stop_odds((r, alpha, a, b), x, t_x, age, model))
+    rate = rng.gamma(np.broadcast_to(r + x, shape), 1.0) / (alpha + age)
+    stop = rng.beta(np.broadcast_to(a, shape), np.broadcast_to(b + k, shape))
+    # Keep both draws inside what numpy's samplers accept (a rate of 1e12 orders
+    # in the horizon, or a stop chance of 1e-300, already means "no limit").
+    arrivals = rng.poisson(np.minimum(rate * horizon, _MAX_SIMULATED_ARRIVALS))
+    stop_count = rng.geometric(np.clip(stop, 1e-300, 1.0))
+    return np.where(active, np.minimum(arrivals, stop_count), 0).astype(np.int64)
 
 
 def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_known, horizon, *,
-                          seed=0) -> np.ndarray:
+                          seed=0, model: str = "bg-nbd") -> np.ndarray:
     """Draw how many orders each customer places in the next ``horizon`` days.
 
     Parameters
@@ -551,10 +711,12 @@ def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_k
         :meth:`FrequencyFit.draw_parameters`, or the point estimate repeated).
     repeat_orders, days_to_last_order, days_known : array_like, shape (N,)
         x, t_x and T per customer (days).
-    horizon : float
-        Days ahead of T (>= 0).
+    horizon : float or array_like of shape (N,)
+        Days ahead of T (>= 0), one for everyone or one per customer.
     seed : int or numpy.random.Generator
         Seed for ``numpy.random.default_rng``.
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
 
     Returns
     -------
@@ -565,13 +727,14 @@ def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_k
     Notes
     -----
     Each draw follows the model's own story from the customer's posterior
-    (Bayes' rule on the BG/NBD assumptions, Fader, Hardie and Lee 2005):
+    (Bayes' rule on the model's assumptions, Fader, Hardie and Lee 2005),
+    with k = x (BG/NBD) or x + 1 (MBG/NBD) coins survived:
 
     1. still active at T with the chance of eq. 11; a customer who has
        stopped orders nothing more;
     2. if active, the ordering rate lambda ~ Gamma(r + x, rate alpha + T)
-       and the stop chance p ~ Beta(a, b + x) (the prior updated by x repeat
-       orders and the silence since the last one);
+       and the stop chance p ~ Beta(a, b + k) (the prior updated by the
+       orders, the coins survived and the silence since the last order);
     3. orders then arrive after exponential gaps with rate lambda, and after
        each one the customer stops for good with chance p.
 
@@ -581,23 +744,51 @@ def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_k
     orders placed are min(Poisson(lambda h), Geometric(p)). The tests check
     this against a literal event-by-event simulation.
     """
-    draws = np.asarray(param_draws, dtype=np.float64)
-    if draws.ndim != 2 or draws.shape[1] != 4 or not np.all(np.isfinite(draws)) or np.any(draws <= 0):
-        raise OrderDataError("parameter draws must be rows of four positive numbers (r, alpha, a, b)")
-    horizon = _check_horizon(horizon)
+    draws = _check_draws_array(param_draws)
+    model = _check_model(model)
+    horizon = _check_horizons(horizon)
     rng = np.random.default_rng(seed)
     x, t_x, age = (np.asarray(v, dtype=np.float64)[None, :] for v in (repeat_orders, days_to_last_order, days_known))
     _check_arrays(x, t_x, age)
     r, alpha, a, b = (draws[:, [k]] for k in range(4))
-    shape = (draws.shape[0], x.shape[1])
-    active = rng.random(shape) < special.expit(-_log_stop_odds((r, alpha, a, b), x, t_x, age))
-    rate = rng.gamma(np.broadcast_to(r + x, shape), 1.0) / (alpha + age)
-    stop = rng.beta(np.broadcast_to(a, shape), np.broadcast_to(b + x, shape))
-    # Keep both draws inside what numpy's samplers accept (a rate of 1e12 orders
-    # in the horizon, or a stop chance of 1e-300, already means "no limit").
-    arrivals = rng.poisson(np.minimum(rate * horizon, _MAX_SIMULATED_ARRIVALS))
-    stop_count = rng.geometric(np.clip(stop, 1e-300, 1.0))
-    return np.where(active, np.minimum(arrivals, stop_count), 0).astype(np.int64)
+    return _draw_counts(rng, r, alpha, a, b, x, t_x, age, horizon, model)
+
+
+def simulate_new_customer_orders(param_rows, days, *, seed=0, model: str = "bg-nbd") -> np.ndarray:
+    """Draw the repeat orders of brand-new customers, each with its own parameters and period.
+
+    Parameters
+    ----------
+    param_rows : array_like, shape (N, 4)
+        One ``(r, alpha, a, b)`` row per new customer (e.g. the parameter
+        draw of the simulation round the customer belongs to).
+    days : array_like, shape (N,)
+        How long after their first order each customer is followed (>= 0).
+    seed : int or numpy.random.Generator
+        Seed for ``numpy.random.default_rng``.
+    model : {"bg-nbd", "mbg-nbd"}
+        The order-frequency model.
+
+    Returns
+    -------
+    numpy.ndarray of int64, shape (N,)
+        Repeat orders placed within ``days`` of the first order. Their
+        average is :func:`expected_new_customer_orders`.
+
+    Notes
+    -----
+    The story of :func:`simulate_orders_ahead` for x = 0, t_x = 0, T = 0:
+    under MBG/NBD the customer first survives the coin of the first order
+    with chance b/(a+b).
+    """
+    rows = _check_draws_array(param_rows)
+    model = _check_model(model)
+    days = np.asarray(days, dtype=np.float64)
+    if days.shape != (rows.shape[0],) or not np.all(np.isfinite(days)) or np.any(days < 0):
+        raise OrderDataError("give one number of days, zero or more, per new customer", option="horizon")
+    rng = np.random.default_rng(seed)
+    zeros = np.zeros(len(days))
+    return _draw_counts(rng, rows[:, 0], rows[:, 1], rows[:, 2], rows[:, 3], zeros, zeros, zeros, days, model)
 
 
 # --------------------------------------------------------------------------- #
@@ -605,7 +796,7 @@ def simulate_orders_ahead(param_draws, repeat_orders, days_to_last_order, days_k
 # --------------------------------------------------------------------------- #
 @dataclass(frozen=True)
 class FrequencyFit:
-    """Fitted BG/NBD order-frequency parameters (time in days).
+    """Fitted order-frequency parameters, BG/NBD or MBG/NBD (time in days of the fit's clock).
 
     Attributes
     ----------
@@ -613,8 +804,8 @@ class FrequencyFit:
         Shape and rate (per day) of the Gamma spread of ordering rates; the
         average active customer orders r/alpha times a day.
     a, b : float
-        Beta spread of the chance of stopping after each repeat order; the
-        average chance is a/(a+b).
+        Beta spread of the chance of stopping after each repeat order (and,
+        in MBG/NBD, after the first order too); the average chance is a/(a+b).
     log_likelihood : float
         Summed log-likelihood at the fit.
     covariance : numpy.ndarray
@@ -630,6 +821,10 @@ class FrequencyFit:
         Plain-words remarks about the fit.
     repeat_customers : int
         Number of those customers with at least one repeat order.
+    model : {"bg-nbd", "mbg-nbd"}
+        Which model the parameters belong to.
+    choice : str
+        How the model was chosen, in plain words (empty when it was given).
     """
 
     r: float
@@ -642,6 +837,8 @@ class FrequencyFit:
     converged: bool
     notes: tuple = ()
     repeat_customers: int = 0
+    model: str = "bg-nbd"
+    choice: str = ""
 
     @property
     def params(self) -> tuple:
@@ -662,16 +859,16 @@ class FrequencyFit:
     def expected_orders(self, history: pd.DataFrame, horizon) -> np.ndarray:
         """Expected orders in the next ``horizon`` days for each customer of ``history``."""
         x, t_x, age = _history_arrays(history)
-        return expected_orders_ahead(self.params, x, t_x, age, horizon)
+        return expected_orders_ahead(self.params, x, t_x, age, horizon, model=self.model)
 
     def chance_active(self, history: pd.DataFrame) -> np.ndarray:
         """Chance each customer of ``history`` is still active."""
         x, t_x, age = _history_arrays(history)
-        return chance_still_active(self.params, x, t_x, age)
+        return chance_still_active(self.params, x, t_x, age, model=self.model)
 
     def new_customer_orders(self, days) -> np.ndarray:
         """Expected repeat orders of a brand-new customer within ``days``."""
-        return expected_new_customer_orders(self.params, days)
+        return expected_new_customer_orders(self.params, days, model=self.model)
 
     def draw_parameters(self, draws: int, *, seed=0) -> np.ndarray:
         """Draw parameter sets from the fit's normal approximation (log scale).
@@ -701,6 +898,9 @@ class FrequencyFit:
         """Plain floats and strings, for JSON and the dashboard (unknown values are None)."""
         errors = [float(e) if np.isfinite(e) else None for e in self.standard_errors]
         return {
+            "model": self.model,
+            "model_name": MODEL_NAMES[self.model],
+            "model_choice": self.choice,
             "r": self.r,
             "alpha_days": self.alpha,
             "a": self.a,
@@ -716,6 +916,7 @@ class FrequencyFit:
             "usable": self.usable,
             "orders_per_year_active": 365.25 * self.r / self.alpha,
             "chance_stop_after_order": self.a / (self.a + self.b),
+            "chance_gone_after_first_order": self.a / (self.a + self.b) if self.model == "mbg-nbd" else 0.0,
             "notes": " ".join(self.notes),
         }
 
@@ -820,36 +1021,87 @@ def judge_optimum(log_params, mean_gradient, hessian, *, bound, names, scale=1.0
     return OptimumVerdict(True, covariance, tuple(notes))
 
 
-def _negative_mean_ll(log_params, x, t_x, age):
+def _negative_mean_ll(log_params, x, t_x, age, model="bg-nbd"):
     params = np.exp(log_params)
-    value = -frequency_log_likelihood(params, x, t_x, age).sum() / len(x)
-    grad = -frequency_log_likelihood_gradient(params, x, t_x, age) * params / len(x)
+    value = -frequency_log_likelihood(params, x, t_x, age, model=model).sum() / len(x)
+    grad = -frequency_log_likelihood_gradient(params, x, t_x, age, model=model) * params / len(x)
     if not np.isfinite(value):
         return 1e300, np.zeros(4)
     return value, grad
 
 
-def _hessian_of_negative_ll(log_params, x, t_x, age, step=1e-5):
-    """Central differences of the analytic gradient (summed, log scale), symmetrised."""
-    hessian = np.empty((4, 4))
-    for j in range(4):
-        shift = np.zeros(4)
+def hessian_by_differences(gradient_of, point, *, step=1e-5) -> np.ndarray:
+    """Central differences of an analytic gradient, symmetrised.
+
+    Parameters
+    ----------
+    gradient_of : callable
+        ``gradient_of(point) -> array`` of the same length as ``point``.
+    point : array of float
+        Where to take the Hessian.
+    step : float
+        Step of the differences.
+
+    Returns
+    -------
+    numpy.ndarray
+        The (len(point) x len(point)) Hessian.
+    """
+    point = np.asarray(point, dtype=np.float64)
+    size = len(point)
+    hessian = np.empty((size, size))
+    for j in range(size):
+        shift = np.zeros(size)
         shift[j] = step
-        up = _negative_mean_ll(log_params + shift, x, t_x, age)[1]
-        down = _negative_mean_ll(log_params - shift, x, t_x, age)[1]
-        hessian[:, j] = (up - down) / (2 * step)
-    hessian = 0.5 * (hessian + hessian.T)
+        hessian[:, j] = (gradient_of(point + shift) - gradient_of(point - shift)) / (2 * step)
+    return 0.5 * (hessian + hessian.T)
+
+
+def _hessian_of_negative_ll(log_params, x, t_x, age, step=1e-5, model="bg-nbd"):
+    """Hessian of the summed negative log-likelihood in the log-parameters."""
+    hessian = hessian_by_differences(lambda p: _negative_mean_ll(p, x, t_x, age, model)[1], log_params, step=step)
     return hessian * len(x)
 
 
-def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
-    """Fit the BG/NBD order-frequency model by maximum likelihood.
+def _data_notes(x):
+    """Plain-words remarks on how much the history can say, and the count of repeat customers."""
+    notes = []
+    repeat_customers = int(np.count_nonzero(x > 0))
+    if repeat_customers < MIN_REPEAT_CUSTOMERS:
+        notes.append(f"Only {repeat_customers} customers ordered more than once; at least "
+                     f"{MIN_REPEAT_CUSTOMERS} are needed to say how often customers come back.")
+    elif len(x) < 30:
+        notes.append(f"Only {len(x)} customers: the order-frequency fit is rough.")
+    return notes, repeat_customers
+
+
+def check_repeat_history(x) -> None:
+    """Refuse a history no order-frequency model can be fitted on (no customers, or no repeat order)."""
+    if len(x) == 0:
+        raise OrderDataError("there are no customers to fit order frequency on")
+    if not np.any(np.asarray(x) > 0):
+        raise OrderDataError(
+            "no customer has ordered more than once, so how often customers come back cannot be estimated",
+            fix="Use a longer stretch of orders (or a later cut-off date)",
+        )
+
+
+def default_start(x, age) -> tuple:
+    """Starting (r, alpha, a, b): r = 1, alpha = days known / repeat orders, a = 1, b = 3."""
+    return (1.0, max(float(np.sum(age)), 1.0) / max(float(np.sum(x)), 1.0), 1.0, 3.0)
+
+
+def fit_order_frequency(history: pd.DataFrame, *, model: str = "bg-nbd", start=None) -> FrequencyFit:
+    """Fit an order-frequency model (BG/NBD or MBG/NBD) by maximum likelihood.
 
     Parameters
     ----------
     history : pandas.DataFrame
         Output of :func:`repeat_history` (``repeat_orders``,
         ``days_to_last_order``, ``days_known``).
+    model : {"bg-nbd", "mbg-nbd", "auto"}, default "bg-nbd"
+        The model; ``"auto"`` fits both and keeps the one the history
+        supports better (:func:`choose_order_model`).
     start : sequence of 4 floats, optional
         Starting ``(r, alpha, a, b)``. By default r = 1, alpha = total days
         known / total repeat orders (so r/alpha matches the shop's overall
@@ -882,59 +1134,113 @@ def fit_order_frequency(history: pd.DataFrame, *, start=None) -> FrequencyFit:
     Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). "Counting your
     customers" the easy way: an alternative to the Pareto/NBD model.
     Marketing Science 24(2), 275-284.
+
+    Batislam, E. P., Denizel, M. and Filiztekin, A. (2007). Empirical
+    validation and comparison of models for customer base analysis.
+    International Journal of Research in Marketing 24(3), 201-209.
     """
+    if model == "auto":
+        return choose_order_model(history, start=start)
+    model = _check_model(model)
     x, t_x, age = _history_arrays(history)
-    if len(x) == 0:
-        raise OrderDataError("there are no customers to fit order frequency on")
-    if not np.any(x > 0):
-        raise OrderDataError(
-            "no customer has ordered more than once, so how often customers come back cannot be estimated",
-            fix="Use a longer stretch of orders (or a later cut-off date)",
-        )
-    notes = []
-    repeat_customers = int(np.count_nonzero(x > 0))
-    if repeat_customers < MIN_REPEAT_CUSTOMERS:
-        notes.append(f"Only {repeat_customers} customers ordered more than once; at least "
-                     f"{MIN_REPEAT_CUSTOMERS} are needed to say how often customers come back.")
-    elif len(x) < 30:
-        notes.append(f"Only {len(x)} customers: the order-frequency fit is rough.")
-    if start is None:
-        start = (1.0, max(age.sum(), 1.0) / max(x.sum(), 1.0), 1.0, 3.0)
-    start = _check_params(start)
+    check_repeat_history(x)
+    notes, repeat_customers = _data_notes(x)
+    start = _check_params(default_start(x, age) if start is None else start)
     result = optimize.minimize(
         _negative_mean_ll,
         np.log(start),
-        args=(x, t_x, age),
+        args=(x, t_x, age, model),
         jac=True,
         method="L-BFGS-B",
         bounds=[(-_LOG_BOUND, _LOG_BOUND)] * 4,
         options={"maxiter": 5000, "ftol": 1e-15, "gtol": 1e-10},
     )
     log_params = result.x
-    hessian = _hessian_of_negative_ll(log_params, x, t_x, age)
-    mean_value, gradient = _negative_mean_ll(log_params, x, t_x, age)
+    hessian = _hessian_of_negative_ll(log_params, x, t_x, age, model=model)
+    mean_value, gradient = _negative_mean_ll(log_params, x, t_x, age, model)
     verdict = judge_optimum(log_params, gradient, hessian, bound=_LOG_BOUND,
                             names=("r", "alpha", "a", "b"), scale=mean_value)
-    converged = verdict.reached
     notes.extend(verdict.notes)
-    covariance = verdict.covariance
     params = np.exp(log_params)
-    log_likelihood = float(frequency_log_likelihood(params, x, t_x, age).sum())
+    log_likelihood = float(frequency_log_likelihood(params, x, t_x, age, model=model).sum())
     return FrequencyFit(
         r=float(params[0]),
         alpha=float(params[1]),
         a=float(params[2]),
         b=float(params[3]),
         log_likelihood=log_likelihood,
-        covariance=covariance,
+        covariance=verdict.covariance,
         customers=int(len(x)),
-        converged=converged,
+        converged=verdict.reached,
         notes=tuple(notes),
         repeat_customers=repeat_customers,
+        model=model,
     )
 
 
-def frequency_forecast(history: pd.DataFrame, *, horizon, fit: FrequencyFit | None = None) -> pd.DataFrame:
+def pick_by_likelihood(fits: dict) -> tuple:
+    """The better of fitted models with equally many parameters, and the words saying why.
+
+    Parameters
+    ----------
+    fits : dict
+        ``{model name: fit}``; each fit has ``log_likelihood`` and ``usable``.
+
+    Returns
+    -------
+    (str, str)
+        The chosen model's name and a plain-words sentence with both log-likelihoods.
+
+    Notes
+    -----
+    Models with the same number of parameters are compared by their
+    maximised likelihood (Akaike's criterion then agrees). A fit that is not
+    usable (did not reach an optimum) loses to one that is; when neither is
+    usable, or the likelihoods tie, BG/NBD is kept.
+    """
+    usable = {name: fit for name, fit in fits.items() if fit.usable and math.isfinite(fit.log_likelihood)}
+    pool = usable or fits
+    best = max(sorted(pool), key=lambda name: (pool[name].log_likelihood, name == "bg-nbd"))
+    others = [name for name in sorted(fits) if name != best]
+    if not others:
+        return best, ""
+    other = others[0]
+    if other not in usable and best in usable:
+        reason = f"{MODEL_NAMES[other]} could not be fitted soundly on these orders"
+    else:
+        reason = (f"log-likelihood {fits[best].log_likelihood:,.1f} against {fits[other].log_likelihood:,.1f} "
+                  f"for {MODEL_NAMES[other]}, with as many parameters")
+    return best, f"{MODEL_NAMES[best]} fits these orders better ({reason})."
+
+
+def choose_order_model(history: pd.DataFrame, *, start=None) -> FrequencyFit:
+    """Fit BG/NBD and MBG/NBD and keep the one the shop's orders support better.
+
+    Parameters
+    ----------
+    history : pandas.DataFrame
+        Output of :func:`repeat_history`.
+    start : sequence of 4 floats, optional
+        Starting values for both fits.
+
+    Returns
+    -------
+    FrequencyFit
+        The chosen fit, with ``choice`` saying why (see :func:`pick_by_likelihood`).
+
+    Notes
+    -----
+    Both models have four parameters, so they are compared by their
+    maximised log-likelihood on the same histories. The tests check on
+    simulated shops that this picks the model a shop was simulated from.
+    """
+    fits = {name: fit_order_frequency(history, model=name, start=start) for name in FREQUENCY_MODELS}
+    best, words = pick_by_likelihood(fits)
+    return replace(fits[best], choice=words)
+
+
+def frequency_forecast(history: pd.DataFrame, *, horizon, fit: FrequencyFit | None = None,
+                       model: str = "bg-nbd") -> pd.DataFrame:
     """Expected orders in the horizon and chance of being active, per customer.
 
     Parameters
@@ -945,6 +1251,8 @@ def frequency_forecast(history: pd.DataFrame, *, horizon, fit: FrequencyFit | No
         Days ahead of each customer's "as of" date.
     fit : FrequencyFit, optional
         A fitted model; fitted on ``history`` when not given.
+    model : {"bg-nbd", "mbg-nbd", "auto"}, default "bg-nbd"
+        The model fitted when ``fit`` is not given.
 
     Returns
     -------
@@ -954,203 +1262,9 @@ def frequency_forecast(history: pd.DataFrame, *, horizon, fit: FrequencyFit | No
     """
     horizon = _check_horizon(horizon)
     if fit is None:
-        fit = fit_order_frequency(history)
+        fit = fit_order_frequency(history, model=model)
     table = history[HISTORY_COLUMNS].copy()
     table["expected_orders"] = fit.expected_orders(history, horizon)
     table["chance_active"] = fit.chance_active(history)
     table.attrs["fit"] = fit.as_dict()
     return table
-
-
-# --------------------------------------------------------------------------- #
-# Seasons
-# --------------------------------------------------------------------------- #
-# A seasonal index needs every calendar month seen at least once.
-MIN_SEASON_DAYS = 365
-SEASON_COLUMNS = ["month", "repeat_orders", "model_orders", "index"]
-# Average Gregorian month lengths in days (February 28.2425), for weighting months.
-_MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
-# Customer-by-edge cells evaluated at once when summing the model's expected orders.
-_SEASON_CELLS = 1_000_000
-# Most rounds of the fixed-point search for the index (it settles in a handful).
-_SEASON_ROUNDS = 50
-
-
-def _month_edges(start: pd.Timestamp, end: pd.Timestamp) -> pd.DatetimeIndex:
-    """``start``, every first-of-month strictly between, and ``end``."""
-    inside = pd.date_range(start.normalize().replace(day=1), end, freq="MS")
-    inside = inside[(inside > start) & (inside < end)]
-    return pd.DatetimeIndex([start, *inside, end])
-
-
-def month_of_year_index(orders: pd.DataFrame, fit: FrequencyFit, *, as_of=None) -> pd.DataFrame:
-    """How much busier each calendar month is for repeat orders than the model says.
-
-    Parameters
-    ----------
-    orders : pandas.DataFrame
-        Cleaned orders with ``customer`` and ``order_date``, all on or before
-        ``as_of``.
-    fit : FrequencyFit
-        The order-frequency model fitted on these orders (calendar days).
-    as_of : date-like, optional
-        End of the history; default the last order date. At least
-        ``MIN_SEASON_DAYS`` days must lie between the first order and it.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Twelve rows, columns ``SEASON_COLUMNS``: ``month`` (1 = January),
-        ``repeat_orders`` (repeat orders placed in that month of the year, all
-        years together), ``model_orders`` (what the fitted model without
-        seasons expects for the same customers in the same days) and
-        ``index`` (the month's order rate relative to the year's average; the
-        day-weighted average of the twelve is 1).
-
-    Raises
-    ------
-    OrderDataError
-        If the history is shorter than a full year, or orders fall after ``as_of``.
-
-    Notes
-    -----
-    The model's expected repeat orders in calendar month k are
-    ``sum_i E[X(c(e_{k+1}) - c(f_i))] - E[X(c(e_k) - c(f_i))]`` over customers
-    i with first order f_i, where E[X(t)] is the new-customer count of eq. 7
-    (Fader, Hardie and Lee 2005), e_k the month's edges (clipped at f_i) and
-    c the seasonal clock (:func:`seasonal_days` from the first order). A
-    growing list of customers and customers dropping away are thus both in
-    the expectation; what is left in actual / expected is the time of year.
-    Months of the year are pooled over years (ratios of sums).
-
-    The index is the fixed point of ``index_m <- index_m x actual_m /
-    expected_m(index)`` (rescaled to average 1 each round), starting from no
-    seasons: the index under which the fitted model, run on the seasonal
-    clock, places as many repeat orders in each month of the year as the
-    shop saw. A single round (plain model in the denominator) confuses a
-    busy month with the faster dropping away that more orders bring; the
-    fixed point does not, and settles within a few rounds.
-
-    Then, with ``l_m`` the log index and ``v_m = 1 / orders_m`` its Poisson
-    sampling variance, each month is shrunk toward the year's average as in
-    empirical Bayes: ``l_m* = c + tau2 / (tau2 + v_m) (l_m - c)``, c the mean
-    of the l_m and ``tau2 = max(0, var(l_m) - mean(v_m))`` the spread between
-    months beyond what chance explains (method of moments). A shop without
-    seasons therefore gets an index close to 1 in every month rather than its
-    noise. Finally the index is scaled so its day-weighted average is 1: it
-    moves orders between months but leaves the model's yearly level alone.
-    The fit itself stays in calendar days.
-    """
-    missing = [c for c in ("customer", "order_date") if c not in orders.columns]
-    if missing:
-        raise OrderDataError("the orders table lacks columns", value=", ".join(missing),
-                             fix="Read the file with forecasting.read_orders")
-    if len(orders) == 0:
-        raise OrderDataError("there are no orders to measure seasons on")
-    dates = pd.to_datetime(orders["order_date"])
-    first_day, last_day = dates.min(), dates.max()
-    as_of_ts = last_day if as_of is None else pd.Timestamp(as_of)
-    if pd.isna(as_of_ts) or as_of_ts < last_day:
-        raise OrderDataError("the 'as of' date must be a date on or after the last order", column="as_of",
-                             value=as_of)
-    days = (as_of_ts - first_day) / pd.Timedelta(days=1)
-    if days < MIN_SEASON_DAYS:
-        raise OrderDataError(
-            f"a month-of-year pattern needs at least a full year of orders; these cover {days:.0f} days",
-            column="--seasons", value="month", fix="Use --seasons none, or a longer order history")
-
-    # Repeat orders: every order of a customer except one earliest one.
-    table = pd.DataFrame({"customer": orders["customer"].to_numpy(), "order_date": dates.to_numpy()})
-    table = table.sort_values(["customer", "order_date"], kind="stable")
-    repeats = table.loc[table["customer"].duplicated(), "order_date"]
-    first_orders = table.loc[~table["customer"].duplicated(), "order_date"]
-
-    edges = _month_edges(first_day, as_of_ts)
-    months = edges[:-1].month.to_numpy()
-    positions = np.searchsorted(edges.to_numpy(), repeats.to_numpy(), side="right") - 1
-    positions = np.clip(positions, 0, len(edges) - 2)  # an order exactly at as_of joins the last month
-    actual_by_month = np.bincount(positions, minlength=len(edges) - 1).astype(np.float64)
-
-    actual = np.bincount(months - 1, weights=actual_by_month, minlength=12)
-    edge_values = edges.to_numpy()
-    lengths = np.diff(edge_values) / np.timedelta64(1, "D")
-    first_values = first_orders.to_numpy()
-    first_month = np.clip(np.searchsorted(edge_values, first_values, side="right") - 1, 0, len(edges) - 2)
-    into_month = (first_values - edge_values[first_month]) / np.timedelta64(1, "D")
-
-    def model_orders_by_month(index):
-        # The seasonal clock (integral of the index) at each month edge and at each first order;
-        # a customer's expected repeat orders up to an edge is E[X(clock(edge) - clock(first))].
-        clock_edges = np.concatenate([[0.0], np.cumsum(index[months - 1] * lengths)])
-        clock_first = clock_edges[first_month] + index[months[first_month] - 1] * into_month
-        cumulative = np.zeros(len(edges))
-        rows = max(1, _SEASON_CELLS // len(edges))
-        for start in range(0, len(clock_first), rows):
-            block = np.maximum(clock_edges[None, :] - clock_first[start:start + rows, None], 0.0)
-            cumulative += _orders_while_active(fit.params, np.zeros_like(block), np.zeros_like(block),
-                                               block).sum(axis=0)
-        return np.bincount(months - 1, weights=np.maximum(np.diff(cumulative), 0.0), minlength=12)
-
-    plain_model = model_orders_by_month(np.ones(12))
-    if np.any(plain_model <= 0):
-        raise OrderDataError("the order-frequency model expects no repeat orders in some month",
-                             fix="Use --seasons none")
-    index = np.ones(12)
-    model = plain_model
-    rounds = 0
-    for rounds in range(1, _SEASON_ROUNDS + 1):
-        updated = index * np.maximum(actual, 0.5) / model
-        updated = updated / (updated @ _MONTH_DAYS / _MONTH_DAYS.sum())
-        change = float(np.max(np.abs(updated - index)))
-        index = updated
-        if change < 1e-6:
-            break
-        model = model_orders_by_month(index)
-    log_ratio = np.log(index)
-    noise = 1.0 / np.maximum(actual, 0.5)
-    centre = log_ratio.mean()
-    between = max(0.0, float(np.sum((log_ratio - centre) ** 2) / 11.0 - noise.mean()))
-    shrunk = centre + between / (between + noise) * (log_ratio - centre)
-    index = np.exp(shrunk)
-    index = index / (index @ _MONTH_DAYS / _MONTH_DAYS.sum())
-    result = pd.DataFrame({"month": np.arange(1, 13), "repeat_orders": actual, "model_orders": plain_model,
-                           "index": index}, columns=SEASON_COLUMNS)
-    result.attrs = {"as_of": as_of_ts.isoformat(), "days_of_history": float(days), "rounds": rounds}
-    return result
-
-
-def seasonal_days(start, days, index) -> float:
-    """Length of a period in "average days": each calendar day weighted by its month's index.
-
-    Parameters
-    ----------
-    start : date-like
-        Start of the period.
-    days : float
-        Its length in calendar days (>= 0).
-    index : array_like of 12 floats
-        Month-of-year index, January first (e.g. ``month_of_year_index(...)["index"]``).
-
-    Returns
-    -------
-    float
-        ``integral from start to start + days of index[month(t)] dt``, in days.
-        With every month at 1 it is ``days``.
-
-    Notes
-    -----
-    An active customer's ordering rate in a month is lambda x index; a Poisson
-    process with that rate counts the same orders as one with rate lambda run
-    on this seasonal clock, so the model's expected orders and simulations
-    for a calendar window of ``days`` are those for ``seasonal_days(...)``.
-    """
-    weights = np.asarray(index, dtype=np.float64)
-    if weights.shape != (12,) or not np.all(np.isfinite(weights)) or np.any(weights < 0):
-        raise OrderDataError("a month-of-year index must be twelve numbers of at least 0", value=index)
-    days = _check_horizon(days)
-    start_ts = pd.Timestamp(start)
-    if days == 0:
-        return 0.0
-    edges = _month_edges(start_ts, start_ts + pd.Timedelta(days=days))
-    lengths = np.diff(edges.to_numpy()) / np.timedelta64(1, "D")
-    return float(np.sum(weights[edges[:-1].month.to_numpy() - 1] * lengths))

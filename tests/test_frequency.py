@@ -9,12 +9,17 @@ External references used here:
   alpha = 4.414, a = 0.793, b = 2.426 (weeks).
 - scipy.integrate (dblquad/quad) integrating the model over lambda and p.
 - mpmath.hyp2f1 for the printed, untransformed formulas.
+- Batislam, Denizel and Filiztekin (2007), International Journal of Research
+  in Marketing 24(3):201-209, and Hoppe and Wagner (2007), Marketing - Journal
+  of Research and Management 3(2):75-90: the variant MBG/NBD in which the coin
+  is also thrown right after the first order. Its printed formulas (the
+  likelihood, E[X(t)], the conditional expectation and the chance of being
+  active) are written below from memory of the paper; each is checked against
+  numerical integration of the model's story or against simulation, which do
+  not depend on the memory.
 - Monte Carlo simulation of the model (numpy, seeded), including a literal
   event-by-event simulation (exponential gaps, a coin after each order) as the
-  slow twin of the order-count draws, and shops simulated on a known seasonal
-  clock (rate x month weight) for the month-of-year index.
-- A calendar (pandas date ranges, hour by hour) as the slow twin of the
-  seasonal length of a period.
+  slow twin of the order-count draws.
 """
 
 from __future__ import annotations
@@ -29,8 +34,7 @@ from scipy import integrate, optimize, stats
 from forecasting.errors import OrderDataError
 from forecasting.frequency import (
     HISTORY_COLUMNS,
-    MIN_SEASON_DAYS,
-    SEASON_COLUMNS,
+    MODEL_NAMES,
     FrequencyFit,
     chance_still_active,
     expected_new_customer_orders,
@@ -40,12 +44,11 @@ from forecasting.frequency import (
     frequency_forecast,
     frequency_log_likelihood,
     frequency_log_likelihood_gradient,
-    month_of_year_index,
+    choose_order_model,
     repeat_history,
-    seasonal_days,
+    simulate_new_customer_orders,
     simulate_orders_ahead,
 )
-from forecasting.customers import customer_statistics
 
 # CDNOW estimates in weeks (Fader, Hardie and Lee 2005, section 4).
 CDNOW_WEEKS = (0.243, 4.414, 0.793, 2.426)
@@ -516,120 +519,6 @@ class TestSimulateOrdersAhead:
             simulate_orders_ahead(np.tile(PARAMS_A, (3, 1)), [1], [5.0], [3.0], 10.0)
 
 
-# Average Gregorian month lengths (365.2425 days a year; February 28.2425).
-MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
-# Month weights of a plant shop's year (busy spring), used to simulate seasons.
-SPRING_WEIGHTS = np.array([0.6, 0.7, 1.3, 1.6, 1.4, 1.0, 0.8, 0.8, 1.0, 1.1, 0.8, 0.9])
-
-
-def simulate_seasonal_orders(params, customers, seed, weights, *, start="2024-01-01", days=730):
-    """Orders from the BG/NBD story run on a seasonal clock.
-
-    While active, a customer's rate in a calendar month is lambda x weight of
-    the month: equivalently, the model's story in seasonal time tau (the
-    integral of the weights), mapped back to dates through the clock's inverse
-    (a daily grid, linear within a day). First orders fall uniformly over the
-    calendar period.
-    """
-    r, alpha, a, b = params
-    rng = np.random.default_rng(seed)
-    grid = pd.date_range(start, periods=days + 1, freq="D")
-    clock = np.concatenate([[0.0], np.cumsum(np.asarray(weights)[grid[:-1].month - 1])])
-    rate = rng.gamma(r, 1 / alpha, customers)
-    stop = rng.beta(a, b, customers)
-    tau = np.interp(rng.uniform(0, days, customers), np.arange(days + 1), clock)
-    who, when = [np.arange(customers)], [tau.copy()]
-    active = np.ones(customers, dtype=bool)
-    while active.any():
-        tau = tau + rng.exponential(1 / rate)
-        active &= tau < clock[-1]
-        who.append(np.flatnonzero(active))
-        when.append(tau[active])
-        active &= rng.random(customers) >= stop
-    who, when = np.concatenate(who), np.concatenate(when)
-    day = np.interp(when, clock, np.arange(days + 1))
-    return pd.DataFrame({"customer": [f"C-{i:05d}" for i in who],
-                         "order_date": pd.Timestamp(start) + pd.to_timedelta(np.round(day * 1440), unit="min"),
-                         "order_value": 1.0})
-
-
-def index_for(orders, **options):
-    fit = fit_order_frequency(repeat_history(customer_statistics(orders), **options))
-    return month_of_year_index(orders, fit, **options), fit
-
-
-class TestMonthOfYearIndex:
-    def test_recovers_a_known_seasonal_clock(self):
-        # Reference: the weights the shops were simulated with (scaled to a day-weighted
-        # average of 1). 3,000 customers over two years give ~450 repeat orders per
-        # month of the year (Poisson noise ~5%); tolerance: mean absolute error 0.06,
-        # worst month 0.2.
-        truth = SPRING_WEIGHTS / (SPRING_WEIGHTS @ MONTH_DAYS / MONTH_DAYS.sum())
-        for seed in (0, 1):
-            index, _ = index_for(simulate_seasonal_orders(PARAMS_A_SHOP, 3000, seed, SPRING_WEIGHTS))
-            assert list(index.columns) == SEASON_COLUMNS
-            error = np.abs(index["index"].to_numpy() - truth)
-            assert error.mean() < 0.06 and error.max() < 0.2, np.round(index["index"].to_numpy() - truth, 3)
-            assert index["index"].to_numpy() @ MONTH_DAYS / MONTH_DAYS.sum() == pytest.approx(1.0, rel=1e-12)
-
-    def test_no_seasons_gives_about_one(self):
-        # A shop on a flat clock: the month-to-month scatter is what Poisson noise
-        # explains, so the shrinkage takes every month (nearly) back to 1.
-        index, _ = index_for(simulate_seasonal_orders(PARAMS_A_SHOP, 3000, 2, np.ones(12)))
-        assert np.abs(index["index"] - 1).max() < 0.05
-
-    def test_counts_by_plain_pandas_and_a_loop_over_customers(self):
-        # Slow twins: repeat orders = all but each customer's first order, grouped by
-        # calendar month with pandas; the plain model's expectation = a loop over
-        # customers and months of E[X(t)] (eq. 7, expected_new_customer_orders).
-        orders = simulate_seasonal_orders(PARAMS_A_SHOP, 150, 3, SPRING_WEIGHTS, days=400)
-        as_of = orders["order_date"].max() + pd.Timedelta(hours=5)
-        index, fit = index_for(orders, as_of=as_of)
-        ordered = orders.sort_values(["order_date"]).reset_index(drop=True)
-        repeats = ordered[ordered.groupby("customer").cumcount() > 0]
-        by_month = repeats["order_date"].dt.month.value_counts().reindex(range(1, 13), fill_value=0)
-        np.testing.assert_array_equal(index["repeat_orders"], by_month.to_numpy())
-        first = orders.groupby("customer")["order_date"].min()
-        start = orders["order_date"].min()
-        edges = [start] + list(pd.date_range(start.normalize() + pd.offsets.MonthBegin(1), as_of, freq="MS")) + [as_of]
-        model = np.zeros(12)
-        for left, right in zip(edges[:-1], edges[1:]):
-            for when in first:
-                up = max((right - when) / pd.Timedelta(days=1), 0.0)
-                down = max((left - when) / pd.Timedelta(days=1), 0.0)
-                model[left.month - 1] += float(expected_new_customer_orders(fit.params, up)
-                                               - expected_new_customer_orders(fit.params, down))
-        np.testing.assert_allclose(index["model_orders"], model, rtol=1e-9)
-
-    def test_needs_a_full_year(self):
-        orders = simulate_seasonal_orders(PARAMS_A_SHOP, 300, 4, np.ones(12), days=MIN_SEASON_DAYS - 20)
-        fit = fit_order_frequency(repeat_history(customer_statistics(orders)))
-        with pytest.raises(OrderDataError, match="full year"):
-            month_of_year_index(orders, fit)
-        with pytest.raises(OrderDataError, match="on or after the last order"):
-            month_of_year_index(orders, fit, as_of="2024-02-01")
-
-
-class TestSeasonalDays:
-    def test_matches_an_hour_by_hour_calendar(self):
-        # Slow twin: walk the period hour by hour with pandas and add index[month] / 24.
-        index = SPRING_WEIGHTS
-        for start, days in [("2025-01-20 06:00", 45.5), ("2025-11-30 23:00", 400.0), ("2028-02-10", 30.0)]:
-            hours = pd.date_range(start, periods=int(days * 24), freq="h")
-            slow = float(index[hours.month - 1].sum() / 24)
-            assert seasonal_days(start, days, index) == pytest.approx(slow, rel=1e-9)
-
-    def test_flat_index_and_zero_length(self):
-        assert seasonal_days("2025-03-03", 90.25, np.ones(12)) == pytest.approx(90.25, rel=1e-12)
-        assert seasonal_days("2025-03-03", 0, SPRING_WEIGHTS) == 0.0
-
-    def test_bad_index_refused(self):
-        with pytest.raises(OrderDataError, match="twelve numbers"):
-            seasonal_days("2025-03-03", 10, [1.0] * 11)
-        with pytest.raises(OrderDataError, match="twelve numbers"):
-            seasonal_days("2025-03-03", 10, [-1.0] + [1.0] * 11)
-
-
 class TestChanceStillActive:
     def test_no_repeat_means_still_active(self):
         assert np.all(chance_still_active(PARAMS_B, [0, 0], [0.0, 0.0], [1.0, 900.0]) == 1.0)
@@ -785,3 +674,246 @@ class TestJudgeOptimum:
         assert verdict.reached
         assert np.all(np.isnan(verdict.covariance))
         assert "barely pin down a" in verdict.notes[0]
+
+
+# --------------------------------------------------------------------------- #
+# MBG/NBD: a customer may stop right after the first order too
+# --------------------------------------------------------------------------- #
+def simulate_histories_dropping(params, customers, seed, *, known_low=60.0, known_high=730.0):
+    """Repeat histories from the MBG/NBD story: a coin after the first order as well.
+
+    With chance p the customer stops right after the first order (x = 0);
+    otherwise x = min(Poisson(lambda T), Geometric(p)) as in BG/NBD.
+    """
+    r, alpha, a, b = params
+    rng = np.random.default_rng(seed)
+    rate = rng.gamma(r, 1.0 / alpha, customers)
+    stop = rng.beta(a, b, customers)
+    known = rng.uniform(known_low, known_high, customers)
+    first_coin = rng.random(customers) < stop
+    arrivals = rng.poisson(rate * known)
+    repeat = np.where(first_coin, 0, np.minimum(arrivals, rng.geometric(stop)))
+    to_last = np.where(repeat > 0, known * rng.beta(np.maximum(repeat, 1), arrivals - repeat + 1), 0.0)
+    return pd.DataFrame({"repeat_orders": repeat, "days_to_last_order": to_last, "days_known": known})
+
+
+def likelihood_dropping_by_integration(params, x, t_x, age):
+    """MBG/NBD's likelihood integrated numerically over lambda and p (scipy dblquad): still active
+    after x + 1 coins, or stopped at the coin right after the x-th repeat order (or the first order)."""
+    r, alpha, a, b = params
+    log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+    def integrand(p, lam):
+        if lam <= 0 or p <= 0 or p >= 1:
+            return 0.0
+        value = ((1 - p) ** (x + 1) * math.exp(x * math.log(lam) - lam * age)
+                 + p * (1 - p) ** x * math.exp(x * math.log(lam) - lam * t_x))
+        return value * math.exp(log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p)
+                                + (b - 1) * math.log1p(-p))
+
+    value, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-10)
+    return value
+
+
+def dropping_new_customer_orders_printed(params, t):
+    """E[X(t)] of MBG/NBD as printed (from memory): b/(a-1) [1 - (alpha/(alpha+t))^r 2F1(r, b+1; a+b; t/(alpha+t))]."""
+    mpmath = pytest.importorskip("mpmath")
+    with mpmath.workdps(40):
+        r, alpha, a, b = (mpmath.mpf(v) for v in params)
+        t = mpmath.mpf(t)
+        return float(b / (a - 1) * (1 - (alpha / (alpha + t)) ** r * mpmath.hyp2f1(r, b + 1, a + b, t / (alpha + t))))
+
+
+def dropping_orders_ahead_printed(params, x, t_x, age, t):
+    """E[Y(t) | x, t_x, T] of MBG/NBD as printed (from memory), with mpmath's 2F1:
+    (a+b+x)/(a-1) [1 - ((alpha+T)/(alpha+T+t))^(r+x) 2F1(r+x, b+x+1; a+b+x; t/(alpha+T+t))]
+    / (1 + a/(b+x) ((alpha+T)/(alpha+t_x))^(r+x))."""
+    mpmath = pytest.importorskip("mpmath")
+    with mpmath.workdps(40):
+        r, alpha, a, b = (mpmath.mpf(v) for v in params)
+        x, t_x, age, t = (mpmath.mpf(v) for v in (x, t_x, age, t))
+        top = (a + b + x) / (a - 1) * (
+            1 - ((alpha + age) / (alpha + age + t)) ** (r + x)
+            * mpmath.hyp2f1(r + x, b + x + 1, a + b + x, t / (alpha + age + t)))
+        bottom = 1 + (a / (b + x)) * ((alpha + age) / (alpha + t_x)) ** (r + x)
+        return float(top / bottom)
+
+
+def dropping_active_share(params, x, t_x, age):
+    """Posterior chance of being active under MBG/NBD, from the two likelihood terms (Bayes' rule)."""
+    r, alpha, a, b = params
+    log_active = math.lgamma(a) + math.lgamma(b + x + 1) - (r + x) * math.log(alpha + age)
+    log_stopped = math.lgamma(a + 1) + math.lgamma(b + x) - (r + x) * math.log(alpha + t_x)
+    return 1 / (1 + math.exp(log_stopped - log_active))
+
+
+class TestDropOutAfterFirstOrder:
+    """MBG/NBD (Batislam, Denizel and Filiztekin 2007; Hoppe and Wagner 2007)."""
+
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B])
+    @pytest.mark.parametrize("x, t_x, age", [(0, 0.0, 200.0), (1, 50.0, 300.0), (4, 120.0, 150.0),
+                                             (7, 600.0, 700.0)])
+    def test_likelihood_equals_numerical_integration_of_the_story(self, params, x, t_x, age):
+        # Reference: scipy.integrate.dblquad over lambda in (0, inf) and p in (0, 1).
+        expected = math.log(likelihood_dropping_by_integration(params, x, t_x, age))
+        got = frequency_log_likelihood(params, [x], [t_x], [age], model="mbg-nbd")[0]
+        assert got == pytest.approx(expected, rel=1e-8, abs=1e-8)
+
+    def test_a_customer_seen_for_no_time_has_likelihood_one(self):
+        # x = 0, t_x = T = 0: still active with chance b/(a+b), stopped with a/(a+b); together 1.
+        assert frequency_log_likelihood(PARAMS_B, [0], [0.0], [0.0], model="mbg-nbd")[0] == pytest.approx(0.0, abs=1e-12)
+
+    def test_gradient_matches_finite_differences(self):
+        # Reference: scipy.optimize.approx_fprime on the summed log-likelihood.
+        history = simulate_histories_dropping(PARAMS_A, 300, seed=3)
+        args = [history[c].to_numpy() for c in HISTORY_COLUMNS]
+        point = np.array([0.9, 35.0, 1.3, 3.5])
+        numeric = optimize.approx_fprime(
+            point, lambda p: frequency_log_likelihood(p, *args, model="mbg-nbd").sum(), epsilon=1e-6 * point)
+        analytic = frequency_log_likelihood_gradient(point, *args, model="mbg-nbd")
+        np.testing.assert_allclose(analytic, numeric, rtol=1e-4)
+
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
+    @pytest.mark.parametrize("t", [0.5, 30.0, 365.0, 5000.0])
+    def test_new_customer_orders_match_the_printed_formula(self, params, t):
+        got = expected_new_customer_orders(params, t, model="mbg-nbd")
+        assert got == pytest.approx(dropping_new_customer_orders_printed(params, t), rel=1e-10)
+
+    def test_new_customer_orders_match_an_integral_over_rates_and_stop_chances(self):
+        # Reference: E[X(t) | lambda, p] = (1 - p)(1 - exp(-lambda p t)) / p (the first coin, then
+        # BG/NBD's count), integrated over the Gamma and Beta mixing distributions with dblquad.
+        for params in (PARAMS_A, (0.8, 40.0, 1.0, 4.0)):
+            r, alpha, a, b = params
+            t = 200.0
+            log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+            def integrand(p, lam):
+                if lam <= 0 or p <= 0 or p >= 1:
+                    return 0.0
+                return ((1 - p) * -math.expm1(-lam * p * t) / p) * math.exp(
+                    log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+
+            expected, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+            assert expected_new_customer_orders(params, t, model="mbg-nbd") == pytest.approx(expected, rel=1e-7)
+
+    @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
+    @pytest.mark.parametrize("x, t_x, age, h",
+                             [(0, 0.0, 30.0, 90.0), (1, 20.0, 400.0, 365.0), (5, 300.0, 320.0, 30.0),
+                              (40, 690.0, 700.0, 2000.0)])
+    def test_orders_ahead_match_the_printed_formula(self, params, x, t_x, age, h):
+        got = expected_orders_ahead(params, x, t_x, age, h, model="mbg-nbd")
+        assert got == pytest.approx(dropping_orders_ahead_printed(params, x, t_x, age, h), rel=1e-9)
+
+    @pytest.mark.parametrize("x, t_x, age", [(0, 0.0, 120.0), (3, 200.0, 400.0), (6, 100.0, 500.0)])
+    def test_orders_ahead_match_monte_carlo_of_the_posterior(self, x, t_x, age):
+        # Reference: seeded simulation. Active with the posterior share of the "still active" term;
+        # if active, lambda ~ Gamma(r+x, alpha+T) and p ~ Beta(a, b+x+1) (x + 1 coins survived);
+        # future orders simulated. Tolerance 4 standard errors.
+        r, alpha, a, b = PARAMS_A
+        share = dropping_active_share(PARAMS_A, x, t_x, age)
+        rng = np.random.default_rng(199 + x)
+        n = 400_000
+        active = rng.random(n) < share
+        counts = future_orders_monte_carlo(rng.gamma(r + x, 1 / (alpha + age), n), rng.beta(a, b + x + 1, n), 180.0,
+                                           rng)
+        counts = np.where(active, counts, 0)
+        got = expected_orders_ahead(PARAMS_A, x, t_x, age, 180.0, model="mbg-nbd")
+        assert abs(got - counts.mean()) < 4 * counts.std() / math.sqrt(n)
+        assert chance_still_active(PARAMS_A, x, t_x, age, model="mbg-nbd") == pytest.approx(share, rel=1e-12)
+
+    def test_chance_active_matches_numerical_posterior(self):
+        # Reference: dblquad of the "still active" part of the likelihood over the whole likelihood.
+        r, alpha, a, b = PARAMS_B
+        x, t_x, age = 0, 0.0, 300.0
+        log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+        def active_part(p, lam):
+            if lam <= 0 or p <= 0 or p >= 1:
+                return 0.0
+            return (1 - p) ** (x + 1) * math.exp(x * math.log(lam) - lam * age + log_norm + (r - 1) * math.log(lam)
+                                                 - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+
+        numerator, _ = integrate.dblquad(active_part, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+        expected = numerator / likelihood_dropping_by_integration(PARAMS_B, x, t_x, age)
+        got = chance_still_active(PARAMS_B, x, t_x, age, model="mbg-nbd")
+        assert got == pytest.approx(expected, rel=1e-7)
+        # A one-time buyer is no longer certain to be active (as in BG/NBD), and less so the longer the silence.
+        longer = chance_still_active(PARAMS_B, [0, 0], [0.0, 0.0], [10.0, 600.0], model="mbg-nbd")
+        assert 0 < longer[1] < longer[0] < 1
+        assert np.all(chance_still_active(PARAMS_B, [0, 0], [0.0, 0.0], [10.0, 600.0]) == 1.0)
+
+    def test_simulated_orders_match_the_event_by_event_story(self):
+        # Slow twin: one customer and one order at a time (active with the posterior share, then
+        # exponential gaps and a coin after each order); chi-square test of homogeneity on 0, 1, 2, 3+.
+        rng = np.random.default_rng(41)
+        customers = [(0, 0.0, 120.0), (3, 200.0, 400.0), (6, 100.0, 500.0)]
+        x, t_x, age = (np.array(v, dtype=float) for v in zip(*customers))
+        fast = simulate_orders_ahead(np.tile(PARAMS_A, (4000, 1)), x, t_x, age, 180.0, seed=6, model="mbg-nbd")
+        r, alpha, a, b = PARAMS_A
+        for k, (xk, tk, ak) in enumerate(customers):
+            share = dropping_active_share(PARAMS_A, xk, tk, ak)
+            slow = np.zeros(4000, dtype=np.int64)
+            for d in range(4000):
+                if rng.random() >= share:
+                    continue
+                rate, stop, clock = rng.gamma(r + xk, 1 / (alpha + ak)), rng.beta(a, b + xk + 1), 0.0
+                while True:
+                    clock += rng.exponential(1 / rate)
+                    if clock > 180.0:
+                        break
+                    slow[d] += 1
+                    if rng.random() < stop:
+                        break
+            table = np.array([[np.sum(np.minimum(c, 3) == j) for j in range(4)] for c in (fast[:, k], slow)])
+            table = table[:, table.sum(axis=0) > 0]
+            assert stats.chi2_contingency(table).pvalue > 1e-3, (customers[k], table)
+
+    def test_new_customer_draws_average_the_expected_count(self):
+        # Reference: eq. 7's MBG/NBD form (expected_new_customer_orders); 4 standard errors.
+        days = np.repeat([30.0, 200.0, 700.0], 60_000)
+        for model in ("bg-nbd", "mbg-nbd"):
+            counts = simulate_new_customer_orders(np.tile(PARAMS_B, (len(days), 1)), days, seed=3, model=model)
+            for period in (30.0, 200.0, 700.0):
+                part = counts[days == period]
+                expected = expected_new_customer_orders(PARAMS_B, period, model=model)
+                assert abs(part.mean() - expected) < 4 * part.std() / math.sqrt(len(part)), (model, period)
+
+    def test_fit_recovers_simulated_parameters(self):
+        # Reference: simulation from the MBG/NBD story with known parameters; within 4 standard
+        # errors and 25% of the truth.
+        true = (0.9, 50.0, 1.3, 1.8)
+        fit = fit_order_frequency(simulate_histories_dropping(true, 20000, seed=12), model="mbg-nbd")
+        assert fit.converged and fit.model == "mbg-nbd"
+        got = np.array(fit.params)
+        assert np.all(np.abs(got - true) < 4 * fit.standard_errors)
+        np.testing.assert_allclose(got, true, rtol=0.25)
+        assert fit.as_dict()["chance_gone_after_first_order"] == pytest.approx(fit.a / (fit.a + fit.b))
+
+    def test_twenty_shops_reach_their_optimum(self):
+        # The fit is judged by judge_optimum as BG/NBD's is; a derivative-free polish from the
+        # fit (scipy's Nelder-Mead) must not find a better likelihood.
+        from forecasting.frequency import _negative_mean_ll
+
+        for seed in range(20):
+            history = simulate_histories_dropping(PARAMS_B, 1500, seed=seed)
+            fit = fit_order_frequency(history, model="mbg-nbd")
+            assert fit.converged and fit.usable, (seed, fit.notes)
+            args = tuple(history[c].to_numpy() for c in HISTORY_COLUMNS)
+            polish = optimize.minimize(lambda p: _negative_mean_ll(p, *args, "mbg-nbd")[0], np.log(fit.params),
+                                       method="Nelder-Mead", options={"xatol": 1e-9, "fatol": 1e-14, "maxiter": 4000})
+            assert (-polish.fun * len(history)) - fit.log_likelihood < 1e-4, seed
+
+    def test_the_shops_own_orders_pick_the_model_they_follow(self):
+        # Simulated shops of 2,000 customers: ten from each story. The likelihood must pick the
+        # story a shop was simulated from in at least 9 of 10 (an offline run of 40 each: 40/40 and 40/40).
+        picks = {"bg-nbd": 0, "mbg-nbd": 0}
+        for seed in range(10):
+            picks["bg-nbd"] += choose_order_model(simulate_histories(PARAMS_A_SHOP, 2000, seed=300 + seed)).model == "bg-nbd"
+            chosen = choose_order_model(simulate_histories_dropping(PARAMS_A_SHOP, 2000, seed=400 + seed))
+            picks["mbg-nbd"] += chosen.model == "mbg-nbd"
+        assert picks["bg-nbd"] >= 9 and picks["mbg-nbd"] >= 9, picks
+        assert "MBG/NBD fits these orders better" in chosen.choice and MODEL_NAMES[chosen.model] == "MBG/NBD"
+
+    def test_unknown_model_refused(self):
+        with pytest.raises(OrderDataError, match="bg-nbd or mbg-nbd"):
+            frequency_log_likelihood(PARAMS_A, [1], [2.0], [3.0], model="pareto")

@@ -1,0 +1,597 @@
+"""The shop's seasonal clock, and the repeat-order model fitted on it.
+
+Input: cleaned orders (``customer``, ``order_date``) up to an "as of" date.
+
+Output:
+
+* :func:`seasonal_days` -- the length of a calendar period on a seasonal clock
+  defined by a month-of-year index (each day counts its month's weight).
+* :func:`fit_repeat_orders` -- the order-frequency model (BG/NBD or MBG/NBD,
+  :mod:`forecasting.frequency`) and, when the orders support one, a
+  month-of-year index, estimated together by maximum likelihood; every
+  customer's history, the fit and any window ahead are measured on the same
+  clock. Returns a :class:`RepeatOrderModel`.
+
+Why one clock. A customer who orders at rate lambda x index(month) places the
+same orders as one who orders at rate lambda on a clock that runs index(month)
+times faster in that month. Projecting a window on the seasonal clock while
+the customer's past stays in calendar days would mix two clocks: after a busy
+spring rates would look too high and silences too short, before spring a quiet
+winter would look like customers leaving. Here the past, the fit and the
+window use the same clock.
+
+The month index is kept only when the orders support it: a likelihood-ratio
+test of the model with the index against the same model without it
+(11 degrees of freedom, 5% level) decides under ``seasons="auto"``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+import pandas as pd
+from scipy import optimize, special
+
+from .customers import customer_statistics
+from .errors import OrderDataError
+from .frequency import (
+    FREQUENCY_MODELS,
+    HISTORY_COLUMNS,
+    MODEL_NAMES,
+    FrequencyFit,
+    _check_model,
+    _data_notes,
+    _slopes,
+    check_repeat_history,
+    fit_order_frequency,
+    hessian_by_differences,
+    judge_optimum,
+    pick_by_likelihood,
+    repeat_history,
+)
+
+__all__ = [
+    "SEASONS",
+    "MIN_SEASON_DAYS",
+    "SEASON_TEST_LEVEL",
+    "MONTH_DAYS",
+    "SEASON_COLUMNS",
+    "seasonal_days",
+    "clock_between",
+    "month_edges",
+    "p_value_words",
+    "RepeatOrderModel",
+    "fit_repeat_orders",
+]
+
+#: Seasonal adjustment: "auto" (the month index when a full year exists and the test keeps it), "month", "none".
+SEASONS = ("auto", "month", "none")
+#: A month-of-year index needs every calendar month seen at least once.
+MIN_SEASON_DAYS = 365
+#: Level of the likelihood-ratio test that keeps a month index under seasons="auto" (common practice: 5%).
+SEASON_TEST_LEVEL = 0.05
+#: Average Gregorian month lengths in days (February 28.2425), January first.
+MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
+#: Columns of RepeatOrderModel.season_table().
+SEASON_COLUMNS = ["month", "repeat_orders", "index", "index_low", "index_high"]
+
+_MONTH_NAMES = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
+                "October", "November", "December")
+# Bounds of the fit: log-parameters as in frequency.py; log month weights within e^-6..e^6.
+_LOG_BOUND = 18.0
+_INDEX_BOUND = 6.0
+# Drawn log-parameters are kept within this bound (as in frequency.py).
+_DRAW_BOUND = 40.0
+_NS_PER_DAY = 86400e9
+
+
+# --------------------------------------------------------------------------- #
+# The calendar: where each moment falls, and how many days of each month lie before it
+# --------------------------------------------------------------------------- #
+class _Calendar:
+    """Months from the earliest to the latest moment given, for fast clock arithmetic.
+
+    For a moment t, ``F_m(t)`` = days of calendar month-of-year m between the
+    first month's start and t. Any month-of-year index w turns it into the
+    seasonal clock ``C(t) = sum_m w_m F_m(t)``, and the clock length of a
+    period [s, e) is ``C(e) - C(s)``. Held as a table of F at each month's
+    start, so each moment costs one look-up (no per-day loop).
+    """
+
+    def __init__(self, earliest, latest):
+        first = np.datetime64(pd.Timestamp(earliest).to_datetime64(), "M")
+        last = np.datetime64(pd.Timestamp(latest).to_datetime64(), "M")
+        months = np.arange(first, last + 2)  # one month past the latest, for its end edge
+        self.first = first
+        self.starts = months.astype("datetime64[ns]")
+        self.month_of_year = (months.astype(np.int64) % 12).astype(np.int64)[:-1]
+        lengths = np.diff(self.starts).astype(np.float64) / _NS_PER_DAY
+        steps = np.zeros((len(lengths), 12))
+        steps[np.arange(len(lengths)), self.month_of_year] = lengths
+        self.before = np.vstack([np.zeros(12), np.cumsum(steps, axis=0)])
+
+    def locate(self, moments):
+        """Month position, month of year and days into the month of each moment."""
+        stamps = np.asarray(pd.to_datetime(np.atleast_1d(moments)).to_numpy(dtype="datetime64[ns]"))
+        position = (stamps.astype("datetime64[M]") - self.first).astype(np.int64)
+        if np.any(position < 0) or np.any(position >= len(self.month_of_year)):
+            raise ValueError("a moment falls outside the calendar")  # a programming error, not the data's
+        into = (stamps - self.starts[position]).astype(np.float64) / _NS_PER_DAY
+        return position, self.month_of_year[position], into
+
+    def clock(self, located, weights):
+        """C(t) for located moments under month weights (12,)."""
+        position, month, into = located
+        return self.before[position] @ weights + weights[month] * into
+
+    def exposure_sum(self, located, scale):
+        """sum_i scale_i F(t_i): a 12-vector, without building the (n x 12) matrix."""
+        position, month, into = located
+        counts = np.bincount(position, weights=scale, minlength=len(self.before))
+        return counts @ self.before + np.bincount(month, weights=scale * into, minlength=12)
+
+    def exposure(self, located):
+        """F(t_i) for each moment: an (n x 12) matrix (for small inputs and tests)."""
+        position, month, into = located
+        table = self.before[position].copy()
+        table[np.arange(len(position)), month] += into
+        return table
+
+
+def _check_index(index):
+    weights = np.asarray(index, dtype=np.float64)
+    if weights.shape != (12,) or not np.all(np.isfinite(weights)) or np.any(weights < 0):
+        raise OrderDataError("a month-of-year index must be twelve numbers of at least 0", value=index)
+    return weights
+
+
+def clock_between(starts, ends, index) -> np.ndarray:
+    """Lengths of periods [start, end) on the seasonal clock of ``index``, in average days.
+
+    Parameters
+    ----------
+    starts, ends : array_like of dates
+        Period starts and ends (ends not before starts).
+    index : array_like of 12 floats, or of shape (D, 12)
+        Month-of-year weights, January first; or D sets of them (draws).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``integral over [start, end) of index[month(t)] dt`` per period, shape
+        (n,); or (D, n) for D sets of weights.
+    """
+    weights = np.asarray(index, dtype=np.float64)
+    if weights.ndim == 2:
+        if weights.shape[1] != 12 or not np.all(np.isfinite(weights)) or np.any(weights < 0):
+            raise OrderDataError("month-of-year indexes must be rows of twelve numbers of at least 0")
+    else:
+        weights = _check_index(weights)
+    starts = pd.to_datetime(np.atleast_1d(starts))
+    ends = pd.to_datetime(np.atleast_1d(ends))
+    calendar = _Calendar(min(starts.min(), ends.min()), max(starts.max(), ends.max()))
+    if weights.ndim == 2:
+        days = calendar.exposure(calendar.locate(ends)) - calendar.exposure(calendar.locate(starts))
+        return weights @ days.T
+    return calendar.clock(calendar.locate(ends), weights) - calendar.clock(calendar.locate(starts), weights)
+
+
+def seasonal_days(start, days, index) -> float:
+    """Length of a period in "average days": each calendar day weighted by its month's index.
+
+    Parameters
+    ----------
+    start : date-like
+        Start of the period.
+    days : float
+        Its length in calendar days (>= 0).
+    index : array_like of 12 floats
+        Month-of-year index, January first.
+
+    Returns
+    -------
+    float
+        ``integral from start to start + days of index[month(t)] dt``, in days.
+        With every month at 1 it is ``days``.
+
+    Notes
+    -----
+    An active customer's ordering rate in a month is lambda x index; a Poisson
+    process with that rate counts the same orders as one with rate lambda run
+    on this seasonal clock, so the model's expected orders and simulations
+    for a calendar window of ``days`` are those for ``seasonal_days(...)``.
+    """
+    weights = _check_index(index)
+    try:
+        days = float(days)
+    except (TypeError, ValueError):
+        raise OrderDataError("the number of days must be a number", value=days, option="horizon") from None
+    if not math.isfinite(days) or days < 0:
+        raise OrderDataError("the number of days must be zero or more", value=days, option="horizon")
+    if days == 0:
+        return 0.0
+    start_ts = pd.Timestamp(start)
+    return float(clock_between([start_ts], [start_ts + pd.Timedelta(days=days)], weights)[0])
+
+
+def p_value_words(p: float) -> str:
+    """A test's p-value as people read it: "p < 0.001", "p = 0.004", "p = 0.27"."""
+    return "p < 0.001" if p < 0.001 else f"p = {p:.3f}" if p < 0.01 else f"p = {p:.2f}"
+
+
+def month_edges(start, end) -> pd.DatetimeIndex:
+    """``start``, every first-of-month strictly between, and ``end``."""
+    start, end = pd.Timestamp(start), pd.Timestamp(end)
+    inside = pd.date_range(start.normalize().replace(day=1), end, freq="MS")
+    inside = inside[(inside > start) & (inside < end)]
+    return pd.DatetimeIndex([start, *inside, end])
+
+
+# --------------------------------------------------------------------------- #
+# The joint fit: order-frequency parameters and month index together
+# --------------------------------------------------------------------------- #
+def _weights(free):
+    """Month weights from 11 free log-weights (December's is 0), scaled to a day-weighted average of 1."""
+    logs = np.append(free, 0.0)
+    raw = np.exp(logs - logs.max())
+    return raw / (raw @ MONTH_DAYS / MONTH_DAYS.sum())
+
+
+def _weights_jacobian(weights):
+    """d weights / d free log-weights: (12 x 11)."""
+    share = weights * MONTH_DAYS / MONTH_DAYS.sum()
+    jacobian = np.diag(weights) - np.outer(weights, share)
+    return jacobian[:, :11]
+
+
+class _SeasonalLikelihood:
+    """The log-likelihood of every repeat order's date under the model on a month-indexed clock.
+
+    log L(theta, w) = sum_i log L_model(x_i, C(l_i) - C(f_i), C(T) - C(f_i)) + sum_m n_m log w_m,
+
+    C the clock of weights w (:class:`_Calendar`), f_i, l_i the first and last
+    orders, T the "as of" date, n_m the repeat orders placed in month-of-year
+    m. The model's likelihood is the density of the repeat orders' times on
+    its own clock; the last sum is the Jacobian that turns it into the
+    density of their calendar dates (rate lambda w_m in month m). Without an
+    index (every w_m = 1) it is the plain likelihood on calendar days.
+    """
+
+    def __init__(self, x, first, last, as_of, repeat_by_month, model):
+        self.x = x
+        self.model = model
+        self.n = len(x)
+        self.repeat_by_month = repeat_by_month
+        calendar = _Calendar(min(first.min(), last.min()), as_of)
+        self.calendar = calendar
+        self.first = calendar.locate(first)
+        self.last = calendar.locate(last)
+        self.end = calendar.locate([as_of])
+
+    def histories(self, weights):
+        start = self.calendar.clock(self.first, weights)
+        to_last = np.maximum(self.calendar.clock(self.last, weights) - start, 0.0)
+        known = np.maximum(self.calendar.clock(self.end, weights)[0] - start, to_last)
+        return to_last, known
+
+    def value_and_gradient(self, point):
+        """Mean negative log-likelihood per customer and its gradient in (log params, free log-weights)."""
+        params = np.exp(point[:4])
+        weights = _weights(point[4:])
+        to_last, known = self.histories(weights)
+        values, parts, d_known, d_to_last = _slopes(params, self.x, to_last, known, self.model)
+        jacobian_term = float(self.repeat_by_month @ np.log(weights))
+        value = -(values.sum() + jacobian_term) / self.n
+        if not np.isfinite(value):
+            return 1e300, np.zeros(len(point))
+        grad_params = -np.array([part.sum() for part in parts]) * params / self.n
+        # d/dw of sum_i ll_i: T_i = C(T) - C(f_i), t_x,i = C(l_i) - C(f_i); C is linear in w.
+        cal = self.calendar
+        d_w = (d_known.sum() * cal.exposure(self.end)[0] - cal.exposure_sum(self.first, d_known + d_to_last)
+               + cal.exposure_sum(self.last, d_to_last) + self.repeat_by_month / weights)
+        grad_free = -(d_w @ _weights_jacobian(weights)) / self.n
+        return value, np.concatenate([grad_params, grad_free])
+
+    def log_likelihood(self, point):
+        return -self.value_and_gradient(point)[0] * self.n
+
+
+def _fit_with_index(likelihood: _SeasonalLikelihood, flat: FrequencyFit):
+    """Maximise the joint likelihood from the flat fit; returns (FrequencyFit, weights, covariance of all)."""
+    start = np.concatenate([np.log(flat.params), np.zeros(11)])
+    bounds = [(-_LOG_BOUND, _LOG_BOUND)] * 4 + [(-_INDEX_BOUND, _INDEX_BOUND)] * 11
+    result = optimize.minimize(likelihood.value_and_gradient, start, jac=True, method="L-BFGS-B",
+                               bounds=bounds, options={"maxiter": 5000, "ftol": 1e-15, "gtol": 1e-10})
+    point = result.x
+    hessian = hessian_by_differences(lambda p: likelihood.value_and_gradient(p)[1], point) * likelihood.n
+    mean_value, gradient = likelihood.value_and_gradient(point)
+    # Month weights live in a box of their own; judge_optimum sees them scaled to the parameters' box.
+    scaled = point.copy()
+    scaled[4:] *= _LOG_BOUND / _INDEX_BOUND
+    scaled_gradient = gradient.copy()
+    scaled_gradient[4:] *= _INDEX_BOUND / _LOG_BOUND
+    names = ("r", "alpha", "a", "b") + tuple(f"the {name} weight" for name in _MONTH_NAMES[:11])
+    scale_matrix = np.ones(15)
+    scale_matrix[4:] = _INDEX_BOUND / _LOG_BOUND
+    verdict = judge_optimum(scaled, scaled_gradient, hessian * np.outer(scale_matrix, scale_matrix),
+                            bound=_LOG_BOUND, names=names, scale=mean_value)
+    # Back from the scaled weights: cov(p) = D cov(q) D with p = D q.
+    covariance = verdict.covariance * np.outer(scale_matrix, scale_matrix)
+    params = np.exp(point[:4])
+    notes, repeat_customers = _data_notes(likelihood.x)
+    fit = FrequencyFit(r=float(params[0]), alpha=float(params[1]), a=float(params[2]), b=float(params[3]),
+                       log_likelihood=likelihood.log_likelihood(point), covariance=covariance[:4, :4],
+                       customers=likelihood.n, converged=verdict.reached, notes=tuple(notes) + verdict.notes,
+                       repeat_customers=repeat_customers, model=likelihood.model)
+    return fit, _weights(point[4:]), covariance
+
+
+# --------------------------------------------------------------------------- #
+# Public: the repeat-order model of a shop
+# --------------------------------------------------------------------------- #
+@dataclass(frozen=True)
+class RepeatOrderModel:
+    """How often the shop's customers order again, on the clock that suits its orders.
+
+    Attributes
+    ----------
+    fit : FrequencyFit
+        The chosen model's parameters, in days of the clock (average days when
+        a month index is used). ``fit.choice`` says how the model was chosen.
+    seasons : {"month", "none"}
+        Whether a month-of-year index is used.
+    index : numpy.ndarray
+        The month-of-year index (twelve ones without one); day-weighted average 1.
+    index_low, index_high : numpy.ndarray
+        90% ranges of each month's weight (NaN when unknown or without an index).
+    as_of : pandas.Timestamp
+        The end of the history.
+    history : pandas.DataFrame
+        Each customer's repeat history (``HISTORY_COLUMNS``) on the model's clock,
+        indexed like the customer table it came from.
+    calendar_history : pandas.DataFrame
+        The same histories in calendar days.
+    season_test : dict
+        The likelihood-ratio test of the month index: ``statistic``, ``df``,
+        ``p_value``, ``level``, ``log_likelihood_without``,
+        ``log_likelihood_with``; empty when it could not be run (less than a
+        full year, or seasons="none").
+    season_words : str
+        One sentence saying whether the index is used and why.
+    repeat_by_month : numpy.ndarray
+        Repeat orders placed in each month of the year, all years together.
+    covariance : numpy.ndarray or None
+        With a month index, the (15 x 15) covariance of the log-parameters and
+        the eleven free log-weights (December's is fixed before scaling), from
+        the joint fit; None without one (``fit.covariance`` then says it all).
+    """
+
+    fit: FrequencyFit
+    seasons: str
+    index: np.ndarray = field(repr=False)
+    index_low: np.ndarray = field(repr=False)
+    index_high: np.ndarray = field(repr=False)
+    as_of: pd.Timestamp
+    history: pd.DataFrame = field(repr=False)
+    calendar_history: pd.DataFrame = field(repr=False)
+    season_test: dict = field(default_factory=dict, repr=False)
+    season_words: str = ""
+    repeat_by_month: np.ndarray = field(default=None, repr=False)
+    covariance: np.ndarray | None = field(default=None, repr=False)
+
+    def draw(self, draws: int, *, seed=0) -> tuple:
+        """Parameter sets and month indexes drawn together from the fit's normal approximation.
+
+        Returns
+        -------
+        (numpy.ndarray, numpy.ndarray)
+            (draws x 4) rows of (r, alpha, a, b) and (draws x 12) month indexes
+            (all ones without a month index). Without a usable covariance
+            every row is the point estimate.
+        """
+        rng = np.random.default_rng(seed)
+        if self.seasons != "month":
+            return self.fit.draw_parameters(draws, seed=rng), np.ones((draws, 12))
+        point = np.concatenate([np.log(self.fit.params), self._free])
+        if self.covariance is None or not np.all(np.isfinite(self.covariance)):
+            return np.tile(np.asarray(self.fit.params), (draws, 1)), np.tile(self.index, (draws, 1))
+        drawn = rng.multivariate_normal(point, self.covariance, size=draws, method="cholesky")
+        params = np.exp(np.clip(drawn[:, :4], -_DRAW_BOUND, _DRAW_BOUND))
+        free = np.clip(drawn[:, 4:], -_INDEX_BOUND, _INDEX_BOUND)
+        return params, np.vstack([_weights(row) for row in free])
+
+    @property
+    def _free(self):
+        logs = np.log(self.index)
+        return logs[:11] - logs[11]
+
+    def clock_days(self, starts, ends) -> np.ndarray:
+        """Lengths of calendar periods [start, end) on the model's clock."""
+        return clock_between(starts, ends, self.index)
+
+    def horizon(self, days: float) -> float:
+        """The next ``days`` calendar days from ``as_of`` on the model's clock."""
+        return seasonal_days(self.as_of, days, self.index)
+
+    def season_table(self) -> pd.DataFrame | None:
+        """Twelve rows (``SEASON_COLUMNS``) when a month index is used, else None."""
+        if self.seasons != "month":
+            return None
+        return pd.DataFrame({"month": np.arange(1, 13), "repeat_orders": self.repeat_by_month,
+                             "index": self.index, "index_low": self.index_low, "index_high": self.index_high},
+                            columns=SEASON_COLUMNS)
+
+    def as_dict(self) -> dict:
+        """Plain numbers and strings, for JSON and the dashboard."""
+        def plain(values):
+            return [float(v) if np.isfinite(v) else None for v in values]
+
+        return {
+            "seasons": self.seasons,
+            "season_words": self.season_words,
+            "season_test": {k: (float(v) if isinstance(v, (float, np.floating)) else v)
+                            for k, v in self.season_test.items()},
+            "season_index": plain(self.index) if self.seasons == "month" else None,
+            "season_index_low": plain(self.index_low) if self.seasons == "month" else None,
+            "season_index_high": plain(self.index_high) if self.seasons == "month" else None,
+        }
+
+
+def _check_seasons(seasons):
+    if seasons not in SEASONS:
+        raise OrderDataError("the seasonal adjustment can be auto, month or none", value=seasons,
+                             option="seasons", fix="Choose auto, month or none")
+    return seasons
+
+
+def _repeat_orders_by_month(orders):
+    """Repeat orders (all but each customer's one earliest) by month of the year."""
+    table = pd.DataFrame({"customer": orders["customer"].to_numpy(),
+                          "order_date": pd.to_datetime(orders["order_date"]).to_numpy()})
+    table = table.sort_values(["customer", "order_date"], kind="stable")
+    repeats = table.loc[table["customer"].duplicated(), "order_date"]
+    return np.bincount(repeats.dt.month.to_numpy() - 1, minlength=12).astype(np.float64)
+
+
+def _index_range(weights, covariance, level=0.90):
+    """Delta-method ranges of the month weights from the covariance of the free log-weights."""
+    if covariance is None or not np.all(np.isfinite(covariance)):
+        nan = np.full(12, np.nan)
+        return nan, nan
+    jacobian = _weights_jacobian(weights)  # d w / d free
+    cov_w = jacobian @ covariance[4:, 4:] @ jacobian.T
+    # Ranges on the log scale keep them positive: sd(log w) = sd(w) / w.
+    sd_log = np.sqrt(np.maximum(np.diag(cov_w), 0.0)) / weights
+    z = float(special.ndtri(0.5 + level / 2))
+    return weights * np.exp(-z * sd_log), weights * np.exp(z * sd_log)
+
+
+def fit_repeat_orders(orders: pd.DataFrame, *, as_of=None, model: str = "auto", seasons: str = "auto",
+                      stats: pd.DataFrame | None = None) -> RepeatOrderModel:
+    """Fit the order-frequency model, with a month-of-year clock when the orders support one.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders with ``customer`` and ``order_date``, none after ``as_of``.
+    as_of : date-like, optional
+        End of the history; default the last order date.
+    model : {"auto", "bg-nbd", "mbg-nbd"}, default "auto"
+        The order-frequency model; ``"auto"`` fits both and keeps the one with
+        the higher likelihood (both have four parameters).
+    seasons : {"auto", "month", "none"}, default "auto"
+        ``"month"``: always use a month-of-year index (needs a full year of
+        orders); ``"none"``: calendar days; ``"auto"``: the index when a full
+        year exists and a likelihood-ratio test keeps it at the 5% level.
+    stats : pandas.DataFrame, optional
+        ``customer_statistics(orders)``, when already at hand.
+
+    Returns
+    -------
+    RepeatOrderModel
+
+    Raises
+    ------
+    OrderDataError
+        If no customer ordered twice, ``seasons="month"`` with less than a
+        full year of orders, or an unknown option.
+
+    Notes
+    -----
+    The month index is estimated jointly with the model's four parameters
+    by maximising the likelihood of every repeat order's date
+    (:class:`_SeasonalLikelihood`): each customer's first order, last order
+    and the "as of" date are placed on the clock, the model's likelihood is
+    taken on it, and the Jacobian ``sum_m n_m log w_m`` makes it a density of
+    calendar dates, comparable with the fit without an index. Eleven weights
+    are free (the twelfth follows from the scaling to a day-weighted average
+    of 1, which leaves the model's yearly level to alpha). The test statistic
+    ``2 (log L_with - log L_without)`` is compared with a chi-square
+    distribution with 11 degrees of freedom (Wilks' theorem).
+
+    With ``model="auto"`` and a month index possible, both models are fitted
+    with and without it; the model is chosen by likelihood among the fits
+    with the index, the index is then tested for that model, and if it is
+    not kept the model is chosen again among the fits without it.
+
+    The uncertainty of the index enters the covariance of the four
+    parameters (the marginal block of the joint inverse Hessian) but the
+    clock itself is taken as known in projections.
+    """
+    seasons = _check_seasons(seasons)
+    if model != "auto":
+        model = _check_model(model)
+    missing = [c for c in ("customer", "order_date") if c not in orders.columns]
+    if missing:
+        raise OrderDataError("the orders table lacks columns", value=", ".join(missing),
+                             fix="Read the file with forecasting.read_orders")
+    if len(orders) == 0:
+        raise OrderDataError("there are no orders to work with")
+    if stats is None:
+        stats = customer_statistics(orders)
+    history = repeat_history(stats, as_of=as_of)
+    as_of_ts = pd.Timestamp(stats["last_order"].max()) if as_of is None else pd.Timestamp(as_of)
+    x = history["repeat_orders"].to_numpy(dtype=np.float64)
+    check_repeat_history(x)
+    names = FREQUENCY_MODELS if model == "auto" else (model,)
+    flat = {name: fit_order_frequency(history, model=name) for name in names}
+
+    first = pd.to_datetime(stats["first_order"]).to_numpy(dtype="datetime64[ns]")
+    last = pd.to_datetime(stats["last_order"]).to_numpy(dtype="datetime64[ns]")
+    span = (as_of_ts - pd.Timestamp(first.min())) / pd.Timedelta(days=1)
+    repeat_by_month = _repeat_orders_by_month(orders)
+    ones = np.ones(12)
+    nan = np.full(12, np.nan)
+
+    def calendar_model(words, test=None):
+        chosen, choice = pick_by_likelihood(flat) if len(flat) > 1 else (names[0], "")
+        fit = replace(flat[chosen], choice=choice)
+        return RepeatOrderModel(fit=fit, seasons="none", index=ones, index_low=nan, index_high=nan,
+                                as_of=as_of_ts, history=history, calendar_history=history,
+                                season_test=test or {}, season_words=words,
+                                repeat_by_month=repeat_by_month)
+
+    if seasons == "none":
+        return calendar_model("Not adjusted for the time of year (switched off).")
+    if span < MIN_SEASON_DAYS:
+        if seasons == "month":
+            raise OrderDataError(
+                f"a month-of-year adjustment needs at least a full year of orders before {as_of_ts:%Y-%m-%d}; "
+                f"these cover {span:.0f} days", value=seasons, option="seasons",
+                fix="Use the automatic seasonal setting or none, or a longer order history")
+        return calendar_model(f"Not adjusted for the time of year: that needs a full year of orders "
+                              f"(these cover {span:.0f} days).")
+
+    seasonal = {}
+    for name in names:
+        likelihood = _SeasonalLikelihood(x, first, last, as_of_ts, repeat_by_month, name)
+        seasonal[name] = _fit_with_index(likelihood, flat[name])
+    chosen, choice = (pick_by_likelihood({n: f for n, (f, _, _) in seasonal.items()}) if len(names) > 1
+                      else (names[0], ""))
+    fit, weights, covariance = seasonal[chosen]
+    statistic = max(0.0, 2.0 * (fit.log_likelihood - flat[chosen].log_likelihood))
+    p_value = float(special.chdtrc(11, statistic))
+    test = {"statistic": statistic, "df": 11, "p_value": p_value, "level": SEASON_TEST_LEVEL,
+            "log_likelihood_without": flat[chosen].log_likelihood, "log_likelihood_with": fit.log_likelihood}
+    kept = p_value < SEASON_TEST_LEVEL and fit.usable
+    if seasons == "auto" and not kept:
+        reason = (f"the month-to-month differences in repeat orders are within chance (likelihood-ratio test "
+                  f"{p_value_words(p_value)})" if fit.usable else "the fit with a month index did not settle")
+        return calendar_model(f"Not adjusted for the time of year: {reason}.", test)
+    low, high = _index_range(weights, covariance)
+    busiest = int(np.argmax(weights))
+    quietest = int(np.argmin(weights))
+    words = (f"Adjusted for the time of year: repeat orders follow a month-of-year pattern (likelihood-ratio "
+             f"test {p_value_words(p_value)}{'' if kept else ', kept because it was asked for'}); "
+             f"busiest {_MONTH_NAMES[busiest]} ({weights[busiest]:.2f} x an average month), quietest "
+             f"{_MONTH_NAMES[quietest]} ({weights[quietest]:.2f} x).")
+    to_last, known = _SeasonalLikelihood(x, first, last, as_of_ts, repeat_by_month, chosen).histories(weights)
+    clock_history = pd.DataFrame({"repeat_orders": history["repeat_orders"].to_numpy(),
+                                  "days_to_last_order": to_last, "days_known": known},
+                                 index=history.index.copy(), columns=HISTORY_COLUMNS)
+    return RepeatOrderModel(fit=replace(fit, choice=choice), seasons="month", index=weights, index_low=low,
+                            index_high=high, as_of=as_of_ts, history=clock_history, calendar_history=history,
+                            season_test=test, season_words=words, repeat_by_month=repeat_by_month,
+                            covariance=covariance if np.all(np.isfinite(covariance)) else None)
