@@ -1,20 +1,27 @@
-"""Revenue outlook and value tiers: what customers are likely to bring in next.
+"""Revenue outlook and value tiers: what the shop's customers are likely to bring in next.
 
 Input: the cleaned orders table (``customer``, ``order_date``, ``order_value``,
 optionally ``segment``; see :mod:`forecasting.reading`).
 
 Output:
 
-* :func:`project_revenue` -- per customer, the expected number of orders in the
-  next ``horizon`` days (BG/NBD, :mod:`forecasting.frequency`) times the
-  expected value of their next order (:func:`forecasting.forecasts.forecast_customers`),
-  with two ranges -- one for the expected amount, one for the revenue that
-  will actually come in -- and the same summed per cohort (first-order month
-  or quarter, or any customer group such as the sales channel); optionally
-  adjusted for the month-of-year pattern of repeat orders.
-* :func:`backtest_outlook` -- the outlook fitted on orders before a cut-off
-  date, compared per cohort with the revenue that actually came in after it,
-  next to a run-rate baseline, with whether each range held the actual amount.
+* :func:`project_revenue` -- the whole revenue of the next ``horizon`` days:
+  the customers the shop already has (per customer, the expected number of
+  orders from the repeat-order model of :mod:`forecasting.seasons` times the
+  expected value of their next order from
+  :func:`forecasting.forecasts.forecast_customers`) and the new customers
+  still to come (arrivals from :mod:`forecasting.arrivals`, their first
+  order and their repeat orders by the same model). Each figure has two
+  ranges -- one for the expected amount, one for the revenue that will
+  actually come in -- and comes per group of existing customers (first-order
+  month or quarter, or any customer group such as the sales channel), for new
+  customers, in total, and month by month (the schedule).
+* :func:`backtest_outlook` -- the outlook made on orders before a cut-off
+  date, compared per group and in total with all revenue that came in after
+  it, next to the run-rate guess.
+* :func:`rolling_backtest` -- the same at several cut-offs spread over the
+  last year, with the mean absolute error beside the run-rate guess and a
+  recency/frequency-cell baseline, and a warning when that baseline does better.
 * :func:`assign_tiers`, :func:`tier_summary`, :func:`export_tiers` -- customers
   ranked by expected next-order value or by projected revenue, grouped into
   value tiers by shares of customers or by money thresholds, with each tier's
@@ -35,42 +42,54 @@ import numpy as np
 import pandas as pd
 from scipy import sparse, stats as sps
 
+from .arrivals import ArrivalFit, fit_arrivals
 from .customers import customer_statistics
 from .errors import OrderDataError
 from .exports import rounded_for_reading
 from .frequency import (
-    MIN_SEASON_DAYS,
-    FrequencyFit,
+    FREQUENCY_MODELS,
+    MODEL_NAMES,
     expected_orders_for_draws,
-    fit_order_frequency,
-    month_of_year_index,
-    repeat_history,
-    seasonal_days,
+    simulate_new_customer_orders,
     simulate_orders_ahead,
 )
+from .options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
+from .seasons import SEASONS, RepeatOrderModel, clock_between, fit_repeat_orders, month_edges
 
 __all__ = [
     "COHORT_PERIODS",
     "RANK_BY",
     "SEASONS",
+    "FREQUENCY_CHOICES",
+    "NEW_CUSTOMERS",
     "OUTLOOK_COLUMNS",
     "COHORT_COLUMNS",
+    "SCHEDULE_COLUMNS",
     "BACKTEST_COLUMNS",
+    "ROLLING_COLUMNS",
     "TIER_SUMMARY_COLUMNS",
     "Outlook",
     "OutlookBacktest",
+    "RollingBacktest",
     "require_projection",
     "project_revenue",
     "backtest_outlook",
+    "rolling_backtest",
+    "rolling_cutoffs",
+    "cell_baseline",
     "assign_tiers",
     "tier_summary",
+    "tier_lists",
+    "tier_csv_texts",
     "export_tiers",
 ]
 
 COHORT_PERIODS = ("month", "quarter")
 RANK_BY = ("value", "revenue")
-# "auto": the month-of-year adjustment when a full year of history exists (see project_revenue).
-SEASONS = ("auto", "month", "none")
+#: The order-frequency model: chosen from the shop's orders ("auto"), or one of FREQUENCY_MODELS.
+FREQUENCY_CHOICES = ("auto",) + FREQUENCY_MODELS
+#: The group label of customers who have not yet placed their first order.
+NEW_CUSTOMERS = "(new customers)"
 
 OUTLOOK_COLUMNS = [
     "customer",
@@ -104,6 +123,17 @@ COHORT_COLUMNS = [
     "revenue_range_high",
     "share_of_projected_revenue",
 ]
+SCHEDULE_COLUMNS = [
+    "month",
+    "days",
+    "expected_orders_existing",
+    "projected_revenue_existing",
+    "new_customers",
+    "expected_orders_new",
+    "projected_revenue_new",
+    "projected_revenue",
+    "cumulative_revenue",
+]
 BACKTEST_COLUMNS = [
     "cohort",
     "customers",
@@ -120,6 +150,30 @@ BACKTEST_COLUMNS = [
     "run_rate_error_pct",
     "actual_inside_interval",
     "actual_inside_revenue_range",
+]
+ROLLING_COLUMNS = [
+    "cutoff",
+    "window_days",
+    "actual_revenue",
+    "projected_revenue",
+    "revenue_range_low",
+    "revenue_range_high",
+    "error_pct",
+    "inside_revenue_range",
+    "actual_revenue_existing",
+    "projected_revenue_existing",
+    "error_existing_pct",
+    "actual_revenue_new",
+    "projected_revenue_new",
+    "error_new_pct",
+    "run_rate_revenue",
+    "run_rate_error_pct",
+    "cell_revenue",
+    "cell_error_pct",
+    "cell_revenue_existing",
+    "cell_error_existing_pct",
+    "seasons",
+    "frequency_model",
 ]
 TIER_SUMMARY_COLUMNS = [
     "tier",
@@ -144,20 +198,33 @@ _CELLS_PER_CHUNK = 2_000_000
 _SIMULATION_CELLS_PER_CHUNK = 500_000
 _ORDERS_PER_BLOCK = 1_000_000
 _NO_GROUP = "(none)"
+# A projection within this share of actual revenue counts as "within 10%" in rolling checks.
+CLOSE_ENOUGH = 0.10
+# Rolling checks: how many cut-offs by default (at least MIN_CUTOFFS), spread over the last year.
+DEFAULT_CUTOFFS = 10
+MIN_CUTOFFS = 6
+_ROLLING_SPAN_DAYS = 365
+# Draws of the simulations at each cut-off of a rolling check (its figures are the point projections;
+# the ranges only say whether each actual amount fell inside).
+_ROLLING_DRAWS = 100
+# The cell baseline "clearly beats" the model when the model's typical miss on existing customers is above
+# 5% and the baseline's is at most two thirds of it (our rule, see _slowing_down_warning).
+_WARN_ABOVE_PCT = 5.0
+_WARN_SHARE = 2.0 / 3.0
 
 
 # --------------------------------------------------------------------------- #
 # Option checks (before any heavy work)
 # --------------------------------------------------------------------------- #
-def _check_horizon(horizon, option="--horizon"):
+def _check_horizon(horizon, option="horizon"):
     try:
         value = float(horizon)
     except (TypeError, ValueError):
-        raise OrderDataError(f"{option} must be a number of days", value=horizon,
-                             fix=f"Use for example {option} 90") from None
+        raise OrderDataError("the horizon must be a number of days", value=horizon, option=option,
+                             fix="Give a number of days such as 90") from None
     if not math.isfinite(value) or value <= 0:
-        raise OrderDataError(f"{option} must be more than zero days", value=horizon,
-                             fix=f"Use for example {option} 90")
+        raise OrderDataError("the horizon must be more than zero days", value=horizon, option=option,
+                             fix="Give a number of days such as 90")
     return value
 
 
@@ -165,16 +232,18 @@ def _check_level(level):
     try:
         value = float(level)
     except (TypeError, ValueError):
-        raise OrderDataError("the interval level must be a number between 0 and 1", value=level) from None
+        raise OrderDataError("the interval level must be a number between 0 and 1", value=level,
+                             option="level") from None
     if not 0 < value < 1:
-        raise OrderDataError("the interval level must be between 0 and 1", value=level,
-                             fix="Use for example 0.9 for a 90% interval")
+        raise OrderDataError("the interval level must be between 0 and 1", value=level, option="level",
+                             fix="Give for example 0.9 for a 90% range")
     return value
 
 
 def _check_draws(draws):
     if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 20:
-        raise OrderDataError("the number of draws must be a whole number of at least 20", value=draws)
+        raise OrderDataError("the number of draws must be a whole number of at least 20", value=draws,
+                             option="draws")
     return int(draws)
 
 
@@ -198,18 +267,24 @@ def _check_by(by, orders):
     available = [c for c in orders.columns if c not in not_groups]
     raise OrderDataError(
         "customers can be grouped by first-order month or quarter, or by a column of the orders",
-        column="--by",
-        value=by,
-        fix="Use --by month, --by quarter" + (f" or one of: {', '.join(available)}" if available
-                                              else " or name a group column with --segment"),
+        value=by, option="by",
+        fix="Group by month or quarter" + (f", or by one of: {', '.join(available)}" if available
+                                           else ", or read the file with a segment column"),
     )
 
 
 def _check_seasons(seasons):
     if seasons not in SEASONS:
-        raise OrderDataError("the seasonal adjustment can be auto, month or none", column="--seasons",
-                             value=seasons, fix="Use --seasons auto, --seasons month or --seasons none")
+        raise OrderDataError("the seasonal adjustment can be auto, month or none", value=seasons,
+                             option="seasons", fix="Choose auto, month or none")
     return seasons
+
+
+def _check_frequency_model(model):
+    if model not in FREQUENCY_CHOICES:
+        raise OrderDataError("the order-frequency model can be auto, bg-nbd or mbg-nbd", value=model,
+                             option="frequency_model", fix="Choose auto, bg-nbd or mbg-nbd")
+    return model
 
 
 def _parse_date(value, option):
@@ -218,7 +293,9 @@ def _parse_date(value, option):
     except (TypeError, ValueError):
         stamp = pd.NaT
     if pd.isna(stamp):
-        raise OrderDataError(f"{option} is not a date", value=value, fix="Give a date such as 2026-05-01")
+        what = {"cutoff": "the cut-off", "as_of": "the 'as of' date"}.get(option, option)
+        raise OrderDataError(f"{what} is not a date", value=value, option=option,
+                             fix="Give a date such as 2026-05-01")
     return stamp
 
 
@@ -252,7 +329,14 @@ def _forecasts_for(stats, orders, *, method, variance, forecasts):
     if forecasts is None:
         from .forecasts import forecast_customers  # the estimators' public door
 
-        forecasts = forecast_customers(stats, method=method, variance=variance, orders=orders)
+        try:
+            forecasts = forecast_customers(stats, method=method, variance=variance, orders=orders)
+        except OrderDataError:
+            if variance != "auto":
+                raise
+            # A forecasting library whose spread models do not include "auto" chooses the spread
+            # itself when left to its default (with the automatic method, as the dashboard asks).
+            forecasts = forecast_customers(stats, method=method, orders=orders)
     needed = ["customer", "expected_next_order", "expected_low", "expected_high", "own_history_weight"]
     missing = [c for c in needed if c not in forecasts.columns]
     if missing:
@@ -267,30 +351,31 @@ def _forecasts_for(stats, orders, *, method, variance, forecasts):
     return aligned, fit
 
 
-def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n_groups, level, rng):
-    """Per-customer and per-group ends of the interval of the expected amount, from joint draws.
+def _simulate(params_draws, x, t_x, age, horizon, value_mean, value_sd, codes, n_groups, level, rng, model):
+    """Per-customer ends of the interval of the expected amount, and each group's draws.
 
-    Each draw d takes one BG/NBD parameter set (shared by every customer, so
-    cohort totals carry its correlation) and, independently per customer, a
-    next-order value from a Gamma distribution with mean value_mean and
-    standard deviation value_sd; revenue is expected orders(d) x value(d).
+    Each draw d takes one parameter set of the order-frequency model (shared
+    by every customer, so group totals carry its correlation) and,
+    independently per customer, a next-order value from a Gamma distribution
+    with mean value_mean and standard deviation value_sd; revenue is
+    expected orders(d) x value(d).
     """
     draws = params_draws.shape[0]
 
     def revenue_of(part):
-        orders_ahead = expected_orders_for_draws(params_draws, x[part], t_x[part], age[part], horizon)
+        orders_ahead = expected_orders_for_draws(params_draws, x[part], t_x[part], age[part], horizon, model=model)
         return orders_ahead * _value_draws(value_mean[part], value_sd[part], draws, rng)
 
     return _quantiles_of_draws(revenue_of, len(x), draws, _CELLS_PER_CHUNK, codes, n_groups, level)
 
 
 def _quantiles_of_draws(revenue_of, n, draws, cells_per_chunk, codes, n_groups, level):
-    """Per-customer, per-group and total ends of the central ``level`` interval of revenue draws.
+    """Per-customer ends of the central ``level`` interval of revenue draws, and the (draws x groups) sums.
 
     ``revenue_of(part)`` gives the draws (draws x customers) for the customers in the slice
     ``part``; customers are taken a chunk at a time so that memory stays bounded.
     """
-    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
+    low_q, high_q = _tails(level)
     cust_low = np.empty(n)
     cust_high = np.empty(n)
     group_sums = np.zeros((draws, n_groups))
@@ -300,9 +385,11 @@ def _quantiles_of_draws(revenue_of, n, draws, cells_per_chunk, codes, n_groups, 
         revenue = revenue_of(part)
         cust_low[part], cust_high[part] = np.quantile(revenue, [low_q, high_q], axis=0)
         group_sums += _group_sums(revenue, codes[part], n_groups)
-    group_low, group_high = np.quantile(group_sums, [low_q, high_q], axis=0)
-    total_low, total_high = np.quantile(group_sums.sum(axis=1), [low_q, high_q])
-    return cust_low, cust_high, group_low, group_high, float(total_low), float(total_high)
+    return cust_low, cust_high, group_sums
+
+
+def _tails(level):
+    return (1 - level) / 2, 1 - (1 - level) / 2
 
 
 def _value_draws(mean, sd, draws, rng):
@@ -396,17 +483,17 @@ def _spend_draws(counts, order_sd, rng):
 
 
 def _simulate_revenue(params_draws, x, t_x, age, horizon, centre, level_sd, order_sd, codes, n_groups, level,
-                      rng):
-    """Quantiles of simulated actual revenue per customer, per group and in total.
+                      rng, model):
+    """Quantiles of simulated actual revenue per customer, and each group's draws.
 
-    Draw d: BG/NBD parameters params_draws[d]; per customer, orders in the
-    horizon from the posterior (simulate_orders_ahead); each order's value
+    Draw d: the model's parameters params_draws[d]; per customer, orders in
+    the horizon from the posterior (simulate_orders_ahead); each order's value
     from the customer's lognormal (_order_value_model).
     """
     draws = params_draws.shape[0]
 
     def revenue_of(part):
-        counts = simulate_orders_ahead(params_draws, x[part], t_x[part], age[part], horizon, seed=rng)
+        counts = simulate_orders_ahead(params_draws, x[part], t_x[part], age[part], horizon, seed=rng, model=model)
         spend = _spend_draws(counts, order_sd[part], rng)
         level_shift = level_sd[part] * rng.standard_normal((draws, part.stop - part.start))
         return spend * np.exp(centre[part] + level_shift)
@@ -414,63 +501,228 @@ def _simulate_revenue(params_draws, x, t_x, age, horizon, centre, level_sd, orde
     return _quantiles_of_draws(revenue_of, len(x), draws, _SIMULATION_CELLS_PER_CHUNK, codes, n_groups, level)
 
 
-def _seasonal_horizon(orders, stats, fit, *, seasons, as_of, horizon):
-    """The horizon on the seasonal clock, and the month index used (None without one)."""
-    if seasons == "none" or not fit.usable:
-        return horizon, None
-    history_days = (as_of - pd.Timestamp(stats["first_order"].min())) / pd.Timedelta(days=1)
-    if seasons == "auto" and history_days < MIN_SEASON_DAYS:
-        return horizon, None
-    index = month_of_year_index(orders, fit, as_of=as_of)
-    return seasonal_days(as_of, horizon, index["index"].to_numpy()), index
+def _new_customer_values(orders: pd.DataFrame) -> dict:
+    """What a new customer's orders are worth, from the shop's customers so far.
+
+    ``first_mean`` is the average first order; ``repeat_mean`` is all repeat
+    orders' value over their number (a ratio estimate: the value per repeat
+    order across customers, weighted as a new customer's repeat orders will
+    be); each with a standard error (the ratio's from the customers' totals,
+    delta method, customers counted as independent units). The samples are
+    kept for the simulation of what may actually come in.
+    """
+    table = pd.DataFrame({"customer": orders["customer"].to_numpy(),
+                          "order_date": pd.to_datetime(orders["order_date"]).to_numpy(),
+                          "order_value": orders["order_value"].to_numpy(dtype=np.float64)})
+    table = table.sort_values(["customer", "order_date"], kind="stable")
+    repeat = table["customer"].duplicated().to_numpy()
+    values = table["order_value"].to_numpy()
+    first = values[~repeat]
+    later = values[repeat]
+    first_mean = float(first.mean())
+    first_se = float(first.std(ddof=1) / math.sqrt(len(first))) if len(first) > 1 else 0.0
+    if len(later):
+        codes = pd.factorize(table["customer"].to_numpy()[repeat])[0]
+        totals = np.bincount(codes, weights=later)
+        counts = np.bincount(codes).astype(np.float64)
+        repeat_mean = float(later.sum() / len(later))
+        repeat_se = float(np.sqrt(np.sum((totals - repeat_mean * counts) ** 2)) / counts.sum())
+    else:
+        later = first
+        repeat_mean, repeat_se = first_mean, first_se
+    return {"first_mean": first_mean, "first_se": first_se, "repeat_mean": repeat_mean, "repeat_se": repeat_se,
+            "first_values": first, "repeat_values": later}
 
 
-def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, level, draws, seed, seasons):
-    """Shared work of project_revenue and backtest_outlook; returns tables, the fit and the seasons used."""
-    history = repeat_history(stats, as_of=as_of)
-    if seasons == "month":
-        history_days = (as_of - pd.Timestamp(stats["first_order"].min())) / pd.Timedelta(days=1)
-        if history_days < MIN_SEASON_DAYS:
-            raise OrderDataError(
-                f"a month-of-year adjustment needs at least a full year of orders before "
-                f"{as_of:%Y-%m-%d}; these cover {history_days:.0f} days",
-                column="--seasons", value=seasons, fix="Use --seasons auto or --seasons none")
-    fit = fit_order_frequency(history)
+def _positive_normal(mean, sd, size, rng):
+    """Normal draws kept above a hundredth of the mean (an average order value cannot be negative)."""
+    return np.maximum(rng.normal(mean, sd, size), 0.01 * mean)
+
+
+def _project_new(arrivals: ArrivalFit, repeat_model: RepeatOrderModel, values: dict, *, as_of, horizon,
+                 params_draws, index_draws, rng_expected, rng_actual):
+    """New customers of the next ``horizon`` days: point figures, draws, and figures per day piece.
+
+    Each piece of the window (cut at midnights) expects ``e_d`` arrivals; each
+    places a first order worth ``first_mean`` and then, on the repeat-order
+    model's clock, ``E[X(C(end) - C(s_d))]`` repeat orders worth
+    ``repeat_mean`` each before the window closes (s_d the piece's midpoint).
+    """
+    end = as_of + pd.Timedelta(days=horizon)
+    middles, lengths, expected = arrivals.expected(as_of, end)
+    fit = repeat_model.fit
+    ends = np.repeat(end.to_datetime64().astype("datetime64[ns]"), len(middles))
+    remaining = clock_between(middles, ends, repeat_model.index) if len(middles) else np.array([])
+    repeats = fit.new_customer_orders(remaining)
+    first_mean, repeat_mean = values["first_mean"], values["repeat_mean"]
+    revenue = float(np.sum(expected * (first_mean + repeat_mean * repeats)))
+
+    draws = params_draws.shape[0]
+    pieces = len(middles)
+    zeros = np.zeros(pieces)
+    # Each draw's own clock (month index drawn with the parameters).
+    remaining_drawn = (clock_between(middles, ends, index_draws) if pieces else np.zeros((draws, 0)))
+    arrivals_drawn = arrivals.expected_draws(as_of, end, draws, rng_expected)
+    repeats_drawn = expected_orders_for_draws(params_draws, zeros, zeros, zeros, remaining_drawn, model=fit.model)
+    first_drawn = _positive_normal(first_mean, values["first_se"], draws, rng_expected)
+    repeat_drawn = _positive_normal(repeat_mean, values["repeat_se"], draws, rng_expected)
+    expected_draws = np.sum(arrivals_drawn * (first_drawn[:, None] + repeat_drawn[:, None] * repeats_drawn), axis=1)
+
+    # What may actually come in: how many arrive, what each first order is worth (drawn from the shop's
+    # first orders), how many repeat orders each places (the model's story) and what those are worth.
+    counts = arrivals.simulate_counts(arrivals_drawn, rng_actual)
+    draw_of = np.repeat(np.arange(draws), counts.sum(axis=1))
+    piece_of = np.repeat(np.tile(np.arange(pieces), draws), counts.ravel())
+    spend = values["first_values"][rng_actual.integers(0, len(values["first_values"]), len(draw_of))]
+    placed = simulate_new_customer_orders(params_draws[draw_of], remaining_drawn[draw_of, piece_of],
+                                          seed=rng_actual, model=fit.model)
+    if placed.sum():
+        owner = np.repeat(np.arange(len(placed)), placed)
+        picked = values["repeat_values"][rng_actual.integers(0, len(values["repeat_values"]), len(owner))]
+        spend = spend + np.bincount(owner, weights=picked, minlength=len(placed))
+    actual_draws = np.bincount(draw_of, weights=spend, minlength=draws)
+    return {
+        "revenue": revenue,
+        "customers": float(expected.sum()),
+        "orders": float(np.sum(expected * (1.0 + repeats))),
+        "expected_draws": expected_draws,
+        "actual_draws": actual_draws,
+        "middles": middles,
+        "expected": expected,
+    }
+
+
+def _schedule(repeat_model: RepeatOrderModel, history, value, new, values, *, as_of, horizon) -> pd.DataFrame:
+    """Projected revenue month by month over the horizon (point figures), existing and new customers.
+
+    A customer's expected orders up to each month edge e are E[Y(C(e) - C(as_of))]
+    on the model's clock; a month's orders are the differences. New customers
+    arriving on piece d place their first order then and their repeat orders
+    up to edge e number E[X(C(e) - C(s_d))].
+    """
+    end = as_of + pd.Timedelta(days=horizon)
+    edges = month_edges(as_of, end)
+    fit = repeat_model.fit
+    edge_times = edges.to_numpy(dtype="datetime64[ns]")
+    starts = np.repeat(as_of.to_datetime64().astype("datetime64[ns]"), len(edges))
+    clock_edges = clock_between(starts, edge_times, repeat_model.index)
+    cumulative_orders = np.array([float(np.sum(fit.expected_orders(history, c))) if c > 0 else 0.0
+                                  for c in clock_edges])
+    cumulative_revenue = np.array([float(np.sum(value * fit.expected_orders(history, c))) if c > 0 else 0.0
+                                   for c in clock_edges])
+    months = len(edges) - 1
+    table = pd.DataFrame({
+        "month": [f"{stamp:%Y-%m}" for stamp in edges[:-1]],
+        "days": np.diff(edge_times).astype(np.float64) / 86400e9,
+        "expected_orders_existing": np.diff(cumulative_orders),
+        "projected_revenue_existing": np.diff(cumulative_revenue),
+        "new_customers": np.zeros(months),
+        "expected_orders_new": np.zeros(months),
+        "projected_revenue_new": np.zeros(months),
+    })
+    if new is not None and len(new["middles"]):
+        middles, expected = new["middles"], new["expected"]
+        arrival_month = np.clip(np.searchsorted(edge_times, middles, side="right") - 1, 0, months - 1)
+        table["new_customers"] = np.bincount(arrival_month, weights=expected, minlength=months)
+        # Repeat orders of each piece's arrivals up to each later edge.
+        after = clock_between(np.repeat(middles, len(edges)), np.tile(edge_times, len(middles)),
+                              repeat_model.index).reshape(len(middles), len(edges))
+        cumulative = fit.new_customer_orders(np.maximum(after, 0.0))
+        repeat_by_month = np.diff(cumulative, axis=1).clip(min=0.0).T @ expected
+        first_by_month = table["new_customers"].to_numpy()
+        table["expected_orders_new"] = first_by_month + repeat_by_month
+        table["projected_revenue_new"] = first_by_month * values["first_mean"] + repeat_by_month * values["repeat_mean"]
+    table["projected_revenue"] = table["projected_revenue_existing"] + table["projected_revenue_new"]
+    table["cumulative_revenue"] = table["projected_revenue"].cumsum()
+    return table[SCHEDULE_COLUMNS]
+
+
+def _part(total, draws_expected, draws_actual, level):
+    """A figure with its two ranges: (low, high) of the expected amount and of what may come in."""
+    low_q, high_q = _tails(level)
+    low, high = np.quantile(draws_expected, [low_q, high_q])
+    range_low, range_high = np.quantile(draws_actual, [low_q, high_q])
+    return min(float(low), total), max(float(high), total), float(range_low), float(range_high)
+
+
+def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, level, draws, seed, seasons,
+             frequency_model, new_customers):
+    """Shared work of project_revenue and backtest_outlook."""
+    repeat_model = fit_repeat_orders(orders, as_of=as_of, model=frequency_model, seasons=seasons, stats=stats)
+    fit = repeat_model.fit
+    history = repeat_model.history
+    clock = repeat_model.horizon(horizon)
     aligned, forecast_fit = _forecasts_for(stats, orders, method=method, variance=variance, forecasts=forecasts)
     x = history["repeat_orders"].to_numpy(dtype=np.float64)
     t_x = history["days_to_last_order"].to_numpy(dtype=np.float64)
     age = history["days_known"].to_numpy(dtype=np.float64)
-    clock, season_index = _seasonal_horizon(orders, stats, fit, seasons=seasons, as_of=as_of, horizon=horizon)
+    n = len(history)
     if fit.usable:
         expected_orders = fit.expected_orders(history, clock)
         chance = fit.chance_active(history)
     else:
         # No projection from a fit that cannot support one (see fit.notes).
-        expected_orders = np.full(len(history), np.nan)
-        chance = np.full(len(history), np.nan)
+        expected_orders = np.full(n, np.nan)
+        chance = np.full(n, np.nan)
     value = aligned["expected_next_order"].to_numpy(dtype=np.float64)
     value_sd = _value_spread(aligned, float(forecast_fit.get("level", 0.90)))
 
     labels = _group_labels(stats, orders, by)
     codes, group_names = pd.factorize(labels, sort=True)
+    group_names = list(np.asarray(group_names, dtype=object))
     n_groups = len(group_names)
+    projected = expected_orders * value
+    group_revenue = np.bincount(codes, weights=projected, minlength=n_groups)
+    group_orders = np.bincount(codes, weights=expected_orders, minlength=n_groups)
+    group_customers = np.bincount(codes, minlength=n_groups).astype(np.float64)
+    arrivals = new = values = None
     if fit.usable:
         rng = np.random.default_rng(seed)
-        params_draws = fit.draw_parameters(draws, seed=rng)
-        cust_low, cust_high, group_low, group_high, total_low, total_high = _simulate(
-            params_draws, x, t_x, age, clock, value, value_sd, codes, n_groups, level, rng)
-        # Its own stream, so the interval of the expected amount does not move when this one changes.
-        chance_rng = np.random.default_rng(np.random.SeedSequence(entropy=seed, spawn_key=(1,)))
+        params_draws, index_draws = repeat_model.draw(draws, seed=rng)
+        # The horizon on each draw's clock: the month index's uncertainty enters both ranges.
+        clock_draws = (clock_between([as_of], [as_of + pd.Timedelta(days=horizon)], index_draws)
+                       if repeat_model.seasons == "month" else np.full((draws, 1), clock))
+        cust_low, cust_high, expected_sums = _simulate(params_draws, x, t_x, age, clock_draws, value, value_sd,
+                                                       codes, n_groups, level, rng, fit.model)
+        # Their own streams, so that one range does not move when another changes.
+        streams = np.random.SeedSequence(entropy=seed, spawn_key=(1,)).spawn(3)
+        chance_rng = np.random.default_rng(streams[0])
         centre, level_sd, order_sd = _order_value_model(aligned, forecast_fit, stats)
-        (cust_range_low, cust_range_high, group_range_low, group_range_high, total_range_low,
-         total_range_high) = _simulate_revenue(params_draws, x, t_x, age, clock, centre, level_sd, order_sd,
-                                               codes, n_groups, level, chance_rng)
+        cust_range_low, cust_range_high, actual_sums = _simulate_revenue(
+            params_draws, x, t_x, age, clock_draws, centre, level_sd, order_sd, codes, n_groups, level, chance_rng,
+            fit.model)
+        if new_customers:
+            arrivals = fit_arrivals(stats["first_order"], as_of=as_of)
+            values = _new_customer_values(orders)
+            new = _project_new(arrivals, repeat_model, values, as_of=as_of, horizon=horizon,
+                               params_draws=params_draws, index_draws=index_draws,
+                               rng_expected=np.random.default_rng(streams[1]),
+                               rng_actual=np.random.default_rng(streams[2]))
+            expected_sums = np.column_stack([expected_sums, new["expected_draws"]])
+            actual_sums = np.column_stack([actual_sums, new["actual_draws"]])
+            group_names.append(NEW_CUSTOMERS)
+            group_revenue = np.append(group_revenue, new["revenue"])
+            group_orders = np.append(group_orders, new["orders"])
+            group_customers = np.append(group_customers, new["customers"])
+        low_q, high_q = _tails(level)
+        group_low, group_high = np.quantile(expected_sums, [low_q, high_q], axis=0)
+        group_range_low, group_range_high = np.quantile(actual_sums, [low_q, high_q], axis=0)
+        existing_columns = slice(0, n_groups)
+        parts = {
+            "existing": _part(float(projected.sum()), expected_sums[:, existing_columns].sum(axis=1),
+                              actual_sums[:, existing_columns].sum(axis=1), level),
+            "whole": _part(float(group_revenue.sum()), expected_sums.sum(axis=1), actual_sums.sum(axis=1), level),
+        }
+        if new is not None:
+            parts["new"] = _part(new["revenue"], new["expected_draws"], new["actual_draws"], level)
     else:
-        cust_low = cust_high = cust_range_low = cust_range_high = np.full(len(history), np.nan)
+        cust_low = cust_high = cust_range_low = cust_range_high = np.full(n, np.nan)
         group_low = group_high = group_range_low = group_range_high = np.full(n_groups, np.nan)
-        total_low = total_high = total_range_low = total_range_high = float("nan")
+        nan4 = (float("nan"),) * 4
+        parts = {"existing": nan4, "whole": nan4}
+        if new_customers:
+            parts["new"] = nan4
 
-    projected = expected_orders * value
     weight = aligned["own_history_weight"].to_numpy(dtype=np.float64)
     if "low_confidence" in aligned.columns:
         low_confidence = aligned["low_confidence"].to_numpy(dtype=bool)
@@ -483,7 +735,7 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             "orders": stats["orders"].to_numpy(dtype=np.int64),
             "first_order": stats["first_order"].to_numpy(),
             "last_order": stats["last_order"].to_numpy(),
-            "days_known": age,
+            "days_known": repeat_model.calendar_history["days_known"].to_numpy(dtype=np.float64),
             "chance_active": chance,
             "expected_orders": expected_orders,
             "expected_next_order": value,
@@ -501,32 +753,42 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             "revenue_range_high": cust_range_high,
         }
     )
-    group_revenue = np.bincount(codes, weights=projected, minlength=n_groups)
-    total = float(projected.sum())
+    total = float(group_revenue.sum())
     cohorts = pd.DataFrame(
         {
             "cohort": np.asarray(group_names, dtype=object),
-            "customers": np.bincount(codes, minlength=n_groups).astype(np.int64),
-            "expected_orders": np.bincount(codes, weights=expected_orders, minlength=n_groups),
+            "customers": group_customers,
+            "expected_orders": group_orders,
             "projected_revenue": group_revenue,
             "projected_low": np.minimum(group_low, group_revenue),
             "projected_high": np.maximum(group_high, group_revenue),
             "revenue_range_low": group_range_low,
             "revenue_range_high": group_range_high,
             "share_of_projected_revenue": (group_revenue / total if total > 0 else
-                                           np.full(n_groups, 0.0 if total == 0 else np.nan)),
+                                           np.full(len(group_names), 0.0 if total == 0 else np.nan)),
         }
     )
-    totals = {
-        "customers": int(len(stats)),
-        "expected_orders": float(expected_orders.sum()),
-        "projected_revenue": total,
-        "projected_low": min(total_low, total),
-        "projected_high": max(total_high, total),
-        "revenue_range_low": total_range_low,
-        "revenue_range_high": total_range_high,
-    }
-    return customers, cohorts, totals, fit, forecast_fit, clock, season_index
+    existing_total = float(projected.sum())
+    totals = {"customers": int(len(stats)),
+              "expected_orders": float(group_orders.sum()),
+              "projected_revenue": total}
+    totals.update(zip(("projected_low", "projected_high", "revenue_range_low", "revenue_range_high"),
+                      parts["whole"]))
+    totals["projected_revenue_existing"] = existing_total
+    totals.update(zip(("projected_existing_low", "projected_existing_high", "revenue_range_existing_low",
+                       "revenue_range_existing_high"), parts["existing"]))
+    totals["expected_orders_existing"] = float(expected_orders.sum())
+    if new_customers:
+        totals["projected_revenue_new"] = new["revenue"] if new is not None else float("nan")
+        totals.update(zip(("projected_new_low", "projected_new_high", "revenue_range_new_low",
+                           "revenue_range_new_high"), parts["new"]))
+        totals["new_customers_expected"] = new["customers"] if new is not None else float("nan")
+        totals["expected_orders_new"] = new["orders"] if new is not None else float("nan")
+    schedule = (_schedule(repeat_model, history, value, new, values, as_of=as_of, horizon=horizon)
+                if fit.usable else None)
+    return {"customers": customers, "cohorts": cohorts, "total": totals, "repeat_model": repeat_model,
+            "forecast_fit": forecast_fit, "clock": clock, "arrivals": arrivals, "new_values": values,
+            "schedule": schedule}
 
 
 # --------------------------------------------------------------------------- #
@@ -534,73 +796,113 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
 # --------------------------------------------------------------------------- #
 @dataclass(frozen=True)
 class Outlook:
-    """Projected revenue over a horizon, per customer and per group.
+    """Projected revenue over a horizon: in total, per group, per customer and month by month.
 
     Attributes
     ----------
     customers : pandas.DataFrame
-        One row per customer, columns ``OUTLOOK_COLUMNS``.
+        One row per existing customer, columns ``OUTLOOK_COLUMNS``.
     cohorts : pandas.DataFrame
-        One row per group, columns ``COHORT_COLUMNS``.
+        One row per group of existing customers, then (when new customers are
+        projected) one row ``NEW_CUSTOMERS``; columns ``COHORT_COLUMNS``. For
+        the new-customers row ``customers`` is the expected number of them.
     total : dict
-        ``customers``, ``expected_orders``, ``projected_revenue``,
-        ``projected_low``, ``projected_high`` (interval of the expected
-        amount), ``revenue_range_low``, ``revenue_range_high`` (range for the
-        revenue that will actually come in).
-    fit : FrequencyFit
-        The order-frequency model.
+        ``projected_revenue`` is the whole revenue (existing and new
+        customers), with ``projected_low`` / ``projected_high`` (interval of
+        the expected amount) and ``revenue_range_low`` / ``revenue_range_high``
+        (range for the revenue that will actually come in).
+        ``projected_revenue_existing`` and ``projected_revenue_new`` are its two
+        parts, each with the same four ends (``projected_existing_low``,
+        ``projected_existing_high``, ``revenue_range_existing_low``,
+        ``revenue_range_existing_high``, and ``..._new_...``); also
+        ``customers`` (existing), ``expected_orders`` (all),
+        ``expected_orders_existing``, ``expected_orders_new`` and
+        ``new_customers_expected``. Without new customers the ``_new`` keys
+        are absent and the whole is the existing part.
+    repeat_model : RepeatOrderModel
+        The repeat-order model (BG/NBD or MBG/NBD, with or without a month
+        index), :mod:`forecasting.seasons`.
+    arrivals : ArrivalFit or None
+        The model of new customers' arrivals.
+    schedule : pandas.DataFrame or None
+        Month by month (``SCHEDULE_COLUMNS``), point figures.
     forecast_fit : dict
         ``attrs["fit"]`` of the next-order forecasts used.
+    new_customer_values : dict or None
+        ``first_mean``, ``first_se``, ``repeat_mean``, ``repeat_se``: what a
+        new customer's first and repeat orders are worth on average.
     horizon_days, as_of, by, level, draws, seed
         The options the outlook was made with.
     seasons : str
         The seasonal adjustment used: ``"month"`` or ``"none"``.
     seasonal_days : float
-        The horizon on the seasonal clock (equal to ``horizon_days`` without
-        an adjustment): the expected orders are those of this many average days.
-    season_index : pandas.DataFrame or None
-        The month-of-year index used (:func:`forecasting.frequency.month_of_year_index`).
+        The horizon on the repeat-order clock (equal to ``horizon_days``
+        without an index): the expected orders are those of this many average days.
     """
 
     customers: pd.DataFrame
     cohorts: pd.DataFrame
     total: dict
-    fit: FrequencyFit
+    repeat_model: RepeatOrderModel = field(repr=False)
+    arrivals: ArrivalFit | None = field(repr=False)
+    schedule: pd.DataFrame | None = field(repr=False)
     forecast_fit: dict = field(repr=False)
+    new_customer_values: dict | None = field(repr=False)
     horizon_days: float
     as_of: pd.Timestamp
     by: str
     level: float
     draws: int
     seed: int
-    seasons: str = "none"
-    seasonal_days: float = float("nan")
-    season_index: pd.DataFrame | None = field(default=None, repr=False)
+
+    @property
+    def fit(self):
+        """The order-frequency fit (``repeat_model.fit``)."""
+        return self.repeat_model.fit
+
+    @property
+    def seasons(self) -> str:
+        return self.repeat_model.seasons
+
+    @property
+    def seasonal_days(self) -> float:
+        return self.repeat_model.horizon(self.horizon_days)
+
+    @property
+    def season_index(self) -> pd.DataFrame | None:
+        """The month index of repeat orders, when used (``RepeatOrderModel.season_table``)."""
+        return self.repeat_model.season_table()
 
     def summary(self) -> dict:
         """Plain numbers and strings, one object (for JSON and the dashboard)."""
+        values = self.new_customer_values
         return {
             "customers": self.total["customers"],
             "horizon_days": self.horizon_days,
             "as_of": self.as_of.isoformat(),
             "by": self.by,
             "level": self.level,
-            "total": dict(self.total),
+            "total": {key: _plain(value) for key, value in self.total.items()},
             "cohorts": _records(self.cohorts),
+            "schedule": None if self.schedule is None else _records(self.schedule),
             "order_frequency": self.fit.as_dict(),
+            "new_customers": None if self.arrivals is None else dict(
+                self.arrivals.as_dict(), **{k: values[k] for k in ("first_mean", "first_se", "repeat_mean",
+                                                                   "repeat_se")}),
             "method": self.forecast_fit.get("method"),
             "variance": self.forecast_fit.get("variance"),
             "seasons": self.seasons,
             "seasonal_days": self.seasonal_days,
-            "season_index": (None if self.season_index is None
-                             else [float(v) for v in self.season_index["index"]]),
+            **{key: value for key, value in self.repeat_model.as_dict().items() if key != "seasons"},
         }
 
 
-def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of=None, method: str = "mta",
-                    variance: str = "classic", forecasts: pd.DataFrame | None = None, level: float = 0.90,
-                    draws: int = 400, seed: int = 0, seasons: str = "auto") -> Outlook:
-    """Project each customer's revenue over the next ``horizon`` days, and per group.
+def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of=None,
+                    method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
+                    forecasts: pd.DataFrame | None = None, level: float = 0.90, draws: int = 400, seed: int = 0,
+                    seasons: str = DEFAULT_SEASONS, frequency_model: str = "auto",
+                    new_customers: bool = True) -> Outlook:
+    """Project the revenue of the next ``horizon`` days: existing customers, new ones, and the whole.
 
     Parameters
     ----------
@@ -610,29 +912,30 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     horizon : float
         Days ahead of ``as_of``.
     by : str, default "quarter"
-        Group customers by the ``"month"`` or ``"quarter"`` of their first
-        order, or by the name of a column of ``orders`` (the customer's latest
-        value, e.g. ``"segment"``).
+        Group existing customers by the ``"month"`` or ``"quarter"`` of their
+        first order, or by the name of a column of ``orders`` (the customer's
+        latest value, e.g. ``"segment"``).
     as_of : date-like, optional
         Date the projection starts from; default the last order date.
     method, variance : str
         Passed to :func:`forecasting.forecasts.forecast_customers` for the
-        expected next-order values.
+        expected next-order values; defaults from :mod:`forecasting.options`.
     forecasts : pandas.DataFrame, optional
         Ready-made output of ``forecast_customers`` for these customers (then
         ``method``/``variance`` are not used).
     level : float, default 0.90
-        Coverage of the intervals.
+        Coverage of the ranges.
     draws : int, default 400
-        Number of simulation draws for the intervals (at least 20).
+        Number of simulation draws for the ranges (at least 20).
     seed : int, default 0
-        Seed of the draws; the same seed gives the same intervals.
-    seasons : {"auto", "month", "none"}, default "auto"
-        Seasonal adjustment of the order rate in the horizon. ``"month"``: a
-        month-of-year index estimated from these orders (needs at least a
-        full year, ``MIN_SEASON_DAYS``); ``"none"``: the plain model;
-        ``"auto"``: ``"month"`` when a full year of orders exists, else
-        ``"none"``. See Notes for the backtests behind the default.
+        Seed of the draws; the same seed gives the same ranges.
+    seasons : {"auto", "month", "none"}
+        Month-of-year clock for repeat orders (:func:`forecasting.seasons.fit_repeat_orders`);
+        default from :mod:`forecasting.options`.
+    frequency_model : {"auto", "bg-nbd", "mbg-nbd"}, default "auto"
+        The order-frequency model; ``"auto"`` keeps the one with the higher likelihood.
+    new_customers : bool, default True
+        Project the customers still to come as well (the whole revenue).
 
     Returns
     -------
@@ -645,31 +948,41 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
 
     Notes
     -----
-    Projected revenue of a customer = E[orders in horizon | history] (BG/NBD
-    eq. 10, :func:`forecasting.frequency.expected_orders_ahead`) x expected
-    next-order value. Multiplying assumes how often a customer orders and how
-    much they spend per order are independent (the usual assumption of spend
-    models that sit on BG/NBD).
+    Existing customers. Projected revenue of a customer = E[orders in
+    horizon | history] (eq. 10 of BG/NBD or its MBG/NBD form,
+    :func:`forecasting.frequency.expected_orders_ahead`, on the model's clock)
+    x expected next-order value. Multiplying assumes how often a customer
+    orders and how much they spend per order are independent (the usual
+    assumption of spend models that sit on BG/NBD).
+
+    New customers. Arrivals per day from a Poisson regression of the shop's
+    first orders per day (:func:`forecasting.arrivals.fit_arrivals`, with a
+    month pattern and a trend when tests keep them); each arrival's first
+    order is worth the shop's average first order, and its repeat orders until
+    the window closes follow the same order-frequency model from x = 0
+    (eq. 7 or its MBG/NBD form) at the average value of a repeat order.
 
     Two ranges answer two questions.
 
     ``projected_low`` / ``projected_high`` -- *interval of the expected
     amount*: a parametric bootstrap of what the customers spend on average,
-    not of what they will actually spend. Each draw takes BG/NBD parameters
-    from the normal approximation of their log-scale estimates (inverse
-    Hessian) and, independently per customer, a next-order value with the
+    not of what they will actually spend. Each draw takes the model's
+    parameters from the normal approximation of their log-scale estimates
+    (inverse Hessian), per existing customer a next-order value with the
     forecast's expected value as mean and its interval's half-width / z as
     standard deviation (Gamma draws: they stay positive with the mean
-    unchanged where a normal cut at zero would not). Chance -- which
-    customers happen to order, and how much -- is not in it, so actual
-    revenue usually falls outside it.
+    unchanged where a normal cut at zero would not), the arrival model's
+    coefficients from their normal approximation and the average first and
+    repeat order values from theirs. Chance -- which customers happen to
+    order, and how much -- is not in it, so actual revenue usually falls
+    outside it.
 
     ``revenue_range_low`` / ``revenue_range_high`` -- *range for the revenue
     that will actually come in* (prediction interval), from a seeded
     simulation of the whole story per customer and draw: the same parameter
     draw; still active or not, the ordering rate and the stop chance drawn
     from the customer's posterior, and the orders in the horizon from the
-    BG/NBD process itself (:func:`forecasting.frequency.simulate_orders_ahead`);
+    model's process itself (:func:`forecasting.frequency.simulate_orders_ahead`);
     then each order's value. Order values are lognormal, derived from the
     forecasts' 80% next-order range ``next_order_low`` / ``next_order_high``:
     its log-width gives the customer's log spread ``s_t`` (``s_t =
@@ -682,91 +995,62 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     next-order value and the range is centred on the same projection as the
     point figure. Without a next-order range (a hand-made forecast table),
     each order spreads with the pooled log spread of the customers' own orders.
+    New customers: the number arriving on each day is drawn (Poisson, or
+    negative binomial when the daily counts spread more), each first order's
+    value is drawn from the shop's first orders, their repeat orders from the
+    model's story and each repeat order's value from the shop's repeat orders.
     Work is done in blocks of customers and of simulated orders, so memory
     stays bounded for any shop size and horizon.
 
     Both ranges treat customers' value forecasts as independent, which
-    ignores that shrunk forecasts share a shop-wide centre, and neither
-    includes the uncertainty of the seasonal index; new customers are never
-    in the outlook.
+    ignores that shrunk forecasts share a shop-wide centre. With a month
+    index, each draw takes the index together with the parameters (joint
+    normal approximation) and measures the window on its own clock; each
+    customer's past stays on the fitted clock (an error in a month's weight
+    moves a window of a few months far more than a history of years).
 
-    Seasons. The BG/NBD model has none: an active customer orders at the same
-    rate in every month. With ``seasons="month"`` the rate in each calendar
-    month is multiplied by a month-of-year index estimated from the orders up
-    to ``as_of`` only (:func:`forecasting.frequency.month_of_year_index`:
-    repeat orders per month against what the fitted model expects there,
-    pooled over years, shrunk toward 1 by their Poisson noise, averaging 1
-    over the year). A Poisson rate lambda x index is the same as rate lambda
-    on a seasonal clock, so the projection and both simulations use the
-    horizon measured in seasonal days
-    (:func:`forecasting.frequency.seasonal_days`); the fit itself and each
-    customer's history stay in calendar days.
-
-    Backtests on the demo shop (``demo_data/plant_shop_orders.csv``, orders
-    from 2024-11-01 to 2026-10-31; fitted on orders before each cut-off, MTA
-    forecasts, classic spread; error of the projected total against what the
-    already-known customers actually spent; the index sees only data before
-    the cut-off):
-
-    ====== ========== =============== ============ ============ ===============
-    window cut-off    actual revenue  error, none  error, month groups in range
-    ====== ========== =============== ============ ============ ===============
-    90 d   2025-11-15          29,962       +27.3%        +3.9%  3/5 -> 5/5
-    90 d   2026-01-01          36,308        +4.1%        +2.5%  4/5 -> 4/5
-    90 d   2026-02-15          49,312       -30.0%       -10.9%  4/6 -> 5/6
-    90 d   2026-04-01          57,693       -24.8%        -1.6%  4/6 -> 6/6
-    90 d   2026-05-15          41,038       +39.5%       +38.4%  3/7 -> 3/7
-    90 d   2026-07-01          37,728       +50.1%       +34.7%  3/7 -> 4/7
-    90 d   2026-08-03          40,616       +26.7%       +26.6%  5/8 -> 5/8
-    180 d  2025-11-15          67,051        +4.2%        +8.7%  5/5 -> 5/5
-    180 d  2026-01-01          75,016        -6.6%        +4.9%  4/5 -> 4/5
-    180 d  2026-02-15          75,704       -16.4%        -6.1%  4/6 -> 6/6
-    180 d  2026-04-01          82,452        -2.9%        +6.6%  5/6 -> 3/6
-    180 d  2026-05-05          69,781       +48.9%       +51.8%  2/7 -> 2/7
-    ====== ========== =============== ============ ============ ===============
-
-    ("groups in range": quarterly cohorts whose actual revenue fell inside
-    the 90% range for actual revenue, without -> with the index: 46 -> 52 of
-    73 in all; the interval of the expected amount held 23 and 24 of them.)
-    The 180-day windows overlap, so those five rows are not independent.
-
-    The default ``"auto"`` uses the index whenever a full year of history
-    exists, because over these cut-offs it nearly halves the typical miss
-    at 90 days (mean absolute error 28.9% -> 16.9%, better or about equal at
-    every cut-off) and leaves it about the same at 180
-    days (15.8% -> 15.6%: better at two cut-offs, worse at three, and the
-    average signed error moves from +5% to +13%). The misses that remain
-    after the busy spring (cut-offs from May to August, +27% to +52%) are
-    not seasonal: they come from customers silent for many months -- above
-    all one-time customers, whom BG/NBD treats as certain to still be active
-    -- and no seasonal index touches them. The demo's generator makes its
-    seasons as a seasonal clock, the same shape the index assumes, so its
-    gain there is a best case; on a simulated shop without seasons the
-    index shrinks to 1 and changes nothing.
+    Seasons. With a month index (``seasons="month"``, or ``"auto"`` when a
+    likelihood-ratio test keeps it) every customer's history, the fit and
+    the window are measured on the same seasonal clock; see
+    :mod:`forecasting.seasons`. The README lists rolling backtests on the
+    demo shop and on simulated shops.
 
     References
     ----------
     Fader, P. S., Hardie, B. G. S. and Lee, K. L. (2005). "Counting your
     customers" the easy way. Marketing Science 24(2), 275-284.
+
+    Batislam, E. P., Denizel, M. and Filiztekin, A. (2007). Empirical
+    validation and comparison of models for customer base analysis.
+    International Journal of Research in Marketing 24(3), 201-209.
     """
     horizon = _check_horizon(horizon)
     level = _check_level(level)
     draws = _check_draws(draws)
     seasons = _check_seasons(seasons)
+    frequency_model = _check_frequency_model(frequency_model)
     _check_orders(orders)
     by = _check_by(by, orders)
     stats = customer_statistics(orders)
     if as_of is None:
         as_of_ts = pd.Timestamp(stats["last_order"].max())
     else:
-        as_of_ts = _parse_date(as_of, "the 'as of' date")
-    customers, cohorts, totals, fit, forecast_fit, clock, season_index = _project(
-        orders, stats, horizon=horizon, by=by, as_of=as_of_ts, method=method, variance=variance,
-        forecasts=forecasts, level=level, draws=draws, seed=seed, seasons=seasons)
-    return Outlook(customers=customers, cohorts=cohorts, total=totals, fit=fit, forecast_fit=forecast_fit,
-                   horizon_days=horizon, as_of=as_of_ts, by=by, level=level, draws=draws, seed=seed,
-                   seasons="none" if season_index is None else "month", seasonal_days=float(clock),
-                   season_index=season_index)
+        as_of_ts = _parse_date(as_of, "as_of")
+    work = _project(orders, stats, horizon=horizon, by=by, as_of=as_of_ts, method=method, variance=variance,
+                    forecasts=forecasts, level=level, draws=draws, seed=seed, seasons=seasons,
+                    frequency_model=frequency_model, new_customers=bool(new_customers))
+    return Outlook(customers=work["customers"], cohorts=work["cohorts"], total=work["total"],
+                   repeat_model=work["repeat_model"], arrivals=work["arrivals"], schedule=work["schedule"],
+                   forecast_fit=work["forecast_fit"], new_customer_values=work["new_values"], horizon_days=horizon,
+                   as_of=as_of_ts, by=by, level=level, draws=draws, seed=seed)
+
+
+def _plain(value):
+    if isinstance(value, (np.floating, float)):
+        return float(value) if math.isfinite(float(value)) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    return value
 
 
 # --------------------------------------------------------------------------- #
@@ -794,22 +1078,28 @@ class OutlookBacktest:
     Attributes
     ----------
     cohorts : pandas.DataFrame
-        One row per group, columns ``BACKTEST_COLUMNS``. ``actual_inside_interval``
-        says whether the actual revenue fell inside the interval of the
-        *expected* amount (``projected_low``..``projected_high``); chance
-        (which customers happen to order) is not in that interval, so actual
-        revenue often falls outside it. ``actual_inside_revenue_range`` says
-        whether it fell inside the range for actual revenue
+        One row per group of the customers known at the cut-off, then (when
+        new customers are projected) the ``NEW_CUSTOMERS`` row with the
+        revenue of customers first seen in the window; columns
+        ``BACKTEST_COLUMNS``. ``actual_inside_interval`` says whether the
+        actual revenue fell inside the interval of the *expected* amount
+        (``projected_low``..``projected_high``); chance (which customers
+        happen to order) is not in that interval, so actual revenue often
+        falls outside it. ``actual_inside_revenue_range`` says whether it fell
+        inside the range for actual revenue
         (``revenue_range_low``..``revenue_range_high``), which should happen
         for about ``level`` of groups when the model holds.
     total : dict
-        The same figures for all customers together, plus
+        ``actual_revenue`` is all revenue in the window and
+        ``projected_revenue`` the whole projection (with the outlook's
+        ranges); ``..._existing`` and ``..._new`` split both (``actual_revenue_existing``,
+        ``projected_revenue_existing``, ``error_existing_pct`` and the same
+        for ``new``); ``run_rate_revenue`` the run-rate guess;
         ``cohort_abs_error`` / ``run_rate_cohort_abs_error`` (sums over groups
-        of absolute errors), ``new_customer_revenue`` (revenue in the window
-        from customers first seen after the cut-off; not projected),
-        ``cohorts_inside_interval`` / ``cohorts_inside_revenue_range``
-        (counts of groups) and ``seasons`` / ``seasonal_days`` (the seasonal
-        adjustment used).
+        of absolute errors); ``new_customer_revenue`` (the same as
+        ``actual_revenue_new``); ``cohorts_inside_interval`` /
+        ``cohorts_inside_revenue_range`` (counts of groups); ``seasons`` /
+        ``seasonal_days`` / ``frequency_model`` (what the projection used).
     cutoff : pandas.Timestamp
         Orders before it were used to fit; the window starts there.
     window_days : float
@@ -830,7 +1120,7 @@ class OutlookBacktest:
             "cutoff": self.cutoff.isoformat(),
             "window_days": self.window_days,
             "by": self.outlook.by,
-            "total": dict(self.total),
+            "total": {key: _plain(value) for key, value in self.total.items()},
             "cohorts": _records(self.cohorts),
             "order_frequency": self.outlook.fit.as_dict(),
             "seasons": self.outlook.seasons,
@@ -845,10 +1135,24 @@ def _default_window(first, end, horizon):
     return float(max(1.0, round(0.2 * span_days)))
 
 
+def _percent_error(projected, actual):
+    return 100.0 * (projected - actual) / actual if actual > 0 and math.isfinite(projected) else None
+
+
+def _new_customers_before(before: pd.DataFrame, cutoff, window):
+    """Revenue in the ``window`` days before the cut-off from customers first seen in them, and those days."""
+    dates = pd.to_datetime(before["order_date"])
+    start = max(cutoff - pd.Timedelta(days=window), dates.min().normalize())
+    first = dates.groupby(before["customer"]).transform("min")
+    recent = (dates >= start) & (first >= start)
+    return float(before.loc[recent, "order_value"].sum()), (cutoff - start) / pd.Timedelta(days=1)
+
+
 def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str = "quarter",
-                     method: str = "mta", variance: str = "classic", level: float = 0.90,
-                     draws: int = 400, seed: int = 0, seasons: str = "auto") -> OutlookBacktest:
-    """Fit the outlook on orders before a cut-off and compare with what came after.
+                     method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE, level: float = 0.90,
+                     draws: int = 400, seed: int = 0, seasons: str = DEFAULT_SEASONS,
+                     frequency_model: str = "auto", new_customers: bool = True) -> OutlookBacktest:
+    """Fit the outlook on orders before a cut-off and compare with all revenue that came after.
 
     Parameters
     ----------
@@ -865,10 +1169,10 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
     by : str, default "quarter"
         Grouping, as in :func:`project_revenue` (groups are taken from the
         orders before the cut-off).
-    method, variance, level, draws, seed, seasons
-        As in :func:`project_revenue`; a seasonal index is estimated from the
-        orders before the cut-off only, and ``"auto"`` needs a full year of
-        them.
+    method, variance, level, draws, seed, seasons, frequency_model, new_customers
+        As in :func:`project_revenue`; every model (month index, order
+        frequency, arrivals, the forecasting method's choice) sees the orders
+        before the cut-off only.
 
     Returns
     -------
@@ -876,20 +1180,22 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
 
     Notes
     -----
-    Only customers with an order before the cut-off are projected and
-    compared; revenue from customers who first order in the window is
-    reported separately. Orders dated before the cut-off are used to fit;
-    orders from the cut-off up to ``cutoff + window`` (exclusive) are the actual
-    revenue.
+    Orders dated before the cut-off are used to fit; orders from the cut-off
+    up to ``cutoff + window`` (exclusive) are the actual revenue: from the
+    customers known at the cut-off (compared per group) and from customers
+    first seen in the window (compared with the projection for new customers).
 
-    The run-rate baseline projects each customer's past pace forward:
-    repeat orders / days known x window days x their plain average order
-    value (zero for one-time customers). ``error = projected - actual``;
-    ``error_pct = 100 error / actual``.
+    The run-rate guess carries the recent past forward: each known customer's
+    own pace (repeat orders / days known x window days x their plain average
+    order value; zero for one-time customers) plus as much new-customer
+    revenue as the customers first seen in the ``window`` days before the
+    cut-off brought in then (scaled to the window when less history exists).
+    ``error = projected - actual``; ``error_pct = 100 error / actual``.
     """
     level = _check_level(level)
     draws = _check_draws(draws)
     seasons = _check_seasons(seasons)
+    frequency_model = _check_frequency_model(frequency_model)
     if horizon is not None:
         horizon = _check_horizon(horizon)
     _check_orders(orders)
@@ -901,21 +1207,22 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
         window = _default_window(first_day, end, horizon)
         cutoff_ts = end - pd.Timedelta(days=window)
     else:
-        cutoff_ts = _parse_date(cutoff, "--cutoff")
+        cutoff_ts = _parse_date(cutoff, "cutoff")
         if not first_day < cutoff_ts < end:
             raise OrderDataError(
-                f"--cutoff must fall inside the orders' dates ({first_day:%Y-%m-%d} to {dates.max():%Y-%m-%d})",
-                value=cutoff, fix="Choose a date with orders on both sides")
+                f"the cut-off must fall inside the orders' dates ({first_day:%Y-%m-%d} to {dates.max():%Y-%m-%d})",
+                value=cutoff, option="cutoff", fix="Choose a date with orders on both sides")
         room = (end - cutoff_ts) / pd.Timedelta(days=1)
         window = float(min(horizon, room)) if horizon is not None else float(room)
     window_end = cutoff_ts + pd.Timedelta(days=window)
     before = orders.loc[dates < cutoff_ts]
     after = orders.loc[(dates >= cutoff_ts) & (dates < window_end)]
     if len(before) == 0:
-        raise OrderDataError("no orders fall before the cut-off date", value=cutoff_ts.date(),
-                             fix="Choose a later --cutoff")
+        raise OrderDataError("no orders fall before the cut-off date", value=cutoff_ts.date(), option="cutoff",
+                             fix="Choose a later cut-off")
     outlook = project_revenue(before, horizon=window, by=by, as_of=cutoff_ts, method=method, variance=variance,
-                              level=level, draws=draws, seed=seed, seasons=seasons)
+                              level=level, draws=draws, seed=seed, seasons=seasons, frequency_model=frequency_model,
+                              new_customers=new_customers)
     projection = outlook.customers
     known = pd.Index(projection["customer"])
     actual_by_customer = after.groupby("customer")["order_value"].sum()
@@ -926,13 +1233,20 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
     rate = np.where(projection["days_known"] > 0,
                     (projection["orders"] - 1) / np.maximum(projection["days_known"], 1e-300), 0.0)
     run_rate = rate * window * stats_before["mean"].reindex(known).to_numpy(dtype=np.float64)
+    recent_new, recent_days = _new_customers_before(before, cutoff_ts, window)
+    run_rate_new = recent_new * window / recent_days if recent_days > 0 else float("nan")
 
     groups = projection["cohort"].to_numpy(dtype=object)
     table = pd.DataFrame({"cohort": groups, "actual": actual, "run_rate": run_rate})
     sums = table.groupby("cohort", sort=True)[["actual", "run_rate"]].sum()
     cohorts = outlook.cohorts.set_index("cohort")
-    act = sums["actual"].reindex(cohorts.index).to_numpy()
-    base = sums["run_rate"].reindex(cohorts.index).to_numpy()
+    act = sums["actual"].reindex(cohorts.index).to_numpy(dtype=np.float64, copy=True)
+    base = sums["run_rate"].reindex(cohorts.index).to_numpy(dtype=np.float64, copy=True)
+    has_new = NEW_CUSTOMERS in cohorts.index
+    if has_new:
+        position = cohorts.index.get_loc(NEW_CUSTOMERS)
+        act[position] = new_revenue
+        base[position] = run_rate_new
     proj = cohorts["projected_revenue"].to_numpy()
     with np.errstate(divide="ignore", invalid="ignore"):
         result = pd.DataFrame(
@@ -956,73 +1270,393 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
                 & (act <= cohorts["revenue_range_high"].to_numpy()),
             }
         )
-    total_actual = float(act.sum())
-    total_proj = float(outlook.total["projected_revenue"])
-    total_base = float(base.sum())
+    existing_actual = float(actual.sum())
+    total_actual = existing_actual + new_revenue
+    projected = outlook.total
+    total_proj = float(projected["projected_revenue"])
+    total_base = float(np.nansum(base))
     total = {
-        "customers": int(outlook.total["customers"]),
+        "customers": int(projected["customers"]),
         "projected_revenue": total_proj,
-        "projected_low": float(outlook.total["projected_low"]),
-        "projected_high": float(outlook.total["projected_high"]),
-        "revenue_range_low": float(outlook.total["revenue_range_low"]),
-        "revenue_range_high": float(outlook.total["revenue_range_high"]),
+        "projected_low": projected["projected_low"],
+        "projected_high": projected["projected_high"],
+        "revenue_range_low": projected["revenue_range_low"],
+        "revenue_range_high": projected["revenue_range_high"],
         "actual_revenue": total_actual,
         "error": total_proj - total_actual,
-        "error_pct": 100 * (total_proj - total_actual) / total_actual if total_actual > 0 else None,
+        "error_pct": _percent_error(total_proj, total_actual),
+        "projected_revenue_existing": projected["projected_revenue_existing"],
+        "actual_revenue_existing": existing_actual,
+        "error_existing_pct": _percent_error(projected["projected_revenue_existing"], existing_actual),
+        "projected_revenue_new": projected.get("projected_revenue_new", float("nan")),
+        "actual_revenue_new": new_revenue,
+        "error_new_pct": _percent_error(projected.get("projected_revenue_new", float("nan")), new_revenue),
         "run_rate_revenue": total_base,
         "run_rate_error": total_base - total_actual,
-        "run_rate_error_pct": 100 * (total_base - total_actual) / total_actual if total_actual > 0 else None,
-        "cohort_abs_error": float(np.abs(result["error"]).sum()),
-        "run_rate_cohort_abs_error": float(np.abs(result["run_rate_error"]).sum()),
+        "run_rate_error_pct": _percent_error(total_base, total_actual),
+        "cohort_abs_error": float(np.nansum(np.abs(result["error"]))),
+        "run_rate_cohort_abs_error": float(np.nansum(np.abs(result["run_rate_error"]))),
         "new_customer_revenue": new_revenue,
         "orders_fitted": int(len(before)),
         "orders_in_window": int(len(after)),
-        "actual_inside_revenue_range": bool(outlook.total["revenue_range_low"] <= total_actual
-                                            <= outlook.total["revenue_range_high"]),
+        "actual_inside_revenue_range": bool(projected["revenue_range_low"] <= total_actual
+                                            <= projected["revenue_range_high"]),
         "cohorts_inside_interval": int(result["actual_inside_interval"].sum()),
         "cohorts_inside_revenue_range": int(result["actual_inside_revenue_range"].sum()),
         "seasons": outlook.seasons,
         "seasonal_days": outlook.seasonal_days,
+        "frequency_model": outlook.fit.model,
     }
+    if not new_customers:
+        # Only the customers known at the cut-off were projected: compare them alone.
+        total.update(actual_revenue=existing_actual, error=total_proj - existing_actual,
+                     error_pct=_percent_error(total_proj, existing_actual))
     return OutlookBacktest(cohorts=result, total=total, cutoff=cutoff_ts, window_days=window, outlook=outlook)
+
+
+# --------------------------------------------------------------------------- #
+# Public: the outlook checked at many cut-offs, beside two baselines
+# --------------------------------------------------------------------------- #
+#: Frequency cells of the baseline: orders placed so far (1, 2, 3-4, 5 or more).
+FREQUENCY_CELLS = (1, 2, 3, 5)
+#: Recency cells of the baseline: days since the last order (under 30, 30-89, 90-179, 180-364, 365 or more).
+RECENCY_CELLS = (0, 30, 90, 180, 365)
+
+
+def _cells(orders_so_far, days_since_last):
+    frequency = np.searchsorted(FREQUENCY_CELLS, orders_so_far, side="right") - 1
+    recency = np.searchsorted(RECENCY_CELLS, days_since_last, side="right") - 1
+    return frequency * len(RECENCY_CELLS) + recency, frequency
+
+
+def cell_baseline(orders: pd.DataFrame, *, cutoff, window, repeat_index=None, arrival_index=None) -> dict:
+    """A plain empirical baseline of the next ``window`` days: recency x frequency cells carried forward.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders; only those before ``cutoff`` are read.
+    cutoff : date-like
+        Start of the projected window.
+    window : float
+        Its length in days.
+    repeat_index, arrival_index : array_like of 12 floats, optional
+        Month-of-year indexes of repeat orders and of new customers (the
+        outlook's); the baseline's revenue is scaled by how much busier the
+        window is than the stretch it learnt from. Default: calendar days.
+
+    Returns
+    -------
+    dict
+        ``existing`` (revenue of the customers known at the cut-off),
+        ``new`` (of customers still to come), ``total``, ``cells`` (the
+        learnt revenue per customer of each cell) and ``learnt_from`` (the
+        start of the stretch it learnt from).
+
+    Notes
+    -----
+    Customers known at ``cutoff - window`` are put into cells by how many
+    orders they had placed (``FREQUENCY_CELLS``) and how long ago the last
+    one was (``RECENCY_CELLS``); each cell's revenue per customer over the
+    following ``window`` days (up to the cut-off) is learnt. At the cut-off,
+    every known customer gets their cell's figure (a cell nobody was in gets
+    the average of its frequency row, then of everyone). New customers bring
+    what new customers brought in the learning stretch. Both are scaled by
+    the ratio of the window's length to the learning stretch's on the
+    month-of-year clock. This is the recency/frequency grid of common
+    practice, a check that assumes no model of how customers behave: when it
+    does better than the model, customers probably change their pace in a
+    way the model does not allow for (slowing down before they stop).
+    """
+    cutoff = pd.Timestamp(cutoff)
+    dates = pd.to_datetime(orders["order_date"])
+    before = orders.loc[dates < cutoff]
+    before_dates = dates[dates < cutoff]
+    start = max(cutoff - pd.Timedelta(days=window), before_dates.min().normalize())
+    learn_days = (cutoff - start) / pd.Timedelta(days=1)
+    empty = {"existing": float("nan"), "new": float("nan"), "total": float("nan"), "cells": None,
+             "learnt_from": start}
+    if learn_days <= 0:
+        return empty
+    customers = before["customer"].to_numpy()
+    values = before["order_value"].to_numpy(dtype=np.float64)
+    stamps = before_dates.to_numpy()
+    earlier = stamps < start.to_datetime64()
+    # State at the start of the learning stretch, and what each then-known customer spent in it.
+    past = pd.DataFrame({"customer": customers[earlier], "date": stamps[earlier]})
+    state = past.groupby("customer")["date"].agg(["size", "max"])
+    if len(state) == 0:
+        return empty
+    spent = pd.Series(values[~earlier], index=customers[~earlier]).groupby(level=0).sum()
+    learnt_cells, learnt_rows = _cells(state["size"].to_numpy(),
+                                       (start - state["max"]).dt.total_seconds().to_numpy() / 86400)
+    revenue = spent.reindex(state.index, fill_value=0.0).to_numpy()
+    size = len(FREQUENCY_CELLS) * len(RECENCY_CELLS)
+    cell_sum = np.bincount(learnt_cells, weights=revenue, minlength=size)
+    cell_count = np.bincount(learnt_cells, minlength=size)
+    row_sum = np.bincount(learnt_rows, weights=revenue, minlength=len(FREQUENCY_CELLS))
+    row_count = np.bincount(learnt_rows, minlength=len(FREQUENCY_CELLS))
+    overall = revenue.sum() / len(revenue)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        row_mean = np.where(row_count > 0, row_sum / row_count, overall)
+        cell_mean = np.where(cell_count > 0, cell_sum / cell_count,
+                             np.repeat(row_mean, len(RECENCY_CELLS)))
+    # Everyone known at the cut-off, put into the cells.
+    now = pd.DataFrame({"customer": customers, "date": stamps}).groupby("customer")["date"].agg(["size", "max", "min"])
+    now_cells, _ = _cells(now["size"].to_numpy(), (cutoff - now["max"]).dt.total_seconds().to_numpy() / 86400)
+    end = cutoff + pd.Timedelta(days=window)
+    repeat_scale = _clock_ratio(repeat_index, start, cutoff, end)
+    existing = float(cell_mean[now_cells].sum()) * repeat_scale
+    newcomers = now["min"] >= start
+    new_spent = float(spent.reindex(now.index[newcomers.to_numpy()], fill_value=0.0).sum())
+    new = new_spent * _clock_ratio(arrival_index, start, cutoff, end)
+    frequency_labels = ["1", "2", "3-4", "5+"]
+    recency_labels = ["under 30", "30-89", "90-179", "180-364", "365+"]
+    cells = pd.DataFrame({
+        "orders_so_far": np.repeat(frequency_labels, len(RECENCY_CELLS)),
+        "days_since_last_order": np.tile(recency_labels, len(FREQUENCY_CELLS)),
+        "customers_learnt_from": cell_count,
+        "revenue_per_customer": cell_mean,
+    })
+    return {"existing": existing, "new": new, "total": existing + new, "cells": cells, "learnt_from": start}
+
+
+def _clock_ratio(index, start, cutoff, end):
+    """Length of [cutoff, end) over the length of [start, cutoff), on the clock of ``index`` (calendar without)."""
+    weights = np.ones(12) if index is None else np.asarray(index, dtype=np.float64)
+    lengths = clock_between([start, cutoff], [cutoff, end], weights)
+    return float(lengths[1] / lengths[0]) if lengths[0] > 0 else float("nan")
+
+
+def rolling_cutoffs(orders: pd.DataFrame, *, horizon, count: int = DEFAULT_CUTOFFS) -> list:
+    """Cut-off dates spread evenly over the last year whose windows of ``horizon`` days end by the last order.
+
+    The latest cut-off leaves exactly ``horizon`` days to the end of the data
+    (the midnight after the last order); the earliest is a year before the
+    end, or later when the orders cover less than two years: every cut-off
+    keeps at least half the history before it.
+
+    Raises
+    ------
+    OrderDataError
+        When the orders are too short for any such cut-off.
+    """
+    horizon = _check_horizon(horizon)
+    if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 2:
+        raise OrderDataError("the number of cut-offs must be a whole number of at least 2", value=count,
+                             option="cutoffs", fix=f"Give for example {DEFAULT_CUTOFFS}")
+    dates = pd.to_datetime(orders["order_date"])
+    first_day = dates.min().normalize()
+    end = dates.max().normalize() + pd.Timedelta(days=1)
+    latest = end - pd.Timedelta(days=horizon)
+    earliest = max(end - pd.Timedelta(days=_ROLLING_SPAN_DAYS), first_day + (end - first_day) / 2)
+    if latest < earliest:
+        raise OrderDataError(
+            f"checking a {horizon:g}-day outlook at several cut-offs needs at least twice that long a history "
+            f"(these orders cover {(end - first_day).days} days)", value=horizon, option="horizon",
+            fix="Choose a shorter horizon, or use a longer order history")
+    steps = [(earliest + (latest - earliest) * k / (count - 1)).normalize() for k in range(count)]
+    return sorted(set(steps))
+
+
+@dataclass(frozen=True)
+class RollingBacktest:
+    """The outlook made at several cut-offs and compared with all revenue that came in after each.
+
+    Attributes
+    ----------
+    table : pandas.DataFrame
+        One row per cut-off, columns ``ROLLING_COLUMNS``: actual and projected
+        whole revenue (with the range for what may come in), their split into
+        existing and new customers, the run-rate guess and the
+        recency/frequency-cell baseline (:func:`cell_baseline`), errors in
+        percent of actual revenue.
+    summary : dict
+        ``cutoffs``, ``window_days``, ``mean_abs_error_pct`` (the outlook's
+        mean absolute error), ``within_10pct`` (cut-offs within 10%),
+        ``inside_revenue_range``, the same mean absolute error for the
+        run-rate guess and the cell baseline, for existing customers alone
+        (``..._existing``), ``mean_error_pct`` (signed), and ``warning`` (a
+        sentence when the cell baseline projected existing customers better
+        than the model, else "" (see ``_slowing_down_warning``).
+    backtests : list of OutlookBacktest
+        The backtest at each cut-off.
+    """
+
+    table: pd.DataFrame
+    summary: dict
+    backtests: list = field(repr=False)
+
+    def as_dict(self) -> dict:
+        """Plain numbers and strings, for JSON."""
+        table = self.table.assign(cutoff=self.table["cutoff"].map(lambda c: c.date().isoformat()))
+        return {"summary": {k: _plain(v) for k, v in self.summary.items()}, "cutoffs": _records(table)}
+
+
+def _mean_abs(values):
+    values = np.asarray([v for v in values if v is not None and math.isfinite(v)], dtype=np.float64)
+    return float(np.mean(np.abs(values))) if len(values) else float("nan")
+
+
+def rolling_backtest(orders: pd.DataFrame, *, horizon, cutoffs=DEFAULT_CUTOFFS, by: str = "quarter",
+                     method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE, level: float = 0.90,
+                     draws: int = _ROLLING_DRAWS, seed: int = 0, seasons: str = DEFAULT_SEASONS,
+                     frequency_model: str = "auto") -> RollingBacktest:
+    """Check the whole-revenue outlook at several cut-offs, beside the run-rate guess and a cell baseline.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders.
+    horizon : float
+        Days ahead, as in :func:`project_revenue`; every window has this length.
+    cutoffs : int or sequence of dates, default 10
+        How many cut-offs (:func:`rolling_cutoffs`: spread over the last year),
+        or the dates themselves.
+    by, method, variance, level, seed, seasons, frequency_model
+        As in :func:`project_revenue`; at each cut-off every choice is made
+        again from the orders before it.
+    draws : int, default 100
+        Simulation draws per cut-off (the ranges only say whether the actual
+        amount fell inside).
+
+    Returns
+    -------
+    RollingBacktest
+
+    Notes
+    -----
+    One cut-off says little: a handful of big customers can move a single
+    window by a tenth or more. The mean absolute error over cut-offs spread
+    through a year says how far off the outlook typically is, through the
+    seasons. The windows of neighbouring cut-offs overlap when they are
+    closer than the horizon, so the cut-offs are not independent checks.
+    """
+    horizon = _check_horizon(horizon)
+    _check_orders(orders)
+    if isinstance(cutoffs, (int, np.integer)) and not isinstance(cutoffs, bool):
+        dates = rolling_cutoffs(orders, horizon=horizon, count=int(cutoffs))
+    else:
+        dates = sorted(_parse_date(c, "cutoff") for c in cutoffs)
+    rows, backtests = [], []
+    for cutoff in dates:
+        check = backtest_outlook(orders, horizon=horizon, cutoff=cutoff, by=by, method=method, variance=variance,
+                                 level=level, draws=draws, seed=seed, seasons=seasons,
+                                 frequency_model=frequency_model)
+        backtests.append(check)
+        total = check.total
+        outlook = check.outlook
+        repeat_index = outlook.repeat_model.index
+        arrival_index = outlook.arrivals.month_index if outlook.arrivals is not None else None
+        cells = cell_baseline(orders, cutoff=check.cutoff, window=check.window_days, repeat_index=repeat_index,
+                              arrival_index=arrival_index)
+        rows.append({
+            "cutoff": check.cutoff,
+            "window_days": check.window_days,
+            "actual_revenue": total["actual_revenue"],
+            "projected_revenue": total["projected_revenue"],
+            "revenue_range_low": total["revenue_range_low"],
+            "revenue_range_high": total["revenue_range_high"],
+            "error_pct": total["error_pct"],
+            "inside_revenue_range": total["actual_inside_revenue_range"],
+            "actual_revenue_existing": total["actual_revenue_existing"],
+            "projected_revenue_existing": total["projected_revenue_existing"],
+            "error_existing_pct": total["error_existing_pct"],
+            "actual_revenue_new": total["actual_revenue_new"],
+            "projected_revenue_new": total["projected_revenue_new"],
+            "error_new_pct": total["error_new_pct"],
+            "run_rate_revenue": total["run_rate_revenue"],
+            "run_rate_error_pct": total["run_rate_error_pct"],
+            "cell_revenue": cells["total"],
+            "cell_error_pct": _percent_error(cells["total"], total["actual_revenue"]),
+            "cell_revenue_existing": cells["existing"],
+            "cell_error_existing_pct": _percent_error(cells["existing"], total["actual_revenue_existing"]),
+            "seasons": total["seasons"],
+            "frequency_model": total["frequency_model"],
+        })
+    table = pd.DataFrame(rows, columns=ROLLING_COLUMNS)
+    for column in ("error_pct", "error_existing_pct", "error_new_pct", "run_rate_error_pct", "cell_error_pct",
+                   "cell_error_existing_pct"):
+        table[column] = pd.to_numeric(table[column], errors="coerce").astype(np.float64)
+    errors = table["error_pct"].to_numpy()
+    summary = {
+        "cutoffs": int(len(table)),
+        "window_days": float(horizon),
+        "first_cutoff": dates[0].date().isoformat(),
+        "last_cutoff": dates[-1].date().isoformat(),
+        "mean_abs_error_pct": _mean_abs(errors),
+        "mean_error_pct": float(np.nanmean(errors)) if np.isfinite(errors).any() else float("nan"),
+        "within_10pct": int(np.sum(np.abs(errors) <= 100 * CLOSE_ENOUGH)),
+        "inside_revenue_range": int(table["inside_revenue_range"].sum()),
+        "run_rate_mean_abs_error_pct": _mean_abs(table["run_rate_error_pct"]),
+        "cell_mean_abs_error_pct": _mean_abs(table["cell_error_pct"]),
+        "mean_abs_error_existing_pct": _mean_abs(table["error_existing_pct"]),
+        "cell_mean_abs_error_existing_pct": _mean_abs(table["cell_error_existing_pct"]),
+        "mean_abs_error_new_pct": _mean_abs(table["error_new_pct"]),
+    }
+    summary["warning"] = _slowing_down_warning(summary, table)
+    return RollingBacktest(table=table, summary=summary, backtests=backtests)
+
+
+def _slowing_down_warning(summary, table) -> str:
+    """A sentence when the cell baseline clearly beat the model on existing customers, else "".
+
+    Clearly: the model's typical miss is over ``_WARN_ABOVE_PCT`` and the baseline's at most
+    ``_WARN_SHARE`` of it. On shops that follow the model the two land close together, and a
+    difference of a point or two between them is chance.
+    """
+    model, cells = summary["mean_abs_error_existing_pct"], summary["cell_mean_abs_error_existing_pct"]
+    if not (math.isfinite(model) and math.isfinite(cells)) or model <= _WARN_ABOVE_PCT or cells > _WARN_SHARE * model:
+        return ""
+    signed = float(np.nanmean(table["error_existing_pct"]))
+    direction = ("over-projected" if signed > 0 else "under-projected")
+    return (f"The simple recency-and-frequency baseline projected the existing customers' revenue better than "
+            f"the model at these cut-offs (typical miss {cells:.0f}% against {model:.0f}%; the model "
+            f"{direction} by {abs(signed):.0f}% on average). Customers may be changing their pace in a way the "
+            f"model does not allow for, such as slowing down before they stop; read the outlook for existing "
+            f"customers with that in mind.")
 
 
 # --------------------------------------------------------------------------- #
 # Public: value tiers
 # --------------------------------------------------------------------------- #
+# Tier names say where a customer stands on the ranked figure, nothing about how loyal or how
+# frequent they are (a ranking by order value says nothing of that).
 _DEFAULT_TIER_NAMES = {
     1: ("all customers",),
-    2: ("top customers", "everyone else"),
-    3: ("top customers", "regulars", "occasional"),
-    4: ("top customers", "loyal", "regulars", "occasional"),
+    2: ("upper tier", "lower tier"),
+    3: ("upper tier", "middle tier", "lower tier"),
+    4: ("upper tier", "upper middle tier", "lower middle tier", "lower tier"),
 }
+#: The one tier when every customer has the same figure (a ranking would be arbitrary).
+SAME_FIGURE_TIER = "all customers"
 _RANK_COLUMN = {"value": "expected_next_order", "revenue": "projected_revenue"}
 
 
 def _check_tier_options(rank, shares, thresholds, names):
     if rank not in RANK_BY:
         raise OrderDataError("customers can be ranked by next-order value or by projected revenue",
-                             column="--rank", value=rank, fix="Use --rank value or --rank revenue")
+                             value=rank, option="rank", fix="Rank by value or by revenue")
     if shares is not None and thresholds is not None:
         raise OrderDataError("give either shares of customers or money thresholds for the tiers, not both",
-                             column="--quantiles", fix="Drop --quantiles or --thresholds")
+                             option="shares", fix="Keep the shares or the thresholds, not both")
     if thresholds is not None:
-        values = _as_floats(thresholds, "--thresholds")
+        values = _as_floats(thresholds, "thresholds")
         if any(not math.isfinite(v) or v <= 0 for v in values):
-            raise OrderDataError("tier thresholds must be positive amounts", column="--thresholds",
-                                 value=",".join(str(v) for v in values), fix="Use for example --thresholds 50,200")
+            raise OrderDataError("tier thresholds must be positive amounts", option="thresholds",
+                                 value=",".join(str(v) for v in values), fix="Give for example 50,200")
         if len(set(values)) != len(values):
-            raise OrderDataError("tier thresholds must all differ", column="--thresholds",
+            raise OrderDataError("tier thresholds must all differ", option="thresholds",
                                  value=",".join(str(v) for v in values))
         cuts = sorted(values, reverse=True)
         kind = "thresholds"
     else:
-        values = _as_floats((0.10, 0.30) if shares is None else shares, "--quantiles")
+        values = _as_floats((0.10, 0.30) if shares is None else shares, "shares")
         if any(not math.isfinite(v) or not 0 < v < 1 for v in values) or sum(values) > 1 + 1e-12:
             raise OrderDataError(
                 "tier shares must each be between 0 and 1 and add up to at most 1",
-                column="--quantiles", value=",".join(str(v) for v in values),
-                fix="Use for example --quantiles 0.1,0.3 for the top 10%, the next 30% and the rest")
+                option="shares", value=",".join(str(v) for v in values),
+                fix="Give for example 0.1,0.3 for the top 10%, the next 30% and the rest")
         cuts = values
         kind = "shares"
     count = len(cuts) + 1
@@ -1033,7 +1667,7 @@ def _check_tier_options(rank, shares, thresholds, names):
     else:
         names = tuple(str(n) for n in names)
         if len(names) != count or len(set(names)) != count:
-            raise OrderDataError(f"give {count} different tier names", column="names", value=", ".join(names))
+            raise OrderDataError(f"give {count} different tier names", option="names", value=", ".join(names))
     return kind, cuts, names
 
 
@@ -1043,9 +1677,10 @@ def _as_floats(values, option):
     try:
         out = [float(v) for v in values]
     except (TypeError, ValueError):
-        raise OrderDataError("expected numbers separated by commas", column=option, value=values) from None
+        raise OrderDataError(f"the tier {option} must be numbers separated by commas", option=option,
+                             value=values) from None
     if not out:
-        raise OrderDataError("expected at least one number", column=option)
+        raise OrderDataError(f"the tier {option} need at least one number", option=option)
     return out
 
 
@@ -1073,8 +1708,9 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
         Money amounts instead of shares: ``(50, 200)`` gives 200 and above,
         50 to under 200, under 50.
     names : sequence of str, optional
-        Tier names from the top; by default plain shop words
-        ("top customers", "regulars", "occasional" for three tiers).
+        Tier names from the top; by default words that say only where a
+        customer stands on the ranked figure ("upper tier", "middle tier",
+        "lower tier" for three tiers), nothing about loyalty or frequency.
 
     Returns
     -------
@@ -1082,14 +1718,19 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
         A copy sorted from the top, with ``rank`` (1 = highest; ties share a
         rank), ``tier``, ``tier_rule`` and ``mostly_shop_pattern``
         (own-history weight below 0.5) added. ``attrs["tiers"]`` lists the
-        tier names and rules in order.
+        tier names and rules in order; ``attrs["note"]`` says when the
+        customers could not be ranked ("" otherwise).
 
     Notes
     -----
     With shares, the tier boundary is the figure of the customer at that
     position (e.g. the 200th of 2,000 for the top 10%); customers tied with
     it join the higher tier, so a tier can be slightly larger than its
-    share, and two customers with the same figure are never split.
+    share, and two customers with the same figure are never split. When
+    every customer has the same figure (a shop where the forecasts could
+    only give everyone the shop-wide average, say), shares cannot rank
+    anyone: all customers form one tier, ``SAME_FIGURE_TIER``, with a note,
+    rather than all being called the top.
 
     Examples
     --------
@@ -1098,12 +1739,12 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
     ...                       "expected_next_order": [10.0, 80.0, 40.0, 40.0, 5.0],
     ...                       "own_history_weight": [0.9, 0.8, 0.3, 0.6, 0.2]})
     >>> assign_tiers(table, shares=(0.2, 0.4))[["customer", "rank", "tier"]]
-      customer  rank           tier
-    0        b     1  top customers
-    1        c     2       regulars
-    2        d     2       regulars
-    3        a     4     occasional
-    4        e     5     occasional
+      customer  rank         tier
+    0        b     1   upper tier
+    1        c     2  middle tier
+    2        d     2  middle tier
+    3        a     4   lower tier
+    4        e     5   lower tier
     """
     kind, cuts, names = _check_tier_options(rank, shares, thresholds, names)
     column = _RANK_COLUMN[rank]
@@ -1123,7 +1764,13 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
     table = customers.iloc[order].reset_index(drop=True).copy()
     sorted_figures = figures[order]
     n = len(table)
-    if kind == "shares":
+    note = ""
+    if kind == "shares" and sorted_figures[0] == sorted_figures[-1] and n > 1:
+        figure = "expected next order" if rank == "value" else "projected revenue"
+        note = (f"Every customer has the same {figure} ({_money(sorted_figures[0])}), so they cannot be ranked "
+                "into tiers: all are in one.")
+        names, boundaries, rules = (SAME_FIGURE_TIER,), [], ["the same figure for everyone"]
+    elif kind == "shares":
         positions = [min(n, max(1, math.ceil(s * n - 1e-9))) for s in np.cumsum(cuts)]
         boundaries = [sorted_figures[p - 1] for p in positions]
         rules = []
@@ -1151,7 +1798,7 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
     table.insert(3, "tier_rule", np.asarray(rules, dtype=object)[tier_index])
     table["mostly_shop_pattern"] = weight < SHOP_PATTERN_WEIGHT
     table.attrs = {"tiers": [{"tier": t, "rule": r} for t, r in zip(names, rules)], "rank": rank,
-                   "rank_column": column}
+                   "rank_column": column, "note": note}
     return table
 
 
@@ -1204,8 +1851,9 @@ def tier_summary(tiered: pd.DataFrame) -> pd.DataFrame:
 
 
 _EXPORT_COLUMNS = [
-    "customer", "tier", "rank", "tier_rule", "orders", "expected_next_order", "expected_low", "expected_high",
-    "expected_orders", "chance_active", "projected_revenue", "projected_low", "projected_high",
+    "customer", "tier", "rank", "tier_rule", "orders", "last_order", "chance_active", "expected_next_order",
+    "expected_low", "expected_high",
+    "expected_orders", "projected_revenue", "projected_low", "projected_high",
     "revenue_range_low", "revenue_range_high", "own_history_weight", "low_confidence", "mostly_shop_pattern", "cohort",
 ]
 
@@ -1227,6 +1875,9 @@ def tier_lists(tiered: pd.DataFrame) -> dict:
         money=("expected_next_order", "expected_low", "expected_high", "projected_revenue", "projected_low",
                "projected_high", "revenue_range_low", "revenue_range_high"),
         shares=("own_history_weight", "chance_active", "expected_orders"))
+    if "last_order" in table.columns:
+        # A list for people: the day of the last order, not the minute.
+        table = table.assign(last_order=pd.to_datetime(table["last_order"]).dt.strftime("%Y-%m-%d"))
     lists = {"all": table}
     for spec in tiered.attrs["tiers"]:
         lists[spec["tier"]] = table.loc[table["tier"] == spec["tier"]]

@@ -413,6 +413,8 @@ class RepeatOrderModel:
 
     def horizon(self, days: float) -> float:
         """The next ``days`` calendar days from ``as_of`` on the model's clock."""
+        if self.seasons != "month":
+            return float(days)
         return seasonal_days(self.as_of, days, self.index)
 
     def season_table(self) -> pd.DataFrame | None:

@@ -1,6 +1,6 @@
 """``tiers``: value tiers of customers, written as CSV lists.
 
-``python -m forecasting tiers FILE [--rank value|revenue] [--quantiles 0.1,0.3 | --thresholds 50,200]
+``python -m forecasting tiers FILE [--rank value|revenue] [--shares 0.1,0.3 | --thresholds 50,200]
 [--horizon DAYS] [--seasons auto|month|none] --out tiers.csv [--json]``
 """
 
@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 
 from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
+from ..options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
 from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
     project_revenue, require_projection, tier_summary
 
@@ -20,18 +21,20 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rank", choices=RANK_BY, default="value",
                         help="rank by expected next-order value (default) or projected revenue in the horizon")
     rule = parser.add_mutually_exclusive_group()
-    rule.add_argument("--quantiles", metavar="SHARES",
-                      help="shares of customers in the top tiers, from the top, e.g. 0.1,0.3 = top 10%%, "
+    rule.add_argument("--shares", "--quantiles", dest="quantiles", metavar="SHARES",
+                      help="shares of customers in the tiers, from the top, e.g. 0.1,0.3 = top 10%%, "
                            "next 30%%, the rest (default)")
     rule.add_argument("--thresholds", metavar="AMOUNTS",
                       help="money amounts instead of shares, e.g. 50,200 = 200 and above, 50 to under 200, "
                            "under 50")
     parser.add_argument("--horizon", default=str(DEFAULT_HORIZON_DAYS), metavar="DAYS",
                         help=f"days ahead for projected revenue (default {DEFAULT_HORIZON_DAYS})")
-    parser.add_argument("--seasons", choices=SEASONS, default="auto",
-                        help="adjust projected revenue by month of the year: auto (default: when a full year of "
-                             "orders exists), month or none")
+    parser.add_argument("--seasons", choices=SEASONS, default=DEFAULT_SEASONS,
+                        help=f"month-of-year clock for repeat orders: auto (default {DEFAULT_SEASONS!r}: when a full "
+                             "year of orders exists and a test finds the pattern), month or none")
     add_method_options(parser)
+    # One set of defaults for the command line and the dashboard (forecasting.options).
+    parser.set_defaults(method=DEFAULT_METHOD, variance=DEFAULT_VARIANCE)
     parser.add_argument("--out", required=True, metavar="CSV",
                         help="CSV list of all customers; each tier also gets <name>-<tier>.csv beside it")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
@@ -41,8 +44,9 @@ def run(args) -> int:
     horizon = _check_horizon(args.horizon)
     _check_tier_options(args.rank, args.quantiles, args.thresholds, None)
     orders = load_from_args(args).orders
+    # Tiers rank the customers the shop has; customers still to come are not projected here.
     outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance,
-                              seasons=args.seasons)
+                              seasons=args.seasons, new_customers=False)
     if args.rank == "revenue":
         require_projection(outlook, what="projected revenue")
     tiered = assign_tiers(outlook.customers, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds)
@@ -57,12 +61,15 @@ def run(args) -> int:
             "method": outlook.forecast_fit.get("method"),
             "variance": outlook.forecast_fit.get("variance"),
             "tiers": _records(summary),
+            "note": tiered.attrs["note"],
             "tiers_written": str(files["all"]),
             "files": {name: str(path) for name, path in files.items() if name != "all"},
         })
         return EXIT_OK
     figure = "expected next order" if args.rank == "value" else f"projected revenue, next {horizon:g} days"
     print(f"{len(tiered)} customers ranked by {figure}:")
+    if tiered.attrs["note"]:
+        print(f"note: {tiered.attrs['note']}")
     print(f"  {'tier':<16} {'rule':<24} {'customers':>9} {'from':>10} {'to':>10} {'revenue share':>13} "
           f"{'own history':>11} {'mostly shop':>11}")
     for row in summary.itertuples(index=False):
@@ -75,5 +82,7 @@ def run(args) -> int:
               f"{share:>13} {confidence:>11} {row.mostly_shop_pattern:>11}")
     print("'own history' is the average weight a forecast puts on the customer's own orders; "
           "'mostly shop' counts forecasts resting mostly on the shop-wide pattern (weight below 0.5).")
+    print("Each list gives every customer's last order date and the chance they still shop here "
+          "(the order-frequency model's estimate).")
     print(f"lists written: {files['all']}" + "".join(f", {p}" for n, p in files.items() if n != "all"))
     return EXIT_OK
