@@ -268,6 +268,17 @@ def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: floa
         return Outcome(problem=_problem_text(problem))
 
 
+@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+def outlook_rolling(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
+    """The outlook made at several cut-offs over the last year, against all revenue that came in after each."""
+    module = optional_module("outlook")
+    try:
+        return Outcome(module.rolling_backtest(read_dataset(dataset).value.orders, horizon=horizon, by=by,
+                                               method=method, variance=_outlook_variance(variance)))
+    except OrderDataError as problem:
+        return Outcome(problem=_problem_text(problem))
+
+
 @st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
 def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: str, shares: tuple) -> Outcome:
     """Customers in value tiers, the tier summary and the tier lists as CSV text.

@@ -595,6 +595,9 @@ def _project_new(arrivals: ArrivalFit, repeat_model: RepeatOrderModel, values: d
 def _schedule(repeat_model: RepeatOrderModel, history, value, new, values, *, as_of, horizon) -> pd.DataFrame:
     """Projected revenue month by month over the horizon (point figures), existing and new customers.
 
+    Rows are calendar months; the first and last are the parts of their months inside the horizon
+    (a part shorter than a day joins the next or previous row).
+
     A customer's expected orders up to each month edge e are E[Y(C(e) - C(as_of))]
     on the model's clock; a month's orders are the differences. New customers
     arriving on piece d place their first order then and their repeat orders
@@ -602,6 +605,11 @@ def _schedule(repeat_model: RepeatOrderModel, history, value, new, values, *, as
     """
     end = as_of + pd.Timedelta(days=horizon)
     edges = month_edges(as_of, end)
+    # A stub of less than a day at either end (an "as of" late on the month's last day) joins its neighbour.
+    if len(edges) > 2 and edges[1] - edges[0] < pd.Timedelta(days=1):
+        edges = edges.delete(1)
+    if len(edges) > 2 and edges[-1] - edges[-2] < pd.Timedelta(days=1):
+        edges = edges.delete(len(edges) - 2)
     fit = repeat_model.fit
     edge_times = edges.to_numpy(dtype="datetime64[ns]")
     starts = np.repeat(as_of.to_datetime64().astype("datetime64[ns]"), len(edges))
@@ -612,7 +620,8 @@ def _schedule(repeat_model: RepeatOrderModel, history, value, new, values, *, as
                                    for c in clock_edges])
     months = len(edges) - 1
     table = pd.DataFrame({
-        "month": [f"{stamp:%Y-%m}" for stamp in edges[:-1]],
+        # Each row is named by the calendar month holding its middle.
+        "month": [f"{left + (right - left) / 2:%Y-%m}" for left, right in zip(edges[:-1], edges[1:])],
         "days": np.diff(edge_times).astype(np.float64) / 86400e9,
         "expected_orders_existing": np.diff(cumulative_orders),
         "projected_revenue_existing": np.diff(cumulative_revenue),

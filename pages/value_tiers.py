@@ -52,6 +52,8 @@ if outcome.note:
     st.warning(outcome.note)
 rank = outcome.value["rank"]
 tiered = outcome.value["customers"]
+if tiered.attrs.get("note"):
+    st.info(tiered.attrs["note"])
 summary = outcome.value["summary"]
 files = outcome.value["files"]
 
@@ -100,16 +102,18 @@ members = tiered[tiered["tier"] == tier]
 members = members.assign(active_pct=100 * members["chance_active"])
 st.dataframe(
     members, hide_index=True, key="tier_members", height=layout.table_height(len(members), most=380),
-    column_order=["rank", "customer", "orders", "expected_next_order", "expected_orders", "active_pct",
+    column_order=["rank", "customer", "orders", "last_order", "active_pct", "expected_next_order", "expected_orders",
                   "projected_revenue", "projected_low", "projected_high", "own_history_weight", "cohort"],
     column_config={
         "rank": st.column_config.NumberColumn("Rank", format="%d"),
         "customer": st.column_config.TextColumn("Customer"),
         "orders": st.column_config.NumberColumn("Orders so far", format="%d"),
+        "last_order": st.column_config.DatetimeColumn("Last order", format="D MMM YYYY"),
         "expected_next_order": st.column_config.NumberColumn("Expected next order", format=money_format),
         "expected_orders": st.column_config.NumberColumn(f"Orders expected, next {horizon} days", format="%.2f"),
         "active_pct": st.column_config.NumberColumn(
-            "Still shopping here", format="%.0f%%", help="The chance this customer has not stopped for good."),
+            "Still shopping here", format="%.0f%%",
+            help="The chance this customer has not stopped for good, from how often and how recently they ordered."),
         "projected_revenue": st.column_config.NumberColumn("Projected revenue", format=money_format),
         "projected_low": st.column_config.NumberColumn("Projected from", format=money_format),
         "projected_high": st.column_config.NumberColumn("Projected to", format=money_format),
@@ -129,4 +133,5 @@ for column, (name, text) in zip(buttons, files.items()):
                            key=f"download_tier_{slug}", on_click="ignore", icon=":material/download:")
 st.caption("Projected revenue is the expected amount: a customer's likely number of orders in the period times "
            "their expected next order. The range is for that expected amount; what a single customer actually "
-           "spends varies much more.")
+           "spends varies much more. Tier names say only where a customer stands on the ranked figure. Each list "
+           "gives the customer's last order date and the chance they still shop here.")

@@ -433,7 +433,8 @@ class TestCohortOutlook:
         at.selectbox(key="cohort_by").set_value("segment").run()
         assert not at.exception
         shown = table_with(at, "share_of_projected_revenue")
-        assert sorted(shown["cohort"]) == sorted(projection.cohorts["cohort"]) == ["instagram", "market", "web"]
+        assert sorted(shown["cohort"]) == sorted(projection.cohorts["cohort"]) \
+            == [outlook_module.NEW_CUSTOMERS, "instagram", "market", "web"]
 
     def test_too_little_history_is_a_message(self):
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())

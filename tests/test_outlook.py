@@ -750,8 +750,10 @@ class TestSchedule:
         schedule = outlook.schedule
         assert list(schedule.columns) == SCHEDULE_COLUMNS
         assert schedule["days"].sum() == pytest.approx(100)
-        first_month = f"{outlook.as_of:%Y-%m}"
-        assert schedule["month"].iloc[0] == first_month and schedule["month"].is_monotonic_increasing
+        # The "as of" moment is late on 31 October: that stub of a day joins November's row.
+        assert outlook.as_of.month == 10 and outlook.as_of.day == 31
+        assert schedule["month"].iloc[0] == f"{outlook.as_of.year}-11" and schedule["month"].is_unique
+        assert schedule["month"].is_monotonic_increasing and (schedule["days"] >= 1).all()
         total = outlook.total
         assert schedule["projected_revenue_existing"].sum() == pytest.approx(total["projected_revenue_existing"], rel=1e-9)
         assert schedule["projected_revenue_new"].sum() == pytest.approx(total["projected_revenue_new"], rel=1e-9)
