@@ -1172,6 +1172,14 @@ class TestOutlookCommand:
         assert payload["total"]["projected_revenue"] == pytest.approx(library.total["projected_revenue"], rel=1e-12)
         assert payload["total"]["revenue_range_high"] == pytest.approx(library.total["revenue_range_high"], rel=1e-12)
         assert payload["method"] == library.forecast_fit.get("method")
+        # The dashboard's way (dashboard/state.py): the automatic forecasts first, then the outlook from them
+        # with the method and spread model they settled on. Same numbers.
+        import forecasting.forecasts as forecasts_module
+
+        table = forecasts_module.forecast_customers(customer_statistics(orders), method="auto", orders=orders)
+        dashboard = project_revenue(orders, horizon=60, forecasts=table, method=str(table["method"].iloc[0]),
+                                    variance=str(table["variance"].iloc[0]))
+        assert dashboard.total == library.total
 
     def test_by_channel_and_cutoff(self, shop_file):
         done = run_cli("outlook", str(shop_file), "--horizon", "60", "--by", "Channel", "--cutoff", "2026-07-01",
