@@ -24,8 +24,11 @@ class ShopSpec:
     customers: int = 5000
     min_orders: int = 1
     max_orders: int = 30
-    order_counts: str = "uniform"  # or "geometric": mostly few orders (mean ``mean_orders``), cut at max_orders
+    # "uniform" over min..max; "geometric": mostly few orders (mean ``mean_orders``), cut at max_orders;
+    # "banded": a quarter with one order, a quarter with 2-3, half with 4..max (every band well filled)
+    order_counts: str = "uniform"
     mean_orders: float = 4.0
+    segments: int = 0  # customers in this many segments whose typical spend differs (x 0.7 .. 1.4)
     mean_shape: float = 2.0
     mean_level: float = 50.0
     orders: str = "lognormal"  # or "gamma"
@@ -44,8 +47,12 @@ class ShopSpec:
     def describe(self) -> str:
         orders = (f"lognormal orders (log sd {self.log_sd})" if self.orders == "lognormal"
                   else f"Gamma orders (shape {self.gamma_shape})")
-        counts = (f"{self.min_orders}-{self.max_orders} orders each" if self.order_counts == "uniform"
-                  else f"mostly few orders (geometric, mean {self.mean_orders:g}, at most {self.max_orders})")
+        counts = {"uniform": f"{self.min_orders}-{self.max_orders} orders each",
+                  "geometric": f"mostly few orders (geometric, mean {self.mean_orders:g}, at most {self.max_orders})",
+                  "banded": f"a quarter with 1 order, a quarter with 2-3, half with 4-{self.max_orders}"}[
+            self.order_counts]
+        if self.segments:
+            counts += f", {self.segments} segments"
         bulk = (f", {self.bulk_share:.0%} bulk orders {self.bulk_low:g}-{self.bulk_high:g}x larger"
                 if self.bulk_share else "")
         return (f"{self.customers:,} customers, {counts}, Gamma customer means (shape {self.mean_shape:g}), "
@@ -95,8 +102,15 @@ def simulate_shop(spec: ShopSpec = BULK, seed: int = 0) -> SimulatedShop:
         n = rng.integers(spec.min_orders, spec.max_orders + 1, T)
     elif spec.order_counts == "geometric":
         n = np.clip(rng.geometric(1.0 / spec.mean_orders, T), spec.min_orders, spec.max_orders)
+    elif spec.order_counts == "banded":
+        band = rng.choice(3, T, p=[0.25, 0.25, 0.5])
+        n = np.where(band == 0, 1, np.where(band == 1, rng.integers(2, 4, T), rng.integers(4, spec.max_orders + 1, T)))
     else:
         raise ValueError(f"unknown order counts {spec.order_counts!r}")
+    segment = None
+    if spec.segments:
+        segment = rng.integers(0, spec.segments, T)
+        typical = typical * np.linspace(0.7, 1.4, spec.segments)[segment]
     names = np.array([f"S{t:05d}" for t in range(T)])
     who = np.repeat(np.arange(T), n)
     values = np.round(_order_values(rng, spec, typical[who]), 2)
@@ -104,6 +118,9 @@ def simulate_shop(spec: ShopSpec = BULK, seed: int = 0) -> SimulatedShop:
     days = rng.integers(0, 720, who.size)
     orders = pd.DataFrame({"customer": names[who], "order_value": values,
                            "order_date": pd.Timestamp("2024-01-01") + pd.to_timedelta(days, unit="D")})
+    if segment is not None:
+        orders["segment"] = np.array(["market stall", "web shop", "landscapers", "cafes", "schools"])[
+            segment % 5][who]
     orders = orders.sample(frac=1.0, random_state=seed).reset_index(drop=True)  # not grouped by customer
     true_mean = pd.Series(typical * spec.bulk_factor, index=pd.Index(names, name="customer"))
     return SimulatedShop(spec, orders, true_mean, typical, seed)
