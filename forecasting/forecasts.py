@@ -260,19 +260,20 @@ def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForeca
 
 
 def _automatic_choice(stats, orders, method, variance):
-    """(method, variance, reason) from the shop's own check, or the default when it cannot run."""
+    """(method, variance, reason, spread models that passed) from the shop's own check, or the default
+    (and None) when it cannot run."""
     if orders is None:
         chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
         chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance
         if METHOD_REGISTRY[chosen_method].own_spread:
             chosen_variance = OWN_SPREAD
         return chosen_method, chosen_variance, ("the shop's own check needs the order-level table, so the "
-                                                "model-based default is used")
+                                                "model-based default is used"), None
     from forecasting.selection import choose_method  # the only module that imports both sides
 
     chosen = choose_method(orders, stats, methods=None if method == "auto" else [method],
                            variances=None if variance == "auto" else [variance])
-    return chosen["method"], chosen["variance"], str(chosen.get("reason", ""))
+    return chosen["method"], chosen["variance"], str(chosen.get("reason", "")), chosen.get("spread_checked")
 
 
 # ---------------------------------------------------------------------------
@@ -379,8 +380,9 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     if len(stats) == 0:
         raise OrderDataError("there are no customers to forecast", fix="Check that the file has order rows")
     fit = {}
+    checked = None
     if method == "auto" or (variance == "auto" and not METHOD_REGISTRY[method].own_spread):
-        method, variance, reason = _automatic_choice(stats, orders, method, variance)
+        method, variance, reason, checked = _automatic_choice(stats, orders, method, variance)
         fit["auto_choice"] = f"{method} with {variance} variance: {reason}"
     entry = METHOD_REGISTRY[method]
     if entry.needs_orders and orders is None:
@@ -464,7 +466,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     fit.update(_flat("variance_", {key: value for key, value in spread.details.items()
                                    if key not in ("smearing", "log_order_spread")}))
     if orders is not None:
-        tail = tail_report(orders["order_value"].to_numpy(dtype=np.float64))
+        # With the shop's own check at hand, the report suggests only a spread model that passed it.
+        tail = tail_report(orders["order_value"].to_numpy(dtype=np.float64), checked=checked)
         fit.update({"tail_top1_revenue_share": tail.top1_revenue_share, "tail_log_skewness": tail.log_skewness,
                     "tail_index": tail.tail_index, "tail_orders": float(tail.tail_orders),
                     "tail_suggested_variance": tail.suggested_variance, "tail_summary": tail.summary})

@@ -174,6 +174,8 @@ def choose_from_scores(scored, results, *, restricted=False, seed=0) -> dict:
         allowed = [(m, v) for m, v in zip(results["method"], results["variance"])
                    if m in AUTO_METHODS and (v in AUTO_VARIANCES or v == "gamma-model")]
     chosen = best_of(results, allowed)
+    chosen["spread_checked"] = {str(spread): bool(part["calibrated"].any())
+                                for spread, part in results.groupby("variance", sort=False)}
     gain, choices = split_half_gain(scored, allowed=allowed, seed=seed)
     chosen["honest_gain_pct"] = gain
     chosen["honest_choices"] = choices
@@ -201,7 +203,8 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -
     -------
     dict
         As :func:`best_of`, plus ``honest_gain_pct`` and ``honest_choices`` of
-        :func:`split_half_gain`.
+        :func:`split_half_gain` and ``spread_checked`` (spread model -> whether any of its pairs
+        passed the check; the tail report suggests only those).
 
     Notes
     -----

@@ -263,6 +263,8 @@ class TestAutomaticChoice:
         assert table["method"].iloc[0] == chosen["method"]
         assert table["variance"].iloc[0] == chosen["variance"]
         assert table.attrs["fit"]["auto_choice"].startswith(chosen["method"])
+        # the tail report suggests only a spread model that passed the same check
+        assert chosen["spread_checked"][table.attrs["fit"]["tail_suggested_variance"]]
 
     def test_a_chosen_method_gets_its_spread_model_from_the_check(self):
         from forecasting.selection import choose_method
