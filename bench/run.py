@@ -154,15 +154,17 @@ def bench_size(n_orders: int, seed: int, rows: list, *, every_pair_at_10m: bool 
                 kwargs.update(codes=codes, values=orders["order_value"].to_numpy(np.float64))
             record(f"estimator {method}", lambda method=method, kwargs=kwargs: shrink(m, s, method=method, **kwargs))
 
-    pairs = [(mth, var) for mth in evaluation.EXACT_METHODS for var in evaluation.EXACT_VARIANCES]
+    pairs = evaluation._combinations(list(evaluation.EXACT_METHODS), list(evaluation.EXACT_VARIANCES), stats=stats) \
+        if "segment" in stats.columns else evaluation._combinations(
+            [m for m in evaluation.EXACT_METHODS if m != "mta-segments"], list(evaluation.EXACT_VARIANCES), stats=stats)
     record(f"exact leave-one-out, {len(pairs)} closed-form method x variance pairs (best of 3)",
            lambda: evaluation._leave_one_out(orders, stats, pairs), repeat=3)
     if METHODS and (n_orders < BIG or every_pair_at_10m):
         every = evaluation._combinations(None, None, stats=stats)
-        record(f"fast leave-one-out, all {len(every)} pairs (robust, proportional, gamma-gamma, -cv approximate)",
+        record(f"fast leave-one-out, all {len(every)} pairs (gamma-gamma, -cv approximate)",
                lambda: evaluation._leave_one_out(orders, stats, every))
         record(f"evaluate_methods: {len(pairs)} closed-form pairs, backtest, 500 bootstrap resamples",
-               lambda: evaluation.evaluate_methods(orders, methods=list(evaluation.EXACT_METHODS),
+               lambda: evaluation.evaluate_methods(orders, methods=sorted({m for m, _ in pairs}),
                                                    variances=list(evaluation.EXACT_VARIANCES), bootstrap=500))
     bench_forecast_steps(path, record)
     del result, orders, stats

@@ -1,23 +1,27 @@
 """Forecasts: per-customer statistics in, one forecast row per customer out.
 
-This is the one door every front end (command line, dashboard, evaluation)
-uses. :func:`forecast_customers` fits the chosen variance model
-(:mod:`forecasting.variance`), runs the chosen estimator
-(:mod:`forecasting.shrinkage`) and turns the result into money amounts with
-two ranges per customer:
+This is the one door every front end (command line, dashboard, evaluation) uses.
+:func:`forecast_customers` fits the chosen spread model (:mod:`forecasting.variance`), the spread
+between customers (REML, :func:`forecasting.estimators.base.fit_between`), runs the chosen
+estimator (:mod:`forecasting.estimators`) and returns to money with two ranges per customer:
 
-* ``expected_low`` / ``expected_high`` -- where the customer's true average
-  order value probably lies (``level``, default 90%);
-* ``next_order_low`` / ``next_order_high`` -- where the value of their next
-  single order probably falls (``next_level``, default 80%).
+* ``expected_low`` / ``expected_high`` -- where the customer's true mean order value probably
+  lies (``level``, default 90%);
+* ``next_order_low`` / ``next_order_high`` -- where the value of their next single order probably
+  falls (``next_level``, default 80%).
 
-The fitted shop-wide numbers (per-order spread, amount of shrinkage, centre,
-notes, the tail report) are kept in ``result.attrs["fit"]`` as a plain dict of
-floats and strings, so that a front end can explain them.
+The return to money and both ranges are written once (:func:`money_forecast`) and used by the
+fit on all orders and by its leave-one-out twin (:func:`forecast_left_out`), which the
+evaluation calls for every held-out order at once.
+
+The fitted shop-wide numbers (spread, amount of shrinkage, centre, notes, cautions, the tail
+report) are kept in ``result.attrs["fit"]`` as a plain dict of floats and strings, so that a
+front end can explain them.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from statistics import NormalDist
 
 import numpy as np
@@ -25,17 +29,22 @@ import pandas as pd
 import pyarrow as pa
 
 from forecasting.errors import OrderDataError
+from forecasting.estimators.base import Between, between_left_out, error_variance, fit_between, rows_of
 from forecasting.exports import rounded_for_reading
+from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
+from forecasting.options import METHODS as METHOD_REGISTRY
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
     VARIANCE_MODELS,
+    VarianceFit,
     check_variance_model,
-    iterate_proportional,
     pooled_variance,
+    spread_left_out,
     tail_report,
 )
 
-__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "forecast_customers", "forecasts_for_reading"]
+__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "forecast_customers", "forecasts_for_reading",
+           "money_forecast", "forecast_left_out"]
 
 FORECAST_COLUMNS = [
     "customer",
@@ -56,41 +65,220 @@ FORECAST_COLUMNS = [
 MONEY_COLUMNS = ["average_order_value", "expected_next_order", "expected_low", "expected_high",
                  "next_order_low", "next_order_high"]
 
-#: Used when method="auto" and the evaluation module cannot choose.
-DEFAULT_CHOICE = ("mta", "classic")
-
-_NEEDS_ORDERS = ("james-stein-cv", "mta-cv")
+#: Used when the automatic choice cannot run the shop's own check (no order-level values): the
+#: method whose forecasts are posterior means and whose ranges the calibration suite holds.
+DEFAULT_CHOICE = ("empirical-bayes", "log")
 
 
 def _check_level(value, option):
     if not (isinstance(value, (int, float, np.floating)) and 0 < float(value) < 1):
-        raise OrderDataError(f"{option} must be a fraction between 0 and 1", value=value,
-                             fix=f"Use for example {option}=0.9 for a 90% range")
+        raise OrderDataError(f"{option} must be a fraction between 0 and 1", value=value, option=option,
+                             fix="Use for example 0.9 for a 90% range")
     return float(value)
 
 
-def _automatic_choice(stats, orders):
-    """(method, variance, reason) from the evaluation module, or the default when it is absent."""
-    try:
-        from forecasting.evaluation import choose_method
-    except ImportError as missing:
-        if getattr(missing, "name", None) not in ("forecasting.evaluation", None):
-            raise
-        return DEFAULT_CHOICE + ("the automatic choice is not available, so multi-task averaging is used",)
+def _z(level):
+    # Normal quantiles from the standard library (Wichura's AS 241, accurate to about 1e-16),
+    # which spares the command line the start-up time of scipy.
+    return NormalDist().inv_cdf(0.5 + level / 2.0)
+
+
+# ---------------------------------------------------------------------------
+# The return to money and the ranges, written once
+# ---------------------------------------------------------------------------
+
+
+@dataclass
+class MoneyForecast:
+    """Forecasts in money with both ranges, and what the shop's own check needs to judge them.
+
+    ``check_centre``, ``check_estimate_var`` and ``check_order_var`` describe the next order on
+    the log scale: log(next order) - check_centre has variance check_estimate_var (the
+    forecast's own error) + check_order_var (one order's spread).
+    """
+
+    expected: np.ndarray
+    expected_low: np.ndarray
+    expected_high: np.ndarray
+    next_low: np.ndarray
+    next_high: np.ndarray
+    check_centre: np.ndarray
+    check_estimate_var: np.ndarray
+    check_order_var: np.ndarray
+
+
+def _lognormal_with(mean, variance, z):
+    """The range mean-matched and variance-matched by a lognormal: (low, high, log median, log variance)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = np.log1p(np.where(mean > 0, variance / (mean * mean), 0.0))
+    centre = np.log(np.maximum(mean, np.finfo(float).tiny)) - spread / 2.0
+    half = z * np.sqrt(spread)
+    return np.exp(centre - half), np.exp(centre + half), centre, spread
+
+
+def effective_between_variance(spread: VarianceFit, between: Between, *, sums):
+    """tau2_eff = 2 (log E[exp(theta)] - E[theta]) for the customers' log locations theta.
+
+    ``sums`` gives (sum w exp(l - C), sum w) with w = 1 / (tau2 + s) and
+    C = sigma2 / (2 n) + excess / n^2, relative to the log scale's origin (see
+    :func:`money_forecast`). For normal log locations this is tau2; for skewed ones (a gamma
+    spread of customer means has a long left tail on the log scale) it is what makes the
+    shop-wide forecast equal the mean of exp(theta). Never below 0 (Jensen).
+    """
+    weighted, total, origin = sums
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = 2.0 * (np.log(weighted / total) + origin - np.asarray(between.centre, dtype=np.float64))
+    return np.maximum(np.where(np.isfinite(value), value, 0.0), 0.0)
+
+
+def money_forecast(spread: VarianceFit, between: Between, estimate, weight, orders, own_mean, *, posterior,
+                   level, next_level, effective_tau2=0.0, customers=None) -> MoneyForecast:
+    """Money forecasts and both ranges from an estimate on the spread model's scale.
+
+    Parameters
+    ----------
+    spread : VarianceFit
+        The spread model (floats, or arrays over held-out orders).
+    between : Between
+        The spread between customers on the same scale.
+    estimate, weight, orders, own_mean : array_like
+        The estimate, its own-history weight g, the customer's number of orders n and their
+        average (or average log value) m.
+    posterior : bool
+        The estimate is the empirical-Bayes posterior mean (Morris's allowance applies).
+    customers : int
+        The number of customers (for Morris's allowance).
+    level, next_level : float
+        Coverage of the expected-value range and of the next-order range.
+    effective_tau2 : float or array
+        tau2_eff of :func:`effective_between_variance` (the log model only).
+
+    Returns
+    -------
+    MoneyForecast
+
+    Notes
+    -----
+    The estimate's error variance is v = g^2 s + (1 - g)^2 (tau2 + var c) (with Morris's
+    allowance for the posterior mean; :func:`forecasting.estimators.base.error_variance`):
+    the within-customer spread where the forecast rests on the customer's orders, the spread
+    between customers and the centre's uncertainty where it leans on the shop.
+
+    Log model (estimate theta^ = c + g (l - c) of the log location theta = E[log x]): the true
+    mean order value is exp(theta) S with S Duan's smearing factor
+    (:func:`forecasting.variance.smearing_factor`). Over customers with the same n,
+    E[exp(theta^)] = exp(c (1 - g)) E[exp(g theta)] E[exp(g e_n)], e_n the average of n log
+    deviations, so the forecast
+
+        S exp(theta^ + (1 - g^2) tau2_eff / 2 - g^2 sigma2 / (2 n) - g^3 excess / n^2)
+
+    adds up to the customers' true spend: the middle term is the lognormal mean of the
+    between-customer part with the effective variance of :func:`effective_between_variance`,
+    the last two are n log E[exp(g e / n)] to third order, with the third cumulant taken from
+    the smearing's excess over the lognormal value (excess = log S - sigma2 / 2), exact for
+    n = 1 and for lognormal orders. Plain averages (g = 1) become exp(l) S^(1 - 1/n) to that
+    order, unbiased for each customer; the shop-wide average (g = 0) becomes the mean of
+    exp(theta) S. The expected range is S exp(theta^ +- z sqrt(v)); the next order's range is
+    exp(theta^ +- z' sqrt(v + sigma2)), all of the next order's spread on the log scale.
+
+    Money models (classic, proportional): the forecast is the estimate; the expected range is
+    the lognormal with the same mean and variance v (so it stays positive; for the proportional
+    model v grows with the square of the forecast, scaled by forecast^2 / M2). The next order
+    is lognormal around the forecast with log-variance log(1 + v / L^2) plus the shop's pooled
+    log spread of one order (``details["log_order_spread"]``), with L the forecast for the
+    proportional model and the shop's centre for the classic one.
+    """
+    g = np.asarray(weight, dtype=np.float64)
+    n = np.asarray(orders, dtype=np.float64)
+    estimate = np.asarray(estimate, dtype=np.float64)
+    s = spread.mean_variance(n)
+    offset = np.asarray(own_mean, dtype=np.float64) - np.asarray(between.centre, dtype=np.float64)
+    v = error_variance(g, s, between, offset, posterior=posterior, customers=customers)
+    z, z_next = _z(level), _z(next_level)
+    if spread.scale == "log":
+        smearing = np.asarray(spread.details["smearing"], dtype=np.float64)
+        excess = np.asarray(spread.details["excess"], dtype=np.float64)
+        sigma2 = np.asarray(spread.sigma2, dtype=np.float64)
+        g2 = g * g
+        shift = (1.0 - g2) * np.asarray(effective_tau2, dtype=np.float64) / 2.0 - g2 * sigma2 / (2.0 * n) \
+            - g2 * g * excess / (n * n)
+        expected = smearing * np.exp(estimate + shift)
+        half = z * np.sqrt(v)
+        expected_low = smearing * np.exp(estimate - half)
+        expected_high = smearing * np.exp(estimate + half)
+        # The central range of the next order is set by usual orders, in the customer's history as
+        # in the next order: the one-order spread w (not the pooled sigma2) on both.
+        one_order = np.asarray(spread.details["order_spread"], dtype=np.float64)
+        v_next = error_variance(g, one_order / n, between)
+        next_half = z_next * np.sqrt(v_next + one_order)
+        return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
+                             np.exp(estimate - next_half), np.exp(estimate + next_half),
+                             estimate + np.zeros_like(v), v, sigma2 + np.zeros_like(v))
+    expected = estimate
+    if spread.model == "proportional":
+        v = v * expected * expected / np.asarray(spread.details["mean_square_level"], dtype=np.float64)
+    expected_low, expected_high, _, v_log = _lognormal_with(expected, v, z)
+    # The next order: lognormal around the forecast, with the shop's log spread of one order and the
+    # forecast's own uncertainty relative to the level it concerns: the customer's own for the
+    # proportional model, the shop's centre for the classic one (whose v is one amount of money for
+    # every customer with the same orders).
+    if spread.model != "proportional":
+        centre_money = np.asarray(between.centre, dtype=np.float64)
+        v_log = np.log1p(v / np.maximum(centre_money * centre_money, np.finfo(float).tiny))
+    order_log = np.asarray(spread.details["log_order_spread"], dtype=np.float64)
+    next_log = order_log + v_log
+    centre = np.log(np.maximum(expected, np.finfo(float).tiny)) - next_log / 2.0
+    half = z_next * np.sqrt(next_log)
+    return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
+                         np.exp(centre - half), np.exp(centre + half), centre, v_log, order_log + np.zeros_like(v_log))
+
+
+def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForecast:
+    """The Gamma-Gamma model's own posterior mean and ranges (see
+    :func:`forecasting.estimators.gamma_gamma.gamma_gamma_ranges`)."""
+    from forecasting.estimators.gamma_gamma import gamma_gamma_ranges
+
+    p, q, gam = params["p"], params["q"], params["gamma"]
+    low, high, next_low, next_high = gamma_gamma_ranges(params, n, m, level=level, next_level=next_level)
+    shape = p * n + q
+    rate = gam + n * m
+    with np.errstate(divide="ignore", invalid="ignore"):
+        posterior_var = p * p * rate * rate / ((shape - 1.0) ** 2 * (shape - 2.0))
+        order_var = p * rate * rate / ((shape - 1.0) * (shape - 2.0))  # E[p / nu^2]
+    finite = shape > 2.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v_log = np.log1p(np.where(finite, posterior_var / estimate ** 2, np.inf))
+        next_log = np.log1p(np.where(finite, (posterior_var + order_var) / estimate ** 2, np.inf))
+        order_log = np.where(finite, next_log - v_log, np.inf)
+    return MoneyForecast(estimate, np.minimum(low, estimate), np.maximum(high, estimate), next_low, next_high,
+                         np.log(estimate) - next_log / 2.0, v_log, order_log)
+
+
+# ---------------------------------------------------------------------------
+# The automatic choice
+# ---------------------------------------------------------------------------
+
+
+def _automatic_choice(stats, orders, method, variance):
+    """(method, variance, reason, spread models that passed) from the shop's own check, or the default
+    (and None) when it cannot run."""
     if orders is None:
-        return DEFAULT_CHOICE + ("the automatic choice needs the order-level table; multi-task averaging is used",)
-    chosen = choose_method(orders, stats)
-    return chosen["method"], chosen["variance"], str(chosen.get("reason", ""))
+        chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
+        chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance
+        if METHOD_REGISTRY[chosen_method].own_spread:
+            chosen_variance = OWN_SPREAD
+        return chosen_method, chosen_variance, ("the shop's own check needs the order-level table, so the "
+                                                "model-based default is used"), None
+    from forecasting.selection import choose_method  # the only module that imports both sides
+
+    chosen = choose_method(orders, stats, methods=None if method == "auto" else [method],
+                           variances=None if variance == "auto" else [variance])
+    return chosen["method"], chosen["variance"], str(chosen.get("reason", "")), chosen.get("spread_checked")
 
 
-def _order_positions(stats, orders):
-    codes = stats.index.get_indexer(orders["customer"])
-    if (codes < 0).any():
-        raise OrderDataError(
-            "the orders table has a customer that is missing from the customer statistics",
-            column="customer", value=orders["customer"].to_numpy()[codes < 0][0],
-            fix="Compute the statistics from the same orders table")
-    return codes
+# ---------------------------------------------------------------------------
+# The one door
+# ---------------------------------------------------------------------------
 
 
 def _repeated_text(text: str, rows: int):
@@ -113,7 +301,21 @@ def _flat(prefix, mapping):
     return out
 
 
-def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: str = "classic",
+def _order_positions(stats, orders):
+    codes = stats.index.get_indexer(orders["customer"])
+    if (codes < 0).any():
+        raise OrderDataError(
+            "the orders table has a customer that is missing from the customer statistics",
+            column="customer", value=orders["customer"].to_numpy()[codes < 0][0],
+            fix="Compute the statistics from the same orders table")
+    return codes
+
+
+def _segment_codes(stats):
+    return pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
+
+
+def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
                        orders: pd.DataFrame | None = None, level: float = 0.90,
                        next_level: float = 0.80) -> pd.DataFrame:
     """Expected next-order value, with ranges, for every customer.
@@ -121,18 +323,19 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     Parameters
     ----------
     stats : pandas.DataFrame
-        From :func:`forecasting.customers.customer_statistics` (a ``segment``
-        column is needed for ``"mta-segments"``).
-    method : str, default "mta"
-        One of ``METHODS`` or ``"auto"`` (the method and variance model with
-        the lowest leave-one-out error, from :mod:`forecasting.evaluation`).
-    variance : str, default "classic"
-        One of ``VARIANCE_MODELS``; ignored by ``"gamma-gamma"``, which has
-        its own spread (reported as ``"gamma-model"``).
+        From :func:`forecasting.customers.customer_statistics` (a ``segment`` column is
+        needed for ``"mta-segments"``).
+    method : str, default "auto"
+        One of ``METHODS`` or ``"auto"``: the method the shop's own check
+        (:mod:`forecasting.selection`) finds best among those whose forecasts add up to the
+        money and whose ranges hold what they say.
+    variance : str, default "auto"
+        One of ``VARIANCE_MODELS`` or ``"auto"`` (chosen by the same check); ignored by
+        ``"gamma-gamma"``, which has its own spread (reported as ``"gamma-model"``).
     orders : pandas.DataFrame, optional
-        The cleaned orders the statistics came from; needed by the
-        ``"robust"`` variance model, the ``-cv`` methods and ``"auto"``, and
-        used for the tail report.
+        The cleaned orders the statistics came from; needed by the cross-validated methods and
+        by the automatic choice (without them it uses empirical Bayes with the log spread
+        model), and used for the tail report.
     level : float, default 0.90
         Coverage of ``expected_low`` / ``expected_high``.
     next_level : float, default 0.80
@@ -141,25 +344,16 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     Returns
     -------
     pandas.DataFrame
-        One row per customer in the order of ``stats``, columns
-        ``FORECAST_COLUMNS``; ``attrs["fit"]`` holds the fitted scalars.
+        One row per customer in the order of ``stats``, columns ``FORECAST_COLUMNS``;
+        ``attrs["fit"]`` holds the fitted scalars, notes and the caution of the chosen
+        method and spread model (empty when there is none).
 
     Notes
     -----
-    With estimate y_t, own-history weight g_t and s_t the variance of the
-    customer's average, the estimate's variance is v_t = g_t s_t (the
-    posterior variance of a shrunk mean with the centre treated as known;
-    gamma-gamma uses its exact posterior variance). The expected range is
-    y_t +- z sqrt(v_t), cut at 0; for the ``"log"`` model it is
-    exp(mu_t + sigma2_log / 2 +- z sqrt(v_t)).
-
-    The next order is modelled as lognormal with the shop's pooled log-scale
-    spread sigma2_log (classic pooled variance of log order values), whatever
-    the variance model: median_t = expected_t exp(-sigma2_log / 2) and the
-    range is median_t exp(+- z sqrt(sigma2_log + g_t sigma2_log / n_t)).
-
-    ``low_confidence`` is True when the own-history weight is below 0.5 or
-    the customer has a single order.
+    The estimator runs on each customer's average (average log value for the log model) with
+    s_t from the spread model; :func:`money_forecast` returns to money and gives both ranges.
+    ``low_confidence`` is True when the own-history weight is below 0.5 or the customer has a
+    single order.
 
     Examples
     --------
@@ -170,7 +364,7 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     ...     "order_value": [24.0, 36.0, 80.0, 64.0, 72.0, 15.0],
     ...     "order_date": pd.to_datetime(["2025-03-01", "2025-04-02", "2025-03-05",
     ...                                   "2025-05-01", "2025-06-01", "2025-06-03"])})
-    >>> table = forecast_customers(customer_statistics(orders), method="mta")
+    >>> table = forecast_customers(customer_statistics(orders), method="mta", variance="log")
     >>> table[["customer", "orders", "average_order_value", "low_confidence"]]
       customer  orders  average_order_value  low_confidence
     0     fern       2                 30.0           False
@@ -179,138 +373,224 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = "mta", variance: st
     """
     if method != "auto":
         check_method(method)
-    check_variance_model(variance)
+    if variance != "auto" and variance != OWN_SPREAD:
+        check_variance_model(variance)
     level = _check_level(level, "level")
     next_level = _check_level(next_level, "next_level")
     if len(stats) == 0:
         raise OrderDataError("there are no customers to forecast", fix="Check that the file has order rows")
     fit = {}
-    if method == "auto":
-        method, variance, reason = _automatic_choice(stats, orders)
+    checked = None
+    if method == "auto" or (variance == "auto" and not METHOD_REGISTRY[method].own_spread):
+        method, variance, reason, checked = _automatic_choice(stats, orders, method, variance)
         fit["auto_choice"] = f"{method} with {variance} variance: {reason}"
-    if method in _NEEDS_ORDERS and orders is None:
-        raise OrderDataError(f"the '{method}' method needs the order-level table",
-                             fix="Pass orders=..., or choose a --method without -cv")
-    if method == "mta-segments" and "segment" not in stats.columns:
-        raise OrderDataError("the 'mta-segments' method needs a segment for every customer",
-                             fix="Name the segment column with --segment, or choose another --method")
+    entry = METHOD_REGISTRY[method]
+    if entry.needs_orders and orders is None:
+        raise OrderDataError(f"the '{method}' method needs the order-level table", option="method",
+                             fix="Give the cleaned orders too, or choose a method that is not cross-validated")
+    if entry.needs_segments and "segment" not in stats.columns:
+        raise OrderDataError("the 'mta-segments' method needs a segment for every customer", role="segment",
+                             fix="Name the column that holds each customer's segment, or choose another method")
 
     n = stats["orders"].to_numpy(dtype=np.int64)
     n_float = n.astype(np.float64)
     money_mean = stats["mean"].to_numpy(dtype=np.float64)
-    log_fit = pooled_variance(stats, model="log")
-    sigma2_log = log_fit.sigma2
-    # gamma-gamma has its own spread; the classic variance only backs up its intervals.
-    vfit = pooled_variance(stats, model="classic" if method == "gamma-gamma" else variance, orders=orders)
-    on_log = vfit.scale == "log"
+    spread_name = "classic" if entry.own_spread else (variance if variance != "auto" else DEFAULT_CHOICE[1])
+    spread = _with_log_order_spread(pooled_variance(stats, model=spread_name), stats)
+    on_log = spread.scale == "log"
     working = stats["log_mean"].to_numpy(dtype=np.float64) if on_log else money_mean
 
     codes = values = None
-    if orders is not None and method in _NEEDS_ORDERS:
+    if entry.needs_orders:
         codes = _order_positions(stats, orders)
         values = orders["order_value"].to_numpy(dtype=np.float64)
         if on_log:
             values = np.log(values)
-    segments = None
-    if "segment" in stats.columns and method == "mta-segments":
-        segments = pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
+    segments = _segment_codes(stats) if entry.needs_segments else None
 
-    def run(mean_vars, multiplier=None):
-        return shrink(working, mean_vars, method=method, orders=n_float, segments=segments,
-                      codes=codes, values=values, multiplier=multiplier)
-
-    notes = list(log_fit.notes) if on_log else list(vfit.notes)
-    if vfit.model == "proportional" and method != "gamma-gamma":
-        first = run(vfit.mean_variance(n_float, level=working))
-        multiplier = first.params.get("lambda")
-        result, mean_vars, iterations, converged = iterate_proportional(
-            lambda s: run(s, multiplier), working, n_float, vfit.sigma2)
-        fit["iterations"] = float(iterations)
-        fit["converged"] = bool(converged)
-        if not converged:
-            notes.append(f"The proportional variance model did not settle within {iterations} refits; "
-                         "the last refit is used.")
-    else:
-        mean_vars = vfit.mean_variance(n_float)
-        result = run(mean_vars)
-    notes.extend(result.notes)
-
-    estimate = result.estimate
+    mean_vars = spread.mean_variance(n_float)
+    between = fit_between(working, mean_vars)
+    result = shrink(working, mean_vars, method=method, orders=n_float, segments=segments, codes=codes,
+                    values=values, between=between)
+    notes = list(spread.notes) + list(between.notes) + list(result.notes)
     weight = np.clip(result.weight, 0.0, 1.0)
-    v = np.maximum(result.estimate_var, 0.0)
-    # Normal quantiles from the standard library (Wichura's AS 241, accurate to about 1e-16),
-    # which spares the command line the start-up time of scipy.
-    z = NormalDist().inv_cdf(0.5 + level / 2.0)
-    z_next = NormalDist().inv_cdf(0.5 + next_level / 2.0)
-    # In-place steps below: on millions of customers every temporary array is fresh memory.
-    half = np.sqrt(v)
-    half *= z
+    effective = 0.0
     if on_log:
-        expected = np.exp(estimate + (sigma2_log + v) / 2.0)
-        expected_low = np.exp(estimate + sigma2_log / 2.0 - half)
-        expected_high = np.exp(estimate + sigma2_log / 2.0 + half)
-        centre_money = float(np.exp(result.centre + sigma2_log / 2.0))
+        effective = effective_between_variance(spread, between, sums=_log_location_sums(spread, between, stats))
+    if entry.own_spread and "population_mean" in result.params:
+        money = _gamma_forecast(result.params, n_float, money_mean, result.estimate, level=level,
+                                next_level=next_level)
     else:
-        expected = estimate
-        expected_low = estimate - half
-        np.maximum(expected_low, 0.0, out=expected_low)
-        expected_high = estimate + half
-        centre_money = float(result.centre)
-    median = expected * np.exp(-sigma2_log / 2.0)
-    spread = weight * sigma2_log  # z_next * sqrt(sigma2_log + weight * sigma2_log / n)
-    spread /= n_float
-    spread += sigma2_log
-    np.sqrt(spread, out=spread)
-    spread *= z_next
-    next_high = np.exp(spread)
-    next_high *= median
-    next_low = np.exp(np.negative(spread, out=spread), out=spread)
-    next_low *= median
+        money = money_forecast(spread, between, result.estimate, weight, n_float, working,
+                               posterior=method == "empirical-bayes", level=level, next_level=next_level,
+                               effective_tau2=effective, customers=len(stats))
 
-    variance_name = "gamma-model" if method == "gamma-gamma" else variance
+    variance_name = OWN_SPREAD if entry.own_spread else spread_name
     table = pd.DataFrame({
         # A copy of the index's array (Arrow text is shared until written to): no round trip
         # through Python objects, and the table can be edited without touching the statistics.
         "customer": stats.index.array.copy(),
         "orders": n.copy(),
         "average_order_value": money_mean.copy(),
-        "expected_next_order": expected,
+        "expected_next_order": money.expected,
         "own_history_weight": weight,
-        "expected_low": expected_low,
-        "expected_high": expected_high,
-        "next_order_low": next_low,
-        "next_order_high": next_high,
+        "expected_low": money.expected_low,
+        "expected_high": money.expected_high,
+        "next_order_low": money.next_low,
+        "next_order_high": money.next_high,
         "low_confidence": (weight < 0.5) | (n == 1),
         "method": _repeated_text(method, len(n)),
         "variance": _repeated_text(variance_name, len(n)),
     }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block
 
+    centre = float(result.centre)
     fit.update({
         "method": method,
         "variance": variance_name,
         "customers": float(len(stats)),
         "level": level,
         "next_level": next_level,
-        "sigma2": float(vfit.sigma2),
-        "sigma2_scale": {"classic": "money squared", "robust": "money squared", "log": "log value",
-                         "proportional": "squared coefficient of variation"}[vfit.model],
-        "sigma2_log": float(sigma2_log),
-        "centre": centre_money,
+        "sigma2": float(spread.sigma2),
+        "sigma2_scale": {"classic": "money squared", "log": "log value",
+                         "proportional": "squared coefficient of variation"}[spread.model],
+        "tau2": float(between.tau2),
+        "centre": float(np.exp(centre) * spread.details["smearing"]) if on_log else centre,
+        "caution": caution_of(method, variance_name),
     })
+    # The log spread of one order that the next-order range uses (the outlook splits the range with it).
+    fit["sigma2_log"] = float(spread.details["order_spread"] if on_log else spread.details["log_order_spread"])
     if on_log:
-        fit["centre_log"] = float(result.centre)
-    fit.update(_flat("", result.params))
-    fit.update(_flat("variance_", vfit.details))
+        fit.update({"centre_log": centre, "smearing": float(spread.details["smearing"]),
+                    "tau2_effective": float(effective)})
+    fit.update(_flat("", {key: value for key, value in result.params.items() if key != "tau2"}))
+    fit.update(_flat("variance_", {key: value for key, value in spread.details.items()
+                                   if key not in ("smearing", "log_order_spread")}))
     if orders is not None:
-        tail = tail_report(orders["order_value"].to_numpy(dtype=np.float64))
+        # With the shop's own check at hand, the report suggests only a spread model that passed it.
+        tail = tail_report(orders["order_value"].to_numpy(dtype=np.float64), checked=checked)
         fit.update({"tail_top1_revenue_share": tail.top1_revenue_share, "tail_log_skewness": tail.log_skewness,
                     "tail_index": tail.tail_index, "tail_orders": float(tail.tail_orders),
                     "tail_suggested_variance": tail.suggested_variance, "tail_summary": tail.summary})
     else:
         fit["tail_summary"] = "Order-level values were not given, so the size of big orders was not described."
-    fit["notes"] = " ".join(notes)
+    fit["notes"] = " ".join(dict.fromkeys(notes))
     table.attrs["fit"] = fit
     return table
+
+
+def _with_log_order_spread(spread, stats):
+    """A money spread model with the shop's pooled log spread of one order (for the next-order range)."""
+    if spread.scale == "log":
+        return spread
+    log = pooled_variance(stats, model="log")
+    return VarianceFit(spread.model, spread.sigma2, spread.notes, {**spread.details, "log_order_spread": log.sigma2})
+
+
+def _log_location_sums(spread, between, stats):
+    """(sum w exp(l - origin - C), sum w, origin) over all customers (see effective_between_variance)."""
+    n = stats["orders"].to_numpy(dtype=np.float64)
+    l = stats["log_mean"].to_numpy(dtype=np.float64)
+    origin = float(np.mean(l))
+    total = between.tau2 + spread.mean_variance(n)
+    # No spread at all (every order alike): the customers count alike.
+    w = 1.0 / np.where(total > 0, total, 1.0)
+    correction = spread.sigma2 / (2.0 * n) + spread.details["excess"] / (n * n)
+    return float(w @ np.exp(l - origin - correction)), float(np.sum(w)), origin
+
+
+# ---------------------------------------------------------------------------
+# The leave-one-out twin of forecast_customers
+# ---------------------------------------------------------------------------
+
+
+def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) -> MoneyForecast:
+    """:func:`forecast_customers` refitted without each held-out order, for all of them at once.
+
+    Parameters
+    ----------
+    held : forecasting.holdout.HeldOut
+    method, variance : str
+        A method and spread model (``"gamma-model"`` for gamma-gamma).
+
+    Returns
+    -------
+    MoneyForecast
+        One entry per held-out order: the forecast of that order's customer from their other
+        orders, with the spread model, the spread between customers, the amount of shrinkage,
+        the centre and the return to money all refitted without it. Methods whose registry
+        entry says ``exact_left_out=False`` keep what ``left_out_keeps`` says from the fit on
+        all orders.
+    """
+    entry = METHOD_REGISTRY[method]
+    fitted = {}
+    if not entry.exact_left_out:
+        fitted = held.cached(("full fit", method, variance), lambda: _full_fit(held, method, variance))
+    if entry.own_spread:
+        spread = spread_left_out(held, "classic")
+        if "population_mean" in fitted:
+            side = held.money
+            d, g = load(entry.left_out)(side, spread.scale_factor, fitted=fitted)
+            return _gamma_forecast(fitted, side.n_after, side.mean_after, side.origin + d, level=level,
+                                   next_level=next_level)
+        method_for_rest, posterior = "plain", False
+    else:
+        spread = spread_left_out(held, variance)
+        method_for_rest, posterior = method, method == "empirical-bayes"
+    if spread.scale != "log":
+        spread = VarianceFit(spread.model, spread.sigma2, spread.notes,
+                             {**spread.details, "log_order_spread": spread_left_out(held, "log").sigma2})
+    side = held.side(spread.scale)
+    factor = np.asarray(spread.scale_factor, dtype=np.float64) + np.zeros(side.H)
+    between = held.cached(("between", spread.model),
+                          lambda: between_left_out(side, factor, start=_between_on_all(held, spread.model)))
+    twin = load(METHOD_REGISTRY[method_for_rest].left_out)
+    d, g = twin(side, factor, between=between, segments=held.segment_codes, fitted=fitted)
+    effective = 0.0
+    if spread.scale == "log":
+        effective = held.cached(("effective", spread.model),
+                                lambda: effective_between_variance(spread, between,
+                                                                   sums=_log_location_sums_left_out(held, spread,
+                                                                                                    between)))
+    return money_forecast(spread, between, side.origin + d, np.clip(g, 0.0, 1.0), side.n_after, side.mean_after,
+                          posterior=posterior, level=level, next_level=next_level, effective_tau2=effective,
+                          customers=side.T)
+
+
+def _between_on_all(held, model):
+    """tau2 fitted on all orders (where each removal's solve starts)."""
+    spread = pooled_variance(held.stats, model=model)
+    working = held.stats["log_mean" if spread.scale == "log" else "mean"].to_numpy(np.float64)
+    return float(fit_between(working, spread.mean_variance(held.stats["orders"].to_numpy(np.float64))).tau2)
+
+
+def _log_location_sums_left_out(held, spread, between):
+    """The twin of :func:`_log_location_sums` after each removal (sums over order-count groups)."""
+    log = held.log
+    if "exp" not in log._group_sums:
+        log.add_column("exp", np.exp(log.d), np.exp(log.d_before), np.exp(log.d_after))
+    tau2 = np.asarray(between.tau2, dtype=np.float64) + np.zeros(log.H)
+    factor = np.asarray(spread.scale_factor, dtype=np.float64) + np.zeros(log.H)
+    sigma2 = np.asarray(spread.sigma2, dtype=np.float64) + np.zeros(log.H)
+    excess = np.asarray(spread.details["excess"], dtype=np.float64) + np.zeros(log.H)
+
+    def precision(k, rows):
+        total = rows_of(tau2, rows, k) + rows_of(factor, rows, k) / k
+        return 1.0 / np.where(total > 0, total, 1.0)  # no spread at all: the customers count alike
+
+    def weight(k, rows):
+        correction = rows_of(sigma2, rows, k) / (2.0 * k) + rows_of(excess, rows, k) / (k * k)
+        return precision(k, rows) * np.exp(-correction)
+
+    (weighted,) = log.sums_after(weight, ["exp"])
+    (total,) = log.sums_after(precision, ["one"])
+    return weighted, total, log.origin
+
+
+def _full_fit(held, method, variance):
+    """The fitted scalars of the forecast on all orders (what an approximate twin keeps)."""
+    table = forecast_customers(held.stats, method=method, variance="classic" if variance == OWN_SPREAD else variance,
+                               orders=held.orders)
+    return table.attrs["fit"]
 
 
 def forecasts_for_reading(table: pd.DataFrame) -> pd.DataFrame:

@@ -790,8 +790,9 @@ class TestLeaveOneOutOnCluster:
     def test_methods_needing_every_order_are_refused(self, shop_on_cluster):
         from forecasting.engines.dask_engine import leave_one_out_on_cluster
 
-        with pytest.raises(OrderDataError, match=r"exact closed-form methods only.*--engine pandas"):
-            leave_one_out_on_cluster(shop_on_cluster[0], methods="mta", variances="robust")
+        with pytest.raises(OrderDataError, match=r"exact closed-form methods only.*pandas engine") as raised:
+            leave_one_out_on_cluster(shop_on_cluster[0], methods="mta-cv", variances="log")
+        assert raised.value.option == "engine"
 
 
 @needs_dask

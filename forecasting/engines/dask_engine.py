@@ -508,83 +508,68 @@ def customer_statistics_dask(source, *, scheduler=None, blocksize="64MB", partit
 
 def _order_value_sums(orders: pd.DataFrame, origins) -> np.ndarray:
     """Sums of (x - origin) and (x - origin)^2 of the order values, money and log."""
-    x = orders["order_value"].to_numpy(dtype=np.float64)
-    money = x - origins[0]
-    log = np.log(x) - origins[1]
-    return np.array([money.sum(), money @ money, log.sum(), log @ log])
+    from ..holdout import order_value_sums
+
+    return order_value_sums(orders["order_value"].to_numpy(dtype=np.float64), origins)
 
 
-def _leave_one_out_partition(orders: pd.DataFrame, stats: pd.DataFrame, order_sums, pairs, next_level):
-    """Squared errors and range hits of one partition's held-out orders, shop-wide sums given."""
+def _leave_one_out_partition(orders: pd.DataFrame, stats: pd.DataFrame, order_sums, pairs, level, next_level):
+    """Per-customer sums of one partition's held-out orders (each partition holds whole customers),
+    with the shop-wide statistics given."""
     from .. import evaluation
+    from ..holdout import held_out_orders
 
-    empty = {"held_out": 0, "plain": 0.0, "sse": [0.0] * len(pairs), "inside": [0] * len(pairs)}
     if len(orders) == 0:
-        return empty
-    held = evaluation._held_out_orders(orders, stats)
-    # The fallback variance (no customer with two orders left) needs every order's value.
-    held.money.sum_ov, held.money.sum_ov2 = float(order_sums[0]), float(order_sums[1])
-    held.log.sum_ov, held.log.sum_ov2 = float(order_sums[2]), float(order_sums[3])
-    x = held.value
-    if len(x) == 0:
-        return empty
-    result = {"held_out": int(len(x)), "plain": float(((held.money.mean_after - x) ** 2).sum()),
-              "sse": [], "inside": []}
-    for method, variance in pairs:
-        prediction = evaluation._loo_predict(held, method, variance, next_level=next_level)
-        result["sse"].append(float(((prediction.expected - x) ** 2).sum()))
-        low, high = prediction.low, prediction.high
-        result["inside"].append(int(((x >= low) & (x <= high)).sum()))
-    return result
+        return None
+    held = held_out_orders(orders, stats, order_sums=order_sums)
+    if len(held.value) == 0:
+        return None
+    return evaluation.customer_scores(evaluation.leave_one_out(orders, stats, pairs, level=level,
+                                                               next_level=next_level, held=held))
 
 
-def _cluster_pairs(methods, variances):
-    """The method x variance pairs to evaluate on the cluster: the exact closed forms only."""
+def _cluster_pairs(methods, variances, stats=None):
+    """The method x spread model pairs to evaluate on the cluster: those whose leave-one-out is exact
+    and needs only the per-customer statistics."""
     from .. import evaluation
 
     exact_methods, exact_variances = evaluation.EXACT_METHODS, evaluation.EXACT_VARIANCES
-    pairs = evaluation._combinations(list(exact_methods) if methods is None else methods,
-                                     list(exact_variances) if variances is None else variances)
+    has_segments = stats is not None and "segment" in stats.columns
+    default = [m for m in exact_methods if m != "mta-segments" or has_segments]
+    pairs = evaluation._combinations(default if methods is None else methods,
+                                     list(exact_variances) if variances is None else variances, stats=stats)
     for method, variance in pairs:
         if method not in exact_methods or variance not in exact_variances:
             raise OrderDataError(
                 f"on a cluster the leave-one-out covers the exact closed-form methods only "
-                f"(got {method} with {variance} variance)", value=f"{method}/{variance}",
-                fix=f"Choose methods from {', '.join(exact_methods)} and variances from "
-                    f"{', '.join(exact_variances)}, or use --engine pandas")
+                f"(got {method} with {variance} variance)", value=f"{method}/{variance}", option="engine",
+                fix=f"Choose methods from {', '.join(exact_methods)} and spread models from "
+                    f"{', '.join(exact_variances)}, or run on one machine with the pandas engine")
     return pairs
 
 
-def _leave_one_out_table(shop: ShopOnCluster, pairs, next_level):
+def _leave_one_out_table(shop: ShopOnCluster, pairs, next_level, level=0.90):
     from .. import evaluation
+    from ..holdout import origins_of
 
     client = shop.client
     stats = shop.stats
-    origins = (float(stats["mean"].to_numpy(np.float64).mean()),
-               float(stats["log_mean"].to_numpy(np.float64).mean()))
+    origins = origins_of(stats)
     order_sums = np.sum(client.gather(client.map(_order_value_sums, shop.order_parts, origins=origins,
                                                  pure=False)), axis=0)
     stats_future = client.scatter(stats, broadcast=True, hash=False)
     parts = client.gather(client.map(_leave_one_out_partition, shop.order_parts, stats=stats_future,
-                                     order_sums=order_sums, pairs=pairs, next_level=next_level, pure=False))
-    held_out = sum(p["held_out"] for p in parts)
-    sse_plain = float(sum(p["plain"] for p in parts))
-    rows = []
-    for i, (method, variance) in enumerate(pairs):
-        sse = float(sum(p["sse"][i] for p in parts))
-        inside = sum(p["inside"][i] for p in parts)
-        rows.append({
-            "method": method,
-            "variance": variance,
-            "sse": sse,
-            "error_reduction_pct": float(evaluation._reduction_pct(sse_plain, sse)) if held_out else np.nan,
-            "ci_low": np.nan,
-            "ci_high": np.nan,
-            "coverage": inside / held_out if held_out else np.nan,
-        })
-    table = pd.DataFrame(rows, columns=["method", "variance", "sse", "error_reduction_pct", "ci_low", "ci_high",
-                                        "coverage"])
-    table.attrs["held_out"] = int(held_out)
+                                     order_sums=order_sums, pairs=pairs, level=level, next_level=next_level,
+                                     pure=False))
+    parts = [part for part in parts if part is not None]
+    if not parts:
+        table = pd.DataFrame([{"method": m, "variance": v, "sse": 0.0} for m, v in pairs],
+                             columns=evaluation.RESULT_COLUMNS)
+        table.attrs["held_out"] = 0
+        return table
+    scores = evaluation.combine_scores(parts)
+    table = evaluation.summarise(scores)
+    table.attrs["held_out"] = int(scores.count.sum())
     return table
 
 
@@ -612,21 +597,21 @@ def leave_one_out_on_cluster(shop: ShopOnCluster, *, methods=None, variances=Non
     Notes
     -----
     Holding out one order changes only its customer's count, mean and sum of squares,
-    and every shop-wide number through O(1) updates of shop-wide sums (see
-    :mod:`forecasting.evaluation`). The per-customer table and the sums over all
-    order values are broadcast to every worker; each worker runs the evaluation
-    module's own exact formulas on its partition of orders and returns sums of
-    squared errors and counts of orders inside the next-order range; the client adds
-    them up. Methods whose fast leave-one-out needs other partitions' orders (robust
-    and proportional variance, gamma-gamma, the cross-validated methods) are refused
-    with a message naming ``--engine pandas``.
+    and every shop-wide number through O(1) or O(K) updates of shop-wide sums (see
+    :mod:`forecasting.holdout`). The per-customer table and the sums over all order
+    values are broadcast to every worker; each worker runs the evaluation module's own
+    exact formulas on its partition of orders (each partition holds whole customers)
+    and returns sums per customer; the client joins them and summarises them as the
+    evaluation module does. Methods whose leave-one-out keeps something from the fit on
+    all orders (gamma-gamma, the cross-validated methods) are refused, naming the
+    pandas engine.
     """
     if not 0 < next_level < 1:
         raise OrderDataError("next_level must be between 0 and 1", value=next_level)
-    return _leave_one_out_table(shop, _cluster_pairs(methods, variances), next_level)
+    return _leave_one_out_table(shop, _cluster_pairs(methods, variances, shop.stats), next_level)
 
 
-def forecast_on_cluster(shop: ShopOnCluster, *, method="mta", variance="classic", level=0.90, next_level=0.80):
+def forecast_on_cluster(shop: ShopOnCluster, *, method="auto", variance="auto", level=0.90, next_level=0.80):
     """Forecasts for every customer, computed on the cluster from the per-customer statistics.
 
     Parameters
@@ -634,9 +619,9 @@ def forecast_on_cluster(shop: ShopOnCluster, *, method="mta", variance="classic"
     shop : ShopOnCluster
         From :func:`read_on_cluster`.
     method, variance, level, next_level
-        As for :func:`forecasting.forecasts.forecast_customers`. ``method="auto"``
-        applies the evaluation module's rule (:func:`forecasting.evaluation.choose_method`)
-        to :func:`leave_one_out_on_cluster`, that is among the exact closed-form methods.
+        As for :func:`forecasting.forecasts.forecast_customers`. ``"auto"`` applies the
+        automatic choice's rule (:func:`forecasting.selection.best_of`) to
+        :func:`leave_one_out_on_cluster`, that is among the exact closed-form methods.
 
     Returns
     -------
@@ -647,19 +632,20 @@ def forecast_on_cluster(shop: ShopOnCluster, *, method="mta", variance="classic"
     -----
     The per-customer table is one row per customer, small next to the orders, and
     every estimator needs shop-wide numbers fitted on all of it, so the forecast runs
-    as one task on a worker with the whole table. Methods and variance models that
-    need order-level values (``robust``, the ``-cv`` methods) are refused by
+    as one task on a worker with the whole table. Methods that need order-level values
+    (the cross-validated ones) are refused by
     :func:`~forecasting.forecasts.forecast_customers` with its own message.
     """
-    from .. import evaluation
     from ..forecasts import forecast_customers
+    from ..options import METHODS
+    from ..selection import best_of
 
     reason = None
-    if method == "auto":
-        pairs = _cluster_pairs(None, None)
-        if ("plain", "classic") not in pairs:
-            pairs = [("plain", "classic")] + pairs
-        chosen = evaluation._choose(_leave_one_out_table(shop, pairs, 0.80))
+    if method == "auto" or (variance == "auto" and not METHODS[method].own_spread):
+        pairs = _cluster_pairs(None if method == "auto" else [method], None if variance == "auto" else [variance],
+                               shop.stats)
+        table = _leave_one_out_table(shop, pairs, 0.80)
+        chosen = best_of(table, list(zip(table["method"], table["variance"])))
         method, variance, reason = chosen["method"], chosen["variance"], chosen["reason"]
     client = shop.client
     stats_future = client.scatter(shop.stats, hash=False)

@@ -1,0 +1,223 @@
+"""The automatic choice of method and spread model: the only module that imports both the
+evaluation and the forecasts.
+
+The rule (:func:`best_of`): among the pairs the automatic choice may use
+(:data:`forecasting.options.METHODS` and ``SPREAD_MODELS``, ``in_auto``), keep those whose
+forecasts pass the shop's own check -- money bias and the coverage of both ranges within
+:data:`forecasting.options.AUTO_TOLERANCE` -- and take the one with the smallest leave-one-out
+squared error, provided it beats plain customer averages. Otherwise plain averages on the log
+scale are used (returned to money by smearing; their ranges are the customer's own confidence
+range), and the reason says why.
+
+Choosing the best of many pairs on the same held-out orders flatters the winner. So the gain
+reported beside the choice (``honest_gain_pct``) is a split-half check: customers are split at
+random (seeded) into two halves; the rule picks a pair on one half's held-out orders and its
+error cut is measured on the other half's; the two ways round are averaged.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from forecasting.customers import customer_statistics
+from forecasting.errors import OrderDataError
+from forecasting.evaluation import (
+    AUTO_METHODS,
+    AUTO_VARIANCES,
+    _combinations,
+    _reduction_pct,
+    customer_scores,
+    leave_one_out,
+    summarise,
+)
+
+#: What the choice falls back to, in order of preference (the first one evaluated is used).
+FALLBACKS = (("plain", "log"), ("plain", "classic"), ("plain", "proportional"))
+
+
+def _fallback(results, reason, best=None):
+    pairs = list(zip(results["method"], results["variance"])) if len(results) else []
+    method, variance = next((pair for pair in FALLBACKS if pair in pairs), FALLBACKS[0])
+    runner = None
+    if best is not None:
+        runner = {"method": str(best["method"]), "variance": str(best["variance"]),
+                  "error_reduction_pct": float(best["error_reduction_pct"])}
+    return {"method": method, "variance": variance, "runner_up": runner,
+            "margin_pct": float("nan") if best is None else -float(best["error_reduction_pct"]),
+            "error_reduction_pct": 0.0, "fell_back_to_plain": True, "calibrated": False, "reason": reason,
+            "excluded": []}
+
+
+def best_of(results, allowed=None) -> dict:
+    """The automatic choice from a table of leave-one-out results.
+
+    Parameters
+    ----------
+    results : pandas.DataFrame
+        Rows of ``method, variance, sse, error_reduction_pct`` and, when known, ``calibrated``,
+        ``calibration_note`` and ``in_auto`` (as :func:`forecasting.evaluation.summarise`
+        gives them).
+    allowed : sequence of (method, variance), optional
+        The pairs that may be chosen (default: those with ``in_auto``, or every row without
+        that column).
+
+    Returns
+    -------
+    dict
+        ``method``, ``variance``, ``runner_up``, ``margin_pct`` (points of the plain-average
+        error the choice is ahead of the runner-up), ``error_reduction_pct``,
+        ``fell_back_to_plain``, ``calibrated``, ``excluded`` (pairs with a smaller error left
+        out because they missed a calibration target, with what they missed) and ``reason``.
+    """
+    table = results.dropna(subset=["sse"])
+    baseline = (table["method"] == "plain") & (table["variance"] == "classic")  # the plain averages themselves
+    candidates = table[~baseline]
+    if allowed is not None:
+        wanted = set(map(tuple, allowed))
+        candidates = candidates[[pair in wanted for pair in zip(candidates["method"], candidates["variance"])]]
+    elif "in_auto" in candidates.columns:
+        candidates = candidates[candidates["in_auto"].astype(bool)]
+    candidates = candidates.sort_values("sse", kind="stable")
+    if len(candidates) == 0:
+        return _fallback(results, "nothing to compare: no customer has two orders, so each customer's own average "
+                                  "is used")
+    calibrated = candidates["calibrated"].astype(bool) if "calibrated" in candidates.columns else \
+        pd.Series(True, index=candidates.index)
+    passing = candidates[calibrated.to_numpy()]
+    excluded = []
+    if len(passing):
+        ahead = candidates[(candidates["sse"] < passing["sse"].iloc[0]) & ~calibrated]
+    else:
+        ahead = candidates[~calibrated]
+    for row in ahead.itertuples():
+        excluded.append({"method": row.method, "variance": row.variance,
+                         "missed": getattr(row, "calibration_note", "")})
+    if len(passing) == 0:
+        choice = _fallback(results, "no method's forecasts met every calibration target on your orders "
+                                    f"(best: {candidates.iloc[0]['method']} with {candidates.iloc[0]['variance']} "
+                                    f"variance: {candidates.iloc[0].get('calibration_note', '')}), so each "
+                                    "customer's own average is used", candidates.iloc[0])
+        choice["excluded"] = excluded
+        return choice
+    best = passing.iloc[0]
+    best_gain = float(best["error_reduction_pct"])
+    if not best_gain > 0:
+        choice = _fallback(results, f"no method beat plain customer averages in leave-one-out (best: {best['method']} "
+                                    f"with {best['variance']} variance, {best_gain:+.1f}%), so each customer's own "
+                                    "average is used", best)
+        choice["excluded"] = excluded
+        return choice
+    runner = passing.iloc[1] if len(passing) > 1 else None
+    runner_gain = float(runner["error_reduction_pct"]) if runner is not None else 0.0
+    runner_up = ({"method": str(runner["method"]), "variance": str(runner["variance"]),
+                  "error_reduction_pct": runner_gain} if runner is not None
+                 else {"method": "plain", "variance": "classic", "error_reduction_pct": 0.0})
+    per_customer = best.get("error_reduction_per_customer_pct", np.nan)
+    counted = (f" ({per_customer:.1f}% with each customer counted once)" if pd.notna(per_customer) else "")
+    reason = (f"{best['method']} with {best['variance']} variance had the smallest leave-one-out error among the "
+              f"methods whose forecasts add up and whose ranges hold what they say, {best_gain:.1f}% below plain "
+              f"averages{counted}, {best_gain - runner_gain:.1f} points ahead of {runner_up['method']} with "
+              f"{runner_up['variance']} variance")
+    if excluded:
+        reason += (f"; {len(excluded)} method(s) with a smaller error missed a calibration target and were left out "
+                   f"({excluded[0]['method']} with {excluded[0]['variance']} variance: {excluded[0]['missed']})")
+    return {"method": str(best["method"]), "variance": str(best["variance"]), "runner_up": runner_up,
+            "margin_pct": best_gain - runner_gain, "error_reduction_pct": best_gain,
+            "error_reduction_per_customer_pct": float(per_customer) if pd.notna(per_customer) else float("nan"),
+            "fell_back_to_plain": False, "calibrated": True, "excluded": excluded, "reason": reason}
+
+
+def split_half_gain(scores, *, allowed=None, seed=0):
+    """The error cut of the rule's choice measured on customers it was not chosen on.
+
+    Customers are split at random (``seed``) into two halves; :func:`best_of` chooses on one
+    half's held-out orders (error and calibration measured there) and the chosen pair's error
+    cut against plain averages is measured on the other half's; both ways round.
+
+    Parameters
+    ----------
+    scores : forecasting.evaluation.CustomerScores
+
+    Returns
+    -------
+    gain : float
+        The mean of the two out-of-half error cuts (percent).
+    choices : list of (method, variance)
+        What each half chose.
+    """
+    T = len(scores.count)
+    if T < 4:
+        return float("nan"), []
+    first = np.zeros(T, dtype=bool)
+    first[np.random.default_rng(seed).permutation(T)[: T // 2]] = True
+    gains, choices = [], []
+    for fit_on in (first, ~first):
+        choice = best_of(summarise(scores, keep=fit_on), allowed)
+        pair = (choice["method"], choice["variance"])
+        choices.append(pair)
+        test = ~fit_on
+        plain = float(scores.plain_sq[test].sum())
+        if pair in scores.pairs:
+            gains.append(float(_reduction_pct(plain, float(scores.sq[scores.pairs.index(pair)][test].sum()))))
+        else:  # the fallback was not among the evaluated pairs: plain averages themselves
+            gains.append(0.0)
+    return float(np.mean(gains)), choices
+
+
+def choose_from_scores(scored, results, *, restricted=False, seed=0) -> dict:
+    """:func:`best_of` on evaluated scores, with the split-half check of its gain."""
+    allowed = None
+    if restricted:
+        allowed = list(zip(results["method"], results["variance"]))
+    elif "in_auto" not in results.columns:
+        allowed = [(m, v) for m, v in zip(results["method"], results["variance"])
+                   if m in AUTO_METHODS and (v in AUTO_VARIANCES or v == "gamma-model")]
+    chosen = best_of(results, allowed)
+    chosen["spread_checked"] = {str(spread): bool(part["calibrated"].any())
+                                for spread, part in results.groupby("variance", sort=False)}
+    gain, choices = split_half_gain(scored, allowed=allowed, seed=seed)
+    chosen["honest_gain_pct"] = gain
+    chosen["honest_choices"] = choices
+    if not chosen["fell_back_to_plain"] and np.isfinite(gain):
+        chosen["reason"] += (f"; chosen on one half of the customers, it cut the error on the other half by "
+                             f"{gain:.1f}% (averaged both ways), a figure not flattered by the choice itself")
+    return chosen
+
+
+def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -> dict:
+    """Pick the method and spread model for a shop from its own orders.
+
+    Parameters
+    ----------
+    orders : pandas.DataFrame
+        Cleaned orders (``customer``, ``order_value``, ...).
+    stats : pandas.DataFrame, optional
+        ``customer_statistics(orders)`` if already computed.
+    methods, variances : list of str or comma-separated str, optional
+        Candidates (default: the registry's pairs allowed in the automatic choice).
+    seed : int
+        Seed of the split-half check.
+
+    Returns
+    -------
+    dict
+        As :func:`best_of`, plus ``honest_gain_pct`` and ``honest_choices`` of
+        :func:`split_half_gain` and ``spread_checked`` (spread model -> whether any of its pairs
+        passed the check; the tail report suggests only those).
+
+    Notes
+    -----
+    A method that does not beat plain customer averages, or whose forecasts miss a
+    calibration target, is never chosen.
+    """
+    if orders is None:
+        raise OrderDataError("the automatic choice of method needs the order-level data", option="method",
+                             fix="Give the cleaned orders, or choose a method")
+    if stats is None:
+        stats = customer_statistics(orders)
+    pairs = _combinations(methods, variances, stats=stats, default_methods=AUTO_METHODS,
+                          default_variances=AUTO_VARIANCES)
+    scores = customer_scores(leave_one_out(orders, stats, pairs))
+    results = summarise(scores)
+    return choose_from_scores(scores, results, restricted=methods is not None or variances is not None, seed=seed)
