@@ -762,7 +762,10 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             "revenue_range_high": cust_range_high,
         }
     )
-    total = float(group_revenue.sum())
+    existing_total = float(projected.sum())
+    # Whole revenue is its two parts added (not the groups re-added in another order), so that
+    # without new customers it is the existing customers' figure to the last digit.
+    total = existing_total + (float(new["revenue"]) if new_customers and new is not None else 0.0)
     cohorts = pd.DataFrame(
         {
             "cohort": np.asarray(group_names, dtype=object),
@@ -777,7 +780,6 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
                                            np.full(len(group_names), 0.0 if total == 0 else np.nan)),
         }
     )
-    existing_total = float(projected.sum())
     totals = {"customers": int(len(stats)),
               "expected_orders": float(group_orders.sum()),
               "projected_revenue": total}
