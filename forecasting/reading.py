@@ -27,6 +27,8 @@ currencies, dates that could be read two ways) raise :class:`OrderDataError`.
 
 from __future__ import annotations
 
+import codecs
+import collections
 import csv
 import io
 import re
@@ -41,30 +43,18 @@ import pyarrow.compute as pa_compute
 import pyarrow.csv as pa_csv
 
 from .errors import OrderDataError
+from .io import rules
+from .io.backends import ArrowOps
 
 # ---------------------------------------------------------------------------
 # Limits: a file past these is refused with a message, never half-read.
-MAX_FILE_BYTES = 2_000_000_000
-MAX_COLUMNS = 1_000
-MAX_FIELD_CHARS = 100_000
+MAX_FILE_BYTES = rules.MAX_FILE_BYTES
+MAX_COLUMNS = rules.MAX_COLUMNS
+MAX_FIELD_CHARS = rules.MAX_FIELD_CHARS
 
-# Reason codes and their plain-language reasons, in the order the rules apply.
-REASONS = {
-    "blank_row": "the row is empty",
-    "malformed_row": "the row has a different number of fields than the header",
-    "oversized_field": f"a cell is longer than {MAX_FIELD_CHARS:,} characters",
-    "duplicate_row": "an exact copy of an earlier row",
-    "missing_customer": "no customer id",
-    "test_order": "marked as a test order",
-    "cancelled_order": "the order was cancelled",
-    "other_currency": "in another currency than the one chosen",
-    "missing_amount": "no order amount",
-    "bad_amount": "the amount could not be read as money",
-    "missing_date": "no order date",
-    "bad_date": "the date could not be read",
-    "unmatched_refund": "a refund with no order to net against",
-    "refunded_in_full": "the order nets to zero or less after refunds",
-}
+# Reason codes and their plain-language reasons (implausible values first, then in the order the
+# rules apply), from the one rule set every engine applies.
+REASONS = rules.REASONS
 
 ROLES = ("customer", "date", "value", "order_id", "status", "currency", "segment")
 REQUIRED_ROLES = ("customer", "date", "value")
@@ -100,9 +90,6 @@ _TEST_STATUS = re.compile(r"^(test|testorder|testing|sandbox)$")
 _CANCELLED_STATUS = re.compile(r"^(cancelled|canceled|cancel|void|voided|storniert|annule|annulee)$")
 _REFUND_STATUS = re.compile(r"^(refund|refunded|return|returned|chargeback|erstattet|rembourse)$")
 
-_CURRENCY_SYMBOLS = {"$": "USD", "€": "EUR", "£": "GBP", "¥": "JPY", "₹": "INR", "kr": "SEK"}
-_CURRENCY_CODE = re.compile(r"\b([A-Z]{3})\b")
-_MONEY_JUNK = re.compile(r"[A-Za-z$€£¥₹\s\u00a0\u202f']")
 
 
 # Cells read as text use pandas' own string type, backed by Arrow.
@@ -165,7 +152,7 @@ class _RawTable:
 
     cells: pd.DataFrame
     row_numbers: np.ndarray
-    malformed: list[tuple[int, str]]
+    set_aside: list[tuple[int, str, str]]  # rows that did not split: (row, reason code, text)
     notes: list[str]
 
 
@@ -213,32 +200,123 @@ def _file_kind(data: bytes, file_name: str) -> str:
     return "text"
 
 
+_BOM = b"\xef\xbb\xbf"
+_WINDOWS_NOTE = "The file is not UTF-8; read it as Windows-1252 (Western European)."
+_LATIN_NOTE = "The file is not UTF-8; read it as Latin-1."
+_UTF16_NOTE = "The file is UTF-16 text; read as such."
+
+
+def _decodes(blocks, encoding: str) -> bool:
+    decoder = codecs.getincrementaldecoder(encoding)()
+    try:
+        for block in blocks:
+            decoder.decode(block)
+        decoder.decode(b"", final=True)
+    except UnicodeDecodeError:
+        return False
+    return True
+
+
+def text_encoding(blocks) -> tuple[str, str | None]:
+    """The encoding the reader uses for a text file, and the note that says so.
+
+    ``blocks()`` gives the file's bytes in blocks, from the start, each time it is called
+    (the file is read in blocks, never whole, by the scale engines). UTF-16 when the file
+    starts with its byte order mark; else UTF-8 (after an optional byte order mark) when the
+    whole file is valid UTF-8; else Windows-1252, else Latin-1 (which reads any byte)."""
+    first = next(iter(blocks()), b"")
+    if first.startswith((b"\xff\xfe", b"\xfe\xff")):
+        return "utf-16", _UTF16_NOTE
+    encoding = "utf-8-sig" if first.startswith(_BOM) else "utf-8"
+    if _decodes(blocks(), encoding):
+        return encoding, None
+    if _decodes(blocks(), "cp1252"):
+        return "cp1252", _WINDOWS_NOTE
+    return "latin-1", _LATIN_NOTE
+
+
 def _decode(data: bytes, file_name: str, notes: list[str]) -> str:
     head = data[:65536]
     if b"\x00" in head and not head.startswith((b"\xff\xfe", b"\xfe\xff")):
         raise OrderDataError("the file is not a text table (it contains binary data)", file=file_name,
                              fix="Upload a CSV, Excel (.xlsx) or Parquet export")
-    if data.startswith((b"\xff\xfe", b"\xfe\xff")):
+    encoding, note = text_encoding(lambda: iter([data]))
+    try:
+        text = data.decode(encoding)
+    except UnicodeDecodeError:
+        raise OrderDataError("the file says it is UTF-16 text but is not", file=file_name,
+                             fix="Export it again as UTF-8 CSV") from None
+    if note:
+        notes.append(note)
+    return text
+
+
+def _swallows_records(lines: list[str], delimiter: str, width: int) -> bool:
+    """Whether any of ``lines`` (inside one quoted cell) is a whole record on its own: it splits,
+    with strict RFC 4180 quoting, into the header's number of fields."""
+    for line in lines:
         try:
-            text = data.decode("utf-16")
-            notes.append("The file is UTF-16 text; read as such.")
-            return text
-        except UnicodeDecodeError:
-            raise OrderDataError("the file says it is UTF-16 text but is not", file=file_name,
-                                 fix="Export it again as UTF-8 CSV") from None
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError:
-        pass
-    try:
-        text = data.decode("cp1252")
-        notes.append("The file is not UTF-8; read it as Windows-1252 (Western European).")
-        return text
-    except UnicodeDecodeError:
-        notes.append("The file is not UTF-8; read it as Latin-1.")
-        return data.decode("latin-1")
+            fields = next(csv.reader([line.rstrip("\r\n")], delimiter=delimiter, strict=True), [])
+        except csv.Error:
+            continue
+        if len(fields) == width:
+            return True
+    return False
+
+
+def split_records(lines, *, delimiter: str, width: int, first_row: int):
+    """Split text lines into records, careful about rows that do not fit; RFC 4180 quoting.
+
+    Yields ``(row, fields, code, text)`` for each record after the header: ``fields`` (a list
+    of ``width`` cells) and ``code`` None for a good record; else ``fields`` None and ``code``
+    ``"blank_row"`` (nothing but spaces), ``"malformed_row"`` (another number of fields) or
+    ``"unclosed_quote"``, with the record's ``text`` as written. ``row`` counts records from
+    ``first_row`` (a record with a quoted line break is one row, as a spreadsheet shows it).
+
+    A quote that is opened and never closed makes the csv module read on to the next quote or
+    the end of the file, swallowing the rows between. A record that runs over several lines
+    is taken for that when it does not have the header's fields, or when one of its later
+    lines is a whole record on its own (splits, with strict quoting, into the header's
+    fields): its first line is reported as ``unclosed_quote`` and the reading starts again
+    on the line after it, so no row after it is lost. A cell with line breaks whose lines are
+    not whole records (an address, a note) is read as one cell.
+    """
+    csv.field_size_limit(max(csv.field_size_limit(), rules.MAX_FILE_BYTES))
+    pending: collections.deque[str] = collections.deque()
+    source = iter(lines)
+    consumed: list[str] = []
+
+    def feed():
+        while True:
+            if pending:
+                line = pending.popleft()
+            else:
+                line = next(source, None)
+                if line is None:
+                    return
+            consumed.append(line)
+            yield line
+
+    reader = csv.reader(feed(), delimiter=delimiter)
+    row = first_row
+    while True:
+        consumed.clear()
+        record = next(reader, None)
+        if record is None:
+            return
+        text = "".join(consumed).rstrip("\r\n")
+        if len(consumed) > 1 and (len(record) != width or _swallows_records(consumed[1:], delimiter, width)):
+            # A quote opened on this row ran on over later rows: report this row, read on after it.
+            yield row, None, "unclosed_quote", consumed[0].rstrip("\r\n")
+            pending.extendleft(reversed(consumed[1:]))
+            reader = csv.reader(feed(), delimiter=delimiter)
+        elif len(record) == width and width > 0:
+            yield row, record, None, text
+        elif all(not field.strip() for field in record):
+            yield row, None, "blank_row", text
+        else:
+            yield row, None, "malformed_row", text
+        row += 1
 
 
 def _sniff_delimiter(text: str) -> str:
@@ -286,36 +364,38 @@ def _read_text(text: str, encoded: bytes, file_name: str, notes: list[str]) -> _
                                                   strings_can_be_null=False, quoted_strings_can_be_null=False))
     except (pa.ArrowInvalid, csv.Error, ValueError):
         return _read_text_by_record(text, delimiter, file_name, notes)
+    if '"' in text and _any_line_break(table):
+        # A cell with a line break may be an unclosed quote that swallowed rows: the careful reader
+        # tells them apart (see split_records).
+        return _read_text_by_record(text, delimiter, file_name, notes)
     cells = table.to_pandas(types_mapper=_TEXT_TYPES.get)
     return _RawTable(cells, np.arange(2, len(cells) + 2), [], notes)
 
 
+def _any_line_break(table: pa.Table) -> bool:
+    return any(pa_compute.any(pa_compute.match_substring_regex(column, "[\r\n]")).as_py()
+               for column in table.columns)
+
+
 def _read_text_by_record(text: str, delimiter: str, file_name: str, notes: list[str]) -> _RawTable:
-    """Slow, careful reading: each record is checked against the header width."""
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
-    try:
-        header = next(reader)
-    except StopIteration:
-        raise OrderDataError("the file has no header row", file=file_name) from None
+    """Slow, careful reading: each record is checked against the header width (:func:`split_records`)."""
+    lines = io.StringIO(text, newline="")
+    header = next(csv.reader(lines, delimiter=delimiter), None)
+    if not header:
+        raise OrderDataError("the file has no header row", file=file_name)
     width = len(header)
-    good, numbers, malformed = [], [], []
-    row = 1
-    try:
-        for record in reader:
-            row += 1
-            if not record:
-                good.append([""] * width)
-                numbers.append(row)
-            elif len(record) == width:
-                good.append(record)
-                numbers.append(row)
-            else:
-                malformed.append((row, delimiter.join(record)))
-    except csv.Error as problem:
-        raise OrderDataError(f"the text cannot be split into fields ({problem})", file=file_name, row=row + 1,
-                             fix="Check for an unclosed quote") from None
+    good, numbers, set_aside = [], [], []
+    for row, fields, code, raw_text in split_records(lines, delimiter=delimiter, width=width, first_row=2):
+        if code is None:
+            good.append(fields)
+            numbers.append(row)
+        elif code == "blank_row":
+            good.append([""] * width)
+            numbers.append(row)
+        else:
+            set_aside.append((row, code, raw_text))
     cells = pd.DataFrame(good, columns=_unique_headers(header), dtype=object)
-    return _RawTable(cells, np.asarray(numbers, dtype=np.int64), malformed, notes)
+    return _RawTable(cells, np.asarray(numbers, dtype=np.int64), set_aside, notes)
 
 
 def _unique_headers(header: list[str]) -> list[str]:
@@ -516,19 +596,45 @@ def _guess_from_content(cells: pd.DataFrame, chosen: dict, taken: set) -> None:
 # Money
 
 
-def _money_parts(text: pd.Series) -> tuple[pd.Series, pd.Series]:
-    """Strip currency marks, spaces and signs; return (digits-and-separators, is_negative)."""
-    negative = text.str.contains(r"^\(.*\)$|^-|-$|^[^0-9]*-", regex=True)
-    core = text.str.replace(r"[()\-+]", "", regex=True)
-    core = core.str.replace(_MONEY_JUNK, "", regex=True)
-    return core, negative
+def amount_readings(values: pd.Series, *, decimal: str = ".") -> dict[str, np.ndarray]:
+    """The amount rule of :func:`forecasting.io.rules.read_amount` on a column of text cells.
+
+    Returns numpy arrays: ``amount`` (NaN where not read), ``kind``, ``currency`` and ``hints``."""
+    text = pa.array(values.astype(str), type=pa.string()) if len(values) else pa.array([], pa.string())
+    read = rules.read_amount(ArrowOps(), text, decimal=decimal)
+    return {"amount": read["amount"].to_numpy(zero_copy_only=False).astype(np.float64),
+            "kind": read["kind"].to_numpy(zero_copy_only=False).astype(np.int8),
+            "currency": read["currency"].to_numpy(zero_copy_only=False).astype(object),
+            "hints": read["hints"].to_numpy(zero_copy_only=False).astype(np.int8)}
 
 
-def _decimal_comma_evidence(core: pd.Series) -> tuple[pd.Series, pd.Series]:
-    """Which values can only be read one way: (decimal comma, decimal point)."""
-    comma = core.str.contains(r"^\d{1,3}(?:\.\d{3})+,\d+$|^\d+,\d{1,2}$|^\d+,\d{4,}$", regex=True)
-    point = core.str.contains(r"^\d{1,3}(?:,\d{3})+\.\d+$|^\d+\.\d{1,2}$|^\d+\.\d{4,}$", regex=True)
-    return comma, point
+def _first_with(mask: np.ndarray, rows: np.ndarray, values: pd.Series):
+    """``(row, value)`` of the first place ``mask`` holds, or None."""
+    if not mask.any():
+        return None
+    at = int(np.flatnonzero(mask)[0])
+    return int(rows[at]), str(values.iloc[at]).strip()
+
+
+def settle_decimal(values: pd.Series, alive: np.ndarray, rows: np.ndarray, *, option: str | None,
+                   file_name: str, column: str) -> tuple[dict, str]:
+    """The amounts read with the column's decimal mark, and the mark.
+
+    The mark is the option, else what the amounts still in play say
+    (:func:`forecasting.io.rules.decide_decimal`). They are read with a decimal point first;
+    when some can only be read with a decimal comma they are read again with one, and the
+    values that then can only be read with a point show a column that mixes both."""
+    used = option or "."
+    readings = amount_readings(values, decimal=used)
+    while True:
+        hints = readings["hints"]
+        comma = _first_with(alive & ((hints & rules.HINT_DECIMAL_COMMA) != 0), rows, values)
+        point = _first_with(alive & ((hints & rules.HINT_DECIMAL_POINT) != 0), rows, values)
+        chosen = rules.decide_decimal(option, comma, point, file_name=file_name, column=column)
+        if chosen == used:
+            return readings, chosen
+        used = chosen
+        readings = amount_readings(values, decimal=used)
 
 
 def parse_money(values: pd.Series, *, decimal: str | None = None, column: str = "amount",
@@ -537,9 +643,9 @@ def parse_money(values: pd.Series, *, decimal: str | None = None, column: str = 
     """Read money text as floats; unreadable values become NaN.
 
     Handles ``1234.5``, ``$1,234.50``, ``1.234,50 €``, ``USD 12``, ``(12.00)`` and
-    ``-12``/``12-`` as negatives. Whether the column uses a decimal comma is decided
-    once for the whole column from the values that can only be read one way;
-    ``decimal`` (``"."`` or ``","``) overrides that.
+    ``-12``/``12-`` as negatives (see :func:`forecasting.io.rules.read_amount`). Whether the
+    column uses a decimal comma is decided once for the whole column from the values that
+    can only be read one way; ``decimal`` (``"."`` or ``","``) overrides that.
 
     Examples
     --------
@@ -548,55 +654,16 @@ def parse_money(values: pd.Series, *, decimal: str | None = None, column: str = 
     >>> parse_money(pd.Series(["1.234,50 €", "3,5"])).tolist()
     [1234.5, 3.5]
     """
-    if decimal not in (None, ".", ","):
-        raise OrderDataError(f"the decimal separator must be '.' or ',' (got '{decimal}')",
-                             fix="Use --decimal . or --decimal ,")
+    rules.check_decimal(decimal)
     if pd.api.types.is_numeric_dtype(values):
-        return values.astype(np.float64).where(np.isfinite(values.astype(np.float64)))
-    text = values.astype(str).str.strip()
-    if decimal != ",":
-        fast = _arrow_cast(text, pa.float64())
-        numbers = fast if fast is not None else pd.to_numeric(text, errors="coerce")
-    else:
-        numbers = pd.Series(np.nan, index=text.index)
-    unread = numbers.isna() & (text != "")
-    if decimal == "." or (decimal is None and not unread.any()):
+        numbers = values.astype(np.float64)
         return numbers.where(np.isfinite(numbers))
-    core, negative = _money_parts(text)
-    if decimal is None:
-        comma, point = _decimal_comma_evidence(core)
-        if comma.any() and point.any():
-            first_comma, first_point = np.flatnonzero(comma.to_numpy())[0], np.flatnonzero(point.to_numpy())[0]
-            at = max(first_comma, first_point)
-            raise OrderDataError(
-                "the amounts mix a decimal comma and a decimal point", file=file_name,
-                row=int(row_numbers[at]) if row_numbers is not None else None, column=column,
-                value=values.iloc[at], fix="Set the decimal separator with --decimal . or --decimal ,")
-        decimal = "," if comma.any() else "."
-        if decimal == "," and notes is not None:
-            notes.append(f"Amounts in '{column}' use a decimal comma (like 1.234,50).")
-    if decimal == ",":
-        core = core.str.replace(".", "", regex=False).str.replace(",", ".", regex=False)
-    else:
-        core = core.str.replace(",", "", regex=False)
-    valid = core.str.fullmatch(r"\d+(\.\d*)?|\.\d+|\d+(\.\d*)?[eE]\d+")
-    parsed = pd.to_numeric(core.where(valid), errors="coerce")
-    parsed = parsed.where(~negative, -parsed)
-    if decimal == ".":
-        parsed = numbers.where(numbers.notna(), parsed)
-    return parsed.where(np.isfinite(parsed)).astype(np.float64)
-
-
-def _currency_marks(text: pd.Series) -> pd.Series:
-    """The currency each amount is written in, when the text says; '' otherwise."""
-    marks = pd.Series("", index=text.index, dtype=object)
-    upper = text.str.upper()
-    code = upper.str.extract(_CURRENCY_CODE, expand=False)
-    marks = marks.mask(code.notna(), code)
-    for symbol, iso in _CURRENCY_SYMBOLS.items():
-        has = text.str.contains(symbol, regex=False) & (marks == "")
-        marks = marks.mask(has, iso)
-    return marks.fillna("")
+    rows = row_numbers if row_numbers is not None else np.arange(2, len(values) + 2)
+    readings, chosen = settle_decimal(values, np.ones(len(values), dtype=bool), rows, option=decimal,
+                                      file_name=file_name, column=column)
+    if notes is not None:
+        notes.extend(rules.decimal_note(chosen, decimal, column))
+    return pd.Series(readings["amount"], index=values.index)
 
 
 # ---------------------------------------------------------------------------
@@ -801,37 +868,37 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
         exclude(status.str.fullmatch(_CANCELLED_STATUS).to_numpy(), "cancelled_order")
 
     amount_text = text["value"]
-    if mapping.currency:
-        row_currency = text["currency"].str.upper()
-    else:
-        # Only amounts written with more than digits and separators can name a currency.
-        wordy = pa_compute.match_substring_regex(pa.array(amount_text, type=pa.string()),
-                                                 r"[^0-9.,()+\-\s]").to_numpy(zero_copy_only=False)
-        row_currency = pd.Series("", index=cells.index, dtype=object)
-        if wordy.any():
-            row_currency[wordy] = _currency_marks(amount_text[wordy])
+    # The currency an amount names does not depend on the decimal mark.
+    readings = amount_readings(amount_text, decimal=decimal or ".")
+    row_currency = text["currency"].str.upper() if mapping.currency else pd.Series(readings["currency"],
+                                                                                   index=cells.index)
     alive = open_rows.copy()
     seen = sorted(set(row_currency[alive & (row_currency != "").to_numpy()]))
     if currency:
-        wanted = currency.strip().upper()
-        wanted = _CURRENCY_SYMBOLS.get(wanted, wanted)
+        wanted = rules.wanted_currency(currency)
         exclude((row_currency != "").to_numpy() & (row_currency != wanted).to_numpy(), "other_currency")
     elif len(seen) > 1:
         where = (alive & (row_currency == seen[1]).to_numpy())
         at = int(np.flatnonzero(where)[0])
-        raise OrderDataError(
-            f"the amounts are in several currencies ({', '.join(seen)})", file=file_name, row=int(rows[at]),
-            column=mapping.currency or mapping.value, value=cells[mapping.currency or mapping.value].iloc[at],
-            fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
+        column = mapping.currency or mapping.value
+        raise rules.several_currencies(seen, (int(rows[at]), cells[column].iloc[at]), file_name=file_name,
+                                       column=column)
 
-    exclude(_is_empty(amount_text), "missing_amount")
     alive = open_rows.copy()
-    amounts = pd.Series(np.nan, index=cells.index)
-    amounts[alive] = parse_money(amount_text[alive], decimal=decimal, column=mapping.value,
-                                 file_name=file_name, row_numbers=rows[alive], notes=notes)
-    _refuse_if_mostly_unreadable(amounts[alive].isna(), amount_text[alive], rows[alive], file_name,
-                                 mapping.value, "amounts", "--value")
-    exclude(amounts.isna().to_numpy(), "bad_amount")
+    readings, chosen = settle_decimal(amount_text, alive, rows, option=decimal, file_name=file_name,
+                                      column=mapping.value)
+    notes.extend(rules.decimal_note(chosen, decimal, mapping.value))
+    kind = readings["kind"]
+    present = alive & (kind != rules.KIND_EMPTY)
+    unreadable = present & ((kind == rules.KIND_PLACEHOLDER) | (kind == rules.KIND_BAD))
+    problem = rules.mostly_unreadable(int(present.sum()), int(unreadable.sum()),
+                                      _first_with(unreadable, rows, amount_text), file_name=file_name,
+                                      column=mapping.value, role="value")
+    if problem is not None:
+        raise problem
+    exclude((kind == rules.KIND_EMPTY) | (kind == rules.KIND_PLACEHOLDER), "missing_amount")
+    exclude(kind == rules.KIND_BAD, "bad_amount")
+    amounts = pd.Series(readings["amount"], index=cells.index)
 
     exclude(_is_empty(text["date"]), "missing_date")
     alive = open_rows.copy()
@@ -844,8 +911,8 @@ def clean_orders(raw: _RawTable, mapping: ColumnMapping, *, file_name: str, curr
     exclude(dates.isna().to_numpy(), "bad_date")
 
     orders, reason = _build_orders(cells, mapping, text, status, amounts, dates, rows, reason, open_rows)
-    excluded = _excluded_table(cells, rows, reason, raw.malformed)
-    rows_read = n + len(raw.malformed)
+    excluded = _excluded_table(cells, rows, reason, raw.set_aside)
+    rows_read = n + len(raw.set_aside)
     result = ReadResult(orders=orders, excluded=excluded, mapping=mapping, rows_read=rows_read,
                         file_name=file_name, columns=list(cells.columns), notes=notes)
     if orders.empty:
@@ -930,15 +997,15 @@ def _build_orders(cells, mapping, text, status, amounts, dates, rows, reason, op
 
 
 def _excluded_table(cells: pd.DataFrame, rows: np.ndarray, reason: np.ndarray,
-                    malformed: list[tuple[int, str]]) -> pd.DataFrame:
+                    set_aside: list[tuple[int, str, str]]) -> pd.DataFrame:
     out = reason != ""
     table = cells[out].copy()
     table.insert(0, "reason", [REASONS[c] for c in reason[out]])
     table.insert(0, "reason_code", reason[out])
     table.insert(0, "row", rows[out])
-    if malformed:
-        bad = pd.DataFrame({"row": [r for r, _ in malformed], "reason_code": "malformed_row",
-                            "reason": REASONS["malformed_row"], "raw_text": [t for _, t in malformed]})
+    if set_aside:
+        bad = pd.DataFrame({"row": [r for r, _, _ in set_aside], "reason_code": [c for _, c, _ in set_aside],
+                            "reason": [REASONS[c] for _, c, _ in set_aside],
+                            "raw_text": [t for _, _, t in set_aside]})
         table = pd.concat([table, bad], ignore_index=True)
     return table.sort_values("row", kind="stable").reset_index(drop=True)
-

@@ -37,7 +37,7 @@ class TestCheckCommand:
 
     def test_excluded_rows_can_be_written(self, tmp_path):
         path = tmp_path / "orders.csv"
-        path.write_text("customer,date,amount\n=evil(),2025-01-02,oops\nC1,2025-01-02,10\n")
+        path.write_text("customer,date,amount\n=evil(),2025-01-02,12 oops\nC1,2025-01-02,10\n")
         out = tmp_path / "left_out.csv"
         done = run_cli("check", str(path), "--excluded-out", str(out))
         assert done.returncode == 0, done.stderr

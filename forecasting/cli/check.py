@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-from . import EXIT_OK, add_column_options, add_engine_options, load_from_args, load_statistics_from_args, print_json
-from ..errors import OrderDataError
+from . import EXIT_OK, add_column_options, add_engine_options, column_options, load_from_args, print_json
 from ..exports import write_csv
 from ..reading import REASONS
 
@@ -22,10 +21,14 @@ def run(args) -> int:
         if args.excluded_out:
             write_csv(result.excluded, args.excluded_out)
     else:
+        from ..engines import customer_statistics_from_file
+
+        _, audit = customer_statistics_from_file(
+            args.file, engine=args.engine, memory_limit=args.memory_limit, temp_directory=args.temp_directory,
+            threads=args.threads, scheduler=args.scheduler, list_rows=bool(args.excluded_out),
+            **column_options(args))
         if args.excluded_out:
-            raise OrderDataError("--excluded-out lists every row left out, which only the pandas engine keeps",
-                                 fix="Run it with --engine pandas")
-        _, audit, _ = load_statistics_from_args(args)
+            write_csv(audit.pop("excluded_rows"), args.excluded_out)
     if args.json:
         print_json(audit)
         return EXIT_OK

@@ -64,7 +64,8 @@ def _one_file(source) -> str | os.PathLike:
 def customer_statistics_from_file(source, *, engine="pandas", customer=None, date=None, value=None,
                                   order_id=None, status=None, currency_column=None, segment=None,
                                   currency=None, date_order=None, decimal=None, sheet=None, file_name=None,
-                                  memory_limit="2GB", temp_directory=None, threads=None, scheduler=None):
+                                  memory_limit="2GB", temp_directory=None, threads=None, scheduler=None,
+                                  list_rows=False):
     """Per-customer statistics and the row account of an order export, with the chosen engine.
 
     Parameters
@@ -91,6 +92,9 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
     scheduler : str or distributed.Client, optional
         dask only: the scheduler's address (``"tcp://host:8786"``) or a client;
         a local cluster is started (and stopped) when not given.
+    list_rows : bool, default False
+        Also list every row left out, in ``account["excluded_rows"]``: a table of ``file``,
+        ``row``, ``reason_code`` and ``reason``, the same from every engine.
 
     Returns
     -------
@@ -122,12 +126,16 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
                "date_order": date_order, "decimal": decimal, "sheet": sheet, "file_name": file_name}
     if engine == "pandas":
         result = read_orders(_one_file(source), **columns)
-        return customer_statistics(result.orders), result.audit()
+        account = result.audit()
+        if list_rows:
+            account["excluded_rows"] = (result.excluded[["row", "reason_code", "reason"]]
+                                        .assign(file=result.file_name)[["file", "row", "reason_code", "reason"]])
+        return customer_statistics(result.orders), account
     if engine == "duckdb":
         from .duckdb_engine import customer_statistics_duckdb
 
         return customer_statistics_duckdb(source, memory_limit=memory_limit, temp_directory=temp_directory,
-                                          threads=threads, **columns)
+                                          threads=threads, list_rows=list_rows, **columns)
     from .dask_engine import customer_statistics_dask
 
-    return customer_statistics_dask(source, scheduler=scheduler, **columns)
+    return customer_statistics_dask(source, scheduler=scheduler, list_rows=list_rows, **columns)

@@ -29,7 +29,10 @@ broadcast to every worker, and adds up squared errors (see
 
 from __future__ import annotations
 
+import logging
 import re
+import shutil
+import tempfile
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -39,9 +42,10 @@ import pandas as pd
 from .. import reading
 from ..customers import STATISTICS_COLUMNS, customer_statistics
 from ..errors import OrderDataError
+from ..io import rules as shared
 from ..reading import REASONS, ColumnMapping
 from . import rules
-from .sources import OrderFiles, open_order_files, text_cells
+from .sources import OrderFiles, make_careful_copies, open_order_files, text_cells
 
 __all__ = [
     "ShopOnCluster",
@@ -56,9 +60,7 @@ _LINE_SHIFT = 40  # line key = partition number * 2**40 + position in the partit
 _PATH_COLUMN = "__order_file"
 _LINE_COLUMN = "__order_line"
 _KEY_COLUMN = "__order_customer"
-_PLAIN_NUMBER = re.compile(rules.PLAIN_NUMBER)
 _ISO_DATE = re.compile(rules.ISO_DATE)
-_HAS_DIGIT = re.compile(r"\d")
 _HAS_WORD = re.compile(r"[^\W_]")  # a letter or a digit
 
 
@@ -108,8 +110,10 @@ def cluster_client(scheduler=None, *, workers=None, processes=True):
         finally:
             client.close()
         return
+    # Worker logs stay quiet: a file the fast CSV reader refuses is read again carefully, and
+    # every problem reaches the caller as an exception anyway.
     cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=processes,
-                           dashboard_address=None)
+                           dashboard_address=None, silence_logs=logging.CRITICAL)
     client = Client(cluster)
     try:
         yield client
@@ -126,7 +130,7 @@ def _read_partitions(files: OrderFiles, blocksize):
     import dask.dataframe as dd
 
     if files.kind == "csv":
-        raw = dd.read_csv(files.paths, sep=files.delimiter, dtype=str, keep_default_na=False,
+        raw = dd.read_csv(files.read_paths, sep=files.delimiter, dtype=str, keep_default_na=False,
                           skip_blank_lines=False, blocksize=blocksize, encoding="utf-8-sig",
                           include_path_column=_PATH_COLUMN, engine="c")
     else:
@@ -163,8 +167,10 @@ class _PartitionSummary:
     rows: int
     counts: dict
     currencies: dict  # currency -> first line key where an alive row names it
-    amounts: tuple  # (values, unreadable, first formatted (line, text) or None, first unreadable or None)
+    amounts: tuple  # (values, unreadable, None, first unreadable (line, text) or None)
     dates: tuple
+    decimal: tuple  # first (line, text) of an amount only a decimal comma reads, and one only a point reads
+    excluded: tuple = None  # (line keys, reason codes) of the rows left out, when asked for
 
 
 def _first_at(mask: np.ndarray, lines: np.ndarray, text: pd.Series):
@@ -174,7 +180,7 @@ def _first_at(mask: np.ndarray, lines: np.ndarray, text: pd.Series):
     return int(lines[at]), str(text.iloc[at])
 
 
-def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, currency):
+def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, currency, decimal, list_rows=False):
     """The pandas reader's rules on one partition that holds every row of its customers."""
     part = part.sort_values(_LINE_COLUMN, kind="stable").reset_index(drop=True)
     cells = part[list(columns)]
@@ -203,39 +209,32 @@ def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, curren
         exclude(status.str.fullmatch(rules.CANCELLED_PATTERN).to_numpy(), "cancelled_order")
 
     amount_text = text["value"]
+    readings = reading.amount_readings(amount_text, decimal=decimal)
     if mapping.currency:
         row_currency = text["currency"].str.upper()
     else:
-        wordy = amount_text.str.contains(r"[^0-9.,()+\-\s]", regex=True).to_numpy()
-        row_currency = pd.Series("", index=cells.index, dtype=object)
-        if wordy.any():
-            row_currency[wordy] = reading._currency_marks(amount_text[wordy])
+        row_currency = pd.Series(readings["currency"], index=cells.index, dtype=object)
     alive = reason == ""
     named = alive & (row_currency != "").to_numpy()
     currencies = {}
-    for mark, line in zip(row_currency[named], lines[named]):
-        currencies.setdefault(str(mark), int(line))
+    for mark, line, written in zip(row_currency[named], lines[named],
+                                   (text["currency"] if mapping.currency else amount_text)[named]):
+        currencies.setdefault(str(mark), (int(line), str(written)))
     if currency:
-        wanted = currency.strip().upper()
-        wanted = rules.CURRENCY_SYMBOLS.get(wanted, wanted)
+        wanted = shared.wanted_currency(currency)
         exclude((row_currency != "").to_numpy() & (row_currency != wanted).to_numpy(), "other_currency")
 
-    exclude(amount_text.to_numpy() == "", "missing_amount")
     alive = reason == ""
-    plain = amount_text.str.fullmatch(_PLAIN_NUMBER).to_numpy()
-    formatted = alive & ~plain & amount_text.str.contains(_HAS_DIGIT).to_numpy()
-    amounts = pd.Series(np.nan, index=cells.index)
-    readable = alive & plain
-    if readable.any():
-        numbers = pd.to_numeric(amount_text[readable], errors="coerce").astype(np.float64)
-        amounts[readable] = numbers.where(np.isfinite(numbers))
-        # A plain number too large for a float (1e400) is read differently by the pandas reader.
-        formatted |= readable & amounts.isna().to_numpy()
-    unreadable = alive & ~formatted & amounts.isna().to_numpy()
-    amount_check = (int(alive.sum()), int(unreadable.sum()), _first_at(formatted, lines, amount_text),
-                    _first_at(unreadable, lines, amount_text))
-    exclude(formatted, "formatted_amount")
-    exclude(unreadable, "bad_amount")
+    hints = readings["hints"]
+    decimal_check = (_first_at(alive & ((hints & shared.HINT_DECIMAL_COMMA) != 0), lines, amount_text),
+                     _first_at(alive & ((hints & shared.HINT_DECIMAL_POINT) != 0), lines, amount_text))
+    kind = readings["kind"]
+    present = alive & (kind != shared.KIND_EMPTY)
+    unreadable = present & ((kind == shared.KIND_PLACEHOLDER) | (kind == shared.KIND_BAD))
+    amount_check = (int(present.sum()), int(unreadable.sum()), None, _first_at(unreadable, lines, amount_text))
+    exclude((kind == shared.KIND_EMPTY) | (kind == shared.KIND_PLACEHOLDER), "missing_amount")
+    exclude(kind == shared.KIND_BAD, "bad_amount")
+    amounts = pd.Series(readings["amount"], index=cells.index)
 
     date_text = text["date"]
     exclude(date_text.to_numpy() == "", "missing_date")
@@ -266,7 +265,8 @@ def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, curren
             orders["segment"] = pd.Series([], dtype=str)
     codes, number = np.unique(reason[reason != ""], return_counts=True)
     summary = _PartitionSummary(rows=n, counts={str(c): int(k) for c, k in zip(codes, number)}, currencies=currencies,
-                                amounts=amount_check, dates=date_check)
+                                amounts=amount_check, dates=date_check, decimal=decimal_check,
+                                excluded=(lines[reason != ""], reason[reason != ""]) if list_rows else None)
     keep = ["customer", "order_value", "order_date"] + (["segment"] if mapping.segment else [])
     orders = orders[keep].reset_index(drop=True)
     return orders, summary
@@ -307,31 +307,60 @@ class ShopOnCluster:
     notes: list = field(default_factory=list)
 
 
-def _line_rows(client, raw, files: OrderFiles, wanted: list[int]) -> dict[int, tuple[str, int]]:
-    """Line key -> (file label, spreadsheet row), for the few lines a message names."""
+def _rows_of_lines(client, raw, files: OrderFiles, lines: np.ndarray) -> tuple[list[str], np.ndarray]:
+    """File labels and spreadsheet rows of line keys (see :func:`_number_lines`)."""
     kind = files.kind
+    lines = np.asarray(lines, dtype=np.int64)
     meta = pd.DataFrame({"number": pd.Series([], dtype=np.int64), "file": pd.Series([], dtype=object),
                          "rows": pd.Series([], dtype=np.int64)})
     table = client.compute(raw.map_partitions(_partition_files, kind, meta=meta)).result()
     table = table.sort_values("number").reset_index(drop=True)
+    numbers, positions = lines >> _LINE_SHIFT, lines & ((1 << _LINE_SHIFT) - 1)
+    where = table.set_index("number")
+    labels, rows = [], np.zeros(len(lines), dtype=np.int64)
     if kind == "parquet":
         import pyarrow.parquet as pq
 
-        sizes = np.array([pq.ParquetFile(p).metadata.num_rows for p in files.paths], dtype=np.int64)
+        sizes = np.array([pq.ParquetFile(p).metadata.num_rows for p in files.read_paths], dtype=np.int64)
         starts = np.concatenate([[0], np.cumsum(sizes)])
-        before = np.concatenate([[0], np.cumsum(table["rows"].to_numpy())])
-    found = {}
-    for line in wanted:
-        number, position = line >> _LINE_SHIFT, line & ((1 << _LINE_SHIFT) - 1)
-        if kind == "csv":
-            path = table.loc[table["number"] == number, "file"].iloc[0]
-            same = table[(table["file"] == path) & (table["number"] < number)]
-            found[line] = (files.file_label(path), int(same["rows"].sum()) + position + 2)
+        before = pd.Series(np.concatenate([[0], np.cumsum(table["rows"].to_numpy())])[:-1],
+                           index=table["number"].to_numpy())
+        overall = before.reindex(numbers).to_numpy() + positions
+        which = np.searchsorted(starts, overall, side="right") - 1
+        return [files.file_label(files.read_paths[w]) for w in which], overall - starts[which] + 2
+    # CSV: rows of earlier partitions of the same file come first.
+    earlier = table.groupby("file")["rows"].cumsum() - table["rows"]
+    offset = pd.Series(earlier.to_numpy(), index=table["number"].to_numpy())
+    path_of = where["file"]
+    in_file = offset.reindex(numbers).to_numpy() + positions
+    paths = path_of.reindex(numbers).to_numpy()
+    for path in pd.unique(paths):
+        mask = paths == path
+        # A careful copy knows each record's row; dask reads the blank lines of other files as rows.
+        rows[mask] = (files.spreadsheet_rows(path, in_file[mask]) if path in files.row_numbers
+                      else in_file[mask] + 2)
+    labels = [files.file_label(path) for path in paths]
+    return labels, rows
+
+
+def _line_rows(client, raw, files: OrderFiles, wanted: list[int]) -> dict[int, tuple[str, int]]:
+    """Line key -> (file label, spreadsheet row), for the few lines a message names."""
+    labels, rows = _rows_of_lines(client, raw, files, np.asarray(wanted, dtype=np.int64))
+    return {line: (label, int(row)) for line, label, row in zip(wanted, labels, rows)}
+
+
+def _settle_decimal(client, raw, files: OrderFiles, summaries, option):
+    """The amounts' decimal mark from the partitions' first telling values (the pandas reader's rule)."""
+    found = []
+    for k in (0, 1):
+        firsts = [s.decimal[k] for s in summaries if s.decimal[k] is not None]
+        if firsts:
+            line, value = min(firsts)
+            found.append((_line_rows(client, raw, files, [line])[line][1], value))
         else:
-            overall = int(before[number]) + position
-            which = int(np.searchsorted(starts, overall, side="right")) - 1
-            found[line] = (files.file_label(files.paths[which]), overall - int(starts[which]) + 2)
-    return found
+            found.append(None)
+    return shared.decide_decimal(option, found[0], found[1], file_name=files.display_name,
+                                 column=files.mapping.value)
 
 
 def _check_whole_columns(client, raw, files: OrderFiles, summaries, currency):
@@ -344,18 +373,17 @@ def _check_whole_columns(client, raw, files: OrderFiles, summaries, currency):
     if not currency:
         first_seen = {}
         for summary in summaries:
-            for mark, line in summary.currencies.items():
-                first_seen[mark] = min(line, first_seen.get(mark, line))
+            for mark, (line, written) in summary.currencies.items():
+                first_seen[mark] = min((line, written), first_seen.get(mark, (line, written)))
         seen = sorted(first_seen)
         if len(seen) > 1:
-            file, row = where(first_seen[seen[1]])
-            raise OrderDataError(
-                f"the amounts are in several currencies ({', '.join(seen)})", file=file, row=row,
-                column=mapping.currency or mapping.value,
-                fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
-    for name, column, option, what, rule_text in (
-            ("amounts", mapping.value, "--value", "amounts", "plain numbers such as 1234.50"),
-            ("dates", mapping.date, "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30")):
+            line, written = first_seen[seen[1]]
+            file, row = where(line)
+            raise shared.several_currencies(seen, (row, written.strip()), file_name=file,
+                                            column=mapping.currency or mapping.value)
+    for name, column, role, rule_text in (
+            ("amounts", mapping.value, "value", None),
+            ("dates", mapping.date, "date", "ISO dates such as 2025-03-14 or 2025-03-14 10:30")):
         checks = [getattr(s, name) for s in summaries]
         needs_pandas = [c[2] for c in checks if c[2] is not None]
         if needs_pandas:
@@ -366,17 +394,54 @@ def _check_whole_columns(client, raw, files: OrderFiles, summaries, currency):
                                  fix="Use --engine pandas for formatted exports")
         total = sum(c[0] for c in checks)
         bad = sum(c[1] for c in checks)
-        if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
-            line, value = min(c[3] for c in checks if c[3] is not None)
+        firsts = [c[3] for c in checks if c[3] is not None]
+        if firsts:
+            line, value = min(firsts)
             file, row = where(line)
-            raise OrderDataError(f"most {what} in this column cannot be read", file=file, row=row,
-                                 column=column, value=value,
-                                 fix=f"Pick the right column with {option}, or check the format")
+            problem = shared.mostly_unreadable(total, bad, (row, value.strip()), file_name=file, column=column,
+                                               role=role)
+            if problem is not None:
+                raise problem
+
+
+def _clean_on_cluster(client, files: OrderFiles, blocksize, partitions, currency, decimal, list_rows):
+    """The files read as text partitions, shuffled by customer and cleaned by the reader's rules.
+
+    Returns ``(raw, order_parts, summaries)``, or ``(raw, None, None)`` when the fast CSV reader
+    refused a file that has no careful copy yet."""
+    from dask import delayed
+
+    columns = list(files.columns)
+    futures = []
+    try:
+        raw = _read_partitions(files, blocksize)  # reads the head of the first file already
+        meta = pd.DataFrame({**{c: pd.Series([], dtype=object) for c in columns},
+                             _LINE_COLUMN: pd.Series([], dtype=np.int64)})
+        numbered = raw.map_partitions(_number_lines, columns, files.kind, meta=meta)
+        customer_column = files.mapping.customer
+        keyed = numbered.assign(**{_KEY_COLUMN: numbered[customer_column].str.strip()})
+        shuffled = keyed.shuffle(on=_KEY_COLUMN, npartitions=partitions or raw.npartitions)
+        cleaned = [delayed(_clean_partition, nout=2)(part, columns, files.mapping, currency, decimal, list_rows)
+                   for part in shuffled.to_delayed()]
+        futures = client.compute([c[0] for c in cleaned] + [c[1] for c in cleaned])
+        half = len(cleaned)
+        order_parts, summary_parts = futures[:half], futures[half:]
+        summaries = client.gather(summary_parts)
+    except (UnicodeDecodeError, pd.errors.ParserError) as problem:
+        if futures:
+            client.cancel(futures)
+        if files.kind == "csv" and not files.copied:
+            return None, None, None
+        raise OrderDataError(f"some rows do not split into the header's fields ({str(problem).strip()[:200]})",
+                             file=files.display_name,
+                             fix="If quoted cells hold line breaks, read with blocksize=None") from None
+    return raw, order_parts, summaries
 
 
 def read_on_cluster(source, *, client, customer=None, date=None, value=None, order_id=None, status=None,
                     currency_column=None, segment=None, currency=None, date_order=None, decimal=None,
-                    sheet=None, file_name=None, blocksize="64MB", partitions=None) -> ShopOnCluster:
+                    sheet=None, file_name=None, blocksize="64MB", partitions=None,
+                    list_rows=False) -> ShopOnCluster:
     """Read and clean order files on a Dask cluster; keep the cleaned orders there.
 
     Parameters
@@ -394,6 +459,9 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         (needed when quoted fields contain line breaks).
     partitions : int, optional
         Partitions after the shuffle by customer (default: as many as were read).
+    list_rows : bool, default False
+        Also list every row left out in ``account["excluded_rows"]`` (``file``, ``row``,
+        ``reason_code``, ``reason``).
 
     Returns
     -------
@@ -407,46 +475,49 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
     overrides = {"customer": customer, "date": date, "value": value, "order_id": order_id,
                  "status": status, "currency": currency_column, "segment": segment}
     files = open_order_files(source, overrides=overrides, file_name=file_name)
-    columns = list(files.columns)
-    raw = _read_partitions(files, blocksize)
-    meta = pd.DataFrame({**{c: pd.Series([], dtype=object) for c in columns},
-                         _LINE_COLUMN: pd.Series([], dtype=np.int64)})
-    numbered = raw.map_partitions(_number_lines, columns, files.kind, meta=meta)
-    customer_column = files.mapping.customer
-    keyed = numbered.assign(**{_KEY_COLUMN: numbered[customer_column].str.strip()})
-    shuffled = keyed.shuffle(on=_KEY_COLUMN, npartitions=partitions or raw.npartitions)
-    from dask import delayed
-
-    cleaned = [delayed(_clean_partition, nout=2)(part, columns, files.mapping, currency)
-               for part in shuffled.to_delayed()]
+    shared.check_decimal(decimal)
+    # Careful copies (rows that do not split, text that is not UTF-8) go to a folder of this
+    # machine, which a local cluster's workers read; it is removed once the orders are computed.
+    directory = tempfile.mkdtemp(prefix="order-engine-")
     try:
-        futures = client.compute([c[0] for c in cleaned] + [c[1] for c in cleaned])
-        half = len(cleaned)
-        order_parts, summary_parts = futures[:half], futures[half:]
-        summaries = client.gather(summary_parts)
-    except UnicodeDecodeError:
-        raise OrderDataError("the file is not UTF-8 text", file=files.display_name,
-                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
-                                 "or save the export as UTF-8 CSV") from None
-    except pd.errors.ParserError as problem:
-        raise OrderDataError(f"some rows do not split into the header's fields ({str(problem).strip()})",
-                             file=files.display_name,
-                             fix="Use --engine pandas, which lists each such row; if quoted fields hold line "
-                                 "breaks, read with blocksize=None") from None
+        return _read_and_clean(client, files, directory, blocksize=blocksize, partitions=partitions,
+                               currency=currency, decimal=decimal, list_rows=list_rows)
+    finally:
+        shutil.rmtree(directory, ignore_errors=True)
+
+
+def _read_and_clean(client, files: OrderFiles, directory: str, *, blocksize, partitions, currency, decimal,
+                    list_rows) -> ShopOnCluster:
+    if files.kind == "csv" and files.needs_copy:
+        make_careful_copies(files, directory)
+    decimal_used = decimal or "."
+    while True:
+        raw, order_parts, summaries = _clean_on_cluster(client, files, blocksize, partitions, currency,
+                                                        decimal_used, list_rows)
+        if summaries is None:  # the fast reader refused a file: read careful copies
+            make_careful_copies(files, directory)
+            continue
+        chosen = _settle_decimal(client, raw, files, summaries, decimal)
+        if chosen == decimal_used:
+            break
+        client.cancel(order_parts)
+        decimal_used = chosen
+    from distributed import wait
+
+    wait(order_parts)
     _check_whole_columns(client, raw, files, summaries, currency)
     counts: dict[str, int] = {}
     for summary in summaries:
         for code, number in summary.counts.items():
             counts[code] = counts.get(code, 0) + number
+    for _, _, code, _ in files.set_aside:
+        counts[code] = counts.get(code, 0) + 1
     stats_parts = client.map(_partition_statistics, order_parts)
     pieces = [p for p in client.gather(stats_parts) if p is not None]
     excluded = {code: counts[code] for code in REASONS if counts.get(code, 0) > 0}
-    rows_read = int(sum(s.rows for s in summaries))
+    rows_read = int(sum(s.rows for s in summaries)) + len(files.set_aside)
     if not pieces:
-        top = max(excluded, key=excluded.get) if excluded else None
-        why = f"; most rows were left out because {REASONS[top]}" if top else ""
-        raise OrderDataError(f"no usable orders were found{why}", file=files.display_name,
-                             fix="Check the column choices and the export")
+        raise shared.no_usable_orders(excluded, file_name=files.display_name)
     stats = pd.concat(pieces).sort_index(kind="stable")
     stats = stats[STATISTICS_COLUMNS + (["segment"] if files.mapping.segment else [])]
     rows_excluded = sum(excluded.values())
@@ -459,9 +530,24 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         "customers": int(len(stats)),
         "excluded": excluded,
         "mapping": files.mapping.as_dict(),
-        "notes": list(files.notes),
+        "notes": list(files.notes) + shared.decimal_note(decimal_used, decimal, files.mapping.value),
     }
+    if list_rows:
+        account["excluded_rows"] = _excluded_rows(client, raw, files, summaries)
     return ShopOnCluster(client=client, order_parts=order_parts, stats=stats, account=account)
+
+
+def _excluded_rows(client, raw, files: OrderFiles, summaries) -> pd.DataFrame:
+    """Every row left out, with its file, row number and reason (as the pandas reader's ``excluded``)."""
+    lines = np.concatenate([s.excluded[0] for s in summaries] + [np.zeros(0, np.int64)]).astype(np.int64)
+    codes = np.concatenate([s.excluded[1] for s in summaries] + [np.zeros(0, object)]).astype(object)
+    labels, rows = _rows_of_lines(client, raw, files, lines) if len(lines) else ([], np.zeros(0, np.int64))
+    table = pd.DataFrame({"file": labels, "row": rows, "reason_code": codes})
+    aside = [(label, row, code) for label, row, code, _ in files.set_aside]
+    if aside:
+        table = pd.concat([table, pd.DataFrame(aside, columns=["file", "row", "reason_code"])], ignore_index=True)
+    table["reason"] = table["reason_code"].map(REASONS)
+    return table.sort_values(["file", "row"], kind="stable").reset_index(drop=True)
 
 
 

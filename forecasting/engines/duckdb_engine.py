@@ -40,9 +40,11 @@ import pandas as pd
 
 from ..customers import STATISTICS_COLUMNS
 from ..errors import OrderDataError
+from ..io import rules as shared
+from ..io.backends import Sql, SqlOps
 from ..reading import REASONS
 from . import rules
-from .sources import OrderFiles, open_order_files
+from .sources import OrderFiles, make_careful_copies, open_order_files
 
 __all__ = ["customer_statistics_duckdb"]
 
@@ -120,7 +122,7 @@ def _stored_place(files: OrderFiles) -> list[str]:
 def _reader(connection, files: OrderFiles) -> str:
     """A query giving one row per record, every cell as text ('' for empty), in file order:
     the columns of :func:`_stored_place`, then ``c0, c1, ...``."""
-    paths = "[" + ", ".join(_literal(p) for p in files.paths) + "]"
+    paths = "[" + ", ".join(_literal(p) for p in files.read_paths) + "]"
     name = "true" if len(files.paths) > 1 else "false"
     if files.kind == "csv":
         names = "[" + ", ".join(_literal(n) for n in files.columns) + "]"
@@ -164,12 +166,22 @@ def _reader(connection, files: OrderFiles) -> str:
     return f"SELECT {', '.join([place[c] for c in _stored_place(files)] + cells)} FROM {reader}"
 
 
+class _CarefulCopyNeeded(Exception):
+    """duckdb's CSV reader refused a file: read a careful copy (see sources.make_careful_copies)."""
+
+
 def _raise_read_problem(problem: Exception, files: OrderFiles):
+    import duckdb
+
+    if isinstance(problem, (duckdb.ParserException, duckdb.BinderException, duckdb.CatalogException)):
+        raise problem  # a fault of this module's SQL, not of the file
     text = str(problem)
     where = files.display_name
-    for path in files.paths:
+    for path in files.read_paths:
         if path in text or Path(path).name in text:
             where = files.file_label(path)
+    if files.kind == "csv" and not files.copied:
+        raise _CarefulCopyNeeded() from None
     if "utf-8" in text.lower() or "unicode" in text.lower():
         raise OrderDataError("the file is not UTF-8 text", file=where,
                              fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
@@ -191,7 +203,7 @@ def _number_positions(connection, files: OrderFiles) -> None:
         connection.execute(f"CREATE VIEW numbered AS SELECT r.rowid AS line, r.file, r.rowid - s.start "
                            f"AS file_position FROM records r JOIN file_start s USING (file)")
     else:
-        file = "file" if len(files.paths) > 1 else f"{_literal(files.paths[0])} AS file"
+        file = "file" if len(files.paths) > 1 else f"{_literal(files.read_paths[0])} AS file"
         position = "rowid" if files.kind == "csv" else "file_position"
         connection.execute(f"CREATE VIEW numbered AS SELECT rowid AS line, {file}, {position} AS file_position "
                            f"FROM records")
@@ -215,7 +227,7 @@ def _where(connection, files: OrderFiles, source: str, line: int, role: str):
         value.strip() if isinstance(value, str) else value
 
 
-def _classify(connection, files: OrderFiles, source: str, *, currency: str | None) -> None:
+def _classify(connection, files: OrderFiles, source: str, *, currency: str | None, decimal: str) -> None:
     """Table ``records``: one row per record of ``source`` (a query, see :func:`_reader`) in file order,
     with its reason code ('' = used), its readings and ``row_key``, a hash of all its cells; view
     ``classified`` adds ``line``.
@@ -247,16 +259,19 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                 f"THEN {customer_cell} ELSE {_strip(customer_cell)} END)")
     # A cell that is a plain number (or an ISO date) as it stands has no whitespace to strip:
     # the pattern test doubles as the edge test for almost every cell.
-    plain_pattern, iso_pattern = _literal(rules.PLAIN_NUMBER), _literal(rules.ISO_DATE)
-    plain_cell = f"regexp_full_match({cell('value')}, {plain_pattern})"
+    iso_pattern = _literal(rules.ISO_DATE)
     iso_cell = f"regexp_full_match({cell('date')}, {iso_pattern})"
-    amount = f"CASE WHEN plain_cell THEN {cell('value')} ELSE {_strip(cell('value'))} END"
     date = f"CASE WHEN iso_cell THEN {cell('date')} ELSE {_strip(cell('date'))} END"
+    # The amount rule of forecasting.io.rules, as SQL (columns a_amount, a_kind, a_currency, a_hints).
+    ops = SqlOps(prefix="a_")
+    read = shared.read_amount(ops, Sql(cell("value")), decimal=decimal)
+    amount_columns = ", ".join(f"{ops.full_column(read[k]).text} AS amount_{k}" for k in ("amount", "kind",
+                                                                                          "currency", "hints"))
     status = _status_word(cell("status")) if mapping.status else "''"
     order_text = _strip(cell("order_id")) if mapping.order_id else "''"
     segment = _strip(cell("segment")) if mapping.segment else "''"
     currency_text = _strip(cell("currency")) if mapping.currency else "''"
-    row_currency = "upper(currency_text)" if mapping.currency else _named_currency("amount_text", "plain_amount")
+    row_currency = "upper(currency_text)" if mapping.currency else "amount_currency"
     code = _reason_code
     early = [f"WHEN customer = '' THEN {code('missing_customer')}"]
     if mapping.status:
@@ -264,8 +279,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         early.append(f"WHEN regexp_full_match(status_word, {_literal(rules.CANCELLED_PATTERN)}) "
                      f"THEN {code('cancelled_order')}")
     if currency:
-        wanted = currency.strip().upper()
-        wanted = rules.CURRENCY_SYMBOLS.get(wanted, wanted)
+        wanted = shared.wanted_currency(currency)
         early.append(f"WHEN row_currency <> '' AND row_currency <> {_literal(wanted)} THEN {code('other_currency')}")
     refund = "false"
     if mapping.status:
@@ -275,7 +289,7 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
     computed = {"row_key": f"hash({', '.join(cells)})", "is_refund": "(amount < 0 OR refund_status)",
                 "signed": "CASE WHEN amount < 0 OR refund_status THEN -abs(amount) ELSE amount END"}
     stored = _stored_place(files) + [f"{computed[name]} AS {name}" if name in computed else name
-                                     for name in _readings(mapping)]
+                                     for name in _readings(mapping)] + ["amount_hints AS hints"]
     connection.execute(f"CREATE TYPE reason_code AS ENUM ({', '.join(_literal(c) for c in _REASON_CODES)})")
     # Innermost first: the cells as the reader strips them, then their readings, then the reasons.
     sql = f"""
@@ -284,9 +298,9 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                CASE WHEN blank THEN {code('blank_row')}
                     WHEN too_long THEN {code('oversized_field')}
                     WHEN early_reason <> '' THEN early_reason
-                    WHEN amount_kind = 'missing' THEN {code('missing_amount')}
-                    WHEN amount_kind = 'formatted' THEN {code('formatted_amount')}
-                    WHEN amount_kind = 'unreadable' THEN {code('bad_amount')}
+                    WHEN amount_kind = {shared.KIND_EMPTY} THEN {code('missing_amount')}
+                    WHEN amount_kind = {shared.KIND_PLACEHOLDER} THEN {code('placeholder_amount')}
+                    WHEN amount_kind = {shared.KIND_BAD} THEN {code('bad_amount')}
                     WHEN date_kind = 'missing' THEN {code('missing_date')}
                     WHEN date_kind = 'other' THEN {code('other_date')}
                     WHEN date_kind = 'unreadable' THEN {code('bad_date')}
@@ -294,10 +308,6 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
         FROM (
             SELECT *,
                    CASE {' '.join(early)} ELSE {code('')} END AS early_reason,
-                   CASE WHEN amount_text = '' THEN 'missing'
-                        WHEN plain_amount THEN CASE WHEN isfinite(amount) THEN 'plain' ELSE 'formatted' END
-                        WHEN regexp_matches(amount_text, '\\p{{Nd}}') THEN 'formatted'
-                        ELSE 'unreadable' END AS amount_kind,
                    CASE WHEN date_text = '' THEN 'missing'
                         WHEN iso_date
                              THEN CASE WHEN order_date IS NULL THEN 'other'
@@ -310,20 +320,19 @@ def _classify(connection, files: OrderFiles, source: str, *, currency: str | Non
                 SELECT *, {row_currency} AS row_currency
                 FROM (
                     SELECT *,
-                           CASE WHEN plain_cell THEN true WHEN amount_text = {cell('value')} THEN false
-                                ELSE regexp_full_match(amount_text, {plain_pattern}) END AS plain_amount,
                            CASE WHEN iso_cell THEN true WHEN date_text = {cell('date')} THEN false
                                 ELSE regexp_full_match(date_text, {iso_pattern}) END AS iso_date,
-                           TRY_CAST(amount_text AS DOUBLE) AS amount,
+                           amount_amount AS amount,
                            TRY_CAST(date_text AS TIMESTAMP) AS order_date
                     FROM (
                         SELECT *, NOT blank AND NOT too_long AS kept,
-                               {customer} AS customer, {amount} AS amount_text, {date} AS date_text,
+                               {customer} AS customer, {date} AS date_text,
                                {order_text} AS order_text, {segment} AS segment_text, {refund} AS refund_status,
                                status_word, {currency_text} AS currency_text
                         FROM (SELECT *, ({blank}) AS blank, ({too_long}) AS too_long,
-                                     {status} AS status_word, {plain_cell} AS plain_cell, {iso_cell} AS iso_cell
-                              FROM (SELECT *, {starts_plain} AS customer_starts_plain FROM ({source})))))))"""
+                                     {status} AS status_word, {iso_cell} AS iso_cell
+                              FROM (SELECT *, {starts_plain} AS customer_starts_plain, {amount_columns}
+                                    FROM ({ops.query(f"SELECT * FROM ({source})")})))))))"""
     try:
         connection.execute(sql)
     except Exception as problem:  # duckdb.Error and its subclasses: the file could not be read
@@ -341,23 +350,11 @@ def _readings(mapping) -> list[str]:
 
 # Every reason a record can get: '' (used), the row account's codes and the two that stop a run
 # (formatted amounts or dates, which need the pandas reader). Stored as a duckdb ENUM (one byte).
-_REASON_CODES = ("",) + tuple(REASONS) + ("formatted_amount", "other_date")
+_REASON_CODES = ("",) + tuple(REASONS) + ("placeholder_amount", "other_date")
 
 
 def _reason_code(name: str) -> str:
     return f"{_literal(name)}::reason_code"
-
-
-def _named_currency(amount_text: str, plain: str) -> str:
-    """SQL for the currency an amount names (the pandas reader's rule): a three-letter code, else
-    a symbol, else ''. A plain number names none, so the patterns only run on the other amounts."""
-    symbols = " ".join(f"WHEN contains({amount_text}, {_literal(s)}) THEN {_literal(iso)}"
-                       for s, iso in rules.CURRENCY_SYMBOLS.items())
-    return (f"CASE WHEN {plain} THEN '' "
-            f"WHEN NOT regexp_matches({amount_text}, {_literal(rules.wordy_pattern_sql())}) "
-            f"THEN '' WHEN regexp_matches(upper({amount_text}), '\\b[A-Z]{{3}}\\b') "
-            f"THEN regexp_extract(upper({amount_text}), '\\b([A-Z]{{3}})\\b', 1) "
-            f"{symbols} ELSE '' END")
 
 
 # A record that is not blank, not over-long and not a copy of an earlier one.
@@ -408,6 +405,25 @@ def _first_line(connection, where: str) -> int | None:
     return None if found is None else int(found)
 
 
+def _first_value(connection, files: OrderFiles, source: str, where: str, role: str):
+    """``(row, value)`` of the first kept record where ``where`` holds, or None (for the shared decisions)."""
+    line = _first_line(connection, where)
+    if line is None:
+        return None
+    _, row, value = _where(connection, files, source, line, role)
+    return row, value
+
+
+def _settle_decimal(connection, files: OrderFiles, source: str, *, option: str | None) -> str:
+    """The amounts' decimal mark from the hints of the records still in play (the pandas reader's rule,
+    :func:`forecasting.io.rules.decide_decimal`)."""
+    in_play = f"reason NOT IN {_EARLY}"
+    comma = _first_value(connection, files, source, f"{in_play} AND (hints & {shared.HINT_DECIMAL_COMMA}) <> 0", "value")
+    point = _first_value(connection, files, source, f"{in_play} AND (hints & {shared.HINT_DECIMAL_POINT}) <> 0", "value")
+    return shared.decide_decimal(option, comma, point, file_name=files.file_label(files.read_paths[0]),
+                                 column=files.mapping.value)
+
+
 def _check_whole_columns(connection, files: OrderFiles, source: str, *, currency: str | None) -> None:
     """The rules that look at a whole column, as the pandas reader applies them (``source``: see :func:`_where`)."""
     mapping = files.mapping
@@ -419,20 +435,17 @@ def _check_whole_columns(connection, files: OrderFiles, source: str, *, currency
             role = "currency" if mapping.currency else "value"
             line = _first_line(connection, f"reason NOT IN {_EARLY} AND row_currency = {_literal(seen[1])}")
             file, row, value = _where(connection, files, source, line, role)
-            raise OrderDataError(
-                f"the amounts are in several currencies ({', '.join(seen)})", file=file, row=row,
-                column=mapping.currency or mapping.value, value=value,
-                fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
-    for kind, role, option, what, reading_rule, unreadable, values in (
-        ("formatted_amount", "value", "--value", "amounts", "plain numbers such as 1234.50",
-         "reason = 'bad_amount'",
+            raise shared.several_currencies(seen, (row, value), file_name=file,
+                                            column=mapping.currency or mapping.value)
+    for kind, role, reading_rule, unreadable, values in (
+        (None, "value", None, "reason IN ('bad_amount', 'placeholder_amount')",
          f"reason NOT IN {_EARLY} AND reason <> 'missing_amount'"),
-        ("other_date", "date", "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30",
+        ("other_date", "date", "ISO dates such as 2025-03-14 or 2025-03-14 10:30",
          "reason = 'bad_date'",
          "reason IN ('', 'other_date', 'bad_date')"),
     ):
         column = getattr(mapping, role)
-        line = _first_line(connection, f"reason = '{kind}'")
+        line = _first_line(connection, f"reason = '{kind}'") if kind else None
         if line is not None:
             file, row, value = _where(connection, files, source, line, role)
             raise OrderDataError(
@@ -443,9 +456,7 @@ def _check_whole_columns(connection, files: OrderFiles, source: str, *, currency
         ).fetchone()
         if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
             file, row, value = _where(connection, files, source, _first_line(connection, unreadable), role)
-            raise OrderDataError(f"most {what} in this column cannot be read", file=file, row=row,
-                                 column=column, value=value,
-                                 fix=f"Pick the right column with {option}, or check the format")
+            raise shared.mostly_unreadable(total, bad, (row, value), file_name=file, column=column, role=role)
 
 
 def _build_orders(connection, files: OrderFiles) -> None:
@@ -586,14 +597,20 @@ def _statistics(connection, with_segment: bool) -> pd.DataFrame:
 
 
 def _account(connection, files: OrderFiles) -> dict:
-    counts: dict[str, int] = dict(connection.execute(
-        "SELECT reason, count(*) FROM classified WHERE reason <> '' GROUP BY reason").fetchall())
+    counts: dict[str, int] = {}
+    for code, number in connection.execute(
+            "SELECT reason, count(*) FROM classified WHERE reason <> '' GROUP BY reason").fetchall():
+        code = "missing_amount" if code == "placeholder_amount" else code
+        counts[code] = counts.get(code, 0) + int(number)
     counts["blank_row"] = counts.get("blank_row", 0) + files.blank_lines
+    for _, _, code, _ in files.set_aside:
+        counts[code] = counts.get(code, 0) + 1
     for code, number in connection.execute("""
             SELECT CASE WHEN purchases = 0 THEN 'unmatched_refund' ELSE 'refunded_in_full' END, sum(lines)
             FROM orders WHERE purchases = 0 OR order_value <= 0 GROUP BY 1""").fetchall():
         counts[code] = int(number)
-    rows_read = int(connection.execute("SELECT count(*) FROM classified").fetchone()[0]) + files.blank_lines
+    rows_read = (int(connection.execute("SELECT count(*) FROM classified").fetchone()[0]) + files.blank_lines
+                 + len(files.set_aside))
     excluded = {code: int(counts[code]) for code in REASONS if counts.get(code, 0) > 0}
     orders, customers = connection.execute("SELECT coalesce(sum(orders), 0), count(*) FROM sums").fetchone()
     rows_excluded = sum(excluded.values())
@@ -610,10 +627,45 @@ def _account(connection, files: OrderFiles) -> dict:
     }
 
 
+def _excluded_rows(connection, files: OrderFiles) -> pd.DataFrame:
+    """Every row left out, with its file, row number and reason (as the pandas reader's ``excluded``)."""
+    # The lines of each order, grouped as _build_orders groups them (a line without an order id alone).
+    if files.mapping.order_id:
+        key = "customer, order_text, CASE WHEN order_text = '' THEN line END AS solo"
+        same = "l.customer = o.customer AND l.order_text = o.order_text AND l.solo IS NOT DISTINCT FROM o.solo"
+    else:
+        key, same = "line AS solo", "l.solo = o.solo"
+    verdicts = connection.execute(f"""
+        SELECT n.file, n.file_position, v.reason FROM (
+            SELECT line, CAST(reason AS VARCHAR) AS reason FROM classified WHERE reason <> ''
+            UNION ALL
+            SELECT l.line, CASE WHEN o.purchases = 0 THEN 'unmatched_refund' ELSE 'refunded_in_full' END
+            FROM (SELECT line, {key} FROM order_lines) l
+            JOIN (SELECT {key}, count(*) FILTER (WHERE NOT is_refund) AS purchases,
+                         sum(signed ORDER BY line) AS order_value
+                  FROM order_lines GROUP BY ALL) o ON {same}
+            WHERE o.purchases = 0 OR o.order_value <= 0) v
+        JOIN numbered n USING (line)""").fetchdf()
+    parts = []
+    for file, group in verdicts.groupby("file", sort=False):
+        parts.append(pd.DataFrame({"file": files.file_label(file),
+                                   "row": files.spreadsheet_rows(file, group["file_position"].to_numpy()),
+                                   "reason_code": group["reason"].astype(str).replace("placeholder_amount",
+                                                                                     "missing_amount").to_numpy()}))
+    others = [(label, row, "blank_row") for label, row in files.blank_rows()]
+    others += [(label, row, code) for label, row, code, _ in files.set_aside]
+    if others:
+        parts.append(pd.DataFrame(others, columns=["file", "row", "reason_code"]))
+    table = (pd.concat(parts, ignore_index=True) if parts
+             else pd.DataFrame({"file": [], "row": pd.Series([], dtype=np.int64), "reason_code": []}))
+    table["reason"] = table["reason_code"].map(REASONS)
+    return table.sort_values(["file", "row"], kind="stable").reset_index(drop=True)
+
+
 def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, order_id=None, status=None,
                                currency_column=None, segment=None, currency=None, date_order=None,
                                decimal=None, sheet=None, file_name=None, memory_limit="2GB",
-                               temp_directory=None, threads=None):
+                               temp_directory=None, threads=None, list_rows=False):
     """Per-customer statistics of order files, computed by duckdb within a memory limit.
 
     Parameters
@@ -637,6 +689,9 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
         temporary folder); removed afterwards.
     threads : int, optional
         duckdb's ``threads`` (default: every core).
+    list_rows : bool, default False
+        Also list every row left out: ``account["excluded_rows"]``, a table of ``file``,
+        ``row``, ``reason_code`` and ``reason``.
 
     Returns
     -------
@@ -694,6 +749,7 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
     memory_limit = rules.check_memory_limit(memory_limit)
     threads = rules.check_threads(threads)
     rules.check_plain_options("duckdb", decimal=decimal, date_order=date_order, sheet=sheet)
+    shared.check_decimal(decimal)
     if temp_directory is not None and not os.path.isdir(temp_directory):
         raise OrderDataError(f"temp_directory is not a folder (got {os.fspath(temp_directory)!r})",
                              fix="Create the folder first, or leave the option out")
@@ -708,30 +764,48 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
     files = open_order_files(source, overrides=overrides, file_name=file_name, scan=False)
     with tempfile.TemporaryDirectory(prefix="order-engine-", dir=temp_directory) as directory, \
             ThreadPoolExecutor(max_workers=1) as helper:
-        connection = _connect(directory, memory_limit=memory_limit, threads=threads)
-        # duckdb skips blank lines; they are found (to be counted) while duckdb reads the file.
-        scanned = helper.submit(files.scan_blank_lines)
-        try:
-            source = _reader(connection, files)
-            _classify(connection, files, source, currency=currency)
-            scanned.result()
-            _number_positions(connection, files)
-            _check_record_counts(connection, files)
-            _mark_copies(connection, files)
-            _check_whole_columns(connection, files, source, currency=currency)
-            _build_orders(connection, files)
-            with_segment = files.mapping.segment is not None
-            _sum_by_customer(connection, with_segment)
-            account = _account(connection, files)
-            if account["orders"] == 0:
-                excluded = account["excluded"]
-                top = max(excluded, key=excluded.get) if excluded else None
-                why = f"; most rows were left out because {REASONS[top]}" if top else ""
-                raise OrderDataError(f"no usable orders were found{why}", file=files.display_name,
-                                     fix="Check the column choices and the export")
-            stats = _statistics(connection, with_segment)
-        finally:
-            connection.close()
+        if files.kind == "csv" and files.needs_copy:
+            make_careful_copies(files, directory)
+        decimal_used = decimal or "."
+        while True:
+            connection = _connect(directory, memory_limit=memory_limit, threads=threads)
+            try:
+                # duckdb skips blank lines; they are found (to be counted) while duckdb reads the file.
+                scanned = helper.submit(files.scan_blank_lines) if not files.blank_records else None
+                source = _reader(connection, files)
+                try:
+                    _classify(connection, files, source, currency=currency, decimal=decimal_used)
+                except _CarefulCopyNeeded:
+                    if scanned is not None:
+                        scanned.result()
+                    connection.close()
+                    make_careful_copies(files, directory)
+                    continue
+                if scanned is not None:
+                    scanned.result()
+                _number_positions(connection, files)
+                _check_record_counts(connection, files)
+                _mark_copies(connection, files)
+                chosen = _settle_decimal(connection, files, source, option=decimal)
+                if chosen != decimal_used:
+                    # Some amounts can only be read with a decimal comma: read them all so.
+                    decimal_used = chosen
+                    connection.close()
+                    continue
+                _check_whole_columns(connection, files, source, currency=currency)
+                _build_orders(connection, files)
+                with_segment = files.mapping.segment is not None
+                _sum_by_customer(connection, with_segment)
+                account = _account(connection, files)
+                account["notes"] = account["notes"] + shared.decimal_note(chosen, decimal, files.mapping.value)
+                if account["orders"] == 0:
+                    raise shared.no_usable_orders(account["excluded"], file_name=files.display_name)
+                if list_rows:
+                    account["excluded_rows"] = _excluded_rows(connection, files)
+                stats = _statistics(connection, with_segment)
+                break
+            finally:
+                connection.close()
     return stats, account
 
 
@@ -740,7 +814,7 @@ def _check_record_counts(connection, files: OrderFiles) -> None:
     if files.kind != "csv":
         return
     counted = dict(connection.execute("SELECT file, count(*) FROM numbered GROUP BY file").fetchall())
-    for path in files.paths:
+    for path in files.read_paths:
         scanned = files.scanned_records.get(path)
         if scanned is not None and scanned != counted.get(path, 0):
             raise OrderDataError("the quoting of the file could not be followed to count its blank rows",

@@ -31,14 +31,8 @@ from __future__ import annotations
 import re
 
 from ..errors import OrderDataError
-from ..reading import (
-    _CANCELLED_STATUS,
-    _CURRENCY_SYMBOLS,
-    _REFUND_STATUS,
-    _TEST_STATUS,
-    MAX_FIELD_CHARS,
-    REASONS,
-)
+from ..io.rules import CURRENCY_SYMBOLS, MAX_FIELD_CHARS, REASONS
+from ..reading import _CANCELLED_STATUS, _REFUND_STATUS, _TEST_STATUS
 
 __all__ = [
     "CANCELLED_PATTERN",
@@ -63,7 +57,6 @@ WHITESPACE = ("\t\n\x0b\x0c\r\x1c\x1d\x1e\x1f \x85\xa0\u1680\u2000\u2001\u2002\u
 TEST_PATTERN = _TEST_STATUS.pattern
 CANCELLED_PATTERN = _CANCELLED_STATUS.pattern
 REFUND_PATTERN = _REFUND_STATUS.pattern
-CURRENCY_SYMBOLS = dict(_CURRENCY_SYMBOLS)
 
 # A plain number: what both pandas.to_numeric and a SQL cast to DOUBLE read the same way.
 PLAIN_NUMBER = r"^[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?$"
@@ -117,9 +110,6 @@ def check_threads(threads) -> int | None:
 
 def check_plain_options(engine: str, *, decimal=None, date_order=None, sheet=None) -> None:
     """Refuse reading options that only the pandas engine honours, before any work."""
-    if decimal not in (None, "."):
-        raise OrderDataError(f"the {engine} engine reads plain numbers only (got --decimal {decimal!r})",
-                             fix="Use --engine pandas for amounts with a decimal comma")
     if date_order not in (None, "day-first", "month-first"):
         raise OrderDataError(f"the date order must be day-first or month-first (got {date_order!r})",
                              fix="Use --date-order day-first or --date-order month-first")

@@ -11,6 +11,8 @@ Row numbers are what a spreadsheet shows: the header is row 1 of each file.
 
 from __future__ import annotations
 
+import array
+import csv
 import glob
 import io
 import mmap
@@ -22,7 +24,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import OrderDataError
-from ..reading import ColumnMapping, _sniff_delimiter, guess_mapping, typed_cells_as_text
+from ..reading import (ColumnMapping, _sniff_delimiter, _unique_headers, guess_mapping, split_records, text_encoding,
+                       typed_cells_as_text)
 
 _SNIFF_BYTES = 200_000
 _SAMPLE_ROWS = 500
@@ -44,6 +47,21 @@ class OrderFiles:
     blank_records: dict[str, np.ndarray] = field(default_factory=dict)
     scanned_records: dict[str, int | None] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    # Careful copies (see make_careful_copies): the files the engine reads instead of ``paths``,
+    # the label and spreadsheet row of each of their records, and the rows set aside.
+    read_paths: list[str] = field(default_factory=list)
+    labels: dict[str, str] = field(default_factory=dict)
+    row_numbers: dict[str, np.ndarray] = field(default_factory=dict)
+    set_aside: list[tuple[str, int, str, str]] = field(default_factory=list)
+    needs_copy: bool = False
+
+    def __post_init__(self):
+        if not self.read_paths:
+            self.read_paths = list(self.paths)
+
+    @property
+    def copied(self) -> bool:
+        return bool(self.row_numbers)
 
     @property
     def blank_lines(self) -> int:
@@ -52,16 +70,36 @@ class OrderFiles:
     def scan_blank_lines(self) -> None:
         """Fill ``blank_records`` and ``scanned_records`` for CSV files (see :func:`scan_records`)."""
         if self.kind == "csv":
-            for path in self.paths:
+            for path in self.read_paths:
                 self.blank_records[path], self.scanned_records[path] = scan_records(path)
 
     def file_label(self, path: str) -> str:
+        if path in self.labels:
+            return self.labels[path]
         return Path(path).name if len(self.paths) > 1 else self.display_name
+
+    def spreadsheet_rows(self, path: str, positions: np.ndarray) -> np.ndarray:
+        """Row numbers of many records of ``path`` at once (see :meth:`spreadsheet_row`)."""
+        positions = np.asarray(positions, dtype=np.int64)
+        if self.kind == "parquet":
+            return positions + 2
+        if path in self.row_numbers:
+            return self.row_numbers[path][positions]
+        blank = self.blank_records.get(path, np.zeros(0, dtype=np.int64))
+        before = blank - 1 - np.arange(len(blank))
+        return positions + 2 + np.searchsorted(before, positions, side="right")
+
+    def blank_rows(self) -> list[tuple[str, int]]:
+        """``(file label, row)`` of every blank line the SQL reader skipped."""
+        return [(self.file_label(path), int(record) + 1) for path, records in self.blank_records.items()
+                for record in records]
 
     def spreadsheet_row(self, path: str, position: int) -> int:
         """Row number of the ``position``-th (0-based) record the reader returned from ``path``."""
         if self.kind == "parquet":
             return int(position) + 2
+        if path in self.row_numbers:
+            return int(self.row_numbers[path][int(position)])
         blank = self.blank_records.get(path, np.zeros(0, dtype=np.int64))
         # Data records before blank record b: b - 1 - (blank records before it).
         before = blank - 1 - np.arange(len(blank))
@@ -125,9 +163,10 @@ def _text_head(path: str) -> str:
     except UnicodeDecodeError as problem:
         if len(data) >= _SNIFF_BYTES - 3 and problem.start >= len(data) - 3:
             return data[: problem.start].decode("utf-8")  # a character cut at the end of the sample
-        raise OrderDataError("the file is not UTF-8 text", file=name,
-                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
-                                 "or save the export as UTF-8 CSV") from None
+    # Not UTF-8: the engines read a careful copy in UTF-8 (make_careful_copies); this is only
+    # the sample the columns are guessed from, in the encoding the pandas reader would choose.
+    encoding, _ = text_encoding(lambda: iter([data]))
+    return data.decode(encoding, errors="replace")
 
 
 def text_cells(frame: pd.DataFrame) -> pd.DataFrame:
@@ -135,16 +174,19 @@ def text_cells(frame: pd.DataFrame) -> pd.DataFrame:
     return typed_cells_as_text(frame)
 
 
-def _csv_sample(path: str, delimiter: str) -> pd.DataFrame:
-    try:
-        return pd.read_csv(path, sep=delimiter, dtype=str, keep_default_na=False, skip_blank_lines=False,
-                           nrows=_SAMPLE_ROWS, encoding="utf-8-sig", engine="c").fillna("")
-    except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as problem:
-        raise OrderDataError(f"the first rows cannot be read as a table ({type(problem).__name__})",
-                             file=Path(path).name,
-                             fix="Use --engine pandas, which reports the rows that do not fit") from None
-    except pd.errors.EmptyDataError:
-        raise OrderDataError("the file is empty", file=Path(path).name, fix="Export the orders again") from None
+def _csv_sample(head: str, delimiter: str, name: str) -> pd.DataFrame:
+    """The first rows of a CSV file (its head, as text) as cells, rows that do not fit left out."""
+    lines = io.StringIO(head, newline="")
+    header = next(csv.reader(lines, delimiter=delimiter), None)
+    if not header:
+        raise OrderDataError("the file is empty", file=name, fix="Export the orders again")
+    rows = []
+    for _, fields, code, _ in split_records(lines, delimiter=delimiter, width=len(header), first_row=2):
+        if code is None:
+            rows.append(fields)
+        if len(rows) >= _SAMPLE_ROWS:
+            break
+    return pd.DataFrame(rows, columns=_unique_headers(header), dtype=object)
 
 
 def _parquet_sample(path: str) -> pd.DataFrame:
@@ -191,14 +233,13 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None, s
         heads = [_text_head(p) for p in paths]
         delimiters = [_sniff_delimiter(h) for h in heads]
         delimiter = delimiters[0]
-        samples = [_csv_sample(paths[0], delimiter)]
+        samples = [_csv_sample(heads[0], delimiter, Path(paths[0]).name)]
         headers = [list(samples[0].columns)]
         for path, head, sep in zip(paths[1:], heads[1:], delimiters[1:]):
             if sep != delimiter:
                 raise OrderDataError("the files use different delimiters", file=Path(path).name,
                                      fix="Export every file the same way")
-            headers.append(list(pd.read_csv(io.StringIO(head.split("\n", 1)[0]), sep=sep, dtype=str,
-                                            nrows=0).columns))
+            headers.append(list(_csv_sample(head, sep, Path(path).name).columns))
     else:
         samples = [_parquet_sample(paths[0])]
         import pyarrow.parquet as pq
@@ -220,9 +261,78 @@ def open_order_files(source, *, overrides: dict, file_name: str | None = None, s
     if kind == "csv" and delimiter != ",":
         # The pandas reader's note, word for word.
         files.notes.append(f"Fields are separated by {'a tab' if delimiter == chr(9) else repr(delimiter)}.")
-    if kind == "csv" and scan:
+    if kind == "csv":
+        # The careful copy for text that is not UTF-8, and for cells with line breaks: an unclosed
+        # quote reads as such a cell, and only the careful reader tells the two apart.
+        files.needs_copy = any(not _is_utf8(p) or _has_quoted_line_break(p) for p in paths)
+    if kind == "csv" and scan and not files.needs_copy:
         files.scan_blank_lines()
     return files
+
+
+def _blocks(path: str, size: int = 1 << 22):
+    with open(path, "rb") as handle:
+        while block := handle.read(size):
+            yield block
+
+
+def _is_utf8(path: str) -> bool:
+    return text_encoding(lambda: _blocks(path))[0] in ("utf-8", "utf-8-sig")
+
+
+def make_careful_copies(files: OrderFiles, directory: str) -> None:
+    """Copy CSV files record by record into UTF-8 files that every engine's fast reader accepts.
+
+    For files the fast reader refuses: rows that do not split into the header's fields, an
+    unclosed quote, text that is not UTF-8. Each file is read as the pandas reader reads it
+    (the same encoding, :func:`forecasting.reading.split_records` for the records), in a
+    stream, so memory stays small. Good records are written with RFC 4180 quoting; blank
+    rows and rows that do not split are set aside with their reason and row number, and the
+    spreadsheet row of each copied record is kept (``files.row_numbers``)."""
+    read_paths, notes = [], []
+    for number, path in enumerate(files.paths):
+        encoding, note = text_encoding(lambda: _blocks(path))
+        if note and note not in notes:
+            notes.append(note)
+        label = files.file_label(path)
+        copy = os.path.join(directory, f"careful_{number}.csv")
+        rows = array.array("q")
+        with open(path, encoding=encoding, newline="", errors="strict") as source, \
+                open(copy, "w", encoding="utf-8", newline="") as target:
+            header = next(csv.reader(source, delimiter=files.delimiter), None) or []
+            writer = csv.writer(target, delimiter=files.delimiter, lineterminator="\n")
+            writer.writerow(header)
+            for row, fields, code, text in split_records(source, delimiter=files.delimiter, width=len(header),
+                                                         first_row=2):
+                if code is None:
+                    writer.writerow(fields)
+                    rows.append(row)
+                else:
+                    files.set_aside.append((label, row, code, text))
+        read_paths.append(copy)
+        files.labels[copy] = label
+        files.row_numbers[copy] = np.frombuffer(rows, dtype=np.int64).copy() if len(rows) else np.zeros(0, np.int64)
+    files.read_paths = read_paths
+    files.notes[:0] = notes
+    files.blank_records, files.scanned_records = {}, {}
+    files.scan_blank_lines()
+
+
+def _has_quoted_line_break(path: str, quote: int = 34) -> bool:
+    """Whether a line break of the file is inside quotes (an odd number of quotes before it):
+    a cell holding a line break, or a quote that is never closed."""
+    quotes_before = 0
+    with open(path, "rb") as handle:
+        while block := handle.read(_FIND_CHUNK):
+            data = np.frombuffer(block, dtype=np.uint8)
+            quote_at = np.flatnonzero(data == quote)
+            if len(quote_at):
+                newline_at = np.flatnonzero(data == 10)
+                parity = (quotes_before + np.searchsorted(quote_at, newline_at)) % 2
+                if parity.any():
+                    return True
+            quotes_before += len(quote_at)
+    return False
 
 
 def _has_empty_line(path: str) -> bool:
