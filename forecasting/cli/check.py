@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from . import EXIT_OK, add_column_options, add_engine_options, column_options, load_from_args, print_json
 from ..exports import write_csv
-from ..reading import REASONS
+from ..reading import NOTES, REASONS
 
 
 def add_arguments(parser) -> None:
@@ -37,7 +37,9 @@ def run(args) -> int:
     print(f"{audit['orders']} orders from {audit['customers']} customers")
     print("columns: " + ", ".join(f"{role}={col}" for role, col in audit["mapping"].items() if col))
     for code, count in audit["excluded"].items():
-        print(f"  left out {count:>6}  {code:<18} {REASONS[code]}")
+        print(f"  left out {count:>6}  {code:<22} {REASONS[code]}")
+    for code, count in audit.get("noted", {}).items():
+        print(f"  noted    {count:>6}  {code:<22} {NOTES[code]}")
     for note in audit["notes"]:
         print(f"note: {note}")
     return EXIT_OK

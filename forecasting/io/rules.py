@@ -58,13 +58,14 @@ FUTURE_DAYS_ALLOWED = 1
 # or below the shop's median order, or more than AMOUNT_RANGE_SPREADS robust standard
 # deviations away on the log scale, whichever is wider (a typo thousands of times the usual
 # order; a shop's genuine bulk orders are tens of times its usual). The test needs at least
-# AMOUNT_RANGE_MIN_ORDERS orders. Amounts outside [SMALLEST_AMOUNT, LARGEST_AMOUNT] are never
-# an order any shop took and are always left out: they would break the statistics.
+# AMOUNT_RANGE_MIN_ORDERS orders. An order above LARGEST_AMOUNT is no order any shop took
+# and is always left out (it would break the statistics); one below half a cent is an order of
+# nothing (what is left of 0.1 + 0.2 - 0.3 in floating point).
 AMOUNT_RANGE_FACTOR = 1000.0
 AMOUNT_RANGE_SPREADS = 8.0
 AMOUNT_RANGE_MIN_ORDERS = 5
 MAD_TO_SD = 1.4826  # a normal distribution's standard deviation per median absolute deviation
-SMALLEST_AMOUNT = 0.001
+NOTHING_BELOW = 0.005
 LARGEST_AMOUNT = 1e12
 
 # Exactly the characters Python's str.strip() removes, written out (finding them among all
@@ -91,9 +92,8 @@ RULE_ORDER = (
 )
 
 _WORDS = {
-    "implausible_amount": "the order's amount is far outside this shop's usual range (a likely typo); "
-                          "set keep_implausible to use it",
-    "implausible_date": "the date is in the future or before 1990 (a likely typo); set keep_implausible to use it",
+    "implausible_amount": "the order's amount is far outside this shop's usual range (a likely typo)",
+    "implausible_date": "the date is in the future or before 1990 (a likely typo)",
     "blank_row": "the row is empty",
     "malformed_row": "the row does not split into the header's columns (too many or too few fields)",
     "unclosed_quote": "a quote opened in this row is never closed; the rows after it were read on",
@@ -104,8 +104,7 @@ _WORDS = {
     "missing_customer": "no customer id",
     "test_order": "marked as a test order",
     "cancelled_order": "the order was cancelled or deleted",
-    "unpaid_order": "the status says the order was not paid or not finished (pending, failed, draft, on hold); "
-                    "set keep_unpaid to use it",
+    "unpaid_order": "the status says the order was not paid or not finished (pending, failed, draft, on hold)",
     "other_currency": "in another currency than the one chosen",
     "missing_amount": "no order amount (the cell is empty or holds a placeholder such as n/a)",
     "bad_amount": "the amount could not be read as money",
@@ -122,8 +121,8 @@ REASONS = {code: _WORDS[code] for code in ("implausible_amount", "implausible_da
 
 # Rows used, with something to say about them.
 NOTES = {
-    "implausible_kept": "an implausible amount or date, kept because keep_implausible is set",
-    "unpaid_kept": "the status says unpaid or unfinished, kept because keep_unpaid is set",
+    "implausible_kept": "an implausible amount or date, kept as asked",
+    "unpaid_kept": "the status says unpaid or unfinished, kept as asked",
     "merged_customer_id": "the customer's e-mail id is written another way on an earlier row (capitals or "
                           "invisible characters); read as the same customer",
     "excel_serial_date": "the date was an Excel day number (such as 45660), read as that day",
@@ -135,8 +134,9 @@ NOTES = {
 CODES = ("",) + RULE_ORDER
 CODE = {name: i for i, name in enumerate(CODES)}
 
-# Row note bits (one byte per row).
-NOTE_BITS = {"excel_serial_date": 1, "unrecognised_status": 2, "unpaid_kept": 4, "implausible_kept": 8}
+# Note bits (one byte per row): the first four are a row's own, the last two its order's.
+NOTE_BITS = {"excel_serial_date": 1, "unrecognised_status": 2, "unpaid_kept": 4, "implausible_kept": 8,
+             "continuation_line": 16, "merged_customer_id": 32}
 
 # Status classes.
 STATUS_NONE, STATUS_PAID, STATUS_UNKNOWN, STATUS_REFUND, STATUS_TEST, STATUS_CANCELLED, STATUS_UNPAID = range(7)
@@ -578,17 +578,17 @@ def order_verdict(ops, *, purchases, negatives, refunds, value):
     ``purchases``: lines that are not refunds; ``negatives``: lines with a negative amount;
     ``refunds``: refund lines (negative or with a refund status); ``value``: the order's total
     after refunds. An order with no purchase line is a whole order marked refunded when none
-    of its lines is negative, else a refund with nothing to net against. A value outside
-    [:data:`SMALLEST_AMOUNT`, :data:`LARGEST_AMOUNT`] (or not finite) is implausible whatever
-    the options say.
+    of its lines is negative, else a refund with nothing to net against. A value above
+    :data:`LARGEST_AMOUNT` (or not finite) is implausible whatever the options say; one below
+    :data:`NOTHING_BELOW` is nothing: refunded in full when the order has refunds, else a
+    zero amount.
     """
-    absurd = ops.or_(ops.not_(ops.is_finite(value)), ops.gt(value, LARGEST_AMOUNT),
-                     ops.and_(ops.gt(value, 0.0), ops.lt(value, SMALLEST_AMOUNT)))
+    absurd = ops.or_(ops.not_(ops.is_finite(value)), ops.gt(value, LARGEST_AMOUNT))
     return ops.case([
         (ops.and_(ops.eq(purchases, 0), ops.eq(negatives, 0)), CODE["refunded_order"]),
         (ops.eq(purchases, 0), CODE["unmatched_refund"]),
         (absurd, CODE["implausible_amount"]),
-        (ops.gt(value, 0.0), 0),
+        (ops.ge(value, NOTHING_BELOW), 0),
         (ops.eq(refunds, 0), CODE["zero_amount"]),
     ], CODE["refunded_in_full"])
 
@@ -708,6 +708,34 @@ def mostly_unreadable(total: int, unreadable: int, first, *, file_name: str, col
     return None
 
 
+def normalise_header(name: str) -> str:
+    """A header as compared with the header words: lower case, letters and digits only."""
+    return re.sub(r"[^0-9a-z]", "", str(name).lower())
+
+
+def decide_order_total(*, value_header: str, has_order_ids: bool, orders_with_lines: int, fitting: int,
+                       with_blank_lines: int) -> bool:
+    """Whether the amount column holds each order's total (given once per order) rather than
+    each line's amount.
+
+    Counted over orders of two lines or more: ``fitting`` are those whose lines carry one
+    amount between them, repeated or written on one line with the others blank. The column is
+    an order total when every such order fits, and the header says so (``Order Total``), or
+    some orders leave their other lines blank, or at least :data:`ORDER_TOTAL_MIN_ORDERS`
+    orders repeat it. A header that names a line amount (``Line Total``) is never one."""
+    if not has_order_ids or orders_with_lines == 0 or fitting < orders_with_lines:
+        return False
+    header = normalise_header(value_header)
+    if header in LINE_AMOUNT_HEADERS:
+        return False
+    return header in ORDER_TOTAL_HEADERS or with_blank_lines > 0 or orders_with_lines >= ORDER_TOTAL_MIN_ORDERS
+
+
+def order_total_note(column: str) -> list[str]:
+    return [f"'{column}' holds each order's total (on its first line, or repeated on every line): it is counted "
+            "once per order, and the order's other lines are noted as further lines of it."]
+
+
 # The column role or option that fixes a file where most rows were left out for a reason.
 _FIX_FOR_REASON = {
     "missing_customer": ("customer", None), "missing_amount": ("value", None), "bad_amount": ("value", None),
@@ -723,8 +751,14 @@ def no_usable_orders(excluded: dict[str, int], *, file_name: str) -> OrderDataEr
     top = max(excluded, key=lambda code: (excluded[code], -RULE_ORDER.index(code))) if excluded else None
     why = f"; most rows were left out because {REASONS[top].split(';')[0]}" if top else ""
     role, option = _FIX_FOR_REASON.get(top, (None, None))
-    return OrderDataError(f"no usable orders were found{why}", file=file_name,
-                          fix="Check the column choices and the export", role=role, option=option)
+    fix = "Check the column choices and the export"
+    if top == "formula_without_value":
+        fix = "Open the workbook in a spreadsheet and save it again, so that the formulas' values are stored"
+    elif option == "keep_unpaid":
+        fix = "Check the export, or choose to keep unpaid and unfinished orders"
+    elif option == "keep_implausible":
+        fix = "Check the export, or choose to keep implausible amounts and dates"
+    return OrderDataError(f"no usable orders were found{why}", file=file_name, fix=fix, role=role, option=option)
 
 
 def account_counts(counts: dict[str, int], kinds: dict[str, str]) -> dict[str, int]:
