@@ -927,4 +927,4 @@ def _check_record_counts(connection, files: OrderFiles) -> None:
         if scanned is not None and scanned != counted.get(path, 0):
             raise OrderDataError("the quoting of the file could not be followed to count its blank rows",
                                  file=files.file_label(path),
-                                 fix="Use --engine pandas, or remove the blank lines")
+                                 fix="Read it with the pandas engine, or remove the blank lines", option="engine")

@@ -135,7 +135,7 @@ def resolve_paths(source) -> list[str]:
     for item in items:
         if not isinstance(item, (str, os.PathLike)):
             raise OrderDataError(f"the scale engines read files by name, not {type(item).__name__}",
-                                 fix="Save the upload to a file, or use --engine pandas")
+                                 fix="Save the upload to a file, or read it with the pandas engine", option="engine")
         text = os.fspath(item)
         if glob.has_magic(text):
             found = sorted(p for p in glob.glob(text) if os.path.isfile(p))
@@ -158,7 +158,8 @@ def _file_kind(path: str) -> str:
         return "parquet"
     if head == b"PK\x03\x04" or path.lower().endswith((".xlsx", ".xlsm", ".xls")):
         raise OrderDataError("the scale engines read CSV and Parquet files, not Excel workbooks", file=name,
-                             fix="Use --engine pandas for Excel, or export the sheet as CSV")
+                             fix="Read Excel workbooks with the pandas engine, or export the sheet as CSV",
+                             option="engine")
     if path.lower().endswith(".parquet"):
         raise OrderDataError("the file is named like a Parquet file but is not one", file=name)
     return "csv"

@@ -189,11 +189,13 @@ def text_encoding(blocks) -> tuple[str, str | None]:
 
 def looks_binary(head: bytes) -> bool:
     """Whether the start of a file is binary data rather than text with a damaged row or two:
-    more than 1% of its bytes are control characters (text exports hold none)."""
+    more than a tenth of its bytes are control characters, or more than 1% and at least 16
+    of them (text exports hold none; a NUL byte or two is a damaged row, reported as such)."""
     if not head or _utf16_without_mark(head[:65536]) or head.startswith((b"\xff\xfe", b"\xfe\xff")):
         return False
     sample = np.frombuffer(head[:65536], dtype=np.uint8)
-    return bool(_DAMAGED[sample].mean() > 0.01)
+    damaged = int(_DAMAGED[sample].sum())
+    return damaged > 0.1 * len(sample) or (damaged >= 16 and damaged > 0.01 * len(sample))
 
 
 def _has_damaged_bytes(data: bytes) -> bool:
@@ -237,6 +239,16 @@ def _swallows_records(lines: list[str], delimiter: str, width: int) -> bool:
     return False
 
 
+def _ends_inside_quotes(text: str, delimiter: str) -> bool:
+    """Whether a record's text ends inside a quoted cell (a quote opened and never closed before
+    the end of the file)."""
+    try:
+        list(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True))
+    except csv.Error as problem:
+        return "unexpected end of data" in str(problem)
+    return False
+
+
 def split_records(lines, *, delimiter: str, width: int, first_row: int):
     """Split text lines into records, careful about rows that do not fit; RFC 4180 quoting.
 
@@ -250,8 +262,9 @@ def split_records(lines, *, delimiter: str, width: int, first_row: int):
     the end of the file, swallowing the rows between. A record that runs over several lines
     is taken for that when it does not have the header's fields, or when one of its later
     lines is a whole record on its own (splits, with strict quoting, into the header's
-    fields): its first line is reported as ``unclosed_quote`` and the reading starts again
-    on the line after it, so no row after it is lost. A cell with line breaks whose lines are
+    fields), or when it ends inside quotes (the file ends before the quote is closed): its
+    first line is reported as ``unclosed_quote`` and the reading starts again on the line
+    after it, so no row after it is lost. A cell with line breaks whose lines are
     not whole records (an address, a note) is read as one cell.
     """
     csv.field_size_limit(max(csv.field_size_limit(), rules.MAX_FILE_BYTES))
@@ -278,7 +291,8 @@ def split_records(lines, *, delimiter: str, width: int, first_row: int):
         if record is None:
             return
         text = "".join(consumed).rstrip("\r\n")
-        if len(consumed) > 1 and (len(record) != width or _swallows_records(consumed[1:], delimiter, width)):
+        if (len(consumed) > 1 and (len(record) != width or _swallows_records(consumed[1:], delimiter, width))) \
+                or ('"' in text and _ends_inside_quotes("".join(consumed), delimiter)):
             # A quote opened on this row ran on over later rows: report this row, read on after it.
             yield row, None, "unclosed_quote", consumed[0].rstrip("\r\n")
             pending.extendleft(reversed(consumed[1:]))
