@@ -929,3 +929,83 @@ class TestMeasureStatisticsRun:
         answers = queue.Queue()
         _child(answers, os.fspath(tmp_path / "missing.csv"), {"engine": "duckdb"})
         assert "the file does not exist" in answers.get_nowait()["error"]
+
+
+# ---------------------------------------------------------------------------
+# One rule set, two backends: the SQL built from a rule computes what the rule computes over Arrow
+
+
+def run_both_backends(rule, values, **options):
+    """``rule`` (a function of forecasting.io.rules) over ``values``, with the Arrow backend and as
+    duckdb SQL: both results as lists."""
+    import duckdb
+    import pyarrow as pa
+
+    from forecasting.io.backends import ArrowOps, SqlOps
+
+    def listed(out, n):
+        out = out if isinstance(out, dict) else {"value": out}
+        return {k: (v.to_pylist() if hasattr(v, "to_pylist") else [v] * n) for k, v in out.items()}
+
+    by_arrow = listed(rule(ArrowOps(), pa.array(values, type=pa.string()), **options), len(values))
+    ops = SqlOps()
+    out = rule(ops, ops.column("cell"), **options)
+    out = out if isinstance(out, dict) else {"value": out}
+    connection = duckdb.connect()
+    table = pa.table({"n": pa.array(range(len(values))), "cell": pa.array(values, type=pa.string())})
+    connection.register("cells", table)
+    columns = ", ".join(f"{ops.full_column(v).text} AS \"{k}\"" for k, v in out.items())
+    rows = connection.execute(f"SELECT {columns} FROM ({ops.query('SELECT * FROM cells')}) ORDER BY n").fetchall()
+    by_sql = {k: [r[i] for r in rows] for i, k in enumerate(out)}
+    return by_arrow, by_sql
+
+
+_PIECES = {
+    "amount": ["$", "C$", "A$", "€", "£", "USD", "eur", "EUR ", "kr", " ", "-", "\u2212", "(", ")", "1", "12", "0",
+               "1,234", ".", ",", "50", "999", "1e3", "inc VAT", "TBD", "n/a", "abc", "'", "\u00a0", "+", "7"],
+    "date": ["2025", "-", "/", ".", "03", "3", "14", "25", "02", "30", "T", " ", "10:22", ":05", "Z", "+01:00",
+             "-0500", "Mar", "March", "Fri, ", "PM", "am", "45660", ".5", "1970", "2052", "12", "13"],
+    "customer": ["Fern", "fern", "@", "example.com", "\u200b", " ", "\u00a0", "C-001", "É", "\ufeff", "x"],
+    "status": ["wc-", "paid", "Pending", "on-hold", "Cancelled", " by customer", "refund", "partially ", "test",
+               "draft", "checkout-", "", " ", "Awaiting pickup", "trash", "shipped", "-"],
+}
+
+
+def _texts(kind):
+    return st.lists(st.lists(st.sampled_from(_PIECES[kind]), max_size=6).map("".join), min_size=1, max_size=40)
+
+
+@needs_duckdb
+class TestOneRuleSetTwoBackends:
+    @settings(max_examples=60, deadline=None)
+    @given(_texts("amount"), st.sampled_from([".", ","]))
+    def test_amounts(self, values, decimal):
+        from forecasting.io import rules
+
+        by_arrow, by_sql = run_both_backends(rules.read_amount, values, decimal=decimal)
+        assert by_arrow == by_sql
+
+    @settings(max_examples=60, deadline=None)
+    @given(_texts("date"), st.sampled_from(["day-first", "month-first"]))
+    def test_dates(self, values, date_order):
+        from forecasting.io import rules
+
+        by_arrow, by_sql = run_both_backends(rules.read_date, values, date_order=date_order)
+        assert by_arrow == by_sql
+
+    @settings(max_examples=60, deadline=None)
+    @given(_texts("customer"))
+    def test_customer_ids(self, values):
+        from forecasting.io import rules
+
+        by_arrow, by_sql = run_both_backends(rules.read_customer, values)
+        assert by_arrow == by_sql
+
+    @settings(max_examples=60, deadline=None)
+    @given(_texts("status"))
+    def test_statuses_and_currency_cells(self, values):
+        from forecasting.io import rules
+
+        for rule in (rules.classify_status, rules.currency_of_cell):
+            by_arrow, by_sql = run_both_backends(rule, values)
+            assert by_arrow == by_sql
