@@ -124,7 +124,8 @@ def assert_same_statistics(left: pd.DataFrame, right: pd.DataFrame):
 
 
 def assert_same_account(left: dict, right: dict):
-    keys = ["rows_read", "rows_used", "rows_excluded", "orders", "customers", "excluded", "mapping", "notes"]
+    keys = ["rows_read", "rows_used", "rows_excluded", "orders", "customers", "excluded", "noted",
+            "unrecognised_statuses", "mapping", "notes"]
     assert {k: left[k] for k in keys} == {k: right[k] for k in keys}
     assert left["rows_read"] == left["rows_used"] + left["rows_excluded"]
 

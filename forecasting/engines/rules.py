@@ -59,8 +59,8 @@ def check_threads(threads) -> int | None:
     return int(threads)
 
 
-def check_plain_options(engine: str, *, sheet=None, date_order=None, decimal=None) -> None:
-    """Refuse reading options the scale engines cannot honour, before any work."""
+def check_plain_options(engine: str, *, sheet=None) -> None:
+    """Refuse reading options the scale engines cannot honour (an Excel sheet), before any work."""
     if sheet is not None:
         raise OrderDataError(f"the {engine} engine reads CSV and Parquet files, not Excel sheets",
                              value=sheet, fix="Read Excel workbooks with the pandas engine", option="engine")
