@@ -424,10 +424,24 @@ def _build_orders(connection, files: OrderFiles, *, order_total: bool) -> None:
     the other purchase lines (blank or repeating it) are further lines of the order."""
     mapping = files.mapping
     eligible = "reason = 0"
+    codes = ", ".join(str(_CODE[c]) for c in shared.INHERITED_REASONS)
+    not_lines = ", ".join(str(_CODE[c]) for c in shared.NOT_A_LINE)
+    # The further lines of an order whose first line was left out share its reason (as
+    # forecasting.io.clean.inherited_reasons finds them).
+    if order_total:
+        connection.execute(f"""
+            CREATE TABLE inherited AS
+            SELECT line, first_reason FROM (
+                SELECT line, reason, first_value(reason) OVER (PARTITION BY customer, order_text ORDER BY line)
+                       AS first_reason
+                FROM classified WHERE order_text <> '' AND reason NOT IN ({not_lines}))
+            WHERE reason = {_CODE['missing_amount']} AND first_reason IN ({codes})""")
+    else:
+        connection.execute("CREATE TABLE inherited (line BIGINT, first_reason UTINYINT)")
     if order_total:
         refund_status = f"coalesce(status = {shared.STATUS_REFUND}, false)" if mapping.status else "false"
         eligible = (f"(reason = 0 OR (reason = {_CODE['missing_amount']} AND order_text <> '' "
-                    f"AND NOT {refund_status}))")
+                    f"AND NOT {refund_status} AND line NOT IN (SELECT line FROM inherited)))")
     key, _ = _order_keys(files)
     group = "customer, order_text, solo" if mapping.order_id else "solo"
     segment_text = ", segment_text" if mapping.segment else ""
@@ -512,7 +526,9 @@ def _judge_orders(connection, files: OrderFiles, *, keep_implausible: bool, orde
         SELECT l.line, l.reason AS own, o.final, {notes} AS order_notes
         FROM (SELECT * FROM judged WHERE verdict IS NOT NULL AND ({interesting})) o
         JOIN order_lines l ON {same}
-        WHERE o.final <> 0 OR {notes} <> 0 OR l.reason <> 0""")
+        WHERE o.final <> 0 OR {notes} <> 0 OR l.reason <> 0
+        UNION ALL
+        SELECT line, {_CODE['missing_amount']} AS own, first_reason AS final, 0 AS order_notes FROM inherited""")
 
 
 # When duckdb's one-pass sums of squares are as good as two passes (see _sum_by_customer).

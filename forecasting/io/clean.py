@@ -386,6 +386,25 @@ class Orders:
     verdict: np.ndarray  # per order, int8 code (0 = kept)
     order_micros: np.ndarray  # per order
     first: np.ndarray  # per order: index (into position) of its first line
+    inherited: tuple = (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int8))  # (records, reason codes)
+
+
+def inherited_reasons(rows: Rows) -> tuple[np.ndarray, np.ndarray]:
+    """With order totals: the further lines (no amount) of an order whose first line was left out,
+    and that line's reason (:data:`forecasting.io.rules.INHERITED_REASONS`)."""
+    lines = (rows.order_text != "").to_numpy() & ~np.isin(rows.reason, [_CODE[c] for c in rules.NOT_A_LINE])
+    at = np.flatnonzero(lines)
+    if not len(at):
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int8)
+    key = pd.MultiIndex.from_arrays([rows.customer.take(at).to_numpy(dtype=object),
+                                     rows.order_text.take(at).to_numpy(dtype=object)])
+    group, _ = pd.factorize(key)
+    first = np.full(group.max() + 1, len(at), dtype=np.int64)
+    np.minimum.at(first, group, np.arange(len(at)))
+    first_reason = rows.reason[at][first][group]
+    take = (rows.reason[at] == _CODE["missing_amount"]) & np.isin(first_reason,
+                                                                   [_CODE[c] for c in rules.INHERITED_REASONS])
+    return at[take], first_reason[take].astype(np.int8)
 
 
 def build_orders(rows: Rows, *, order_total: bool) -> Orders:
@@ -396,10 +415,13 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     with an amount counts, the order's other purchase lines (blank or repeating it) are further
     lines of it."""
     eligible = rows.reason == 0
+    inherited = Orders.__dataclass_fields__["inherited"].default
     if order_total and rows.order_text is not None:
+        inherited = inherited_reasons(rows)
         refund_status = rows.status == rules.STATUS_REFUND
-        eligible = eligible | ((rows.reason == _CODE["missing_amount"]) & ~refund_status
-                               & (rows.order_text != "").to_numpy())
+        further = (rows.reason == _CODE["missing_amount"]) & ~refund_status & (rows.order_text != "").to_numpy()
+        further[inherited[0]] = False
+        eligible = eligible | further
     position = np.flatnonzero(eligible)
     amount = rows.amount[position]
     read = rows.reason[position] == 0
@@ -441,7 +463,7 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     real = np.bincount(order, weights=read, minlength=n_orders) > 0
     verdict = np.where(real, verdict, -1).astype(np.int8)
     return Orders(position=position, order=order, counted=counted, carrier=carrier, value=value, verdict=verdict,
-                  order_micros=order_micros, first=first)
+                  order_micros=order_micros, first=first, inherited=inherited)
 
 
 def kept_log_values(orders: Orders) -> np.ndarray:
@@ -483,6 +505,7 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
         verdict[outside] = _CODE["implausible_amount"]
         kept_anyway = np.zeros_like(outside)
     reason = rows.reason.copy()
+    reason[orders.inherited[0]] = orders.inherited[1]
     line_verdict = verdict[orders.order]
     real = line_verdict >= 0
     position = orders.position[real]

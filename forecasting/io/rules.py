@@ -162,13 +162,15 @@ REQUIRED_ROLES = ("customer", "date", "value")
 HEADER_NAMES = {
     "customer": ["customerid", "customer", "clientid", "client", "customernumber", "customerno",
                  "customeremail", "email", "buyer", "buyerid", "userid", "accountid", "memberid",
-                 "shopper", "kunde", "kundennummer", "cliente", "billingemail"],
+                 "shopper", "kunde", "kundennummer", "cliente", "billingemail", "emailbilling", "emailaddress",
+                 "customeremailaddress", "billingemailaddress", "buyeremail", "buyeruserid", "customeruser",
+                 "fromemailaddress", "clientemail"],
     "date": ["orderdate", "date", "createdat", "created", "orderedat", "purchasedate", "invoicedate",
              "orderdatetime", "timestamp", "datetime", "processedat", "paidat", "saledate", "transactiondate",
-             "datecreated"],
+             "datecreated", "dateordered", "dateofpurchase", "orderplacedat", "datum", "fecha"],
     "value": ["ordervalue", "ordertotal", "total", "amount", "linetotal", "lineamount", "value",
               "totalprice", "grandtotal", "netsales", "sales", "revenue", "subtotal", "price",
-              "totalamount", "orderamount", "gross", "net", "betrag", "importe"],
+              "totalamount", "orderamount", "ordertotalamount", "gross", "net", "betrag", "importe", "montant"],
     "order_id": ["orderid", "ordernumber", "orderno", "order", "invoice", "invoiceid", "invoicenumber",
                  "invoiceno", "transactionid", "receipt", "receiptid", "name", "bestellnummer"],
     "status": ["orderstatus", "status", "financialstatus", "paymentstatus", "state", "orderstate"],
@@ -276,6 +278,7 @@ _NAME_DAY = rf"^(?P<mon>[A-Za-z]{{3,9}})\.?\x{{20}}+(?P<d>[0-9]{{1,2}})(?:st|nd|
 _MONTH_WORD = (r"jan(?:uary)?|feb(?:ruary)?|mar(?:ch)?|apr(?:il)?|may|june?|july?|aug(?:ust)?"
                r"|sep(?:t(?:ember)?)?|oct(?:ober)?|nov(?:ember)?|dec(?:ember)?")
 _SERIAL = r"[0-9]{5}(?:\.[0-9]+)?"
+_COMPACT = r"^(?P<y>(?:19|20|21)[0-9]{2})(?P<m>[01][0-9])(?P<d>[0-3][0-9])$"  # 20250314
 _TIME_NAMES = ("hh", "mi", "ss", "ap")
 _EXCEL_EPOCH_DAYS = 25569  # Excel's day number of 1970-01-01 (day 1 = 1900-01-01, with its 1900-02-29)
 _MICROS = 1_000_000
@@ -439,7 +442,7 @@ def read_date(ops, cell, *, date_order: str = "day-first") -> dict:
     ``45660``) and ``hints`` (what the value says about the column's date order).
 
     Reads ISO dates (``2025-03-14``, ``2025-03-14 10:22``, ``2025-03-14T10:22:05.5``),
-    ``2025/03/14``, ``14/03/2025``, ``03.14.25`` (day or month first as ``date_order`` says, see
+    ``2025/03/14``, ``20250314``, ``14/03/2025``, ``03.14.25`` (day or month first as ``date_order`` says, see
     :func:`decide_date_order`), ``14 Mar 2025``, ``14-Mar-25``, ``March 14, 2025``, ``Fri, 14 Mar
     2025``, times with AM/PM, and Excel day numbers. A time-zone offset or name after a time
     (``+01:00``, ``-0500``, ``Z``, ``UTC``) is dropped: the date stays the local date written,
@@ -459,10 +462,11 @@ def read_date(ops, cell, *, date_order: str = "day-first") -> dict:
         numeric = ops.extract(t, _NUMERIC, ("a", "b", "y") + _TIME_NAMES)
         day_name = ops.extract(t, _DAY_NAME, ("d", "mon", "y") + _TIME_NAMES)
         name_day = ops.extract(t, _NAME_DAY, ("mon", "d", "y") + _TIME_NAMES)
+        compact = ops.extract(t, _COMPACT, ("y", "m", "d"))
         form = ops.let("date_form", ops.case([(ops.ne(ymd["y"], ""), 1), (ops.ne(numeric["y"], ""), 2),
                                               (ops.ne(day_name["y"], ""), 3), (ops.ne(name_day["y"], ""), 4),
-                                              (ops.full_match(t, _SERIAL), 5)], 0))
-        forms = ((1, ymd), (2, numeric), (3, day_name), (4, name_day))
+                                              (ops.full_match(t, _SERIAL), 5), (ops.ne(compact["y"], ""), 6)], 0))
+        forms = ((1, ymd), (2, numeric), (3, day_name), (4, name_day), (6, compact))
 
         def part(name):
             return ops.case([(ops.eq(form, k), groups[name]) for k, groups in forms if name in groups], "")
@@ -474,7 +478,7 @@ def read_date(ops, cell, *, date_order: str = "day-first") -> dict:
         month_of_word = ops.if_else(ops.full_match(month_word, _MONTH_WORD),
                                     ops.add(ops.index_in(ops.left(month_word, 3), MONTHS), 1), ops.null("int"))
         day_first = date_order != "month-first"
-        month = ops.case([(ops.eq(form, 1), _number(ops, ymd["m"])),
+        month = ops.case([(ops.eq(form, 1), _number(ops, ymd["m"])), (ops.eq(form, 6), _number(ops, compact["m"])),
                           (ops.eq(form, 2), second if day_first else first)], month_of_word)
         day = ops.case([(ops.eq(form, 2), first if day_first else second)], _number(ops, part("d")))
         hour_text, minute_text, second_text = part("hh"), part("mi"), part("ss")
@@ -729,6 +733,16 @@ def decide_order_total(*, value_header: str, has_order_ids: bool, orders_with_li
     if header in LINE_AMOUNT_HEADERS:
         return False
     return header in ORDER_TOTAL_HEADERS or with_blank_lines > 0 or orders_with_lines >= ORDER_TOTAL_MIN_ORDERS
+
+
+# When the amount column holds each order's total, the order's further lines (no amount of their own)
+# share the reason its first line was left out for: they are lines of the same cancelled, unpaid,
+# test... order, not rows without an amount.
+INHERITED_REASONS = ("test_order", "cancelled_order", "unpaid_order", "other_currency", "bad_amount",
+                     "missing_date", "bad_date", "implausible_date")
+# Rows that are no line of any order: they take part in no order's first line.
+NOT_A_LINE = ("blank_row", "malformed_row", "unclosed_quote", "oversized_field", "damaged_row", "duplicate_row",
+              "formula_without_value", "missing_customer")
 
 
 def order_total_note(column: str) -> list[str]:

@@ -227,6 +227,10 @@ def cases() -> list[Case]:
     c.add(["#1003", "moss@example.com", "paid", "2025-05-03 09:15:00 +0100", "", "Feed"], order="#1003",
           notes=["continuation_line"])
     c.add(["#1004", "fern@example.com", "pending", "2025-05-04 12:00:00 +0100", "12.00", "Seeds"], "unpaid_order")
+    # The further lines of an order left out share its reason (the status is on the first line only).
+    c.add(["#1004", "fern@example.com", "", "2025-05-04 12:00:00 +0100", "", "Pot"], "unpaid_order")
+    c.add(["#1005", "ivy@example.com", "voided", "2025-05-05 12:00:00 +0100", "30.00", "Fern"], "cancelled_order")
+    c.add(["#1005", "ivy@example.com", "", "2025-05-05 12:00:00 +0100", "", "Saucer"], "cancelled_order")
     c.expect_note("'Total' holds each order's total (on its first line, or repeated on every line): it is "
                   "counted once per order, and the order's other lines are noted as further lines of it.")
 
@@ -527,6 +531,10 @@ def cases() -> list[Case]:
     c.add(["fern", "25/04/2025", "10.00"])
     c.add(["ivy", "04/25/2025", "20.00"])
     c.refuse("mix day-first and month-first", row=2, option="date_order")
+
+    c = case("compact_dates", ["customer", "order date", "amount"], about="dates written as 20250314")
+    c.add(["fern", "20250314", "10.00"], value="10.00")
+    c.add(["ivy", "20251301", "20.00"], "bad_date")
 
     c = case("written_out_dates", ["customer", "order date", "amount"], about="dates in words")
     c.add(["fern", "14 Mar 2025", "10.00"], value="10.00")
