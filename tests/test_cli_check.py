@@ -37,12 +37,42 @@ class TestCheckCommand:
 
     def test_excluded_rows_can_be_written(self, tmp_path):
         path = tmp_path / "orders.csv"
-        path.write_text("customer,date,amount\n=evil(),2025-01-02,oops\nC1,2025-01-02,10\n")
+        path.write_text("customer,date,amount\n=evil(),2025-01-02,12 oops\nC1,2025-01-02,10\n")
         out = tmp_path / "left_out.csv"
         done = run_cli("check", str(path), "--excluded-out", str(out))
         assert done.returncode == 0, done.stderr
         text = out.read_text()
         assert "'=evil()" in text and "bad_amount" in text
+
+
+class TestReadingOptions:
+    def test_header_row_keep_unpaid_and_keep_implausible_flags(self, tmp_path):
+        path = tmp_path / "orders.csv"
+        ordinary = "".join(f"C{i % 3},2025-02-{i + 1:02d},{20 + i},paid\n" for i in range(7))
+        path.write_text("Fernhollow Plants\n1,2,3,4\ncustomer,date,amount,status\n" + ordinary
+                        + "C1,2025-03-01,15,pending\nC2,2025-03-02,124999,paid\nC1,2052-01-01,12,paid\n")
+        plain = json.loads(run_cli("check", str(path), "--json", "--header-row", "3").stdout)
+        assert plain["excluded"] == {"implausible_amount": 1, "implausible_date": 1, "unpaid_order": 1}
+        kept = json.loads(run_cli("check", str(path), "--json", "--header-row", "3", "--keep-unpaid",
+                                  "--keep-implausible").stdout)
+        assert kept["excluded"] == {} and kept["noted"] == {"implausible_kept": 2, "unpaid_kept": 1}
+        assert kept["rows_read"] == 10
+
+    def test_the_message_names_the_flag_that_fixes_it(self, tmp_path):
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,date,amount\nC1,03/04/2025,10\nC2,05/06/2025,20\n")
+        done = run_cli("check", str(path))
+        assert done.returncode == 2
+        assert "Set the date order (day-first or month-first) (--date-order)" in done.stderr
+        path.write_text("customer,date,amount\nC1,2025-01-02,C$10\nC2,2025-01-03,$20\n")
+        assert "(--currency)" in run_cli("check", str(path)).stderr
+
+    def test_rows_noted_are_shown(self, tmp_path):
+        path = tmp_path / "orders.csv"
+        path.write_text("customer,date,amount,status\nC1,45660,10,Gift\nC2,2025-01-03,20,paid\n")
+        done = run_cli("check", str(path))
+        assert done.returncode == 0, done.stderr
+        assert "noted" in done.stdout and "excel_serial_date" in done.stdout and "'Gift' (1 row)" in done.stdout
 
 
 class TestPipes:

@@ -63,16 +63,32 @@ class TestEngineOption:
         np.testing.assert_allclose(by_duckdb[numbers], by_pandas[numbers], rtol=0, atol=0.01 + 1e-9)
         assert (by_duckdb[numbers] == by_pandas[numbers]).to_numpy().mean() > 0.99
 
-    def test_formatted_money_points_to_the_pandas_engine(self, tmp_path):
-        path = tmp_path / "formatted.csv"
-        path.write_text("customer,date,amount\nC1,2025-01-02,\"$1,234.50\"\nC2,2025-01-03,$5.00\n")
-        done = run_cli("check", str(path), "--engine", "duckdb")
-        assert done.returncode == 2
-        assert "--engine pandas" in done.stderr and "Traceback" not in done.stderr
+    def test_the_demo_shop_forecasts_with_the_duckdb_engine(self, tmp_path):
+        # A fresh install's first try: money written as $1,234.50 and one row with an unquoted comma.
+        demo = ROOT / "demo_data" / "plant_shop_orders.csv"
+        for engine in ("pandas", "duckdb"):
+            done = run_cli("forecast", str(demo), "--engine", engine, "--out", str(tmp_path / f"{engine}.csv"))
+            assert done.returncode == 0, done.stderr
+        by_pandas, by_duckdb = read_forecast(tmp_path / "pandas.csv"), read_forecast(tmp_path / "duckdb.csv")
+        numbers = by_pandas.select_dtypes("number").columns
+        np.testing.assert_allclose(by_duckdb[numbers], by_pandas[numbers], rtol=0, atol=0.01 + 1e-9)
+        checks = [json.loads(run_cli("check", str(demo), "--json", "--engine", engine).stdout)
+                  for engine in ("pandas", "duckdb")]
+        assert checks[0] == checks[1]
+        assert checks[0]["excluded"]["malformed_row"] == 1
 
-    def test_excluded_rows_need_the_pandas_engine(self, plain_file, tmp_path):
-        done = run_cli("check", str(plain_file), "--engine", "duckdb", "--excluded-out", str(tmp_path / "x.csv"))
-        assert done.returncode == 2 and "--engine pandas" in done.stderr
+    def test_excluded_rows_from_every_engine(self, tmp_path):
+        path = tmp_path / "ragged.csv"
+        path.write_text("customer,date,amount\nC1,2025-01-02,\"$1,234.50\"\nC2,2025-01-03,$5.00,extra\n"
+                        "C3,2025-01-03,n/a\n\nC1,2025-02-03,$7.00\n")
+        written = {}
+        for engine in ("pandas", "duckdb"):
+            out = tmp_path / f"{engine}.csv"
+            done = run_cli("check", str(path), "--engine", engine, "--excluded-out", str(out))
+            assert done.returncode == 0, done.stderr
+            written[engine] = pd.read_csv(out)[["row", "reason_code"]].values.tolist()
+        assert written["pandas"] == written["duckdb"] == [[3, "malformed_row"], [4, "missing_amount"],
+                                                          [5, "blank_row"]]
 
     def test_evaluate_on_a_local_dask_cluster_keeps_the_json_contract(self, plain_file):
         pytest.importorskip("distributed", reason="the dask engine needs requirements-scale.txt")

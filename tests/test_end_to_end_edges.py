@@ -17,7 +17,13 @@ SHOPS = {
     "all_equal": "customer,date,amount\n" + "".join(f"C{i % 5},2025-{1 + i % 9:02d}-1{i % 9},25\n" for i in range(40)),
     "cents_and_billions": "customer,date,amount\n" + "".join(
         f"C{i % 6},2025-{1 + i % 9:02d}-0{1 + i % 9},{0.01 if i % 3 else 1e9}\n" for i in range(36)),
+    # An ordinary shop with a typo of 1e308, an order dated 2052 and a NUL byte in a customer id.
+    "typos": "customer,date,amount\n" + "".join(
+        f"C{i % 5},2025-{1 + i % 9:02d}-1{i % 9},{20 + i % 7}.50\n" for i in range(40))
+        + "C1,2025-06-01,1e308\nC2,2052-01-01,30\nC\x003,2025-06-02,25\n",
 }
+# Shops whose extreme values are the point: read with implausible values kept.
+KEEP_IMPLAUSIBLE = {"cents_and_billions"}
 
 
 def run_cli(*args):
@@ -43,12 +49,17 @@ def shop(request, tmp_path):
     return path
 
 
+def reading_flags(shop):
+    return ["--keep-implausible"] if shop.stem in KEEP_IMPLAUSIBLE else []
+
+
 class TestEdgeShops:
     def test_forecast_outputs_are_finite_and_repeatable(self, shop, tmp_path):
         outputs = []
         for attempt in range(2):
             out = tmp_path / f"forecast{attempt}.csv"
-            done = run_cli("forecast", str(shop), "--method", "auto", "--out", str(out), "--json")
+            done = run_cli("forecast", str(shop), "--method", "auto", "--out", str(out), "--json",
+                           *reading_flags(shop))
             assert done.returncode == 0, done.stderr
             assert "Traceback" not in done.stderr
             json.loads(done.stdout)  # strict JSON: NaN would not parse as a JSON number in allow_nan=False output
@@ -58,15 +69,17 @@ class TestEdgeShops:
         numbers = table.select_dtypes("number")
         assert numbers.notna().all().all() and numbers.apply(lambda c: c.map(math.isfinite)).all().all()
         assert (table["expected_next_order"] > 0).all()
+        assert "\x00" not in (tmp_path / "forecast0.csv").read_text()
 
     def test_evaluate_and_outlook_end_cleanly(self, shop):
         for command in (["evaluate", str(shop), "--json"], ["outlook", str(shop), "--horizon", "90", "--json"]):
-            done = run_cli(*command)
+            done = run_cli(*command, *reading_flags(shop))
             assert "Traceback" not in done.stderr
             if done.returncode == 0:
                 first = json.loads(done.stdout)
                 assert_finite_json(first)
-                again = run_cli(*command)
+                assert "2052" not in done.stdout  # a date typo is no period to project from
+                again = run_cli(*command, *reading_flags(shop))
                 assert again.stdout == done.stdout
             else:
                 # Too little data for this question is a plain message with exit code 2.

@@ -71,7 +71,8 @@ def add_column_options(parser: argparse.ArgumentParser) -> None:
     columns.add_argument("--value", metavar="COL", help="column with the order or line amount")
     columns.add_argument("--date", metavar="COL", help="column with the order date")
     columns.add_argument("--order-id", metavar="COL", help="column with the order number (joins order lines)")
-    columns.add_argument("--status", metavar="COL", help="column with the order status (cancelled, refunded, test)")
+    columns.add_argument("--status", metavar="COL",
+                         help="column with the order status (paid, cancelled, refunded, pending, test...)")
     columns.add_argument("--segment", metavar="COL", help="column with a customer group such as channel or region")
     columns.add_argument("--currency-column", metavar="COL", help="column with the currency code")
     reading = parser.add_argument_group("reading")
@@ -79,6 +80,13 @@ def add_column_options(parser: argparse.ArgumentParser) -> None:
     reading.add_argument("--date-order", choices=DATE_ORDERS, help="how to read dates like 03/04/2025")
     reading.add_argument("--decimal", choices=[".", ","], help="decimal separator of the amounts")
     reading.add_argument("--sheet", help="Excel sheet name (default: the first sheet)")
+    reading.add_argument("--header-row", type=int, metavar="N",
+                         help="the row that holds the column headings, for title lines above them "
+                              "(default: found by itself)")
+    reading.add_argument("--keep-unpaid", action="store_true",
+                         help="keep orders whose status says unpaid or unfinished (pending, failed, draft, on hold)")
+    reading.add_argument("--keep-implausible", action="store_true",
+                         help="keep amounts far outside the shop's usual range and dates in the future or before 1990")
 
 
 # From this size on, the pandas engine's run suggests the duckdb engine (bytes; a rule of thumb).
@@ -142,7 +150,8 @@ def json_number(value):
 def column_options(args: argparse.Namespace) -> dict:
     return dict(customer=args.customer, value=args.value, date=args.date, order_id=args.order_id,
                 status=args.status, segment=args.segment, currency_column=args.currency_column,
-                currency=args.currency, date_order=args.date_order, decimal=args.decimal, sheet=args.sheet)
+                currency=args.currency, date_order=args.date_order, decimal=args.decimal, sheet=args.sheet,
+                header_row=args.header_row, keep_unpaid=args.keep_unpaid, keep_implausible=args.keep_implausible)
 
 
 def load_statistics_from_args(args: argparse.Namespace):

@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
-from . import EXIT_OK, add_column_options, add_engine_options, load_from_args, load_statistics_from_args, print_json
-from ..errors import OrderDataError
+from . import EXIT_OK, add_column_options, add_engine_options, column_options, load_from_args, print_json
 from ..exports import write_csv
-from ..reading import REASONS
+from ..reading import NOTES, REASONS
 
 
 def add_arguments(parser) -> None:
@@ -22,10 +21,14 @@ def run(args) -> int:
         if args.excluded_out:
             write_csv(result.excluded, args.excluded_out)
     else:
+        from ..engines import customer_statistics_from_file
+
+        _, audit = customer_statistics_from_file(
+            args.file, engine=args.engine, memory_limit=args.memory_limit, temp_directory=args.temp_directory,
+            threads=args.threads, scheduler=args.scheduler, list_rows=bool(args.excluded_out),
+            **column_options(args))
         if args.excluded_out:
-            raise OrderDataError("--excluded-out lists every row left out, which only the pandas engine keeps",
-                                 fix="Run it with --engine pandas")
-        _, audit, _ = load_statistics_from_args(args)
+            write_csv(audit.pop("excluded_rows"), args.excluded_out)
     if args.json:
         print_json(audit)
         return EXIT_OK
@@ -34,7 +37,9 @@ def run(args) -> int:
     print(f"{audit['orders']} orders from {audit['customers']} customers")
     print("columns: " + ", ".join(f"{role}={col}" for role, col in audit["mapping"].items() if col))
     for code, count in audit["excluded"].items():
-        print(f"  left out {count:>6}  {code:<18} {REASONS[code]}")
+        print(f"  left out {count:>6}  {code:<22} {REASONS[code]}")
+    for code, count in audit.get("noted", {}).items():
+        print(f"  noted    {count:>6}  {code:<22} {NOTES[code]}")
     for note in audit["notes"]:
         print(f"note: {note}")
     return EXIT_OK

@@ -16,8 +16,8 @@ Out: ``(stats, account)``: the per-customer statistics table of
 The estimators need only per-customer sums and a few shop-wide numbers, so the work is
 map-reduce: per-customer statistics (reduce by customer), shop-wide sums (reduce),
 forecasts (map over customers) and leave-one-out (map over orders plus small sums).
-The scale engines read plain exports (see :mod:`forecasting.engines.rules`); the three
-engines give the same table on the same file.
+Every engine applies the one rule set of :mod:`forecasting.io.rules`; the three engines give
+the same table and the same row account, row by row, on the same file.
 """
 
 from __future__ import annotations
@@ -44,7 +44,7 @@ def check_engine(engine) -> str:
     """
     if engine not in ENGINES:
         raise OrderDataError(f"unknown engine (got {engine!r})", value=engine,
-                             fix="Choose --engine pandas, duckdb or dask")
+                             fix="Choose pandas, duckdb or dask", option="engine")
     return engine
 
 
@@ -56,15 +56,17 @@ def _one_file(source) -> str | os.PathLike:
         paths = resolve_paths(source)
         if len(paths) != 1:
             raise OrderDataError(f"the pandas engine reads one file at a time ({len(paths)} were given)",
-                                 fix="Use --engine duckdb or --engine dask for several files")
+                                 fix="Read several files with the duckdb or dask engine", option="engine")
         return paths[0]
     return source
 
 
 def customer_statistics_from_file(source, *, engine="pandas", customer=None, date=None, value=None,
                                   order_id=None, status=None, currency_column=None, segment=None,
-                                  currency=None, date_order=None, decimal=None, sheet=None, file_name=None,
-                                  memory_limit="2GB", temp_directory=None, threads=None, scheduler=None):
+                                  currency=None, date_order=None, decimal=None, sheet=None, header_row=None,
+                                  keep_unpaid=False, keep_implausible=False, file_name=None,
+                                  memory_limit="2GB", temp_directory=None, threads=None, scheduler=None,
+                                  list_rows=False):
     """Per-customer statistics and the row account of an order export, with the chosen engine.
 
     Parameters
@@ -77,9 +79,9 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
     customer, date, value, order_id, status, currency_column, segment : str, optional
         The column playing each part (guessed from the headers when not given), as for
         :func:`forecasting.reading.read_orders`.
-    currency, date_order, decimal, sheet : optional
-        As for :func:`forecasting.reading.read_orders`; the scale engines refuse
-        ``decimal=","`` and ``sheet`` with a message naming ``--engine pandas``.
+    currency, date_order, decimal, sheet, header_row, keep_unpaid, keep_implausible : optional
+        As for :func:`forecasting.reading.read_orders`; every engine applies them the same way
+        (the scale engines refuse ``sheet``: they read CSV and Parquet files).
     file_name : str, optional
         The name shown in messages.
     memory_limit : str, default "2GB"
@@ -91,6 +93,10 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
     scheduler : str or distributed.Client, optional
         dask only: the scheduler's address (``"tcp://host:8786"``) or a client;
         a local cluster is started (and stopped) when not given.
+    list_rows : bool, default False
+        Also list every row left out and every row noted, the same from every engine:
+        ``account["excluded_rows"]`` (``file``, ``row``, ``reason_code``, ``reason``) and
+        ``account["noted_rows"]`` (``file``, ``row``, ``note_code``, ``note``).
 
     Returns
     -------
@@ -98,7 +104,8 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
         Indexed by customer, columns of :func:`forecasting.customers.customer_statistics`.
     account : dict
         ``file, rows_read, rows_used, rows_excluded, orders, customers, excluded`` (rows by
-        reason code), ``mapping`` and ``notes``, as :meth:`forecasting.reading.ReadResult.audit`.
+        reason code), ``noted`` (rows by note code), ``unrecognised_statuses``, ``mapping`` and
+        ``notes``, as :meth:`forecasting.reading.ReadResult.audit`.
 
     Raises
     ------
@@ -119,15 +126,21 @@ def customer_statistics_from_file(source, *, engine="pandas", customer=None, dat
     check_engine(engine)
     columns = {"customer": customer, "date": date, "value": value, "order_id": order_id, "status": status,
                "currency_column": currency_column, "segment": segment, "currency": currency,
-               "date_order": date_order, "decimal": decimal, "sheet": sheet, "file_name": file_name}
+               "date_order": date_order, "decimal": decimal, "sheet": sheet, "header_row": header_row,
+               "keep_unpaid": keep_unpaid, "keep_implausible": keep_implausible, "file_name": file_name}
     if engine == "pandas":
         result = read_orders(_one_file(source), **columns)
-        return customer_statistics(result.orders), result.audit()
+        account = result.audit()
+        if list_rows:
+            account["excluded_rows"] = (result.excluded[["row", "reason_code", "reason"]]
+                                        .assign(file=result.file_name)[["file", "row", "reason_code", "reason"]])
+            account["noted_rows"] = result.noted.assign(file=result.file_name)[["file", "row", "note_code", "note"]]
+        return customer_statistics(result.orders), account
     if engine == "duckdb":
         from .duckdb_engine import customer_statistics_duckdb
 
         return customer_statistics_duckdb(source, memory_limit=memory_limit, temp_directory=temp_directory,
-                                          threads=threads, **columns)
+                                          threads=threads, list_rows=list_rows, **columns)
     from .dask_engine import customer_statistics_dask
 
-    return customer_statistics_dask(source, scheduler=scheduler, **columns)
+    return customer_statistics_dask(source, scheduler=scheduler, list_rows=list_rows, **columns)

@@ -10,17 +10,24 @@ Out:
 * :func:`read_on_cluster` -- the same, keeping the cleaned orders on the cluster as a
   :class:`ShopOnCluster` for :func:`forecast_on_cluster` and :func:`leave_one_out_on_cluster`.
 
-How the work is split (map-reduce):
+How the work is split (map-reduce), with the pandas reader's own steps
+(:mod:`forecasting.io.clean`, the rules of :mod:`forecasting.io.rules`):
 
 1. the files are read as text partitions (``dask.dataframe.read_csv`` / ``read_parquet``);
-2. the rows are shuffled by customer, so that every row of a customer -- and so every
-   copy of a duplicated row and every line of an order -- lands in one partition;
-3. each partition is cleaned with the pandas reader's own order building
-   (:mod:`forecasting.reading`) and summarised with
-   :func:`forecasting.customers.customer_statistics` (a reduce by customer);
-4. what the reader decides on a whole column (several currencies, most values
-   unreadable, values only the pandas reader understands) is decided on the sums of the
-   partitions' counts (a small reduce).
+   a file the fast reader refuses or would read otherwise than the pandas reader is read
+   through a careful copy (:func:`forecasting.engines.sources.make_careful_copies`);
+2. the rows are shuffled by customer id (as the rules read it: an e-mail id in any capitals
+   is one customer), so that every row of a customer -- and so every copy of a duplicated
+   row and every line of an order -- lands in one partition;
+3. each partition's rows are read and given their reasons (:func:`~forecasting.io.clean.read_rows`);
+   what the reader decides on the whole file (decimal mark, date order, several currencies,
+   most values unreadable, order totals) is decided on the partitions' evidence combined
+   (:class:`~forecasting.io.clean.Evidence`), the rows read again when the decimal mark or
+   the date order differs from the first reading;
+4. each partition's orders are built (:func:`~forecasting.io.clean.build_orders`); the shop's
+   usual range of order values is measured on all kept orders; each partition is finished
+   (:func:`~forecasting.io.clean.finish_orders`) and summarised with
+   :func:`forecasting.customers.customer_statistics` (a reduce by customer).
 
 Leave-one-out maps over the partitions of cleaned orders with the shop-wide sums
 broadcast to every worker, and adds up squared errors (see
@@ -29,19 +36,23 @@ broadcast to every worker, and adds up squared errors (see
 
 from __future__ import annotations
 
-import re
+import logging
+import shutil
+import tempfile
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from .. import reading
 from ..customers import STATISTICS_COLUMNS, customer_statistics
 from ..errors import OrderDataError
-from ..reading import REASONS, ColumnMapping
+from ..io import clean
+from ..io import rules as shared
+from ..io.backends import ArrowOps
+from ..io.read import ColumnMapping
 from . import rules
-from .sources import OrderFiles, open_order_files, text_cells
+from .sources import OrderFiles, make_careful_copies, open_order_files, text_cells
 
 __all__ = [
     "ShopOnCluster",
@@ -56,10 +67,6 @@ _LINE_SHIFT = 40  # line key = partition number * 2**40 + position in the partit
 _PATH_COLUMN = "__order_file"
 _LINE_COLUMN = "__order_line"
 _KEY_COLUMN = "__order_customer"
-_PLAIN_NUMBER = re.compile(rules.PLAIN_NUMBER)
-_ISO_DATE = re.compile(rules.ISO_DATE)
-_HAS_DIGIT = re.compile(r"\d")
-_HAS_WORD = re.compile(r"[^\W_]")  # a letter or a digit
 
 
 def _require_dask():
@@ -69,7 +76,7 @@ def _require_dask():
     except ImportError:
         raise OrderDataError("the dask engine needs the dask and distributed packages",
                              fix="Install them with pip install -r requirements-scale.txt, "
-                                 "or use --engine pandas or --engine duckdb") from None
+                                 "or read with the pandas or duckdb engine", option="engine") from None
 
 
 @contextmanager
@@ -108,8 +115,10 @@ def cluster_client(scheduler=None, *, workers=None, processes=True):
         finally:
             client.close()
         return
+    # Worker logs stay quiet: a file the fast CSV reader refuses is read again carefully, and
+    # every problem reaches the caller as an exception anyway.
     cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=processes,
-                           dashboard_address=None)
+                           dashboard_address=None, silence_logs=logging.CRITICAL)
     client = Client(cluster)
     try:
         yield client
@@ -126,7 +135,7 @@ def _read_partitions(files: OrderFiles, blocksize):
     import dask.dataframe as dd
 
     if files.kind == "csv":
-        raw = dd.read_csv(files.paths, sep=files.delimiter, dtype=str, keep_default_na=False,
+        raw = dd.read_csv(files.read_paths, sep=files.delimiter, dtype=str, keep_default_na=False,
                           skip_blank_lines=False, blocksize=blocksize, encoding="utf-8-sig",
                           include_path_column=_PATH_COLUMN, engine="c")
     else:
@@ -134,14 +143,17 @@ def _read_partitions(files: OrderFiles, blocksize):
     return raw
 
 
-def _number_lines(part: pd.DataFrame, columns, kind, partition_info=None) -> pd.DataFrame:
-    """Cells as text ('' for empty) and a line key that orders rows as they are in the files."""
+def _number_lines(part: pd.DataFrame, columns, kind, customer, partition_info=None) -> pd.DataFrame:
+    """Cells as text ('' for empty), a line key that orders rows as they are in the files, and the
+    customer id as the rules read it (the key the rows are shuffled on)."""
     number = partition_info["number"] if partition_info else 0
     cells = part[columns] if kind == "csv" else text_cells(part[columns])
     cells = cells.astype(object).fillna("").astype(object)
     cells.columns = list(columns)
     cells.index = pd.RangeIndex(len(cells))
     cells[_LINE_COLUMN] = (np.int64(number) << _LINE_SHIFT) + np.arange(len(cells), dtype=np.int64)
+    read = shared.read_customer(ArrowOps(), clean.arrow_text(cells[customer]))["customer"]
+    cells[_KEY_COLUMN] = clean.pandas_text(read).to_numpy(dtype=object)
     return cells
 
 
@@ -153,123 +165,64 @@ def _partition_files(part: pd.DataFrame, kind, partition_info=None) -> pd.DataFr
 
 
 # ---------------------------------------------------------------------------
-# One partition of complete customers: the reader's rules, orders, statistics
+# One partition of complete customers: the reader's steps
 
 
 @dataclass
-class _PartitionSummary:
-    """What the client needs from a partition besides its orders and statistics."""
+class _Part:
+    """A partition's rows as the reader reads them, kept on the cluster between the steps."""
 
-    rows: int
-    counts: dict
-    currencies: dict  # currency -> first line key where an alive row names it
-    amounts: tuple  # (values, unreadable, first formatted (line, text) or None, first unreadable or None)
-    dates: tuple
+    rows: clean.Rows
+    lines: np.ndarray
+    orders: clean.Orders | None = None
 
 
-def _first_at(mask: np.ndarray, lines: np.ndarray, text: pd.Series):
-    if not mask.any():
-        return None
-    at = int(np.flatnonzero(mask)[0])
-    return int(lines[at]), str(text.iloc[at])
-
-
-def _clean_partition(part: pd.DataFrame, columns, mapping: ColumnMapping, currency):
-    """The pandas reader's rules on one partition that holds every row of its customers."""
+def _read_part(part: pd.DataFrame, columns, mapping: ColumnMapping, options, decimal, date_order, damaged):
+    """Step 3 on one partition: each row's readings and reason, and what they say about the file."""
     part = part.sort_values(_LINE_COLUMN, kind="stable").reset_index(drop=True)
     cells = part[list(columns)]
     lines = part[_LINE_COLUMN].to_numpy(dtype=np.int64)
-    n = len(cells)
-    reason = np.full(n, "", dtype=object)
+    rows = clean.read_rows(cells, mapping, options, decimal=decimal, date_order=date_order,
+                           possibly_damaged=damaged)
+    return _Part(rows, lines), clean.gather_evidence(rows, cells, mapping, lines)
 
-    def exclude(mask, code):
-        mask = np.asarray(mask, dtype=bool) & (reason == "")
-        reason[mask] = code
 
-    text = {role: cells[col].astype(str).str.strip() if col else None for role, col in mapping.as_dict().items()}
-    blank = np.ones(n, dtype=bool)
-    too_long = np.zeros(n, dtype=bool)
-    for col in columns:
-        column = cells[col].astype(str)
-        too_long |= column.str.len().to_numpy() > rules.MAX_FIELD_CHARS
-        blank &= (column.str.strip() == "").to_numpy()
-    exclude(blank, "blank_row")
-    exclude(too_long, "oversized_field")
-    exclude(cells.duplicated(keep="first").to_numpy() & ~blank, "duplicate_row")
-    exclude(text["customer"].to_numpy() == "", "missing_customer")
-    status = reading._status_text(cells, mapping)
-    if mapping.status:
-        exclude(status.str.fullmatch(rules.TEST_PATTERN).to_numpy(), "test_order")
-        exclude(status.str.fullmatch(rules.CANCELLED_PATTERN).to_numpy(), "cancelled_order")
+def _build_part(part: _Part, order_total: bool) -> _Part:
+    """Step 4 on one partition: its orders and their verdicts."""
+    return _Part(part.rows, part.lines, clean.build_orders(part.rows, order_total=order_total))
 
-    amount_text = text["value"]
-    if mapping.currency:
-        row_currency = text["currency"].str.upper()
-    else:
-        wordy = amount_text.str.contains(r"[^0-9.,()+\-\s]", regex=True).to_numpy()
-        row_currency = pd.Series("", index=cells.index, dtype=object)
-        if wordy.any():
-            row_currency[wordy] = reading._currency_marks(amount_text[wordy])
-    alive = reason == ""
-    named = alive & (row_currency != "").to_numpy()
-    currencies = {}
-    for mark, line in zip(row_currency[named], lines[named]):
-        currencies.setdefault(str(mark), int(line))
-    if currency:
-        wanted = currency.strip().upper()
-        wanted = rules.CURRENCY_SYMBOLS.get(wanted, wanted)
-        exclude((row_currency != "").to_numpy() & (row_currency != wanted).to_numpy(), "other_currency")
 
-    exclude(amount_text.to_numpy() == "", "missing_amount")
-    alive = reason == ""
-    plain = amount_text.str.fullmatch(_PLAIN_NUMBER).to_numpy()
-    formatted = alive & ~plain & amount_text.str.contains(_HAS_DIGIT).to_numpy()
-    amounts = pd.Series(np.nan, index=cells.index)
-    readable = alive & plain
-    if readable.any():
-        numbers = pd.to_numeric(amount_text[readable], errors="coerce").astype(np.float64)
-        amounts[readable] = numbers.where(np.isfinite(numbers))
-        # A plain number too large for a float (1e400) is read differently by the pandas reader.
-        formatted |= readable & amounts.isna().to_numpy()
-    unreadable = alive & ~formatted & amounts.isna().to_numpy()
-    amount_check = (int(alive.sum()), int(unreadable.sum()), _first_at(formatted, lines, amount_text),
-                    _first_at(unreadable, lines, amount_text))
-    exclude(formatted, "formatted_amount")
-    exclude(unreadable, "bad_amount")
+def _kept_log_values(part: _Part) -> np.ndarray:
+    return clean.kept_log_values(part.orders)
 
-    date_text = text["date"]
-    exclude(date_text.to_numpy() == "", "missing_date")
-    alive = reason == ""
-    iso = alive & date_text.str.fullmatch(_ISO_DATE).to_numpy()
-    dates = pd.Series(pd.NaT, index=cells.index, dtype="datetime64[ns]")
-    other = alive & ~iso & date_text.str.contains(_HAS_WORD).to_numpy()
-    if iso.any():
-        parsed = pd.to_datetime(date_text[iso], format="ISO8601", errors="coerce", utc=True)
-        parsed = parsed.dt.tz_convert(None).astype("datetime64[ns]")
-        other[np.flatnonzero(iso)[parsed.isna().to_numpy()]] = True  # ISO-looking but not a date
-        in_range = (parsed >= pd.Timestamp(rules.FIRST_DATE)) & (parsed <= pd.Timestamp(rules.LAST_DATE))
-        dates[iso] = parsed.where(in_range)
-    unreadable = alive & ~other & dates.isna().to_numpy()
-    date_check = (int(alive.sum()), int(unreadable.sum()), _first_at(other, lines, date_text),
-                  _first_at(unreadable, lines, date_text))
-    exclude(other, "other_date")
-    exclude(unreadable, "bad_date")
 
-    open_rows = reason == ""
-    if open_rows.any():
-        orders, reason = reading._build_orders(cells, mapping, text, status, amounts, dates, lines, reason,
-                                               open_rows)
-    else:
-        orders = pd.DataFrame({"customer": pd.Series([], dtype=str), "order_value": pd.Series([], dtype=float),
-                               "order_date": pd.Series([], dtype="datetime64[ns]")})
-        if mapping.segment:
-            orders["segment"] = pd.Series([], dtype=str)
-    codes, number = np.unique(reason[reason != ""], return_counts=True)
-    summary = _PartitionSummary(rows=n, counts={str(c): int(k) for c, k in zip(codes, number)}, currencies=currencies,
-                                amounts=amount_check, dates=date_check)
-    keep = ["customer", "order_value", "order_date"] + (["segment"] if mapping.segment else [])
-    orders = orders[keep].reset_index(drop=True)
-    return orders, summary
+@dataclass
+class _Summary:
+    """What the client needs of a finished partition besides its orders."""
+
+    rows: int
+    counts: dict  # reason code -> rows
+    noted: dict  # note code -> rows
+    unrecognised: dict  # status -> (rows, first line)
+    excluded: tuple | None  # (line keys, reason codes), when rows are listed
+    notes_listed: tuple | None  # (line keys, note bits), when rows are listed
+
+
+def _finish_part(part: _Part, usual, keep_implausible: bool, list_rows: bool):
+    """Step 4, the end, on one partition: final reasons and notes, the kept orders."""
+    done = clean.finish_orders(part.rows, part.orders, usual, keep_implausible=keep_implausible, lines=part.lines)
+    reason, notes = done.reason, done.notes
+    codes, number = np.unique(reason[reason != 0], return_counts=True)
+    used = reason == 0
+    noted = {code: int(((notes & bit) != 0)[used].sum()) for code, bit in shared.NOTE_BITS.items()}
+    out = reason != 0
+    with_notes = used & (notes != 0)
+    summary = _Summary(rows=len(reason), counts={shared.CODES[int(c)]: int(k) for c, k in zip(codes, number)},
+                       noted=noted, unrecognised=done.unrecognised_first,
+                       excluded=(part.lines[out], reason[out]) if list_rows else None,
+                       notes_listed=(part.lines[with_notes], notes[with_notes]) if list_rows else None)
+    keep = ["customer", "order_value", "order_date"] + (["segment"] if "segment" in done.orders else [])
+    return done.orders[keep].reset_index(drop=True), summary
 
 
 def _partition_statistics(orders: pd.DataFrame) -> pd.DataFrame:
@@ -307,76 +260,45 @@ class ShopOnCluster:
     notes: list = field(default_factory=list)
 
 
-def _line_rows(client, raw, files: OrderFiles, wanted: list[int]) -> dict[int, tuple[str, int]]:
-    """Line key -> (file label, spreadsheet row), for the few lines a message names."""
+def _rows_of_lines(client, raw, files: OrderFiles, lines: np.ndarray) -> tuple[list[str], np.ndarray]:
+    """File labels and spreadsheet rows of line keys (see :func:`_number_lines`)."""
     kind = files.kind
+    lines = np.asarray(lines, dtype=np.int64)
+    if not len(lines):
+        return [], np.zeros(0, dtype=np.int64)
     meta = pd.DataFrame({"number": pd.Series([], dtype=np.int64), "file": pd.Series([], dtype=object),
                          "rows": pd.Series([], dtype=np.int64)})
     table = client.compute(raw.map_partitions(_partition_files, kind, meta=meta)).result()
     table = table.sort_values("number").reset_index(drop=True)
+    numbers, positions = lines >> _LINE_SHIFT, lines & ((1 << _LINE_SHIFT) - 1)
     if kind == "parquet":
         import pyarrow.parquet as pq
 
-        sizes = np.array([pq.ParquetFile(p).metadata.num_rows for p in files.paths], dtype=np.int64)
+        sizes = np.array([pq.ParquetFile(p).metadata.num_rows for p in files.read_paths], dtype=np.int64)
         starts = np.concatenate([[0], np.cumsum(sizes)])
-        before = np.concatenate([[0], np.cumsum(table["rows"].to_numpy())])
-    found = {}
-    for line in wanted:
-        number, position = line >> _LINE_SHIFT, line & ((1 << _LINE_SHIFT) - 1)
-        if kind == "csv":
-            path = table.loc[table["number"] == number, "file"].iloc[0]
-            same = table[(table["file"] == path) & (table["number"] < number)]
-            found[line] = (files.file_label(path), int(same["rows"].sum()) + position + 2)
-        else:
-            overall = int(before[number]) + position
-            which = int(np.searchsorted(starts, overall, side="right")) - 1
-            found[line] = (files.file_label(files.paths[which]), overall - int(starts[which]) + 2)
-    return found
-
-
-def _check_whole_columns(client, raw, files: OrderFiles, summaries, currency):
-    """The reader's whole-column rules, on the sums of the partitions' counts."""
-    mapping = files.mapping
-
-    def where(line):
-        return _line_rows(client, raw, files, [line])[line]
-
-    if not currency:
-        first_seen = {}
-        for summary in summaries:
-            for mark, line in summary.currencies.items():
-                first_seen[mark] = min(line, first_seen.get(mark, line))
-        seen = sorted(first_seen)
-        if len(seen) > 1:
-            file, row = where(first_seen[seen[1]])
-            raise OrderDataError(
-                f"the amounts are in several currencies ({', '.join(seen)})", file=file, row=row,
-                column=mapping.currency or mapping.value,
-                fix=f"Choose one with --currency (for example --currency {seen[0]}); the others are then left out")
-    for name, column, option, what, rule_text in (
-            ("amounts", mapping.value, "--value", "amounts", "plain numbers such as 1234.50"),
-            ("dates", mapping.date, "--date", "dates", "ISO dates such as 2025-03-14 or 2025-03-14 10:30")):
-        checks = [getattr(s, name) for s in summaries]
-        needs_pandas = [c[2] for c in checks if c[2] is not None]
-        if needs_pandas:
-            line, value = min(needs_pandas)
-            file, row = where(line)
-            raise OrderDataError(f"the dask engine reads {rule_text}; this value needs the pandas reader",
-                                 file=file, row=row, column=column, value=value,
-                                 fix="Use --engine pandas for formatted exports")
-        total = sum(c[0] for c in checks)
-        bad = sum(c[1] for c in checks)
-        if total >= rules.UNREADABLE_MIN_VALUES and bad / total > rules.UNREADABLE_SHARE:
-            line, value = min(c[3] for c in checks if c[3] is not None)
-            file, row = where(line)
-            raise OrderDataError(f"most {what} in this column cannot be read", file=file, row=row,
-                                 column=column, value=value,
-                                 fix=f"Pick the right column with {option}, or check the format")
+        before = pd.Series(np.concatenate([[0], np.cumsum(table["rows"].to_numpy())])[:-1],
+                           index=table["number"].to_numpy())
+        overall = before.reindex(numbers).to_numpy() + positions
+        which = np.searchsorted(starts, overall, side="right") - 1
+        return [files.file_label(files.read_paths[w]) for w in which], overall - starts[which] + 2
+    # CSV: rows of earlier partitions of the same file come first.
+    earlier = table.groupby("file")["rows"].cumsum() - table["rows"]
+    offset = pd.Series(earlier.to_numpy(), index=table["number"].to_numpy())
+    in_file = offset.reindex(numbers).to_numpy() + positions
+    paths = table.set_index("number")["file"].reindex(numbers).to_numpy()
+    rows = np.zeros(len(lines), dtype=np.int64)
+    for path in pd.unique(paths):
+        mask = paths == path
+        # A careful copy knows each record's row; dask reads the blank lines of other files as rows.
+        rows[mask] = (files.spreadsheet_rows(path, in_file[mask]) if path in files.row_numbers
+                      else in_file[mask] + 2)
+    return [files.file_label(path) for path in paths], rows
 
 
 def read_on_cluster(source, *, client, customer=None, date=None, value=None, order_id=None, status=None,
                     currency_column=None, segment=None, currency=None, date_order=None, decimal=None,
-                    sheet=None, file_name=None, blocksize="64MB", partitions=None) -> ShopOnCluster:
+                    sheet=None, header_row=None, keep_unpaid=False, keep_implausible=False, file_name=None,
+                    blocksize="64MB", partitions=None, list_rows=False) -> ShopOnCluster:
     """Read and clean order files on a Dask cluster; keep the cleaned orders there.
 
     Parameters
@@ -385,71 +307,149 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         CSV or Parquet files (a path, a glob pattern or a list), all with the same columns.
     client : distributed.Client
         The cluster to work on (see :func:`cluster_client`).
-    customer, date, value, order_id, status, currency_column, segment, currency : optional
+    customer, date, value, order_id, status, currency_column, segment : optional
         As for :func:`forecasting.reading.read_orders`.
-    date_order, decimal, sheet, file_name : optional
-        As for :func:`forecasting.engines.customer_statistics_from_file`.
+    currency, date_order, decimal, header_row, keep_unpaid, keep_implausible, file_name : optional
+        As for :func:`forecasting.reading.read_orders`.
+    sheet : optional
+        Refused: the dask engine reads CSV and Parquet files.
     blocksize : str or None, default "64MB"
         Bytes of a CSV file per partition; ``None`` reads each file as one partition
         (needed when quoted fields contain line breaks).
     partitions : int, optional
         Partitions after the shuffle by customer (default: as many as were read).
+    list_rows : bool, default False
+        Also list every row left out and every row noted, in ``account["excluded_rows"]``
+        and ``account["noted_rows"]`` (as :func:`forecasting.engines.customer_statistics_from_file`).
 
     Returns
     -------
     ShopOnCluster
+
+    Notes
+    -----
+    Careful copies are written to a temporary folder of this machine, which the workers of
+    a local cluster read; it is removed once the orders are computed.
     """
     _require_dask()
-    rules.check_plain_options("dask", decimal=decimal, date_order=date_order, sheet=sheet)
+    rules.check_plain_options("dask", sheet=sheet)
+    options = clean.ReadOptions(currency=currency, date_order=date_order, decimal=decimal, keep_unpaid=keep_unpaid,
+                                keep_implausible=keep_implausible)
     if partitions is not None and (isinstance(partitions, bool) or not isinstance(partitions, int)
                                    or partitions < 1):
-        raise OrderDataError(f"partitions must be a whole number, 1 or more (got {partitions!r})")
+        raise OrderDataError(f"partitions must be a whole number, 1 or more (got {partitions!r})", value=partitions,
+                             fix="Give a whole number of partitions, or leave it out", option="partitions")
     overrides = {"customer": customer, "date": date, "value": value, "order_id": order_id,
                  "status": status, "currency": currency_column, "segment": segment}
-    files = open_order_files(source, overrides=overrides, file_name=file_name)
-    columns = list(files.columns)
-    raw = _read_partitions(files, blocksize)
-    meta = pd.DataFrame({**{c: pd.Series([], dtype=object) for c in columns},
-                         _LINE_COLUMN: pd.Series([], dtype=np.int64)})
-    numbered = raw.map_partitions(_number_lines, columns, files.kind, meta=meta)
-    customer_column = files.mapping.customer
-    keyed = numbered.assign(**{_KEY_COLUMN: numbered[customer_column].str.strip()})
-    shuffled = keyed.shuffle(on=_KEY_COLUMN, npartitions=partitions or raw.npartitions)
+    files = open_order_files(source, overrides=overrides, file_name=file_name, header_row=header_row)
+    directory = tempfile.mkdtemp(prefix="order-engine-")
+    try:
+        if files.kind == "csv" and (files.needs_copy or files.quoted_line_break):
+            make_careful_copies(files, directory)
+        return _read_and_clean(client, files, directory, options, blocksize=blocksize, partitions=partitions,
+                               list_rows=list_rows)
+    finally:
+        shutil.rmtree(directory, ignore_errors=True)
+
+
+def _read_rows_on_cluster(client, files: OrderFiles, options, blocksize, partitions, decimal, date_order):
+    """Steps 1-3: ``(raw, row parts, evidence parts)``, or Nones when the fast CSV reader refused a file
+    that has no careful copy yet."""
     from dask import delayed
 
-    cleaned = [delayed(_clean_partition, nout=2)(part, columns, files.mapping, currency)
-               for part in shuffled.to_delayed()]
+    columns = list(files.columns)
+    futures = []
     try:
-        futures = client.compute([c[0] for c in cleaned] + [c[1] for c in cleaned])
-        half = len(cleaned)
-        order_parts, summary_parts = futures[:half], futures[half:]
-        summaries = client.gather(summary_parts)
-    except UnicodeDecodeError:
-        raise OrderDataError("the file is not UTF-8 text", file=files.display_name,
-                             fix="Use --engine pandas (it reads Windows-1252 and Latin-1), "
-                                 "or save the export as UTF-8 CSV") from None
-    except pd.errors.ParserError as problem:
-        raise OrderDataError(f"some rows do not split into the header's fields ({str(problem).strip()})",
+        raw = _read_partitions(files, blocksize)  # reads the head of the first file already
+        meta = pd.DataFrame({**{c: pd.Series([], dtype=object) for c in columns},
+                             _LINE_COLUMN: pd.Series([], dtype=np.int64), _KEY_COLUMN: pd.Series([], dtype=object)})
+        numbered = raw.map_partitions(_number_lines, columns, files.kind, files.mapping.customer, meta=meta)
+        shuffled = numbered.shuffle(on=_KEY_COLUMN, npartitions=partitions or raw.npartitions)
+        damaged = files.possibly_damaged
+        read = [delayed(_read_part, nout=2)(part, columns, files.mapping, options, decimal, date_order, damaged)
+                for part in shuffled.to_delayed()]
+        futures = client.compute([r[0] for r in read] + [r[1] for r in read])
+        half = len(read)
+        parts, evidence = futures[:half], client.gather(futures[half:])
+    except (UnicodeDecodeError, pd.errors.ParserError) as problem:
+        if futures:
+            client.cancel(futures)
+        if files.kind == "csv" and not files.copied:
+            return None, None, None
+        raise OrderDataError(f"some rows do not split into the header's fields ({str(problem).strip()[:200]})",
                              file=files.display_name,
-                             fix="Use --engine pandas, which lists each such row; if quoted fields hold line "
-                                 "breaks, read with blocksize=None") from None
-    _check_whole_columns(client, raw, files, summaries, currency)
+                             fix="If quoted cells hold line breaks, read each file as one partition (blocksize None)",
+                             option="blocksize") from None
+    return raw, parts, evidence
+
+
+def _read_and_clean(client, files: OrderFiles, directory: str, options, *, blocksize, partitions,
+                    list_rows) -> ShopOnCluster:
+    decimal = options.decimal or "."
+    date_order = options.date_order or "day-first"
+    while True:
+        raw, parts, evidence_parts = _read_rows_on_cluster(client, files, options, blocksize, partitions, decimal,
+                                                           date_order)
+        if parts is None:  # the fast reader refused a file: read careful copies
+            make_careful_copies(files, directory)
+            continue
+        evidence = clean.Evidence.combine(evidence_parts)
+
+        def place(found, role, raw=raw):
+            labels, rows = _rows_of_lines(client, raw, files, np.array([found[0]]))
+            return int(rows[0]), found[1], labels[0]
+
+        name = files.display_name
+        chosen = clean.decide_decimal(evidence, options, files.mapping, file_name=name, place=place)
+        order, date_notes = (None, [])
+        if chosen == decimal:
+            order, date_notes = clean.decide_dates(evidence, options, files.mapping, file_name=name, place=place)
+        if chosen != decimal or (order is not None and order != date_order):
+            # Some values can only be read another way: read them all so.
+            client.cancel(parts)
+            decimal, date_order = chosen, (order if chosen == decimal and order is not None else date_order)
+            continue
+        break
+    clean.check_columns(evidence, options, files.mapping, file_name=name, place=place)
+    order_total = clean.decide_order_total(evidence, files.mapping)
+    built = client.map(_build_part, parts, order_total=order_total, pure=False)
+    log_values = client.gather(client.map(_kept_log_values, built, pure=False))
+    usual = clean.usual_range_of(np.concatenate(log_values + [np.zeros(0)]))
+    finished = client.map(_finish_part, built, usual=usual, keep_implausible=options.keep_implausible,
+                          list_rows=list_rows, pure=False)
+    order_parts = client.map(lambda done: done[0], finished, pure=False)
+    summaries = client.gather(client.map(lambda done: done[1], finished, pure=False))
+    from distributed import wait
+
+    wait(order_parts)
+    del parts, built, finished  # released once nothing refers to them; the orders stay
     counts: dict[str, int] = {}
+    noted: dict[str, int] = {}
+    unrecognised: dict[str, list] = {}
     for summary in summaries:
         for code, number in summary.counts.items():
             counts[code] = counts.get(code, 0) + number
+        for code, number in summary.noted.items():
+            noted[code] = noted.get(code, 0) + number
+        for status, (number, line) in summary.unrecognised.items():
+            got = unrecognised.setdefault(status, [0, line])
+            got[0] += number
+            got[1] = min(got[1], line)
+    for _, _, code, _ in files.set_aside:
+        counts[code] = counts.get(code, 0) + 1
+    statuses = {status: got[0] for status, got in sorted(unrecognised.items(), key=lambda item: item[1][1])}
     stats_parts = client.map(_partition_statistics, order_parts)
     pieces = [p for p in client.gather(stats_parts) if p is not None]
-    excluded = {code: counts[code] for code in REASONS if counts.get(code, 0) > 0}
-    rows_read = int(sum(s.rows for s in summaries))
+    excluded = shared.account_counts(counts, shared.REASONS)
+    rows_read = int(sum(s.rows for s in summaries)) + len(files.set_aside)
     if not pieces:
-        top = max(excluded, key=excluded.get) if excluded else None
-        why = f"; most rows were left out because {REASONS[top]}" if top else ""
-        raise OrderDataError(f"no usable orders were found{why}", file=files.display_name,
-                             fix="Check the column choices and the export")
+        raise shared.no_usable_orders(excluded, file_name=files.display_name)
     stats = pd.concat(pieces).sort_index(kind="stable")
     stats = stats[STATISTICS_COLUMNS + (["segment"] if files.mapping.segment else [])]
     rows_excluded = sum(excluded.values())
+    notes = (list(files.notes) + shared.decimal_note(decimal, options.decimal, files.mapping.value) + date_notes
+             + (shared.order_total_note(files.mapping.value) if order_total else [])
+             + shared.unrecognised_status_note(statuses))
     account = {
         "file": files.display_name,
         "rows_read": rows_read,
@@ -458,11 +458,39 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         "orders": int(stats["orders"].sum()),
         "customers": int(len(stats)),
         "excluded": excluded,
+        "noted": shared.account_counts(noted, shared.NOTES),
+        "unrecognised_statuses": statuses,
         "mapping": files.mapping.as_dict(),
-        "notes": list(files.notes),
+        "notes": notes,
     }
+    if list_rows:
+        account["excluded_rows"], account["noted_rows"] = _listed_rows(client, raw, files, summaries)
     return ShopOnCluster(client=client, order_parts=order_parts, stats=stats, account=account)
 
+
+def _listed_rows(client, raw, files: OrderFiles, summaries) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Every row left out and every row noted, with file, row number and code."""
+    from .duckdb_engine import sort_listed
+
+    lines = np.concatenate([s.excluded[0] for s in summaries] + [np.zeros(0, np.int64)]).astype(np.int64)
+    codes = np.concatenate([s.excluded[1] for s in summaries] + [np.zeros(0, np.int64)]).astype(np.int64)
+    labels, rows = _rows_of_lines(client, raw, files, lines)
+    excluded = pd.DataFrame({"file": labels, "row": rows,
+                             "reason_code": np.asarray(shared.CODES, dtype=object)[codes]})
+    aside = [(label, row, code) for label, row, code, _ in files.set_aside]
+    if aside:
+        excluded = pd.concat([excluded, pd.DataFrame(aside, columns=["file", "row", "reason_code"])],
+                             ignore_index=True)
+    excluded["reason"] = excluded["reason_code"].map(shared.REASONS)
+    lines = np.concatenate([s.notes_listed[0] for s in summaries] + [np.zeros(0, np.int64)]).astype(np.int64)
+    bits = np.concatenate([s.notes_listed[1] for s in summaries] + [np.zeros(0, np.int64)]).astype(np.int64)
+    labels, rows = _rows_of_lines(client, raw, files, lines)
+    labels = np.asarray(labels, dtype=object)
+    parts = [pd.DataFrame({"file": labels[(bits & bit) != 0], "row": rows[(bits & bit) != 0], "note_code": code})
+             for code, bit in shared.NOTE_BITS.items()]
+    noted = pd.concat(parts, ignore_index=True)
+    noted["note"] = noted["note_code"].map(shared.NOTES)
+    return sort_listed(excluded, "reason_code"), sort_listed(noted, "note_code")
 
 
 def customer_statistics_dask(source, *, scheduler=None, blocksize="64MB", partitions=None, **columns):
@@ -486,16 +514,9 @@ def customer_statistics_dask(source, *, scheduler=None, blocksize="64MB", partit
         As :func:`forecasting.customers.customer_statistics`.
     account : dict
         As :meth:`forecasting.reading.ReadResult.audit`.
-
-    Notes
-    -----
-    Plain numbers and ISO dates only, as for the duckdb engine (see
-    :mod:`forecasting.engines.rules`): a formatted value stops the run with an
-    :class:`~forecasting.errors.OrderDataError` naming ``--engine pandas``.
     """
     _require_dask()
-    rules.check_plain_options("dask", decimal=columns.get("decimal"), date_order=columns.get("date_order"),
-                              sheet=columns.get("sheet"))
+    rules.check_plain_options("dask", sheet=columns.get("sheet"))
     with cluster_client(scheduler) as client:
         shop = read_on_cluster(source, client=client, blocksize=blocksize, partitions=partitions, **columns)
         client.cancel(shop.order_parts)

@@ -1,0 +1,581 @@
+"""Two ways to run one cleaning rule: over Arrow arrays in this process, or as SQL in duckdb.
+
+In: nothing (two small classes). Out: :class:`ArrowOps` and :class:`SqlOps`, which offer the
+same operations (strip, lower, regular expressions, casts, integer arithmetic, choices).
+
+Every rule in :mod:`forecasting.io.rules` is a Python function written once against these
+operations. Handed an :class:`ArrowOps` and Arrow string arrays, it computes whole columns
+(the pandas and dask engines); handed an :class:`SqlOps` and column names, it returns the SQL
+text that computes the same thing (the duckdb engine). Both backends use the RE2 regular
+expression engine (Arrow's compute functions and duckdb's ``regexp_*`` functions), so a pattern
+means the same to both. Where the two could differ the operations say how they are made equal:
+
+* conditions: a missing (null) condition counts as false, as in SQL's ``CASE WHEN``;
+* casts: text is cast only after a pattern has said it is a number, so neither backend's own
+  leniency (duckdb accepts ``1_000`` and surrounding spaces) is ever reached;
+* integer division truncates toward zero in both.
+
+Rules stay vectorised: no operation loops over rows in Python. :meth:`ArrowOps.branch` runs a
+slow, careful part of a rule only on the rows a fast test did not settle; in SQL the same
+branch is a ``CASE`` that duckdb evaluates lazily, row by row.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import pyarrow as pa
+import pyarrow.compute as pc
+
+__all__ = ["ArrowOps", "Sql", "SqlOps"]
+
+
+# ---------------------------------------------------------------------------
+# Arrow
+
+
+class ArrowOps:
+    """The operations over Arrow arrays (all of one length, or Python scalars)."""
+
+    name = "arrow"
+
+    # -- values
+    @staticmethod
+    def lit(value):
+        return value
+
+    @staticmethod
+    def null(kind: str):
+        return pa.scalar(None, type=_ARROW_TYPES[kind])
+
+    # -- text
+    @staticmethod
+    def strip(x, characters: str):
+        return pc.utf8_trim(x, characters=characters)
+
+    @staticmethod
+    def lower(x):
+        return pc.utf8_lower(x)
+
+    @staticmethod
+    def upper(x):
+        return pc.utf8_upper(x)
+
+    @staticmethod
+    def length(x):
+        return pc.cast(pc.utf8_length(x), pa.int64())
+
+    @staticmethod
+    def is_ascii(x):
+        return pc.string_is_ascii(x)
+
+    @staticmethod
+    def contains(x, literal: str):
+        return pc.match_substring(x, literal)
+
+    @staticmethod
+    def search(x, pattern: str):
+        return pc.match_substring_regex(x, pattern)
+
+    @staticmethod
+    def full_match(x, pattern: str):
+        return pc.match_substring_regex(x, f"^(?:{pattern})$")
+
+    @staticmethod
+    def replace(x, pattern: str, replacement: str):
+        return pc.replace_substring_regex(x, pattern, replacement)
+
+    @staticmethod
+    def extract(x, pattern: str, names: tuple[str, ...]) -> dict:
+        """The named groups of the first match of ``pattern`` ('' where it does not match)."""
+        found = pc.extract_regex(x, pattern)
+        return {name: pc.fill_null(found.field(name), "") for name in names}
+
+    @staticmethod
+    def left(x, count: int):
+        return pc.utf8_slice_codeunits(x, 0, count)
+
+    # -- numbers
+    @staticmethod
+    def to_float(x, valid):
+        """``x`` read as a float where ``valid`` (a pattern said it is a plain number), else null."""
+        valid = pc.fill_null(valid, False)
+        text = pc.if_else(valid, x, "0")
+        return pc.if_else(valid, pc.cast(text, pa.float64()), pa.scalar(None, pa.float64()))
+
+    @staticmethod
+    def to_int(x, valid):
+        """``x`` read as a whole number where ``valid`` (digits only, at most 18), else null."""
+        valid = pc.fill_null(valid, False)
+        text = pc.if_else(valid, x, "0")
+        return pc.if_else(valid, pc.cast(text, pa.int64()), pa.scalar(None, pa.int64()))
+
+    @staticmethod
+    def is_finite(x):
+        return pc.fill_null(pc.is_finite(x), False)
+
+    @staticmethod
+    def add(a, b):
+        return pc.add(a, b)
+
+    @staticmethod
+    def sub(a, b):
+        return pc.subtract(a, b)
+
+    @staticmethod
+    def mul(a, b):
+        return pc.multiply(a, b)
+
+    @staticmethod
+    def div_int(a, b):
+        return pc.divide(a, b)  # integer division of integers truncates toward zero
+
+    @staticmethod
+    def floor(x):
+        return pc.floor(x)
+
+    @staticmethod
+    def float_to_int(x):
+        return pc.cast(x, pa.int64(), safe=False)
+
+    @staticmethod
+    def neg(x):
+        return pc.negate(x)
+
+    @staticmethod
+    def ln(x):
+        return pc.ln(x)
+
+    def iso_micros(self, text, valid):
+        """Microseconds since 1970 (to the second) of ISO date texts where ``valid``, else null.
+
+        Arrow's own cast reads the whole column at once; when one value is no real day
+        (2025-02-30) it refuses them all, and the dates are then built from their digits."""
+        valid = self.truth(valid)
+        out = pa.nulls(len(text), pa.int64())
+        subset = pc.filter(text, valid)
+        if len(subset) == 0:
+            return out
+        try:
+            stamps = pc.floor_temporal(pc.cast(subset, pa.timestamp("us")), unit="second")
+            micros = pc.cast(stamps, pa.int64())
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            from .rules import civil_micros
+
+            def digits(start, stop):
+                part = pc.utf8_slice_codeunits(subset, start, stop)
+                return self.to_int(part, pc.match_substring_regex(part, "^[0-9]+$"))
+
+            micros = civil_micros(self, digits(0, 4), digits(5, 7), digits(8, 10),
+                                  pc.fill_null(digits(11, 13), 0), pc.fill_null(digits(14, 16), 0),
+                                  pc.fill_null(digits(17, 19), 0))
+        if isinstance(micros, pa.ChunkedArray):
+            micros = micros.combine_chunks()
+        return pc.replace_with_mask(out, valid, micros)
+
+    # -- comparisons and logic (null compares as null; a null condition is false)
+    @staticmethod
+    def eq(a, b):
+        return pc.equal(a, b)
+
+    @staticmethod
+    def ne(a, b):
+        return pc.not_equal(a, b)
+
+    @staticmethod
+    def lt(a, b):
+        return pc.less(a, b)
+
+    @staticmethod
+    def le(a, b):
+        return pc.less_equal(a, b)
+
+    @staticmethod
+    def gt(a, b):
+        return pc.greater(a, b)
+
+    @staticmethod
+    def ge(a, b):
+        return pc.greater_equal(a, b)
+
+    @staticmethod
+    def and_(*conditions):
+        result = conditions[0]
+        for condition in conditions[1:]:
+            result = pc.and_kleene(result, condition)
+        return result
+
+    @staticmethod
+    def or_(*conditions):
+        result = conditions[0]
+        for condition in conditions[1:]:
+            result = pc.or_kleene(result, condition)
+        return result
+
+    @staticmethod
+    def not_(condition):
+        return pc.invert(condition)
+
+    @staticmethod
+    def is_null(x):
+        return pc.is_null(x)
+
+    @staticmethod
+    def fill_null(x, value):
+        return pc.fill_null(x, value)
+
+    @staticmethod
+    def truth(condition):
+        """The condition with null read as false."""
+        return pc.fill_null(condition, False)
+
+    def if_else(self, condition, then, otherwise):
+        return pc.if_else(self.truth(condition), then, otherwise)
+
+    def case(self, choices: list[tuple], default):
+        """The value of the first condition that holds, else ``default``."""
+        result = default
+        for condition, value in reversed(choices):
+            result = self.if_else(condition, value, result)
+        return result
+
+    @staticmethod
+    def is_in(x, values: tuple):
+        return pc.is_in(x, value_set=pa.array(values))
+
+    @staticmethod
+    def index_in(x, values: tuple):
+        """Position of ``x`` in ``values`` (0-based), null when absent."""
+        return pc.cast(pc.index_in(x, value_set=pa.array(values)), pa.int64())
+
+    # -- structure
+    @staticmethod
+    def let(name: str, x):
+        return x
+
+    def per_distinct(self, x, rule: Callable):
+        """``rule(ops, x)`` computed once per distinct value of ``x`` (a few statuses, millions of rows)."""
+        encoded = pc.dictionary_encode(x)
+        if isinstance(encoded, pa.ChunkedArray):
+            encoded = encoded.combine_chunks()
+        out = rule(self, encoded.dictionary)
+        if isinstance(out, dict):
+            return {key: self._take(value, encoded.indices, len(x)) for key, value in out.items()}
+        return self._take(out, encoded.indices, len(x))
+
+    @staticmethod
+    def _take(values, indices, n):
+        if not isinstance(values, (pa.Array, pa.ChunkedArray)):
+            return pa.array([values] * n) if n else pa.array([], type=pa.scalar(values).type)
+        return pc.take(values, indices)
+
+    def branch(self, settled, fast: dict, careful: Callable) -> dict:
+        """Each output from ``fast`` where ``settled`` holds, else from ``careful(ops, take)``.
+
+        ``careful`` runs on the unsettled rows only: ``take(array)`` gives an input's values there."""
+        unsettled = pc.invert(self.truth(settled))
+        count = pc.sum(unsettled).as_py() or 0
+        n = len(unsettled)
+        full = {key: self.full_column(value, n) for key, value in fast.items()}
+        if count == 0:
+            return full
+        slow = careful(self, lambda array: pc.filter(array, unsettled))
+        out = {}
+        for key, value in full.items():
+            replacement = slow[key]
+            if not isinstance(replacement, (pa.Array, pa.ChunkedArray)):
+                replacement = pa.array([replacement] * count, type=value.type)
+            elif replacement.type != value.type:
+                replacement = pc.cast(replacement, value.type)
+            if isinstance(replacement, pa.ChunkedArray):
+                replacement = replacement.combine_chunks()
+            out[key] = pc.replace_with_mask(value, unsettled, replacement)
+        return out
+
+    @staticmethod
+    def full_column(value, n: int):
+        """A value as an array of ``n`` (a scalar repeated, an array as it is)."""
+        if isinstance(value, pa.ChunkedArray):
+            return value.combine_chunks()
+        if isinstance(value, pa.Array):
+            return value
+        scalar = value if isinstance(value, pa.Scalar) else pa.scalar(value)
+        if scalar.type == pa.int8() or scalar.type == pa.int32():
+            scalar = pa.scalar(scalar.as_py(), pa.int64())
+        return pa.array([scalar.as_py()] * n, type=scalar.type) if n else pa.array([], type=scalar.type)
+
+
+_ARROW_TYPES = {"float": pa.float64(), "int": pa.int64(), "text": pa.string(), "bool": pa.bool_()}
+
+
+# ---------------------------------------------------------------------------
+# SQL (duckdb)
+
+
+class Sql:
+    """An SQL expression and the layer of the query it can first be computed in."""
+
+    __slots__ = ("text", "level")
+
+    def __init__(self, text: str, level: int = 0):
+        self.text = text
+        self.level = level
+
+    def __repr__(self) -> str:
+        return f"Sql({self.text!r}, level={self.level})"
+
+
+def _quote(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def sql_literal(value) -> str:
+    """A Python value as an SQL literal."""
+    if value is None:
+        return "NULL"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return f"CAST({value} AS BIGINT)"
+    if isinstance(value, float):
+        return f"CAST({value!r} AS DOUBLE)"
+    return "'" + str(value).replace("'", "''") + "'"
+
+
+class _Layers:
+    """Named intermediate values, each computed in the first layer where its inputs exist."""
+
+    def __init__(self, prefix: str):
+        self.prefix = prefix
+        self.layers: list[list[tuple[str, str]]] = []
+        self.names: set[str] = set()
+
+    def add(self, level: int, name: str, text: str) -> str:
+        unique, k = f"{self.prefix}{name}", 1
+        while unique in self.names:
+            k += 1
+            unique = f"{self.prefix}{name}_{k}"
+        self.names.add(unique)
+        while len(self.layers) < level:
+            self.layers.append([])
+        self.layers[level - 1].append((unique, text))
+        return unique
+
+    def query(self, base: str) -> str:
+        """``base`` (a query) wrapped in one ``SELECT *, ...`` per layer of named values."""
+        sql = base
+        for layer in self.layers:
+            if layer:
+                columns = ", ".join(f"{text} AS {_quote(name)}" for name, text in layer)
+                sql = f"SELECT *, {columns} FROM ({sql})"
+        return sql
+
+
+def _sql(value) -> Sql:
+    if isinstance(value, Sql):
+        return value
+    return Sql(sql_literal(value), 0)
+
+
+def _level(*values) -> int:
+    return max((v.level for v in values if isinstance(v, Sql)), default=0)
+
+
+class SqlOps:
+    """The operations as SQL text for duckdb; inputs are :class:`Sql` expressions (or Python scalars).
+
+    Named values (:meth:`let`) become columns of nested ``SELECT`` layers (:meth:`query`), so
+    a value used several times is computed once per row. Inside :meth:`branch`, named values
+    of the careful part are computed only where the branch needs them (``CASE WHEN``)."""
+
+    name = "sql"
+
+    def __init__(self, prefix: str = "r_", *, _layers: _Layers | None = None, _guard: Sql | None = None):
+        self._layers = _layers if _layers is not None else _Layers(prefix)
+        self._guard = _guard
+
+    def query(self, base: str) -> str:
+        """The query that computes every named value over the rows of ``base``."""
+        return self._layers.query(base)
+
+    @staticmethod
+    def column(name: str) -> Sql:
+        return Sql(_quote(name), 0)
+
+    # -- helpers
+    @staticmethod
+    def _call(template: str, *values) -> Sql:
+        return Sql(template.format(*[_sql(v).text for v in values]), _level(*values))
+
+    # -- values
+    @staticmethod
+    def lit(value):
+        return value
+
+    @staticmethod
+    def null(kind: str):
+        return Sql(f"CAST(NULL AS {_SQL_TYPES[kind]})", 0)
+
+    # -- text
+    def strip(self, x, characters: str):
+        # trim() with a set of characters is slow: only cells that start or end with one take it.
+        edge = sql_literal(f"^{_re2_class(characters)}|{_re2_class(characters)}$")
+        x = _sql(x)
+        return Sql(f"(CASE WHEN (ascii({x.text}) BETWEEN 33 AND 126 AND ascii({x.text}[-1]) BETWEEN 33 AND 126) "
+                   f"THEN {x.text} WHEN regexp_matches({x.text}, {edge}) "
+                   f"THEN trim({x.text}, {sql_literal(characters)}) ELSE {x.text} END)", x.level)
+
+    def lower(self, x):
+        return self._call("lower({})", x)
+
+    def upper(self, x):
+        return self._call("upper({})", x)
+
+    def length(self, x):
+        return self._call("CAST(length({}) AS BIGINT)", x)
+
+    def is_ascii(self, x):
+        return self._call("(strlen({0}) = length({0}))", x)
+
+    def contains(self, x, literal: str):
+        return self._call("contains({}, {})", x, literal)
+
+    def search(self, x, pattern: str):
+        return self._call("regexp_matches({}, {})", x, pattern)
+
+    def full_match(self, x, pattern: str):
+        return self._call("regexp_full_match({}, {})", x, pattern)
+
+    def replace(self, x, pattern: str, replacement: str):
+        return self._call("regexp_replace({}, {}, {}, 'g')", x, pattern, replacement)
+
+    def extract(self, x, pattern: str, names: tuple[str, ...]) -> dict:
+        found = self.let("groups", self._call(
+            "regexp_extract({}, {}, [" + ", ".join(sql_literal(n) for n in names) + "])", x, pattern))
+        return {name: Sql(f"coalesce({found.text}.{_quote(name)}, '')", found.level) for name in names}
+
+    def left(self, x, count: int):
+        return self._call("left({}, " + str(int(count)) + ")", x)
+
+    # -- numbers
+    def to_float(self, x, valid):
+        return self._call("(CASE WHEN {1} THEN TRY_CAST({0} AS DOUBLE) END)", x, valid)
+
+    def to_int(self, x, valid):
+        return self._call("(CASE WHEN {1} THEN TRY_CAST({0} AS BIGINT) END)", x, valid)
+
+    def is_finite(self, x):
+        return self._call("coalesce(isfinite({}), false)", x)
+
+    def add(self, a, b):
+        return self._call("({} + {})", a, b)
+
+    def sub(self, a, b):
+        return self._call("({} - {})", a, b)
+
+    def mul(self, a, b):
+        return self._call("({} * {})", a, b)
+
+    def div_int(self, a, b):
+        return self._call("({} // {})", a, b)
+
+    def floor(self, x):
+        return self._call("floor({})", x)
+
+    def float_to_int(self, x):
+        return self._call("CAST({} AS BIGINT)", x)
+
+    def neg(self, x):
+        return self._call("(-{})", x)
+
+    def ln(self, x):
+        return self._call("ln({})", x)
+
+    def iso_micros(self, text, valid):
+        return self._call("(CASE WHEN {1} THEN epoch_us(date_trunc('second', TRY_CAST({0} AS TIMESTAMP))) END)",
+                          text, valid)
+
+    # -- comparisons and logic
+    def eq(self, a, b):
+        return self._call("({} = {})", a, b)
+
+    def ne(self, a, b):
+        return self._call("({} <> {})", a, b)
+
+    def lt(self, a, b):
+        return self._call("({} < {})", a, b)
+
+    def le(self, a, b):
+        return self._call("({} <= {})", a, b)
+
+    def gt(self, a, b):
+        return self._call("({} > {})", a, b)
+
+    def ge(self, a, b):
+        return self._call("({} >= {})", a, b)
+
+    def and_(self, *conditions):
+        return self._call("(" + " AND ".join("{}" for _ in conditions) + ")", *conditions)
+
+    def or_(self, *conditions):
+        return self._call("(" + " OR ".join("{}" for _ in conditions) + ")", *conditions)
+
+    def not_(self, condition):
+        return self._call("(NOT {})", condition)
+
+    def is_null(self, x):
+        return self._call("({} IS NULL)", x)
+
+    def fill_null(self, x, value):
+        return self._call("coalesce({}, {})", x, value)
+
+    def truth(self, condition):
+        return self._call("coalesce({}, false)", condition)
+
+    def if_else(self, condition, then, otherwise):
+        return self._call("(CASE WHEN {} THEN {} ELSE {} END)", condition, then, otherwise)
+
+    def case(self, choices: list[tuple], default):
+        values = [v for pair in choices for v in pair] + [default]
+        template = "(CASE " + " ".join("WHEN {} THEN {}" for _ in choices) + " ELSE {} END)"
+        return self._call(template, *values)
+
+    def is_in(self, x, values: tuple):
+        return self._call("({} IN (" + ", ".join(sql_literal(v) for v in values) + "))", x)
+
+    def index_in(self, x, values: tuple):
+        listed = "[" + ", ".join(sql_literal(v) for v in values) + "]"
+        return self._call("CAST(list_position(" + listed + ", {}) - 1 AS BIGINT)", x)
+
+    # -- structure
+    def let(self, name: str, x):
+        x = _sql(x)
+        text = x.text
+        level = x.level
+        if self._guard is not None:
+            text = f"(CASE WHEN {self._guard.text} THEN {text} END)"
+            level = max(level, self._guard.level)
+        unique = self._layers.add(level + 1, name, text)
+        return Sql(_quote(unique), level + 1)
+
+    def per_distinct(self, x, rule: Callable):
+        return rule(self, x)
+
+    def branch(self, settled, fast: dict, careful: Callable) -> dict:
+        settled = self.let("settled", self.truth(settled))
+        guard = self.not_(settled) if self._guard is None else self.and_(self._guard, self.not_(settled))
+        inner = SqlOps(_layers=self._layers, _guard=guard)
+        slow = careful(inner, lambda x: x)
+        return {key: self.let(key, self.if_else(settled, value, slow[key])) for key, value in fast.items()}
+
+    @staticmethod
+    def full_column(value, n: int = 0):
+        return _sql(value)
+
+
+_SQL_TYPES = {"float": "DOUBLE", "int": "BIGINT", "text": "VARCHAR", "bool": "BOOLEAN"}
+
+
+def _re2_class(characters: str) -> str:
+    """An RE2 character class matching exactly ``characters`` (each written as \\x{...})."""
+    return "[" + "".join(f"\\x{{{ord(c):x}}}" for c in characters) + "]"
