@@ -9,6 +9,9 @@ import streamlit as st
 
 from dashboard import charts, layout, state, words
 from forecasting import csv_text
+from forecasting.exports import pseudonymise
+
+HERE = "outlook"
 
 layout.page_header(
     "Cohort outlook",
@@ -25,6 +28,9 @@ dataset = state.current()
 result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
+work = layout.Work(3)
+work.step("Working out each customer's next order", state.forecasts, dataset, state.kept("method", "auto"),
+          state.kept("variance", "auto"))
 method, variance = state.method_in_use(dataset)
 
 HORIZONS = [90, 180, 365]
@@ -39,15 +45,14 @@ horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 
 by = second.selectbox("Group customers by", list(groupings),
                       **state.remember("cohort_by", "quarter", list(groupings)), format_func=groupings.get)
 
-with st.status("Working out the outlook ...", expanded=False) as progress:
-    progress.write("Fitting how often customers come back ...")
-    ahead = state.outlook(dataset, method, variance, float(horizon), by)
-    progress.write("Trying the same outlook on the past ...")
-    past = state.outlook_backtest(dataset, method, variance, float(horizon), by)
-    progress.update(label="Outlook ready", state="complete")
+ahead = work.step(f"Fitting how often customers come back and projecting the next {horizon} days",
+                  state.outlook, dataset, method, variance, float(horizon), by)
+past = work.step("Trying the same outlook on the past", state.outlook_backtest, dataset, method, variance,
+                 float(horizon), by)
+work.finish()
 
 if not ahead.ok:
-    st.error(ahead.problem)
+    layout.show_problem(ahead, HERE)
     st.stop()
 projection = ahead.value
 total = projection.total
@@ -58,7 +63,7 @@ if not math.isfinite(float(total["projected_revenue"])):
     st.warning("The order-frequency model could not be fitted well enough on this data to project revenue. "
                + (frequency.get("notes") or "") + " A longer order history with more customers helps.")
     st.stop()
-cells = st.columns(4)
+cells = st.columns([1.1, 1.6, 0.8, 0.8])  # the range needs the room: its label is never cut short
 cells[0].metric(f"Projected revenue, from {projection.as_of:%d %b %Y}",
                 words.money(total["projected_revenue"], symbol))
 cells[1].metric("What may actually come in",
@@ -96,7 +101,7 @@ st.plotly_chart(charts.cohort_projection(with_actual_range(projection.cohorts), 
 
 st.subheader("Tried on the past")
 if not past.ok:
-    st.info(f"The outlook could not be tried on the past: {past.problem}")
+    st.info(f"The outlook could not be tried on the past: {past.worded(HERE)}")
 else:
     check = past.value
     bt = check.total
@@ -140,6 +145,9 @@ with st.expander("Table and download"):
                      "revenue_range_high": st.column_config.NumberColumn("May come in to", format=money_format),
                      "share_of_projected_revenue": st.column_config.NumberColumn("Share", format="percent"),
                  })
-    st.download_button("Download the projection for every customer (CSV)", data=csv_text(projection.customers),
+    layout.sharing_controls(HERE)
+    salt = state.pseudonym_salt()
+    customers = pseudonymise(projection.customers, salt=salt) if salt else projection.customers
+    st.download_button("Download the projection for every customer (CSV)", data=csv_text(customers),
                        file_name=f"{Path(dataset.name).stem}_outlook_{horizon}_days.csv", mime="text/csv",
                        key="download_outlook", on_click="ignore", icon=":material/download:")

@@ -11,6 +11,7 @@ from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine
 from ..errors import OrderDataError
 from ..exports import pseudonymise, write_csv
 from ..forecasts import forecast_customers, forecasts_for_reading
+from ..options import resolve_choice
 
 
 def add_arguments(parser) -> None:
@@ -48,8 +49,13 @@ def run(args) -> int:
     else:
         stats, account, orders = load_statistics_from_args(args)
         progress.step(f"forecasting {len(stats):,} customers")
-        table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
+        # "auto" is settled by the rules every front end shares (the dashboard too).
+        choice = resolve_choice(stats, orders, method=args.method, variance=args.variance)
+        table = forecast_customers(stats, method=choice.method, variance=choice.variance, orders=orders,
                                    level=args.level, next_level=args.next_level)
+        if choice.chosen_by != "user":
+            table.attrs["fit"]["auto_choice"] = (f"{choice.method} with {table.attrs['fit']['variance']} "
+                                                 f"variance: {choice.reason}")
     progress.step(f"writing {args.out}")
     loaded_notes = account.get("notes", [])
     if args.pseudonym_salt is not None:
