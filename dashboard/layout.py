@@ -86,6 +86,31 @@ class Work:
             self.area.empty()
 
 
+#: Up to this many rows an Excel download is made with the page (about a second or two); bigger workbooks are
+#: made when asked for, as a named step (writing .xlsx runs at roughly 100,000 cells a second).
+EXCEL_AT_ONCE = 20_000
+XLSX = "application/vnd.openxmlformats-officedocument.spreadsheetml.sheet"
+
+
+def excel_download(label: str, *, key: str, rows: int, file_name: str, make, args: tuple, column=None) -> None:
+    """An Excel download button; for a big table the workbook is made on request, with named progress.
+
+    ``make`` is a cached function of ``args`` returning the workbook's bytes.
+    """
+    place = column if column is not None else st
+    if rows > EXCEL_AT_ONCE and not make.is_done(*args):
+        if not place.button(f"{label}: prepare the file", key=f"{key}_prepare", icon=":material/table_view:",
+                            help=f"Writing {rows:,} rows to an Excel workbook takes a while; the download "
+                                 "button appears when it is ready."):
+            return
+        with place:
+            work = Work(1)
+            work.step(f"Writing {rows:,} rows to an Excel workbook", make, *args)
+            work.finish()
+    place.download_button(label, data=make(*args), file_name=file_name, key=key, on_click="ignore", mime=XLSX,
+                          icon=":material/download:")
+
+
 # Streamlit's named formats put in thousands separators; printf-style formats cannot.
 _NAMED_MONEY = {"$": "dollar", "€": "euro", "¥": "yen"}
 
@@ -136,6 +161,7 @@ def sharing_controls(page: str) -> None:
                     "gives the same codes next time, so you can match answers back; without it nobody can.")
         st.text_input(f"Secret phrase (at least {state.SHORTEST_PHRASE} characters; keep it to match codes later)",
                       type="password", key=f"pseudonym_phrase_{page}")
-        st.form_submit_button("Turn pseudonyms on", on_click=_turn_on, args=(page,), icon=":material/lock:")
+        st.form_submit_button("Turn pseudonyms on", on_click=_turn_on, args=(page,), icon=":material/lock:",
+                              key=f"pseudonyms_on_{page}")
     if st.session_state.get(f"pseudonym_refused_{page}"):
         st.warning(f"The secret phrase needs at least {state.SHORTEST_PHRASE} characters; pseudonyms are still off.")

@@ -215,17 +215,40 @@ def guessed_mapping(dataset: Dataset) -> dict[str, str]:
     return {role: chosen.get(role, "") for role in ROLE_LABELS}
 
 
+# Bytes of a text export read for its currency first (a file read without a chosen currency holds one only).
+CURRENCY_SAMPLE_BYTES = 1 << 20
+
+
 @cached()
 def currency_code(dataset: Dataset) -> str:
-    """The currency of the amounts, as the data say: the chosen currency, else the currency column's most
-    common code among the file's cells, else the mark written beside most amounts ("" when none says)."""
+    """The currency of the amounts, as the data say ("" when nothing says).
+
+    The currency chosen under Reading options, else the code most used in the currency column,
+    else the currency marked beside most amounts. The reader refuses a file whose amounts are in
+    several currencies unless one is chosen, so in a file that was read they are all in one
+    currency: the cells of the first megabyte of a text export answer, and the whole file is
+    looked at only when those say nothing.
+    """
     if dataset.currency:
         return dataset.currency.strip().upper()
     outcome = read_dataset(dataset)
-    cells = file_cells(dataset)
-    if not outcome.ok or cells is None:
+    if not outcome.ok:
         return ""
     mapping = outcome.value.mapping
+    if len(dataset.data) > CURRENCY_SAMPLE_BYTES and dataset.data[:4] not in (b"PK\x03\x04", b"PAR1"):
+        head = dataset.data[:CURRENCY_SAMPLE_BYTES]
+        try:
+            code = _currency_in_cells(reading.read_cells(head[:head.rfind(b"\n") + 1], file_name=dataset.name),
+                                      mapping)
+        except OrderDataError:
+            code = ""
+        if code:
+            return code
+    cells = file_cells(dataset)
+    return "" if cells is None else _currency_in_cells(cells, mapping)
+
+
+def _currency_in_cells(cells: pd.DataFrame, mapping) -> str:
     if mapping.currency and mapping.currency in cells.columns:
         codes = cells[mapping.currency].str.strip().str.upper()
         codes = codes[codes.str.fullmatch(r"[A-Z]{3}").fillna(False).to_numpy(dtype=bool)]
@@ -294,18 +317,25 @@ def excel_of(table: pd.DataFrame, *, sheet_name: str, symbol: str, money=(), sha
                        money_symbol=symbol.strip())
 
 
+def _forecasts_to_share(dataset: Dataset, method: str, variance: str, salt: str) -> pd.DataFrame:
+    table = forecasts_for_reading(forecasts(dataset, method, variance).value)
+    return pseudonymise(table, salt=salt) if salt else table
+
+
 @cached()
-def forecast_files(dataset: Dataset, method: str, variance: str, salt: str = "",
-                   symbol: str = "") -> tuple[str, bytes]:
-    """The forecasts as safe CSV text (machine names) and Excel bytes (headings for people), money to the cent.
+def forecast_csv(dataset: Dataset, method: str, variance: str, salt: str = "") -> str:
+    """The forecasts as safe CSV text with the column names scripts rely on, money to the cent.
 
     With a ``salt``, customer ids are replaced by salted pseudonyms (for sharing with an agency).
     """
-    table = forecasts_for_reading(forecasts(dataset, method, variance).value)
-    if salt:
-        table = pseudonymise(table, salt=salt)
-    return csv_text(table), excel_of(table, sheet_name="forecasts", symbol=symbol, money=MONEY_COLUMNS,
-                                     shares=["own_history_weight"])
+    return csv_text(_forecasts_to_share(dataset, method, variance, salt))
+
+
+@cached()
+def forecast_excel(dataset: Dataset, method: str, variance: str, salt: str = "", symbol: str = "") -> bytes:
+    """The forecasts as an Excel workbook with headings for people (see :func:`excel_of`)."""
+    return excel_of(_forecasts_to_share(dataset, method, variance, salt), sheet_name="forecasts", symbol=symbol,
+                    money=MONEY_COLUMNS, shares=["own_history_weight"])
 
 
 @cached()

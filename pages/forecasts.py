@@ -86,9 +86,10 @@ if table is not None:
     shown_all = state.shown_ids(table, dataset)
     matches = table
     if search:
-        found = table["customer"].astype(str).str.contains(search, case=False, regex=False).to_numpy()
+        found = table["customer"].astype(str).str.contains(search, case=False, regex=False).to_numpy(dtype=bool)
         if state.pseudonym_salt() is not None:
-            found |= shown_all["customer"].astype(str).str.contains(search, case=False, regex=False).to_numpy()
+            found = found | shown_all["customer"].astype(str).str.contains(search, case=False,
+                                                                           regex=False).to_numpy(dtype=bool)
         matches = table[found]
     matches = matches.sort_values(sort, ascending=sort == "customer", kind="stable")
     pages = max(1, math.ceil(len(matches) / PAGE_ROWS))
@@ -215,15 +216,13 @@ if table is not None:
     layout.sharing_controls(HERE)
     salt = state.pseudonym_salt() or ""
     stem = Path(dataset.name).stem
-    csv_file, excel_file = state.forecast_files(dataset, method, variance, salt, symbol)
     first, second = st.columns(2)
-    first.download_button("Download all forecasts (CSV)", data=csv_file, file_name=f"{stem}_forecasts.csv",
-                          mime="text/csv", key="download_forecasts_csv", on_click="ignore",
-                          icon=":material/download:")
-    second.download_button("Download all forecasts (Excel)", data=excel_file,
-                           file_name=f"{stem}_forecasts.xlsx", key="download_forecasts_xlsx", on_click="ignore",
-                           mime="application/vnd.openxmlformats-officedocument.spreadsheetml.sheet",
-                           icon=":material/download:")
+    first.download_button("Download all forecasts (CSV)", data=state.forecast_csv(dataset, method, variance, salt),
+                          file_name=f"{stem}_forecasts.csv", mime="text/csv", key="download_forecasts_csv",
+                          on_click="ignore", icon=":material/download:")
+    layout.excel_download("Download all forecasts (Excel)", key="download_forecasts_xlsx", rows=len(table),
+                          file_name=f"{stem}_forecasts.xlsx", make=state.forecast_excel,
+                          args=(dataset, method, variance, salt, symbol), column=second)
     st.caption("The CSV keeps the column names scripts rely on; the Excel file has headings for people, money "
                "and percentage formats and a header row that stays in view. Text cells that a spreadsheet could "
                "run as a formula are made safe in both.")
