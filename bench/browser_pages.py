@@ -17,6 +17,10 @@ For each step it records, in the browser's own clock (``performance.now()``):
 Targets: every page ready within 10 s of its click, no main-thread task over 1 s.
 The machine's other work makes the figures noisy: run it on a quiet machine to report them.
 
+After the browser run, the library calls behind each page are timed once more in this
+process, one by one, on the same file (*where the time goes*): what the dashboard caches
+per dataset and option set, and what a faster library would shorten.
+
 Run from the repository root::
 
     python bench/browser_pages.py                       # writes bench/browser_results.md
@@ -187,7 +191,51 @@ def _loopback(url: str) -> bool:
     return parts.scheme in ("data", "blob", "about") or (parts.hostname or "") in support.LOOPBACK_HOSTS
 
 
-def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str) -> None:
+def library_steps(path: Path) -> list[tuple[str, str, float]]:
+    """(page, library call, seconds) for the work behind each page, timed one call at a time."""
+    from forecasting import customer_statistics, read_orders
+    from forecasting.evaluation import evaluate_methods
+    from forecasting.exports import HEADINGS, csv_text, excel_bytes
+    from forecasting.forecasts import MONEY_COLUMNS, forecast_customers, forecasts_for_reading
+    from forecasting.options import resolve_choice
+    from forecasting.outlook import assign_tiers, backtest_outlook, project_revenue, tier_lists, tier_summary
+
+    data = path.read_bytes()
+    timings = []
+
+    def timed(page, what, function, *args, **kwargs):
+        began = time.perf_counter()
+        value = function(*args, **kwargs)
+        timings.append((page, what, time.perf_counter() - began))
+        print(f"{page:<16} {what:<58} {timings[-1][2]:6.1f} s", flush=True)
+        return value
+
+    result = timed("Load orders", "read_orders (read, clean, account for every row)", read_orders, data,
+                   file_name=path.name)
+    stats = timed("Forecasts", "customer_statistics", customer_statistics, result.orders)
+    choice = timed("Forecasts", "resolve_choice auto/auto (leave-one-out of every candidate)", resolve_choice,
+                   stats, result.orders)
+    table = timed("Forecasts", f"forecast_customers ({choice.method}, {choice.variance})", forecast_customers,
+                  stats, method=choice.method, variance=choice.variance, orders=result.orders)
+    shared = forecasts_for_reading(table)
+    timed("Forecasts", "forecasts as CSV (download)", csv_text, shared)
+    timed("Forecasts", "forecasts as Excel (download, made on request)", excel_bytes, shared, headings=HEADINGS,
+          money=MONEY_COLUMNS, shares=["own_history_weight"])
+    timed("Accuracy check", "evaluate_methods (leave-one-out, backtest, 200 resamples)", evaluate_methods,
+          result.orders, bootstrap=200, seed=0)
+    variance = "classic" if table.attrs["fit"]["variance"] == "gamma-model" else table.attrs["fit"]["variance"]
+    projection = timed("Value tiers", "project_revenue (180 days, by quarter)", project_revenue, result.orders,
+                       horizon=180.0, by="quarter", forecasts=table, method=choice.method, variance=variance)
+    tiered = timed("Value tiers", "assign_tiers", assign_tiers, projection.customers, rank="revenue",
+                   shares=(0.1, 0.3))
+    timed("Value tiers", "tier_summary and tier_lists", lambda: (tier_summary(tiered), tier_lists(tiered)))
+    timed("Cohort outlook", "backtest_outlook (180 days, by quarter)", backtest_outlook, result.orders,
+          horizon=180.0, by="quarter", method=choice.method, variance=variance)
+    return timings
+
+
+def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str,
+                   timings: list[tuple[str, str, float]] = ()) -> None:
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT, capture_output=True,
                             text=True).stdout.strip()
     lines = [
@@ -210,6 +258,13 @@ def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str) -
     for step in steps:
         lines.append(f"| {step.name} | {step.ready_s:.1f} | {step.longest_task_s:.2f} | {step.blocked_s:.1f} | "
                      f"{'yes' if step.meets else 'no'} | {step.note} |")
+    if timings:
+        lines += ["", "## Where the time goes", "",
+                  "The library calls behind each page, timed one at a time in the benchmark's process after the "
+                  "browser run (the dashboard caches each per dataset and option set, so only a first visit "
+                  "waits for them).", "",
+                  "| page | library call | seconds |", "| --- | --- | ---: |"]
+        lines += [f"| {page} | {what} | {seconds:.1f} |" for page, what, seconds in timings]
     out.write_text("\n".join(lines) + "\n", encoding="utf-8")
 
 
@@ -217,13 +272,15 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description="Time every dashboard page in Chromium on a big export.")
     parser.add_argument("--file", type=Path, help="the export to upload (default: bench/big_shop.py's)")
     parser.add_argument("--out", type=Path, default=HERE / "browser_results.md", help="where to write the table")
+    parser.add_argument("--browser-only", action="store_true", help="leave out the timing of the library calls")
     args = parser.parse_args(argv)
     support.require_browser()
     path = args.file or big_shop_file()
     started = datetime.datetime.now().strftime("%Y-%m-%d %H:%M")
     begun = time.monotonic()
     steps, facts = run(path)
-    write_markdown(steps, facts, args.out, started=started)
+    timings = [] if args.browser_only else library_steps(path)
+    write_markdown(steps, facts, args.out, started=started, timings=timings)
     print(f"{len(steps)} steps in {time.monotonic() - begun:.0f} s; table written to {args.out}")
     return 0 if all(step.meets for step in steps) else 1
 
