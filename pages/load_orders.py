@@ -44,16 +44,26 @@ upload = st.file_uploader(
     help="One row per order or per order line, with a header row. Most shop platforms' order exports work "
          "as they are. The file is read on this computer only.",
 )
+
+
+def read_with_progress(dataset: state.Dataset, label: str) -> None:
+    """Read a file (named steps while it takes time), then use it or keep it aside with its problem."""
+    work = layout.Work(2)
+    read = work.step(label, state.read_dataset, dataset)
+    if read.ok:
+        work.step("Finding the currency of the amounts", state.currency_code, dataset)
+    work.finish()
+    state.offer(dataset)
+
+
 if upload is not None and upload.file_id != st.session_state.get("upload_seen"):
     st.session_state["upload_seen"] = upload.file_id
     arrived = state.Dataset.from_bytes(upload.getvalue(), upload.name)
-    work = layout.Work(2)
-    read = work.step(f"Reading {upload.name} ({arrived.megabytes:,.1f} MB) and accounting for every row",
-                     state.read_dataset, arrived)
-    if read.ok:
-        work.step("Finding the currency of the amounts", state.currency_code, arrived)
-    work.finish()
-    state.offer(arrived)
+    read_with_progress(arrived, f"Reading {upload.name} ({arrived.megabytes:,.1f} MB) and accounting for every row")
+# A changed column box or reading option (see the callbacks below) is read here, where progress can show.
+changed = st.session_state.pop("to_read", None)
+if changed is not None:
+    read_with_progress(changed, f"Reading {changed.name} again with the new choice ({changed.megabytes:,.1f} MB)")
 
 pending = st.session_state.get("pending")
 dataset = state.current()
@@ -88,13 +98,13 @@ edited = state.being_edited()
 
 def _mapping_changed(role: str) -> None:
     target = state.being_edited()
-    state.offer(target.with_override(role, st.session_state[f"map_{role}"]))
+    st.session_state["to_read"] = target.with_override(role, st.session_state[f"map_{role}"])
 
 
 def _option_changed(option: str) -> None:
     target = state.being_edited()
     value = st.session_state[f"opt_{option}"]
-    state.offer(target.with_options(**{option: value.strip() if isinstance(value, str) else value}))
+    st.session_state["to_read"] = target.with_options(**{option: value.strip() if isinstance(value, str) else value})
 
 
 if edited is not None:
