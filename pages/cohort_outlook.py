@@ -147,7 +147,11 @@ with st.expander("Table and download"):
                  })
     layout.sharing_controls(HERE)
     salt = state.pseudonym_salt()
-    customers = pseudonymise(projection.customers, salt=salt) if salt else projection.customers
-    st.download_button("Download the projection for every customer (CSV)", data=csv_text(customers),
+
+    def customers_csv(table=projection.customers, salt=salt) -> str:
+        # Made when clicked (Streamlit runs it then), not on every run of the page.
+        return csv_text(pseudonymise(table, salt=salt) if salt else table)
+
+    st.download_button("Download the projection for every customer (CSV)", data=customers_csv,
                        file_name=f"{Path(dataset.name).stem}_outlook_{horizon}_days.csv", mime="text/csv",
                        key="download_outlook", on_click="ignore", icon=":material/download:")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from functools import partial
 from pathlib import Path
 
 import pandas as pd
@@ -217,7 +218,9 @@ if table is not None:
     salt = state.pseudonym_salt() or ""
     stem = Path(dataset.name).stem
     first, second = st.columns(2)
-    first.download_button("Download all forecasts (CSV)", data=state.forecast_csv(dataset, method, variance, salt),
+    # Made when clicked (Streamlit runs the function then), not on every run of the page.
+    first.download_button("Download all forecasts (CSV)", data=partial(state.forecast_csv, dataset, method, variance,
+                                                                      salt),
                           file_name=f"{stem}_forecasts.csv", mime="text/csv", key="download_forecasts_csv",
                           on_click="ignore", icon=":material/download:")
     layout.excel_download("Download all forecasts (Excel)", key="download_forecasts_xlsx", rows=len(table),

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from functools import partial
 from pathlib import Path
 
 import pandas as pd
@@ -202,7 +203,7 @@ if result is not None:
         if len(left_out) > 1000:
             st.caption("The first 1,000 are shown; the download has them all.")
         st.download_button(
-            "Download the rows left out, with reasons (CSV)", data=csv_text(left_out),
+            "Download the rows left out, with reasons (CSV)", data=partial(csv_text, left_out),
             file_name=f"{Path(dataset.name).stem}_rows_left_out.csv", mime="text/csv",
             key="download_left_out", on_click="ignore",
         )

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from functools import partial
 from pathlib import Path
 
 import streamlit as st
@@ -105,8 +106,10 @@ names = list(summary["tier"])
 tier = st.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
 members = tiered[tiered["tier"] == tier]
 members = members.assign(active_pct=100 * members["chance_active"])
+SHOWN_MEMBERS = 1000  # a big shop's tier can hold tens of thousands: the list below has them all
 st.dataframe(
-    state.shown_ids(members, dataset), hide_index=True, key="tier_members", height=layout.table_height(len(members), most=380),
+    state.shown_ids(members.head(SHOWN_MEMBERS), dataset), hide_index=True, key="tier_members",
+    height=layout.table_height(len(members), most=380),
     column_order=["rank", "customer", "orders", "expected_next_order", "expected_orders", "active_pct",
                   "projected_revenue", "projected_low", "projected_high", "own_history_weight", "cohort"],
     column_config={
@@ -125,6 +128,14 @@ st.dataframe(
         "cohort": st.column_config.TextColumn("First ordered"),
     },
 )
+if len(members) > SHOWN_MEMBERS:
+    st.caption(f"The first {SHOWN_MEMBERS:,} of the tier's {len(members):,} customers; the lists below have them all.")
+
+
+def list_csv(table, salt: str | None) -> str:
+    """A tier list as safe CSV text, with pseudonyms while they are on."""
+    return csv_text(pseudonymise(table, salt=salt) if salt else table)
+
 
 st.subheader("Download the tier lists")
 layout.sharing_controls(HERE)
@@ -132,7 +143,8 @@ salt = state.pseudonym_salt()
 stem = Path(dataset.name).stem
 buttons = st.columns(len(lists))
 for column, (name, table) in zip(buttons, lists.items()):
-    text = csv_text(pseudonymise(table, salt=salt) if salt else table)
+    # Made when clicked (Streamlit runs the function then), not on every run of the page.
+    text = partial(list_csv, table, salt)
     label = "All customers with their tier" if name == "all" else f"{name.capitalize()}"
     slug = "all" if name == "all" else "-".join(name.lower().split())
     column.download_button(f"{label} (CSV)", data=text, file_name=f"{stem}_tier_{slug}.csv", mime="text/csv",
