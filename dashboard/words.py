@@ -286,7 +286,7 @@ def verdict(reduction_pct: float, *, low: float | None = None, high: float | Non
     >>> verdict(12.34, low=8.0, high=16.5)
     ('good', "On your data, the forecasts cut the error of the next order by 12% compared with each customer's own average (probably between 8% and 16%).")
     >>> verdict(14.0, low=-34.0, high=77.0)
-    ('unsettled', "On your data, the forecasts cut the error by 14% compared with each customer's own average, but that is not settled: with this few orders to test on, anything from 34% worse to 77% better is plausible.")
+    ('unsettled', "On your data, the forecasts cut the error by 14% compared with each customer's own average, but that is not settled: on these orders, anything from 34% worse to 77% better is plausible.")
     >>> verdict(-8.0, low=-12.0, high=-3.0)
     ('worse', "On your data, the forecasts did worse than each customer's own average: the error was 8% larger (probably between 3% and 12% larger).")
     """
@@ -301,8 +301,7 @@ def verdict(reduction_pct: float, *, low: float | None = None, high: float | Non
                        f"{abs(reduction_pct):.0f}% larger (probably between {abs(high):.0f}% and {abs(low):.0f}% "
                        "larger).")
     if known:
-        plausible = (f"with this few orders to test on, anything from {abs(low):.0f}% worse to {high:.0f}% better "
-                     "is plausible")
+        plausible = f"on these orders, anything from {abs(low):.0f}% worse to {high:.0f}% better is plausible"
     else:
         plausible = "how sure that is was not measured"
     if reduction_pct > 0:

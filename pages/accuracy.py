@@ -115,7 +115,7 @@ if len(by_segment):
         column_order=["evaluation", "segment", "held_out", "error_reduction_pct"],
         column_config={"evaluation": st.column_config.TextColumn("Test"),
                        "segment": st.column_config.TextColumn("Segment"),
-                       "held_out": st.column_config.NumberColumn("Orders tested", format="%d"),
+                       "held_out": st.column_config.NumberColumn("Orders tested", format="localized"),
                        "error_reduction_pct": st.column_config.NumberColumn("Error smaller by", format="%.1f%%")},
     )
 

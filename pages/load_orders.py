@@ -185,7 +185,8 @@ if result is not None:
              "Rows": list(audit["excluded"].values())}
         )
         st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons",
-                     height=layout.table_height(len(reasons)))
+                     height=layout.table_height(len(reasons)),
+                     column_config={"Rows": st.column_config.NumberColumn(format="localized")})
         left_out = state.left_out_rows(dataset)
         st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
                     "(the header is row 1) and the reason:")
