@@ -197,7 +197,7 @@ if result is not None:
                      height=layout.table_height(len(left_out), most=320),
                      key="left_out_rows",
                      column_config={"row": st.column_config.NumberColumn(HEADINGS["row"], format="%d"),
-                                    "reason": st.column_config.TextColumn(HEADINGS["reason"], width="medium"),
+                                    "reason": st.column_config.TextColumn(HEADINGS["reason"], width="large"),
                                     "raw_text": st.column_config.TextColumn(
                                         HEADINGS["raw_text"], help="For rows that could not be split into the "
                                         "file's columns: the row's text as it is in the file.")})
