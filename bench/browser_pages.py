@@ -250,7 +250,7 @@ def library_steps(path: Path) -> list[tuple[str, str, float]]:
     return timings
 
 
-def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str,
+def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str, load: float,
                    timings: list[tuple[str, str, float]] = ()) -> None:
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT, capture_output=True,
                             text=True).stdout.strip()
@@ -258,7 +258,9 @@ def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str,
         "# Dashboard in the browser: 60,000 customers",
         "",
         f"Written by `python bench/browser_pages.py` on {started} (commit {commit or 'unknown'}); "
-        f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, Chromium headless.",
+        f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, Chromium headless; "
+        f"load average {load:.1f} when it started (above the number of cores, other work shared the machine "
+        "and the times are rough).",
         "",
         f"File: {facts['file']}, {facts['megabytes']:.0f} MB, {facts['rows']:,} rows, {facts['orders']:,} orders, "
         f"{facts['customers']:,} customers (`bench/big_shop.py`: the demo shop's scenario at scale).",
@@ -293,10 +295,11 @@ def main(argv=None) -> int:
     support.require_browser()
     path = args.file or big_shop_file()
     started = datetime.datetime.now().strftime("%Y-%m-%d %H:%M")
+    load = os.getloadavg()[0]
     begun = time.monotonic()
     steps, facts = run(path)
     timings = [] if args.browser_only else library_steps(path)
-    write_markdown(steps, facts, args.out, started=started, timings=timings)
+    write_markdown(steps, facts, args.out, started=started, load=load, timings=timings)
     print(f"{len(steps)} steps in {time.monotonic() - begun:.0f} s; table written to {args.out}")
     return 0 if all(step.meets for step in steps) else 1
 
