@@ -1,53 +1,44 @@
 """The loaded dataset, the user's choices and cached calls into the library.
 
-Streamlit reruns the page script on every click, so everything slow is wrapped
-in a small ``st.cache_data`` function keyed on a :class:`Dataset`: the sha256
-digest of the file's bytes plus the reading options, never a big DataFrame.
-Results (and the plain-language problem, when there is one) are cached
-together, so a file with a problem is not re-read on every rerun either.
+Streamlit reruns the page script on every click, so everything slow is wrapped in a
+small cached function keyed on a :class:`Dataset` (the sha256 digest of the file's
+bytes plus the reading options, never a big DataFrame) and the options of the call:
+each page's work is done once per dataset and option set, whichever page or session
+asks. Results (and the problem, when there is one) are cached together, so a file
+with a problem is not re-read on every rerun either.
+
+A problem is kept as the fields of the library's :class:`~forecasting.errors.OrderDataError`
+(its column role and option included), so that each page can word it with the name of
+its own control (``dashboard.layout.show_problem``).
 """
 
 from __future__ import annotations
 
+import functools
 import hashlib
-import re
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+import pandas as pd
 import streamlit as st
 
 from forecasting import OrderDataError, csv_text, customer_statistics, excel_bytes, read_orders
-from forecasting.exports import pseudonymise
-from forecasting.forecasts import forecasts_for_reading
 from forecasting import reading
+from forecasting.exports import HEADINGS, pseudonymise
+from forecasting.forecasts import MONEY_COLUMNS, forecasts_for_reading
 
-from .words import SYMBOLS, on_screen
+from . import words
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_FILE = ROOT / "demo_data" / "plant_shop_orders.csv"
 DEMO_SHOP = "Fernhollow Plants"
-
-# Roles of the columns, as the reader names them, with the words shown on screen.
-ROLE_LABELS = {
-    "customer": "Customer",
-    "date": "Order date",
-    "value": "Order amount",
-    "order_id": "Order number",
-    "status": "Order status",
-    "currency": "Currency",
-    "segment": "Segment",
-}
-ROLE_HELP = {
-    "customer": "The column that identifies who placed the order (an id or an e-mail address).",
-    "date": "When the order was placed.",
-    "value": "What the order (or order line) was worth. Lines with the same order number are added up.",
-    "order_id": "Lines sharing an order number are added up into one order. Without it, each row is one order.",
-    "status": "Used to leave out test and cancelled orders and to net refunds.",
-    "currency": "Needed when the amounts are not all in one currency.",
-    "segment": "An optional grouping, such as the sales channel; the accuracy check is broken down by it.",
-}
+ROLE_LABELS = words.ROLE_LABELS
+ROLE_HELP = words.ROLE_HELP
 REQUIRED = ("customer", "date", "value")
+# Shortest secret phrase for pseudonyms (the library's rule, forecasting.exports.pseudonymise).
+SHORTEST_PHRASE = 8
 
 
 def optional_module(name: str):
@@ -82,6 +73,10 @@ class Dataset:
     def cache_key(self) -> tuple:
         return (self.digest, self.name, self.overrides, self.currency, self.date_order, self.decimal)
 
+    @property
+    def megabytes(self) -> float:
+        return len(self.data) / 2**20
+
     def with_override(self, role: str, column: str) -> "Dataset":
         chosen = dict(self.overrides)
         chosen[role] = column
@@ -105,127 +100,260 @@ class Dataset:
 
 HASH_FUNCS = {Dataset: lambda dataset: dataset.cache_key}
 
+_PROBLEM_FIELDS = ("problem", "file", "row", "column", "value", "fix", "role", "option")
+
+
+def problem_fields(problem: OrderDataError) -> dict:
+    """The error's fields as a plain dict (an exception does not keep keyword arguments through pickling)."""
+    return {name: getattr(problem, name) for name in _PROBLEM_FIELDS}
+
 
 @dataclass
 class Outcome:
-    """A cached result, or the plain-language problem that stopped it."""
+    """A cached result, or the library's problem (as :func:`problem_fields`) that stopped it."""
 
     value: Any = None
-    problem: str | None = None
+    error: dict | None = None
     note: str = ""
 
     @property
     def ok(self) -> bool:
-        return self.problem is None
+        return self.error is None
+
+    def worded(self, here: str | None = None, *, keep_file: bool = False) -> str:
+        """The problem in screen words, naming the control on this page that fixes it (no file name
+        unless ``keep_file``: the page names the file already)."""
+        return worded(self.error, here=here, keep_file=keep_file)
 
 
-def _problem_text(problem: OrderDataError) -> str:
-    """The message in screen words, without the file name (the page names the file already)."""
-    text = str(problem)
-    if problem.file is not None:
-        for prefix in (f"file '{problem.file}', ", f"file '{problem.file}': "):
-            if text.startswith(prefix):
-                text = text[len(prefix):]
-                text = text[:1].upper() + text[1:]
-    return on_screen(text)
+def worded(error: dict | None, *, here: str | None = None, keep_file: bool = False) -> str:
+    if error is None:
+        return ""
+    fields = dict(error)
+    if not keep_file:
+        fields["file"] = None
+    problem = OrderDataError(fields.pop("problem"), **fields)
+    text = problem.worded(lambda role, option: words.control_name(role, option, here=here))
+    return text[:1].upper() + text[1:]
 
 
 # ---------------------------------------------------------------------------
 # Cached calls. Each takes a Dataset (hashed by digest + options) and plain options.
 
+# Calls whose answer is in the cache already (process-wide, as the caches are): a page shows
+# named progress only for the steps that will take time.
+_DONE: set = set()
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+
+def _call_key(function, args, kwargs) -> tuple:
+    def plain(value):
+        return value.cache_key if isinstance(value, Dataset) else value
+    return (function.__qualname__, tuple(plain(a) for a in args), tuple(sorted(
+        (k, plain(v)) for k, v in kwargs.items())))
+
+
+def cached(*, max_entries: int = 12):
+    """``st.cache_data`` keyed on datasets by digest and options, which also remembers what is done."""
+    def wrap(function):
+        inner = st.cache_data(show_spinner=False, max_entries=max_entries, hash_funcs=HASH_FUNCS)(function)
+
+        @functools.wraps(function)
+        def call(*args, **kwargs):
+            value = inner(*args, **kwargs)
+            _DONE.add(_call_key(function, args, kwargs))
+            return value
+
+        call.is_done = lambda *args, **kwargs: _call_key(function, args, kwargs) in _DONE
+        call.clear = inner.clear
+        return call
+    return wrap
+
+
+@cached()
 def read_dataset(dataset: Dataset) -> Outcome:
-    """Read and clean the file; the problem message when it cannot be used."""
+    """Read and clean the file; the problem when it cannot be used."""
     try:
         return Outcome(read_orders(dataset.data, file_name=dataset.name, **dataset.read_options()))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
+        return Outcome(error=problem_fields(problem))
 
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+@cached()
+def file_cells(dataset: Dataset) -> pd.DataFrame | None:
+    """The file's cells as text (the reader's first step), or None when it is not a table."""
+    try:
+        return reading.read_cells(dataset.data, file_name=dataset.name)
+    except OrderDataError:
+        return None
+
+
+@cached()
 def file_columns(dataset: Dataset) -> list[str]:
     """The file's column headings, even when the file cannot be read as orders yet."""
     outcome = read_dataset(dataset)
     if outcome.ok:
         return list(outcome.value.columns)
-    try:
-        return list(reading.read_cells(dataset.data, file_name=dataset.name).columns)
-    except OrderDataError:
-        return []
+    cells = file_cells(dataset)
+    return [] if cells is None else list(cells.columns)
 
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+@cached()
+def guessed_mapping(dataset: Dataset) -> dict[str, str]:
+    """Which column plays which part: as read, or as far as it can be guessed when reading fails."""
+    outcome = read_dataset(dataset)
+    if outcome.ok:
+        return {role: column or "" for role, column in outcome.value.mapping.as_dict().items()}
+    chosen = dict(dataset.overrides)
+    cells = file_cells(dataset)
+    if cells is not None:
+        try:
+            guess = reading.guess_mapping(cells, chosen, file_name=dataset.name)
+            return {role: column or "" for role, column in guess.as_dict().items()}
+        except OrderDataError:
+            pass
+    return {role: chosen.get(role, "") for role in ROLE_LABELS}
+
+
+# Bytes of a text export read for its currency first (a file read without a chosen currency holds one only).
+CURRENCY_SAMPLE_BYTES = 1 << 20
+
+
+@cached()
+def currency_code(dataset: Dataset) -> str:
+    """The currency of the amounts, as the data say ("" when nothing says).
+
+    The currency chosen under Reading options, else the code most used in the currency column,
+    else the currency marked beside most amounts. The reader refuses a file whose amounts are in
+    several currencies unless one is chosen, so in a file that was read they are all in one
+    currency: the cells of the first megabyte of a text export answer, and the whole file is
+    looked at only when those say nothing.
+    """
+    if dataset.currency:
+        return dataset.currency.strip().upper()
+    outcome = read_dataset(dataset)
+    if not outcome.ok:
+        return ""
+    mapping = outcome.value.mapping
+    if len(dataset.data) > CURRENCY_SAMPLE_BYTES and dataset.data[:4] not in (b"PK\x03\x04", b"PAR1"):
+        head = dataset.data[:CURRENCY_SAMPLE_BYTES]
+        try:
+            code = _currency_in_cells(reading.read_cells(head[:head.rfind(b"\n") + 1], file_name=dataset.name),
+                                      mapping)
+        except OrderDataError:
+            code = ""
+        if code:
+            return code
+    cells = file_cells(dataset)
+    return "" if cells is None else _currency_in_cells(cells, mapping)
+
+
+def _currency_in_cells(cells: pd.DataFrame, mapping) -> str:
+    if mapping.currency and mapping.currency in cells.columns:
+        codes = cells[mapping.currency].str.strip().str.upper()
+        codes = codes[codes.str.fullmatch(r"[A-Z]{3}").fillna(False).to_numpy(dtype=bool)]
+        if len(codes):
+            return str(codes.value_counts().index[0])
+    if mapping.value and mapping.value in cells.columns:
+        amounts = cells[mapping.value]
+        counts = {code: 0 for code in words.SYMBOLS}
+        written = amounts.str.upper().str.extract(r"\b([A-Z]{3})\b", expand=False).dropna()
+        for code, count in written.value_counts().items():
+            if code in counts:
+                counts[code] += int(count)
+        for mark, code in words.MARKS.items():
+            counts[code] += int(amounts.str.contains(mark, regex=False).fillna(False).sum())
+        best = max(counts, key=counts.get)
+        if counts[best] > 0:
+            return best
+    return ""
+
+
+def money_symbol(dataset: Dataset) -> str:
+    """The symbol to show amounts with: the currency the user set for display, else the data's."""
+    shown = st.session_state.get("kept:shown_currency", "")
+    return words.currency_symbol(shown or currency_code(dataset))
+
+
+@cached()
 def statistics(dataset: Dataset):
     """Per-customer statistics of the cleaned orders."""
     return customer_statistics(read_dataset(dataset).value.orders)
 
 
-@st.cache_data(show_spinner=False, max_entries=48, hash_funcs=HASH_FUNCS)
-def forecasts(dataset: Dataset, method: str = "auto", variance: str = "auto") -> Outcome:
-    """One row per customer: the expected next order and its ranges.
+@cached(max_entries=48)
+def choice(dataset: Dataset, method: str = "auto", variance: str = "auto") -> Outcome:
+    """The method and spread model to use, "auto" settled by the library's rules (the command line's too)."""
+    from forecasting.selection import resolve_choice  # loads the evaluator: only when a choice is settled
 
-    ``"auto"`` for both lets the library choose method and spread model together.
-    An automatic method with a chosen spread model takes the method that forecast
-    best with that model; a chosen method with the automatic spread model takes the
-    model the tail report suggests.
-    """
-    module = optional_module("forecasts")
-    orders = read_dataset(dataset).value.orders
-    stats = statistics(dataset)
-    note = ""
+    checked = None
+    if method == "auto" and variance == "auto" and evaluation.is_done(dataset):
+        found = evaluation(dataset)  # the accuracy check has made the automatic choice already
+        checked = found.value.chosen if found.ok else None
     try:
-        if method == "auto" and variance == "auto":
-            table = module.forecast_customers(stats, method="auto", orders=orders)
-            choice = table.attrs["fit"].get("auto_choice", "")
-            note = "Chosen automatically: " + (choice.split(": ", 1)[1] if ": " in choice else choice) + "."
-        elif method == "auto":
-            judge = optional_module("evaluation")
-            try:
-                chosen = judge.choose_method(orders, stats, variances=[variance])
-                note = f"Method chosen automatically for this spread model: {chosen['reason']}."
-            except OrderDataError:
-                chosen = judge.choose_method(orders, stats, variances=["classic"])
-                note = (f"The {variance} spread model has no quick accuracy check yet, so the method was "
-                        f"chosen with the classic model: {chosen['reason']}.")
-            table = module.forecast_customers(stats, method=chosen["method"], variance=variance, orders=orders)
-        else:
-            if variance == "auto":
-                variance = tail(dataset).suggested_variance
-                note = "Spread model chosen from the size of your big orders (see above)."
-            table = module.forecast_customers(stats, method=method, variance=variance, orders=orders)
+        return Outcome(resolve_choice(statistics(dataset), read_dataset(dataset).value.orders,
+                                      method=method, variance=variance, checked=checked))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
-    return Outcome(table, note=note)
+        return Outcome(error=problem_fields(problem))
 
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
-def forecast_files(dataset: Dataset, method: str, variance: str, salt: str = "") -> tuple[str, bytes]:
-    """The forecasts as safe CSV text and Excel bytes, for the download buttons (money to the cent).
+@cached(max_entries=48)
+def forecasts(dataset: Dataset, method: str = "auto", variance: str = "auto") -> Outcome:
+    """One row per customer: the expected next order and its ranges (how "auto" was settled: :func:`choice`)."""
+    module = optional_module("forecasts")
+    settled = choice(dataset, method, variance)
+    if not settled.ok:
+        return settled
+    picked = settled.value  # a forecasting.selection.Choice
+    try:
+        table = module.forecast_customers(statistics(dataset), method=picked.method, variance=picked.variance,
+                                          orders=read_dataset(dataset).value.orders)
+    except OrderDataError as problem:
+        return Outcome(error=problem_fields(problem))
+    return Outcome(table)
+
+
+def excel_of(table: pd.DataFrame, *, sheet_name: str, symbol: str, money=(), shares=()) -> bytes:
+    """An Excel download: readable headings, money and percentage formats, frozen header row."""
+    return excel_bytes(table, sheet_name=sheet_name, headings=HEADINGS, money=money, shares=shares,
+                       money_symbol=symbol.strip())
+
+
+def _forecasts_to_share(dataset: Dataset, method: str, variance: str, salt: str) -> pd.DataFrame:
+    table = forecasts_for_reading(forecasts(dataset, method, variance).value)
+    return pseudonymise(table, salt=salt) if salt else table
+
+
+@cached()
+def forecast_csv(dataset: Dataset, method: str, variance: str, salt: str = "") -> str:
+    """The forecasts as safe CSV text with the column names scripts rely on, money to the cent.
 
     With a ``salt``, customer ids are replaced by salted pseudonyms (for sharing with an agency).
     """
-    table = forecasts_for_reading(forecasts(dataset, method, variance).value)
-    if salt:
-        table = pseudonymise(table, salt=salt)
-    return csv_text(table), excel_bytes(table)
+    return csv_text(_forecasts_to_share(dataset, method, variance, salt))
 
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+@cached()
+def forecast_excel(dataset: Dataset, method: str, variance: str, salt: str = "", symbol: str = "") -> bytes:
+    """The forecasts as an Excel workbook with headings for people (see :func:`excel_of`)."""
+    return excel_of(_forecasts_to_share(dataset, method, variance, salt), sheet_name="forecasts", symbol=symbol,
+                    money=MONEY_COLUMNS, shares=["own_history_weight"])
+
+
+@cached()
 def tail(dataset: Dataset):
     """How heavy the tail of big orders is (a TailReport)."""
     module = optional_module("variance")
-    return module.tail_report(read_dataset(dataset).value.orders["order_value"].to_numpy())
+    return module.tail_report(read_dataset(dataset).value.orders["order_value"].to_numpy(dtype=np.float64))
 
 
-@st.cache_data(show_spinner=False, max_entries=6, hash_funcs=HASH_FUNCS)
+@cached(max_entries=6)
 def evaluation(dataset: Dataset, bootstrap: int = 200) -> Outcome:
     """Leave-one-out and next-order backtest of every method against plain averages."""
     module = optional_module("evaluation")
     try:
         return Outcome(module.evaluate_methods(read_dataset(dataset).value.orders, bootstrap=bootstrap, seed=0))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
+        return Outcome(error=problem_fields(problem))
 
 
 def method_in_use(dataset: Dataset) -> tuple[str, str]:
@@ -244,7 +372,7 @@ def _outlook_variance(variance: str) -> str:
     return "classic" if variance == "gamma-model" else variance
 
 
-@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+@cached(max_entries=24)
 def outlook(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
     """Projected revenue per customer and per group over ``horizon`` days, from the forecasts in use."""
     module = optional_module("outlook")
@@ -254,10 +382,10 @@ def outlook(dataset: Dataset, method: str, variance: str, horizon: float, by: st
                                               forecasts=table.value if table.ok else None, method=method,
                                               variance=_outlook_variance(variance)))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
+        return Outcome(error=problem_fields(problem))
 
 
-@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+@cached(max_entries=24)
 def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
     """The outlook made at an earlier date, against the revenue that came in after it."""
     module = optional_module("outlook")
@@ -265,10 +393,10 @@ def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: floa
         return Outcome(module.backtest_outlook(read_dataset(dataset).value.orders, horizon=horizon, by=by,
                                                method=method, variance=_outlook_variance(variance)))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
+        return Outcome(error=problem_fields(problem))
 
 
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
+@cached(max_entries=12)
 def outlook_rolling(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
     """The outlook made at several cut-offs over the last year, against all revenue that came in after each."""
     module = optional_module("outlook")
@@ -276,15 +404,15 @@ def outlook_rolling(dataset: Dataset, method: str, variance: str, horizon: float
         return Outcome(module.rolling_backtest(read_dataset(dataset).value.orders, horizon=horizon, by=by,
                                                method=method, variance=_outlook_variance(variance)))
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
+        return Outcome(error=problem_fields(problem))
 
 
-@st.cache_data(show_spinner=False, max_entries=24, hash_funcs=HASH_FUNCS)
+@cached(max_entries=24)
 def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: str, shares: tuple) -> Outcome:
-    """Customers in value tiers, the tier summary and the tier lists as CSV text.
+    """Customers in value tiers, the tier summary and the library's tier lists (rounded, in memory).
 
-    The lists come from the library's own tier lists (formula-safe, rounded) as text in
-    memory, so the downloads match the command line's files and nothing touches the disk.
+    The lists are the library's own (formula-safe when written, rounded), so the downloads match
+    the command line's files; nothing touches the disk.
     """
     module = optional_module("outlook")
     projection = outlook(dataset, method, variance, horizon, "quarter")
@@ -299,10 +427,76 @@ def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: st
     try:
         tiered = module.assign_tiers(customers, rank=rank, shares=shares)
         summary = module.tier_summary(tiered)
-        files = module.tier_csv_texts(tiered)
+        lists = module.tier_lists(tiered)
     except OrderDataError as problem:
-        return Outcome(problem=_problem_text(problem))
-    return Outcome({"customers": tiered, "summary": summary, "files": files, "rank": rank}, note=note)
+        return Outcome(error=problem_fields(problem))
+    return Outcome({"customers": tiered, "summary": summary, "lists": lists, "rank": rank}, note=note)
+
+
+# ---------------------------------------------------------------------------
+# Customer ids on screen and in downloads: real, or pseudonyms while they are on
+
+
+def pseudonym_salt() -> str | None:
+    """The secret phrase while pseudonyms are on (for this browser tab), else None."""
+    salt = st.session_state.get("pseudonym_salt_in_use")
+    return salt if isinstance(salt, str) and len(salt) >= SHORTEST_PHRASE else None
+
+
+def use_pseudonyms(salt: str | None) -> None:
+    st.session_state["pseudonym_salt_in_use"] = salt
+
+
+@cached(max_entries=6)
+def pseudonym_of(dataset: Dataset, salt: str) -> pd.Series:
+    """Every customer's pseudonym, indexed by the customer id (the library's HMAC, computed once)."""
+    ids = pd.DataFrame({"customer": statistics(dataset).index.astype(str)})
+    return pd.Series(pseudonymise(ids, salt=salt)["customer"].to_numpy(), index=ids["customer"].to_numpy())
+
+
+def shown_ids(table: pd.DataFrame, dataset: Dataset, column: str = "customer") -> pd.DataFrame:
+    """``table`` with its customer ids as the page shows them: pseudonyms while they are on."""
+    salt = pseudonym_salt()
+    if salt is None or column not in table.columns or len(table) == 0:
+        return table
+    known = pseudonym_of(dataset, salt)
+    ids = table[column].astype(str)
+    codes = ids.map(known)
+    missing = codes.isna().to_numpy()
+    if missing.any():  # an id the statistics do not hold (a raw cell of a row left out)
+        codes[missing] = pseudonymise(pd.DataFrame({"customer": ids[missing].str.strip()}),
+                                      salt=salt)["customer"].to_numpy()
+    return table.assign(**{column: codes.to_numpy()})
+
+
+def left_out_rows(dataset: Dataset) -> pd.DataFrame:
+    """The rows left out, with their reasons, as the page shows and downloads them.
+
+    A row that did not split into fields has its text in ``raw_text`` and no cells: its cells
+    are empty rather than missing. While pseudonyms are on, only the columns read as orders are
+    kept (the row's other cells and its text as written could hold an id), with the customer
+    column as pseudonyms.
+    """
+    result = read_dataset(dataset).value
+    table = result.excluded.fillna("")
+    if pseudonym_salt() is None:
+        return table
+    roles = result.mapping.as_dict()
+    read = [column for column in dict.fromkeys(c for c in roles.values() if c) if column in table.columns]
+    table = table[["row", "reason_code", "reason", *read]]
+    customer = roles.get("customer")
+    if customer in table.columns:
+        filled = (table[customer].astype(str).str.strip() != "").to_numpy()
+        codes = table[customer].astype(str).to_numpy(dtype=object)
+        if filled.any():
+            codes[filled] = shown_ids(table.loc[filled, [customer]], dataset, column=customer)[customer].to_numpy()
+        table = table.assign(**{customer: codes})
+    return table
+
+
+def shown_id(customer: str, dataset: Dataset) -> str:
+    """One customer id as the page shows it."""
+    return str(shown_ids(pd.DataFrame({"customer": [customer]}), dataset)["customer"].iloc[0])
 
 
 # ---------------------------------------------------------------------------
@@ -316,7 +510,7 @@ def demo_dataset() -> Dataset | None:
 
 
 def start() -> None:
-    """On first open, load the demo shop's orders."""
+    """On first open (a new browser tab, or a refresh), load the demo shop's orders."""
     state = st.session_state
     if "dataset" not in state:
         state["dataset"] = demo_dataset()
@@ -342,6 +536,8 @@ def offer(dataset: Dataset) -> Outcome:
     """Try a dataset: in use when it reads, otherwise kept aside with its problem for fixing."""
     outcome = read_dataset(dataset)
     if outcome.ok:
+        if current() is None or current().digest != dataset.digest:
+            st.session_state["kept:shown_currency"] = ""  # another file: its own currency
         st.session_state["dataset"] = dataset
         st.session_state["pending"] = None
     else:
@@ -363,11 +559,11 @@ def remember(key: str, default, options=None):
     file was loaded) goes back to ``default``. Returns the keyword arguments for the
     widget call.
     """
-    kept = f"kept:{key}"
+    kept_key = f"kept:{key}"
     state = st.session_state
-    if kept not in state or (options is not None and state[kept] not in options):
-        state[kept] = default
-    state[key] = state[kept]
+    if kept_key not in state or (options is not None and state[kept_key] not in options):
+        state[kept_key] = default
+    state[key] = state[kept_key]
     return {"key": key, "on_change": _keep, "args": (key,)}
 
 
@@ -378,47 +574,3 @@ def _keep(key: str) -> None:
 def kept(key: str, default=None):
     """The remembered value of a widget, drawn or not."""
     return st.session_state.get(f"kept:{key}", default)
-
-
-# ---------------------------------------------------------------------------
-# Money symbol for display
-
-
-_CODE_RE = re.compile(r"\b(" + "|".join(SYMBOLS) + r")\b")
-
-
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
-def money_symbol(dataset: Dataset) -> str:
-    """The money symbol to show amounts with: the chosen currency, else the file's most common mark."""
-    if dataset.currency:
-        code = dataset.currency.strip().upper()
-        return SYMBOLS.get(code, f"{code} ")
-    raw = dataset.data[:500_000]
-    try:
-        head = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        # Not UTF-8 (or cut mid-character): Windows-1252 is what the reader tries next.
-        head = raw.decode("cp1252", errors="replace")
-    counts = {code: 0 for code in SYMBOLS}
-    for code in _CODE_RE.findall(head):
-        counts[code] += 1
-    for mark, code in (("€", "EUR"), ("£", "GBP"), ("¥", "JPY"), ("₹", "INR")):
-        counts[code] += head.count(mark)
-    counts["USD"] += head.count("$")
-    best = max(counts, key=counts.get)
-    return SYMBOLS[best] if counts[best] > 0 else ""
-
-
-@st.cache_data(show_spinner=False, max_entries=12, hash_funcs=HASH_FUNCS)
-def guessed_mapping(dataset: Dataset) -> dict[str, str]:
-    """Which column plays which part: as read, or as far as it can be guessed when reading fails."""
-    outcome = read_dataset(dataset)
-    if outcome.ok:
-        return {role: column or "" for role, column in outcome.value.mapping.as_dict().items()}
-    chosen = dict(dataset.overrides)
-    try:
-        cells = reading.read_cells(dataset.data, file_name=dataset.name)
-        guess = reading.guess_mapping(cells, chosen, file_name=dataset.name)
-        return {role: column or "" for role, column in guess.as_dict().items()}
-    except OrderDataError:
-        return {role: chosen.get(role, "") for role in ROLE_LABELS}

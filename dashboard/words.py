@@ -1,50 +1,89 @@
-"""Plain-language text for the dashboard: money, messages and one-sentence explanations.
+"""Plain-language text for the dashboard: money, the controls' names, verdicts and one-sentence explanations.
 
-Pure functions (no streamlit), so the wording can be tested on its own.
+Pure functions (no streamlit), so the wording can be tested on its own. The library's
+messages say what is wrong and carry the column role or option that fixes it; the
+dashboard names its own control for it here (:func:`control_name`).
 """
 
 from __future__ import annotations
 
 import math
-import re
 
-# What the library's messages call a command-line option, and what the same
-# control is called on screen. Longer phrases first so they win over their parts.
-_OPTION_WORDS = [
-    ("--date-order day-first or --date-order month-first",
-     "'Dates are written' under Reading options"),
-    ("--decimal . or --decimal ,", "'Decimal mark' under Reading options"),
-    ("--currency-column", "the 'Currency' column box"),
-    ("--order-id", "the 'Order number' column box"),
-    ("--customer", "the 'Customer' column box"),
-    ("--segment", "the 'Segment' column box"),
-    ("--status", "the 'Order status' column box"),
-    ("--value", "the 'Order amount' column box"),
-    ("--date-order", "'Dates are written' under Reading options"),
-    ("--decimal", "'Decimal mark' under Reading options"),
-    ("--variance", "the spread model box"),
-    ("--method", "the method box"),
-    ("--engine", "the engine"),
-]
-_CURRENCY_EXAMPLE = re.compile(r"with --currency \(for example --currency ([A-Z]{3})\)")
+from forecasting.options import METHOD_LABELS, METHOD_WORDS, VARIANCE_LABELS, VARIANCE_WORDS  # noqa: F401
 
 SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "INR": "₹", "CAD": "CA$", "AUD": "A$",
            "CHF": "CHF ", "SEK": "kr ", "NOK": "kr ", "DKK": "kr "}
+# Marks written beside amounts, and the currency each stands for ("$" alone is taken as US dollars).
+MARKS = {"€": "EUR", "£": "GBP", "¥": "JPY", "₹": "INR", "$": "USD"}
+
+# ---------------------------------------------------------------------------
+# The controls on the pages, by the column role or library option a message concerns
+
+PAGE_TITLES = {"load": "Load orders", "forecasts": "Forecasts", "accuracy": "Accuracy check",
+               "tiers": "Value tiers", "outlook": "Cohort outlook"}
+
+# The words shown for each column role (the column boxes on Load orders).
+ROLE_LABELS = {
+    "customer": "Customer",
+    "date": "Order date",
+    "value": "Order amount",
+    "order_id": "Order number",
+    "status": "Order status",
+    "currency": "Currency",
+    "segment": "Segment",
+}
+ROLE_HELP = {
+    "customer": "The column that identifies who placed the order (an id or an e-mail address).",
+    "date": "When the order was placed.",
+    "value": "What the order (or order line) was worth. Lines with the same order number are added up.",
+    "order_id": "Lines sharing an order number are added up into one order. Without it, each row is one order.",
+    "status": "Used to leave out test and cancelled orders and to net refunds.",
+    "currency": "Needed when the amounts are not all in one currency.",
+    "segment": "An optional grouping, such as the sales channel; the accuracy check is broken down by it.",
+}
+
+# Library option -> (page, where on the page the control is).
+OPTION_CONTROLS = {
+    "currency": ("load", "'Keep only this currency' under Reading options"),
+    "date_order": ("load", "'Dates are written' under Reading options"),
+    "decimal": ("load", "'Decimal mark' under Reading options"),
+    "method": ("forecasts", "the 'Method' box under How the forecasts are made"),
+    "variance": ("forecasts", "the 'Spread model' box under How the forecasts are made"),
+    "horizon": ("tiers", "the 'Period ahead' box"),
+}
 
 
-def on_screen(message: str) -> str:
-    """Reword a library message so it names the controls on screen, not command-line options.
+def control_name(role: str | None, option: str | None, *, here: str | None = None) -> str | None:
+    """What the dashboard calls the control that fixes a problem, for ``OrderDataError.worded``.
+
+    ``here`` is the page the message is shown on (a key of ``PAGE_TITLES``); a control on
+    another page is named with its page. An option without a control on the dashboard
+    gives None, and the message then names none.
 
     Examples
     --------
-    >>> on_screen("Name it with --customer (the columns are: 'a')")
-    "Name it with the 'Customer' column box (the columns are: 'a')"
+    >>> control_name("value", None, here="load")
+    "the 'Order amount' box under Which column is which"
+    >>> control_name("segment", "method", here="forecasts")
+    "the 'Method' box under How the forecasts are made, or the 'Segment' box on the Load orders page"
+    >>> control_name(None, "decimal", here="forecasts")
+    "'Decimal mark' under Reading options on the Load orders page"
+    >>> control_name(None, "engine") is None
+    True
     """
-    text = _CURRENCY_EXAMPLE.sub(r"in 'Keep only this currency' under Reading options (for example \1)", message)
-    text = text.replace("--currency", "'Keep only this currency' under Reading options")
-    for option, words in _OPTION_WORDS:
-        text = text.replace(option, words)
-    return text
+    names = []
+    if option in OPTION_CONTROLS:
+        page, where = OPTION_CONTROLS[option]
+        names.append(where if page == here else f"{where} on the {PAGE_TITLES[page]} page")
+    if role in ROLE_LABELS:
+        where = f"the '{ROLE_LABELS[role]}' box"
+        names.append(f"{where} under Which column is which" if here == "load"
+                     else f"{where} on the {PAGE_TITLES['load']} page")
+    return ", or ".join(names) if names else None
+
+
+# ---------------------------------------------------------------------------
+# Money and counts
 
 
 def money(amount: float, symbol: str = "$") -> str:
@@ -52,8 +91,8 @@ def money(amount: float, symbol: str = "$") -> str:
 
     Examples
     --------
-    >>> money(310.0), money(52.456), money(1234567.8, "€")
-    ('$310', '$52.46', '€1,234,568')
+    >>> money(310.0), money(52.456), money(1234567.8, "€"), money(-3.5, "£")
+    ('$310', '$52.46', '€1,234,568', '-£3.50')
     """
     if amount is None or not math.isfinite(amount):
         return "unknown"
@@ -64,9 +103,115 @@ def money(amount: float, symbol: str = "$") -> str:
     return f"{sign}{symbol}{amount:,.2f}"
 
 
+def money_range(low: float, high: float, symbol: str = "$") -> str:
+    """'between $40 and $60', or 'about $52' when the two ends meet (a range no wider than a cent).
+
+    Examples
+    --------
+    >>> money_range(40, 60.5), money_range(75.96, 75.96), money_range(0.0, 30.0)
+    ('between $40.00 and $60.50', 'about $75.96', 'up to $30.00')
+    """
+    if math.isfinite(low) and math.isfinite(high) and abs(high - low) < 0.005:
+        return f"about {money(high, symbol)}"
+    if low <= 0:
+        return f"up to {money(high, symbol)}"
+    return f"between {money(low, symbol)} and {money(high, symbol)}"
+
+
 def orders_word(count: int) -> str:
     """'1 order', '3 orders'."""
-    return f"{count} order" if count == 1 else f"{count} orders"
+    return f"{count:,} order" if count == 1 else f"{count:,} orders"
+
+
+def currency_symbol(code: str) -> str:
+    """The symbol to show amounts with for an ISO currency code ('USD' -> '$'; unknown codes as 'XYZ ').
+
+    Examples
+    --------
+    >>> currency_symbol("gbp"), currency_symbol("PLN"), currency_symbol("")
+    ('£', 'PLN ', '')
+    """
+    code = (code or "").strip().upper()
+    return SYMBOLS.get(code, f"{code} " if code else "")
+
+
+# ---------------------------------------------------------------------------
+# Methods and spread models (details sections only)
+
+
+def method_label(name: str) -> str:
+    return METHOD_LABELS.get(name, name)
+
+
+def variance_label(name: str) -> str:
+    return VARIANCE_LABELS.get(name, name)
+
+
+def pair_words(method: str, variance: str) -> str:
+    """A method with its spread model; Gamma-Gamma has a spread of its own and is named alone.
+
+    Examples
+    --------
+    >>> pair_words("mta", "log")
+    'multi-task averaging (MTA) with the log scale spread model'
+    >>> pair_words("gamma-gamma", "gamma-model")
+    'the Gamma-Gamma spend model (it has its own spread)'
+    """
+    if method == "gamma-gamma" or variance == "gamma-model":
+        return "the Gamma-Gamma spend model (it has its own spread)"
+    return f"{method_label(method)} with the {variance_label(variance)} spread model"
+
+
+def choice_sentence(chosen_by: str, check: dict | None, method: str, variance: str) -> str:
+    """How the method and spread model in use were settled, from the library's answer (not its wording).
+
+    Examples
+    --------
+    >>> check = {"method": "mta", "variance": "log", "error_reduction_pct": 8.34, "margin_pct": 0.61,
+    ...          "fell_back_to_plain": False,
+    ...          "runner_up": {"method": "empirical-bayes", "variance": "log", "error_reduction_pct": 7.7}}
+    >>> choice_sentence("accuracy check", check, "mta", "log")
+    'Chosen by the accuracy check: multi-task averaging (MTA) with the log scale spread model had the smallest error when one order at a time was hidden, 8.3% below the own averages, 0.6 points ahead of empirical Bayes with the log scale spread model.'
+    >>> choice_sentence("default", None, "empirical-bayes", "log")
+    'The standing choice: empirical Bayes with the log scale spread model.'
+    """
+    if chosen_by == "accuracy check" and check is not None:
+        if check.get("fell_back_to_plain"):
+            return ("Chosen by the accuracy check: no method beat the customers' own averages when one order at "
+                    "a time was hidden, so own averages are used.")
+        runner = check.get("runner_up") or {}
+        ahead = ""
+        if runner and math.isfinite(float(check.get("margin_pct", math.nan))):
+            ahead = (f", {float(check['margin_pct']):.1f} points ahead of "
+                     f"{pair_words(runner['method'], runner['variance'])}")
+        return (f"Chosen by the accuracy check: {pair_words(check['method'], check['variance'])} had the smallest "
+                f"error when one order at a time was hidden, {float(check['error_reduction_pct']):.1f}% below the "
+                f"own averages{ahead}.")
+    if chosen_by == "default":
+        return f"The standing choice: {pair_words(method, variance)}."
+    return f"As chosen: {pair_words(method, variance)}."
+
+
+def tail_sentence(top1_share: float, tail_index: float) -> str:
+    """How big the big orders are, as facts (no model advice: the choice is said elsewhere).
+
+    Examples
+    --------
+    >>> tail_sentence(0.21, 1.3)
+    'The largest 1% of orders bring in 21% of revenue: a few orders are many times the usual one.'
+    >>> tail_sentence(0.04, 6.0)
+    'The largest 1% of orders bring in 4% of revenue: big orders are not unusually large.'
+    """
+    start = f"The largest 1% of orders bring in {top1_share:.0%} of revenue"
+    if not math.isfinite(tail_index):
+        return f"{start}."
+    if tail_index < 4:
+        return f"{start}: a few orders are many times the usual one."
+    return f"{start}: big orders are not unusually large."
+
+
+# ---------------------------------------------------------------------------
+# One customer's forecast
 
 
 def forecast_sentence(*, orders: int, average: float, forecast: float, own_weight: float,
@@ -80,95 +225,110 @@ def forecast_sentence(*, orders: int, average: float, forecast: float, own_weigh
     forecast : float
         The expected next order.
     own_weight : float
-        The share (0 to 1) of the forecast that comes from the customer's own history.
+        The share (0 to 1) of the forecast that comes from the customer's own orders.
     centre : float or None
-        What similar customers spend (the value the average is pulled toward);
-        None when it is not known.
+        What similar customers spend (the value the average is pulled toward); None when
+        the method pulls toward nothing.
     log_scale : bool
-        True when the weighing was done on log order values (the "log" spread
-        model): then the pull is on proportions, and the sentence says so
-        instead of suggesting the money amounts add up.
+        True when the weighing was done on proportions (log order values): then the
+        forecast need not lie between the own average and the centre.
+
+    Notes
+    -----
+    The value pulled toward is named only when the forecast lies between the own average
+    and it (to the cent), so the sentence never says a forecast was pulled toward a value
+    it moved away from.
 
     Examples
     --------
     >>> forecast_sentence(orders=2, average=310, forecast=120, own_weight=0.3, centre=52.0)
     'With 2 orders averaging $310, the forecast leans 70% on what similar customers spend ($52.00), so it is $120.'
     >>> forecast_sentence(orders=1, average=40, forecast=40, own_weight=1.0, centre=52.0)
-    "With 1 order averaging $40.00, the forecast rests on this customer's own history alone, so it is $40.00."
+    "With 1 order averaging $40.00, the forecast rests on this customer's own orders alone: $40.00."
+    >>> forecast_sentence(orders=3, average=40, forecast=38, own_weight=0.6, centre=52.0, log_scale=True)
+    'With 3 orders averaging $40.00, the forecast leans 40% on what similar customers spend; the weighing is done on proportions rather than on money amounts, so it comes to $38.00.'
     """
     start = f"With {orders_word(orders)} averaging {money(average, symbol)}"
-    lean = 1.0 - own_weight
-    similar = f" ({money(centre, symbol)})" if centre is not None and math.isfinite(centre) else ""
-    if own_weight >= 0.995:
-        body = f"{start}, the forecast rests on this customer's own history alone"
-    elif own_weight <= 0.005:
+    if own_weight >= 0.995 or centre is None or not math.isfinite(centre):
+        return f"{start}, the forecast rests on this customer's own orders alone: {money(forecast, symbol)}."
+    between = min(average, centre) - 0.005 <= forecast <= max(average, centre) + 0.005
+    similar = f" ({money(centre, symbol)})" if between else ""
+    if own_weight <= 0.005:
         body = f"{start}, the forecast rests entirely on what similar customers spend{similar}"
     else:
-        body = f"{start}, the forecast leans {lean:.0%} on what similar customers spend{similar}"
-    if not log_scale or own_weight >= 0.995 or own_weight <= 0.005:
+        body = f"{start}, the forecast leans {1.0 - own_weight:.0%} on what similar customers spend{similar}"
+    if between:
         return f"{body}, so it is {money(forecast, symbol)}."
-    direction = "down" if forecast < average else "up"
-    return (f"{body}. The log spread model pulls in proportions rather than in money, so the lean moves "
-            f"the forecast {direction} further than the money amounts suggest: it is {money(forecast, symbol)}.")
+    if log_scale:
+        return (f"{body}; the weighing is done on proportions rather than on money amounts, so it comes to "
+                f"{money(forecast, symbol)}.")
+    return f"{body}: {money(forecast, symbol)}."
 
 
-def verdict_sentence(reduction_pct: float, *, low: float | None = None, high: float | None = None) -> str:
-    """The accuracy verdict in one sentence, with how sure it is.
+# ---------------------------------------------------------------------------
+# The accuracy verdict
 
-    ``low`` and ``high`` bound the likely error reduction (a 95% interval); when
-    they straddle zero the sentence says the gain is not settled.
+GOOD, UNSETTLED, WORSE, UNKNOWN = "good", "unsettled", "worse", "unknown"
+
+
+def verdict(reduction_pct: float, *, low: float | None = None, high: float | None = None) -> tuple[str, str]:
+    """The accuracy verdict: its tone and one sentence, both following the interval.
+
+    ``low`` and ``high`` bound the likely error reduction (a 95% interval). The tone is
+    ``"good"`` only when the whole interval is a gain, ``"worse"`` when the whole of it is
+    a loss, ``"unsettled"`` when it straddles zero (or is not known), ``"unknown"`` when
+    nothing could be measured.
 
     Examples
     --------
-    >>> verdict_sentence(12.34, low=8.0, high=16.5)
-    "On your data, forecasts cut the next-order error by 12% compared with each customer's own average (likely between 8% and 16%)."
-    >>> verdict_sentence(14.0, low=-39.0, high=79.0)
-    "On your data, forecasts cut the next-order error by 14% compared with each customer's own average, but with this few orders to test on that is not settled: anywhere from 39% worse to 79% better is plausible."
-    >>> verdict_sentence(-3.0)
-    "On your data, forecasts did not beat each customer's own average: the next-order error was 3% larger."
+    >>> verdict(12.34, low=8.0, high=16.5)
+    ('good', "On your data, the forecasts cut the error of the next order by 12% compared with each customer's own average (probably between 8% and 16%).")
+    >>> verdict(14.0, low=-34.0, high=77.0)
+    ('unsettled', "On your data, the forecasts cut the error by 14% compared with each customer's own average, but that is not settled: on these orders, anything from 34% worse to 77% better is plausible.")
+    >>> verdict(-8.0, low=-12.0, high=-3.0)
+    ('worse', "On your data, the forecasts did worse than each customer's own average: the error was 8% larger (probably between 3% and 12% larger).")
     """
     if reduction_pct is None or not math.isfinite(reduction_pct):
-        return "There were not enough repeat orders to measure accuracy on your data."
+        return UNKNOWN, "There were not enough repeat orders to measure accuracy on your data."
     known = low is not None and high is not None and math.isfinite(low) and math.isfinite(high)
+    if known and low > 0 and reduction_pct > 0:
+        return GOOD, (f"On your data, the forecasts cut the error of the next order by {reduction_pct:.0f}% compared "
+                      f"with each customer's own average (probably between {low:.0f}% and {high:.0f}%).")
+    if known and high < 0 and reduction_pct < 0:
+        return WORSE, ("On your data, the forecasts did worse than each customer's own average: the error was "
+                       f"{abs(reduction_pct):.0f}% larger (probably between {abs(high):.0f}% and {abs(low):.0f}% "
+                       "larger).")
+    if known:
+        plausible = f"on these orders, anything from {abs(low):.0f}% worse to {high:.0f}% better is plausible"
+    else:
+        plausible = "how sure that is was not measured"
     if reduction_pct > 0:
-        start = (f"On your data, forecasts cut the next-order error by {reduction_pct:.0f}% compared with "
-                 "each customer's own average")
-        if known and low < 0:
-            return (f"{start}, but with this few orders to test on that is not settled: anywhere from "
-                    f"{abs(low):.0f}% worse to {high:.0f}% better is plausible.")
-        return f"{start} (likely between {low:.0f}% and {high:.0f}%)." if known else f"{start}."
-    return ("On your data, forecasts did not beat each customer's own average: the next-order error was "
-            f"{abs(reduction_pct):.0f}% larger.")
+        return UNSETTLED, (f"On your data, the forecasts cut the error by {reduction_pct:.0f}% compared with each "
+                           f"customer's own average, but that is not settled: {plausible}.")
+    return UNSETTLED, (f"On your data, the forecasts did not beat each customer's own average (the error was "
+                       f"{abs(reduction_pct):.0f}% larger), but that is not settled either: {plausible}.")
 
 
-from forecasting.options import METHOD_LABELS, METHOD_WORDS, VARIANCE_LABELS, VARIANCE_WORDS  # noqa: E402
-
-
-def method_label(name: str) -> str:
-    return METHOD_LABELS.get(name, name)
-
-
-def variance_label(name: str) -> str:
-    return VARIANCE_LABELS.get(name, name)
-
-
-# A method's name in the library's sentences is always followed by "with <model> variance".
-_METHOD_NAME = re.compile(r"(?<![\w-])(" + "|".join(sorted((re.escape(m) for m in METHOD_LABELS if m != "auto"),
-                                                             key=len, reverse=True)) + r")(?=\s+with\b)")
-_VARIANCE_PHRASE = re.compile(r"(?<![\w-])(classic|robust|log|proportional|gamma-model) variance\b")
-
-
-def name_words(text: str) -> str:
-    """Put the on-screen names of methods and spread models into a library sentence.
-
-    Examples
-    --------
-    >>> name_words("mta with log variance had the smallest leave-one-out error, 8.3% below plain averages, "
-    ...            "ahead of mta-minimax with classic variance")
-    'multi-task averaging (MTA) with the log scale spread model had the smallest error when hiding one order at a time, 8.3% below own averages, ahead of cautious MTA with the classic spread model'
-    """
-    text = _METHOD_NAME.sub(lambda m: method_label(m.group(1)), text)
-    text = _VARIANCE_PHRASE.sub(lambda m: f"the {variance_label(m.group(1))} spread model", text)
-    text = text.replace("smallest leave-one-out error", "smallest error when hiding one order at a time")
-    text = text.replace("in leave-one-out", "when hiding one order at a time")
-    return text.replace("plain averages", "own averages")
+# One line on each number the fit reports (the details section's table); names not here are shown bare.
+FIT_WORDS = {
+    "sigma2": "How much one order's value varies around the customer's usual spend (on the model's scale).",
+    "sigma2_log": "The same spread measured on a log scale; it sets the width of the next-order range.",
+    "centre": "What a customer with no history of their own would be expected to spend.",
+    "centre_log": "That value on the log scale, where the weighing is done.",
+    "factor": "The share of each customer's difference from the centre that is kept (James-Stein).",
+    "closed_form_factor": "That share as the formula gives it, before any tuning.",
+    "Q": "The spread of the customers' averages around the centre, which sets the James-Stein share.",
+    "a": "How alike the customers are taken to be (multi-task averaging): larger pulls harder.",
+    "a_within": "How alike customers of the same segment are taken to be.",
+    "a_between": "How alike the segments are taken to be.",
+    "segments": "Number of segments.",
+    "tau2": "How much the customers' true averages differ from each other (empirical Bayes).",
+    "centre_se": "How precisely the centre is known (standard error).",
+    "p": "Gamma-Gamma: how regular a customer's own orders are (larger means steadier).",
+    "q": "Gamma-Gamma: how much customers' spending levels differ (smaller means more).",
+    "gamma": "Gamma-Gamma: the scale of the customers' spending levels.",
+    "population_mean": "Gamma-Gamma: the average spending level over all customers.",
+    "lambda": "The amount of pull tried out on your own orders (cross-validation).",
+    "iterations": "Refits needed for the proportional spread model to settle.",
+    "converged": "Whether those refits settled.",
+}

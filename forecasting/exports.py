@@ -242,16 +242,153 @@ def write_csv(table: pd.DataFrame, path) -> Path:
     return path
 
 
-def excel_bytes(table: pd.DataFrame, *, sheet_name: str = "forecasts") -> bytes:
-    """The table as an .xlsx workbook; text cells are neutralised and stored as text."""
+#: Headings people read, for the columns of the product's tables: Excel downloads use them (CSV files keep
+#: the column names, which scripts rely on), and so do the dashboard's tables. One place for each column's words.
+HEADINGS = {
+    "customer": "Customer",
+    "orders": "Orders so far",
+    "average_order_value": "Own average order",
+    "expected_next_order": "Expected next order",
+    "own_history_weight": "Weight on own orders",
+    "expected_low": "Usual order from",
+    "expected_high": "Usual order to",
+    "next_order_low": "Next order from",
+    "next_order_high": "Next order to",
+    "low_confidence": "Low confidence",
+    "method": "Method",
+    "variance": "Spread model",
+    "tier": "Tier",
+    "rank": "Rank",
+    "tier_rule": "Who is in the tier",
+    "cohort": "First ordered",
+    "first_order": "First order",
+    "last_order": "Last order",
+    "days_known": "Days since first order",
+    "chance_active": "Chance still shopping",
+    "expected_orders": "Orders expected",
+    "mostly_shop_pattern": "Mostly from similar customers",
+    "projected_revenue": "Projected revenue",
+    "projected_low": "Projected from",
+    "projected_high": "Projected to",
+    "revenue_range_low": "May come in from",
+    "revenue_range_high": "May come in to",
+    "row": "Row in file",
+    "reason": "Why it was left out",
+    "reason_code": "Reason code",
+    "raw_text": "Row as written",
+    "order_id": "Order number",
+    "order_date": "Order date",
+    "order_value": "Order amount",
+    "segment": "Segment",
+}
+
+#: Excel number formats: money with two decimals and thousands separators, shares as percentages.
+MONEY_FORMAT = "#,##0.00"
+SHARE_FORMAT = "0.0%"
+COUNT_FORMAT = "#,##0"
+DATE_FORMAT = "yyyy-mm-dd"
+_MOST_WIDTH = 40
+
+
+def excel_bytes(table: pd.DataFrame, *, sheet_name: str = "forecasts", headings=None, money=(), shares=(),
+                money_symbol: str = "") -> bytes:
+    """The table as an .xlsx workbook; text cells are neutralised and stored as text.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        Any table of the product.
+    sheet_name : str
+        The worksheet's name.
+    headings : mapping, optional
+        Column name -> heading (for example :data:`HEADINGS`); names not in it are kept.
+    money, shares : sequence of str
+        Columns shown as money (two decimals, thousands separators, ``money_symbol`` in
+        front) and as percentages. Other whole-number columns get thousands separators
+        and date columns ``yyyy-mm-dd``.
+    money_symbol : str
+        The currency symbol shown in front of money cells (``"$"``, ``"€"``...).
+
+    Notes
+    -----
+    The header row is frozen (it stays in view while scrolling) and carries a filter;
+    the values are the table's own (a number format changes how a cell looks, not what
+    it holds); missing and infinite numbers are left blank. Cells are written column by
+    column with xlsxwriter (about three times faster than going through
+    ``DataFrame.to_excel``), and the workbook is built in memory: nothing is written to disk.
+    """
+    import xlsxwriter
+
     buffer = io.BytesIO()
-    with pd.ExcelWriter(buffer, engine="xlsxwriter",
-                        engine_kwargs={"options": {"strings_to_formulas": False,
-                                                   "strings_to_urls": False,
-                                                   # no temporary files: customer data stays off the disk
-                                                   "in_memory": True}}) as writer:
-        safe_table(table).to_excel(writer, index=False, sheet_name=sheet_name)
+    shown = safe_table(table)
+    names = [str(name) for name in table.columns]
+    titles = [neutralise_cell(str(headings.get(name, name))) if headings else column
+              for name, column in zip(table.columns, shown.columns)]
+    # no temporary files: customer data stays off the disk
+    book = xlsxwriter.Workbook(buffer, {"in_memory": True, "strings_to_formulas": False, "strings_to_urls": False,
+                                        "strings_to_numbers": False})
+    sheet = book.add_worksheet(sheet_name)
+    symbol = money_symbol.replace('"', "")
+    formats = {
+        "money": book.add_format({"num_format": f'"{symbol}"{MONEY_FORMAT}' if symbol else MONEY_FORMAT}),
+        "share": book.add_format({"num_format": SHARE_FORMAT}),
+        "count": book.add_format({"num_format": COUNT_FORMAT}),
+        "date": book.add_format({"num_format": DATE_FORMAT}),
+    }
+    heading_format = book.add_format({"bold": True, "bottom": 1, "text_wrap": True, "valign": "top"})
+    for position, title in enumerate(titles):
+        sheet.write_string(0, position, str(title), heading_format)
+    for position, name in enumerate(table.columns):
+        series = shown.iloc[:, position]
+        if name in money:
+            kind = "money"
+        elif name in shares:
+            kind = "share"
+        elif pd.api.types.is_integer_dtype(series) and not pd.api.types.is_bool_dtype(series):
+            kind = "count"
+        elif pd.api.types.is_datetime64_any_dtype(series):
+            kind = "date"
+        else:
+            kind = None
+        _write_column(sheet, position, series, formats.get(kind))
+        width = min(_MOST_WIDTH, max(10, len(str(titles[position])) + 2, 12 if kind == "date" else 0))
+        sheet.set_column(position, position, width, formats.get(kind))
+    sheet.freeze_panes(1, 0)
+    if names:
+        sheet.autofilter(0, 0, len(table), len(names) - 1)
+    book.close()
     return buffer.getvalue()
+
+
+def _write_column(sheet, position: int, series: pd.Series, cell_format) -> None:
+    """One column's cells under the heading: numbers as numbers, dates as dates, the rest as text."""
+    if pd.api.types.is_bool_dtype(series):
+        write = sheet.write_boolean
+        for row, value in enumerate(series.to_numpy(dtype=object).tolist(), start=1):
+            if not _is_missing(value):
+                write(row, position, bool(value))
+        return
+    if pd.api.types.is_numeric_dtype(series):
+        values = series.to_numpy(dtype=np.float64, na_value=np.nan)
+        whole = pd.api.types.is_integer_dtype(series)
+        write = sheet.write_number
+        kept = np.flatnonzero(np.isfinite(values))
+        for row, value in zip((kept + 1).tolist(), (values[kept].astype(np.int64) if whole
+                                                    else values[kept]).tolist()):
+            write(row, position, value, cell_format)
+        return
+    if pd.api.types.is_datetime64_any_dtype(series):
+        write = sheet.write_datetime
+        if series.dt.tz is not None:  # Excel has no time zones: the local time as written
+            series = series.dt.tz_localize(None)
+        for row, value in enumerate(list(series.dt.to_pydatetime()), start=1):
+            if not _is_missing(value):
+                write(row, position, value, cell_format)
+        return
+    write = sheet.write_string
+    for row, value in enumerate(series.to_numpy(dtype=object).tolist(), start=1):
+        if not _is_missing(value):
+            write(row, position, str(value))
 
 
 def pseudonymise(table: pd.DataFrame, *, salt: str, column: str = "customer") -> pd.DataFrame:

@@ -32,6 +32,7 @@ from forecasting.errors import OrderDataError
 from forecasting.estimators.base import Between, between_left_out, error_variance, fit_between, rows_of
 from forecasting.exports import rounded_for_reading
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
+from forecasting.options import DEFAULT_CHOICE, low_confidence
 from forecasting.options import METHODS as METHOD_REGISTRY
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
@@ -65,9 +66,6 @@ FORECAST_COLUMNS = [
 MONEY_COLUMNS = ["average_order_value", "expected_next_order", "expected_low", "expected_high",
                  "next_order_low", "next_order_high"]
 
-#: Used when the automatic choice cannot run the shop's own check (no order-level values): the
-#: method whose forecasts are posterior means and whose ranges the calibration suite holds.
-DEFAULT_CHOICE = ("empirical-bayes", "log")
 
 
 def _check_level(value, option):
@@ -260,20 +258,12 @@ def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForeca
 
 
 def _automatic_choice(stats, orders, method, variance):
-    """(method, variance, reason, spread models that passed) from the shop's own check, or the default
-    (and None) when it cannot run."""
-    if orders is None:
-        chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
-        chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance
-        if METHOD_REGISTRY[chosen_method].own_spread:
-            chosen_variance = OWN_SPREAD
-        return chosen_method, chosen_variance, ("the shop's own check needs the order-level table, so the "
-                                                "model-based default is used"), None
-    from forecasting.selection import choose_method  # the only module that imports both sides
+    """(method, variance, reason, spread models that passed) by :func:`forecasting.selection.resolve_choice`."""
+    from forecasting.selection import resolve_choice  # the only module that imports both sides
 
-    chosen = choose_method(orders, stats, methods=None if method == "auto" else [method],
-                           variances=None if variance == "auto" else [variance])
-    return chosen["method"], chosen["variance"], str(chosen.get("reason", "")), chosen.get("spread_checked")
+    choice = resolve_choice(stats, orders, method=method, variance=variance)
+    checked = choice.check.get("spread_checked") if choice.check is not None else None
+    return choice.method, choice.variance, choice.reason, checked
 
 
 # ---------------------------------------------------------------------------
@@ -352,8 +342,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     -----
     The estimator runs on each customer's average (average log value for the log model) with
     s_t from the spread model; :func:`money_forecast` returns to money and gives both ranges.
-    ``low_confidence`` is True when the own-history weight is below 0.5 or the customer has a
-    single order.
+    ``low_confidence`` is True when the own-history weight is below
+    :data:`forecasting.options.LOW_CONFIDENCE_WEIGHT` (the forecast rests mostly on similar customers).
 
     Examples
     --------
@@ -438,7 +428,7 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
         "expected_high": money.expected_high,
         "next_order_low": money.next_low,
         "next_order_high": money.next_high,
-        "low_confidence": (weight < 0.5) | (n == 1),
+        "low_confidence": low_confidence(weight),
         "method": _repeated_text(method, len(n)),
         "variance": _repeated_text(variance_name, len(n)),
     }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block

@@ -17,12 +17,21 @@ from dataclasses import dataclass
 
 __all__ = ["DEFAULT_METHOD", "DEFAULT_VARIANCE", "DEFAULT_SEASONS", "METHODS", "SPREAD_MODELS", "Method",
            "SpreadModel", "AutoTolerance", "AUTO_TOLERANCE", "METHOD_WORDS", "VARIANCE_WORDS", "METHOD_LABELS",
-           "VARIANCE_LABELS", "OWN_SPREAD", "method_names", "spread_names", "pairs_to_report", "load"]
+           "VARIANCE_LABELS", "OWN_SPREAD", "DEFAULT_CHOICE", "LOW_CONFIDENCE_WEIGHT", "method_names", "spread_names",
+           "pairs_to_report", "low_confidence", "load"]
 
 #: Defaults of every front end (command line, dashboard and the library's own functions).
 DEFAULT_METHOD = "auto"
 DEFAULT_VARIANCE = "auto"
 DEFAULT_SEASONS = "auto"
+
+#: What "auto" means when the shop's own check cannot run (no order-level values, as on the scale
+#: engines): the model-based choice.
+DEFAULT_CHOICE = ("empirical-bayes", "log")
+
+#: A forecast is of low confidence when less than this share of it comes from the customer's own
+#: orders (it rests mostly on what similar customers spend). The one definition every front end shows.
+LOW_CONFIDENCE_WEIGHT = 0.5
 
 #: The spread reported for a method with its own model of spread (gamma-gamma).
 OWN_SPREAD = "gamma-model"
@@ -256,3 +265,16 @@ def load(reference: str):
     """The function a registry entry names as ``"module:function"``."""
     module, name = reference.split(":")
     return getattr(importlib.import_module(module), name)
+
+
+def low_confidence(own_history_weight):
+    """True where a forecast rests mostly on similar customers (own-history weight below one half).
+
+    Examples
+    --------
+    >>> low_confidence([0.2, 0.5, 0.93]).tolist()
+    [True, False, False]
+    """
+    import numpy as np
+
+    return np.asarray(own_history_weight, dtype=np.float64) < LOW_CONFIDENCE_WEIGHT

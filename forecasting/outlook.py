@@ -54,6 +54,7 @@ from .frequency import (
     simulate_orders_ahead,
 )
 from .options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
+from .options import low_confidence as rests_on_shop
 from .seasons import SEASONS, RepeatOrderModel, clock_between, fit_repeat_orders, month_edges
 
 __all__ = [
@@ -188,9 +189,6 @@ TIER_SUMMARY_COLUMNS = [
     "mostly_shop_pattern",
 ]
 
-# A forecast resting less than this on the customer's own orders is mostly the
-# shop-wide pattern (half own history, half shop: common practice for a flag).
-SHOP_PATTERN_WEIGHT = 0.5
 # Cells of the (draws x customers) matrix handled at once: bounds memory to ~50 MB.
 _CELLS_PER_CHUNK = 2_000_000
 # The same for the simulation of actual revenue, which holds about eight such
@@ -733,10 +731,7 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             parts["new"] = nan4
 
     weight = aligned["own_history_weight"].to_numpy(dtype=np.float64)
-    if "low_confidence" in aligned.columns:
-        low_confidence = aligned["low_confidence"].to_numpy(dtype=bool)
-    else:
-        low_confidence = (weight < SHOP_PATTERN_WEIGHT) | (stats["orders"].to_numpy() == 1)
+    low_confidence = rests_on_shop(weight)
     customers = pd.DataFrame(
         {
             "customer": stats.index.to_numpy(dtype=object),
@@ -752,7 +747,7 @@ def _project(orders, stats, *, horizon, by, as_of, method, variance, forecasts, 
             "expected_high": aligned["expected_high"].to_numpy(dtype=np.float64),
             "own_history_weight": weight,
             "low_confidence": low_confidence,
-            "mostly_shop_pattern": weight < SHOP_PATTERN_WEIGHT,
+            "mostly_shop_pattern": low_confidence,
             "projected_revenue": projected,
             # The plug-in projection always lies inside its interval, even when
             # the value draws are cut at zero.
@@ -1807,7 +1802,7 @@ def assign_tiers(customers: pd.DataFrame, *, rank: str = "value", shares=None, t
     table.insert(1, "rank", ranks)
     table.insert(2, "tier", np.asarray(names, dtype=object)[tier_index])
     table.insert(3, "tier_rule", np.asarray(rules, dtype=object)[tier_index])
-    table["mostly_shop_pattern"] = weight < SHOP_PATTERN_WEIGHT
+    table["mostly_shop_pattern"] = rests_on_shop(weight)
     table.attrs = {"tiers": [{"tier": t, "rule": r} for t, r in zip(names, rules)], "rank": rank,
                    "rank_column": column, "note": note}
     return table

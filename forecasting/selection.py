@@ -17,11 +17,14 @@ error cut is measured on the other half's; the two ways round are averaged.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
+from forecasting.options import DEFAULT_CHOICE, DEFAULT_METHOD, DEFAULT_VARIANCE, METHODS, OWN_SPREAD
 from forecasting.evaluation import (
     AUTO_METHODS,
     AUTO_VARIANCES,
@@ -214,10 +217,120 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -
     if orders is None:
         raise OrderDataError("the automatic choice of method needs the order-level data", option="method",
                              fix="Give the cleaned orders, or choose a method")
+    scores, results = _checked_pairs(orders, stats, methods, variances)
+    return choose_from_scores(scores, results, restricted=methods is not None or variances is not None, seed=seed)
+
+
+def _checked_pairs(orders, stats, methods, variances):
+    """The shop's own check (leave-one-out scores and their summary) of the candidate pairs."""
     if stats is None:
         stats = customer_statistics(orders)
     pairs = _combinations(methods, variances, stats=stats, default_methods=AUTO_METHODS,
                           default_variances=AUTO_VARIANCES)
     scores = customer_scores(leave_one_out(orders, stats, pairs))
-    results = summarise(scores)
-    return choose_from_scores(scores, results, restricted=methods is not None or variances is not None, seed=seed)
+    return scores, summarise(scores)
+
+
+def spread_for_method(results, method: str) -> dict:
+    """The spread model to use with a method the user named, from the shop's own check.
+
+    Among the method's pairs in ``results`` (:func:`forecasting.evaluation.summarise`), the one
+    with the smallest leave-one-out error whose forecasts met the calibration targets; when none
+    did, the one with the smallest error, with the reason saying so. Unlike :func:`best_of`, it
+    never replaces the method (the user chose it, even where it loses to plain averages).
+    """
+    rows = results[results["method"] == method].dropna(subset=["sse"]).sort_values("sse", kind="stable")
+    if len(rows) == 0:
+        raise OrderDataError(f"the shop's own check could not score the '{method}' method on these orders",
+                             option="variance", fix="Choose a spread model yourself")
+    calibrated = rows["calibrated"].astype(bool) if "calibrated" in rows.columns else pd.Series(True, index=rows.index)
+    passing = rows[calibrated.to_numpy()]
+    best = (passing if len(passing) else rows).iloc[0]
+    gain = float(best["error_reduction_pct"])
+    if len(passing):
+        reason = (f"{best['variance']} variance gave {method} its smallest leave-one-out error among the spread "
+                  f"models whose forecasts add up and whose ranges hold, {gain:+.1f}% against plain averages")
+    else:
+        reason = (f"no spread model met every calibration target with {method}; {best['variance']} variance gave "
+                  f"its smallest leave-one-out error, {gain:+.1f}% against plain averages")
+    return {"method": method, "variance": str(best["variance"]), "error_reduction_pct": gain,
+            "calibrated": bool(len(passing)), "fell_back_to_plain": False, "runner_up": None,
+            "margin_pct": float("nan"), "excluded": [], "reason": reason}
+
+
+@dataclass(frozen=True)
+class Choice:
+    """The method and spread model to forecast with, and how they were settled.
+
+    Attributes
+    ----------
+    method, variance : str
+        What to hand :func:`forecasting.forecasts.forecast_customers` (never ``"auto"``).
+    chosen_by : str
+        ``"user"`` (both given, or a method with its own spread), ``"accuracy check"`` (what was
+        left to ``"auto"`` chosen by the shop's own check, :func:`choose_method`) or
+        ``"default"`` (``"auto"`` without order-level data: ``options.DEFAULT_CHOICE``).
+    check : dict or None
+        The shop's own check (:func:`choose_method`) when it chose.
+    """
+
+    method: str
+    variance: str
+    chosen_by: str
+    check: dict | None = None
+
+    @property
+    def reason(self) -> str:
+        """One line for a log or a terminal."""
+        if self.check is not None:
+            return str(self.check.get("reason", ""))
+        if self.chosen_by == "default":
+            return "the shop's own check needs the order-level table, so the model-based default is used"
+        return "as chosen"
+
+
+def resolve_choice(stats, orders=None, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
+                   checked: dict | None = None) -> Choice:
+    """Settle ``"auto"`` in a method / spread-model choice: the one rule every front end uses.
+
+    Parameters
+    ----------
+    stats : pandas.DataFrame
+        Per-customer statistics (:func:`forecasting.customers.customer_statistics`).
+    orders : pandas.DataFrame, optional
+        The cleaned orders; the shop's own check needs them.
+    method, variance : str
+        A method and a spread model, either or both ``"auto"``.
+    checked : dict, optional
+        The shop's own check when it is at hand already for both ``"auto"``
+        (``Evaluation.chosen`` of :func:`forecasting.evaluation.evaluate_methods` on the same
+        orders makes the same choice as :func:`choose_method`), to spare a second pass.
+
+    Returns
+    -------
+    Choice
+
+    Notes
+    -----
+    Whatever is left to ``"auto"`` is chosen by the shop's own check: a named spread model
+    leaves the method to :func:`choose_method` among the methods with it; a named method keeps
+    the method and takes the spread model :func:`spread_for_method` finds for it. Without order-level data (the scale engines) ``"auto"`` means
+    ``options.DEFAULT_CHOICE``. A method with its own model of spread (Gamma-Gamma) needs no
+    spread model.
+    """
+    own_spread = method != "auto" and METHODS[method].own_spread
+    if method != "auto" and (variance != "auto" or own_spread):
+        return Choice(method, OWN_SPREAD if own_spread else variance, "user")
+    if orders is None:
+        chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
+        chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance
+        if METHODS[chosen_method].own_spread:
+            chosen_variance = OWN_SPREAD
+        return Choice(chosen_method, chosen_variance, "default")
+    if checked is not None and method == "auto" and variance == "auto":
+        check = checked
+    elif method != "auto":  # only the spread model is left to the check; the method stays the user's
+        check = spread_for_method(_checked_pairs(orders, stats, [method], None)[1], method)
+    else:
+        check = choose_method(orders, stats, variances=None if variance == "auto" else [variance])
+    return Choice(check["method"], check["variance"], "accuracy check", check=check)

@@ -10,6 +10,9 @@ import streamlit as st
 from dashboard import layout, outlook_charts, state, words
 from forecasting import csv_text
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE
+from forecasting.exports import pseudonymise
+
+HERE = "outlook"
 
 layout.page_header(
     "Cohort outlook",
@@ -27,6 +30,9 @@ dataset = state.current()
 result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
+work = layout.Work(4)
+work.step("Working out each customer's next order", state.forecasts, dataset, state.kept("method", DEFAULT_METHOD),
+          state.kept("variance", DEFAULT_VARIANCE))
 # The forward outlook uses the forecasts the Forecasts page shows; the checks against the past make the same
 # choice again at every cut-off, as the command line does.
 method, variance = state.method_in_use(dataset)
@@ -44,17 +50,16 @@ horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 
 by = second.selectbox("Group customers by", list(groupings),
                       **state.remember("cohort_by", "quarter", list(groupings)), format_func=groupings.get)
 
-with st.status("Working out the outlook ...", expanded=False) as progress:
-    progress.write("Fitting how often customers come back and how many new ones arrive ...")
-    ahead = state.outlook(dataset, method, variance, float(horizon), by)
-    progress.write("Trying the same outlook on the past ...")
-    past = state.outlook_backtest(dataset, chosen_method, chosen_variance, float(horizon), by)
-    progress.write("Trying it at several dates over the last year ...")
-    rolling = state.outlook_rolling(dataset, chosen_method, chosen_variance, float(horizon), by)
-    progress.update(label="Outlook ready", state="complete")
+ahead = work.step(f"Fitting how often customers come back, how many new ones arrive, and projecting the next "
+                  f"{horizon} days", state.outlook, dataset, method, variance, float(horizon), by)
+past = work.step("Trying the same outlook on the past", state.outlook_backtest, dataset, chosen_method,
+                 chosen_variance, float(horizon), by)
+rolling = work.step("Trying it at several dates over the last year", state.outlook_rolling, dataset, chosen_method,
+                    chosen_variance, float(horizon), by)
+work.finish()
 
 if not ahead.ok:
-    st.error(ahead.problem)
+    layout.show_problem(ahead, HERE)
     st.stop()
 projection = ahead.value
 total = projection.total
@@ -144,7 +149,7 @@ st.caption("Month figures are the expected amounts; the ranges above are for the
 
 st.subheader("Tried on the past")
 if not past.ok:
-    st.info(f"The outlook could not be tried on the past: {past.problem}")
+    st.info(f"The outlook could not be tried on the past: {past.worded(HERE)}")
 else:
     check = past.value
     bt = check.total
@@ -208,7 +213,7 @@ if rolling.ok:
                          "frequency_model": st.column_config.TextColumn("Model"),
                      })
 else:
-    st.info(f"The outlook could not be tried at several dates: {rolling.problem}")
+    st.info(f"The outlook could not be tried at several dates: {rolling.worded(HERE)}")
 
 with st.expander("Table and download"):
     st.dataframe(projection.cohorts, hide_index=True, key="cohort_table",
@@ -223,7 +228,13 @@ with st.expander("Table and download"):
                      "revenue_range_high": st.column_config.NumberColumn("May come in to", format=money_format),
                      "share_of_projected_revenue": st.column_config.NumberColumn("Share", format="percent"),
                  })
-    st.download_button("Download the projection for every customer you have (CSV)",
-                       data=csv_text(projection.customers),
+    layout.sharing_controls(HERE)
+    salt = state.pseudonym_salt()
+
+    def customers_csv(table=projection.customers, salt=salt) -> str:
+        # Made when clicked (Streamlit runs it then), not on every run of the page.
+        return csv_text(pseudonymise(table, salt=salt) if salt else table)
+
+    st.download_button("Download the projection for every customer you have (CSV)", data=customers_csv,
                        file_name=f"{Path(dataset.name).stem}_outlook_{horizon}_days.csv", mime="text/csv",
                        key="download_outlook", on_click="ignore", icon=":material/download:")

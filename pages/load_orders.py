@@ -2,14 +2,18 @@
 
 from __future__ import annotations
 
+from functools import partial
 from pathlib import Path
 
 import pandas as pd
 import streamlit as st
 
-from dashboard import layout, state
+from dashboard import layout, state, words
 from forecasting import csv_text
+from forecasting.exports import HEADINGS
 from forecasting.reading import REASONS
+
+HERE = "load"
 
 layout.page_header(
     "Load orders",
@@ -41,10 +45,26 @@ upload = st.file_uploader(
     help="One row per order or per order line, with a header row. Most shop platforms' order exports work "
          "as they are. The file is read on this computer only.",
 )
+
+
+def read_with_progress(dataset: state.Dataset, label: str) -> None:
+    """Read a file (named steps while it takes time), then use it or keep it aside with its problem."""
+    work = layout.Work(2)
+    read = work.step(label, state.read_dataset, dataset)
+    if read.ok:
+        work.step("Finding the currency of the amounts", state.currency_code, dataset)
+    work.finish()
+    state.offer(dataset)
+
+
 if upload is not None and upload.file_id != st.session_state.get("upload_seen"):
     st.session_state["upload_seen"] = upload.file_id
-    with st.spinner(f"Reading {upload.name} ..."):
-        state.offer(state.Dataset.from_bytes(upload.getvalue(), upload.name))
+    arrived = state.Dataset.from_bytes(upload.getvalue(), upload.name)
+    read_with_progress(arrived, f"Reading {upload.name} ({arrived.megabytes:,.1f} MB) and accounting for every row")
+# A changed column box or reading option (see the callbacks below) is read here, where progress can show.
+changed = st.session_state.pop("to_read", None)
+if changed is not None:
+    read_with_progress(changed, f"Reading {changed.name} again with the new choice ({changed.megabytes:,.1f} MB)")
 
 pending = st.session_state.get("pending")
 dataset = state.current()
@@ -52,12 +72,13 @@ if dataset is not None and dataset.demo:
     note.info(
         "The demo shop's orders are already loaded, so you can look around straight away: "
         f"{state.DEMO_SHOP} is an invented online shop selling houseplants, pots and garden tools. "
-        "Upload your own export below to see your customers instead."
+        "Upload your own export below to see your customers instead. An upload is held for this browser tab "
+        "only: refreshing the page starts over here, with the demo shop."
     )
 elif dataset is None and not state.DEMO_FILE.exists():
     note.info("The demo shop's file is not here, so there is nothing loaded yet: upload your own export below.")
 if pending is not None:
-    problem = state.read_dataset(pending).problem
+    problem = state.read_dataset(pending).worded(HERE)
     kept = f"The data loaded before ({'the demo shop' if dataset.demo else dataset.name}) is still in use." \
         if dataset is not None else "Nothing else is loaded yet."
     st.error(f"**{pending.name} cannot be used yet.** {problem}\n\n{kept} "
@@ -66,7 +87,7 @@ if pending is not None:
         st.button(f"Forget {pending.name} and keep the data loaded before", key="drop_pending",
                   on_click=_drop_pending)
 elif dataset is not None and not dataset.demo:
-    st.success(f"Using **{dataset.name}**.")
+    st.success(f"Using **{dataset.name}**. {layout.SESSION_NOTE}")
 if dataset is not None and not dataset.demo and state.DEMO_FILE.exists():
     st.button("Go back to the demo shop", key="use_demo", on_click=_use_demo)
 
@@ -78,13 +99,13 @@ edited = state.being_edited()
 
 def _mapping_changed(role: str) -> None:
     target = state.being_edited()
-    state.offer(target.with_override(role, st.session_state[f"map_{role}"]))
+    st.session_state["to_read"] = target.with_override(role, st.session_state[f"map_{role}"])
 
 
 def _option_changed(option: str) -> None:
     target = state.being_edited()
     value = st.session_state[f"opt_{option}"]
-    state.offer(target.with_options(**{option: value.strip() if isinstance(value, str) else value}))
+    st.session_state["to_read"] = target.with_options(**{option: value.strip() if isinstance(value, str) else value})
 
 
 if edited is not None:
@@ -128,6 +149,17 @@ if edited is not None:
                         format_func={"": "work it out from the amounts", ".": "point (1,234.50)",
                                      ",": "comma (1.234,50)"}.get,
                         on_change=_option_changed, args=("decimal",))
+        if dataset is not None and pending is None:
+            found = state.currency_code(dataset)
+            codes = [""] + list(words.SYMBOLS)
+            first.selectbox(
+                "Show amounts in", codes, **state.remember("shown_currency", "", codes),
+                format_func=lambda code, found=found: (f"the file's currency ({found})" if found
+                                                       else "no currency sign (none found in the file)")
+                if not code else f"{code} ({words.currency_symbol(code).strip()})",
+                help="Only how amounts are shown on these pages and in the Excel downloads; the numbers stay "
+                     "the same. The file's currency comes from its currency column, or from the marks written "
+                     "beside the amounts.")
 
 # ---------------------------------------------------------------------------
 # The row account of the data in use
@@ -153,34 +185,39 @@ if result is not None:
              "Rows": list(audit["excluded"].values())}
         )
         st.dataframe(reasons, hide_index=True, width="content", key="left_out_reasons",
-                     height=layout.table_height(len(reasons)))
-        # A row that did not split into fields has its text in "Row as written" and no cells: show
-        # its cells empty rather than as "None".
-        left_out = result.excluded.fillna("")
+                     height=layout.table_height(len(reasons)),
+                     column_config={"Rows": st.column_config.NumberColumn(format="localized")})
+        left_out = state.left_out_rows(dataset)
         st.markdown(f"**The {len(left_out):,} rows left out**, with the row number your spreadsheet shows "
                     "(the header is row 1) and the reason:")
+        if state.pseudonym_salt() is not None:
+            st.caption("Pseudonyms are on: the customer column shows codes, and only the columns read as orders "
+                       "are shown (the row's other cells and its text as written are left out).")
         st.dataframe(left_out.drop(columns=["reason_code"]).head(1000), hide_index=True,
                      height=layout.table_height(len(left_out), most=320),
                      key="left_out_rows",
-                     column_config={"row": st.column_config.NumberColumn("Row", format="%d"),
-                                    "reason": st.column_config.TextColumn("Reason", width="medium"),
+                     column_config={"row": st.column_config.NumberColumn(HEADINGS["row"], format="%d"),
+                                    "reason": st.column_config.TextColumn(HEADINGS["reason"], width="large"),
                                     "raw_text": st.column_config.TextColumn(
-                                        "Row as written", help="For rows that could not be split into the "
+                                        HEADINGS["raw_text"], help="For rows that could not be split into the "
                                         "file's columns: the row's text as it is in the file.")})
         if len(left_out) > 1000:
             st.caption("The first 1,000 are shown; the download has them all.")
         st.download_button(
-            "Download the rows left out, with reasons (CSV)", data=csv_text(left_out),
+            "Download the rows left out, with reasons (CSV)", data=partial(csv_text, left_out),
             file_name=f"{Path(dataset.name).stem}_rows_left_out.csv", mime="text/csv",
             key="download_left_out", on_click="ignore",
         )
     else:
         st.success("Every row was used.")
     with st.expander("See the cleaned orders"):
-        shown = result.orders.rename(columns={"customer": "Customer", "order_id": "Order number",
-                                              "order_date": "Order date", "order_value": "Order amount",
-                                              "row": "First row in file", "segment": "Segment"})
+        shown = state.shown_ids(result.orders.head(1000), dataset).rename(columns=HEADINGS)
         symbol = state.money_symbol(dataset)
-        st.dataframe(shown.head(1000), hide_index=True, key="clean_orders",
-                     column_config={"Order amount": st.column_config.NumberColumn(format=layout.money_format(symbol)),
-                                    "Order date": st.column_config.DatetimeColumn(format="YYYY-MM-DD HH:mm")})
+        st.dataframe(shown, hide_index=True, key="clean_orders",
+                     column_config={HEADINGS["order_value"]: st.column_config.NumberColumn(
+                                        format=layout.money_format(symbol)),
+                                    HEADINGS["order_date"]: st.column_config.DatetimeColumn(
+                                        format="YYYY-MM-DD HH:mm")})
+        if len(result.orders) > 1000:
+            st.caption(f"The first 1,000 of {len(result.orders):,} orders.")
+    layout.sharing_controls(HERE)

@@ -3,11 +3,16 @@
 from __future__ import annotations
 
 import math
+from functools import partial
 from pathlib import Path
 
 import streamlit as st
 
-from dashboard import charts, layout, state, words
+from dashboard import charts, layout, state
+from forecasting import csv_text
+from forecasting.exports import HEADINGS, pseudonymise
+
+HERE = "tiers"
 
 layout.page_header(
     "Value tiers",
@@ -23,6 +28,9 @@ if state.optional_module("outlook") is None or state.optional_module("forecasts"
 dataset = state.current()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
+work = layout.Work(2)
+work.step("Working out each customer's next order", state.forecasts, dataset, state.kept("method", "auto"),
+          state.kept("variance", "auto"))
 method, variance = state.method_in_use(dataset)
 
 HORIZONS = [90, 180, 365]
@@ -40,13 +48,13 @@ rank = second.selectbox("Rank customers by", list(RANKS), **state.remember("tier
                              "how much; the expected next order looks only at how much.")
 split = third.selectbox("Tiers", list(SPLITS), **state.remember("tier_split", (0.1, 0.3), list(SPLITS)),
                         format_func=SPLITS.get)
-st.caption(f"Forecasts from {words.method_label(method)} with the {words.variance_label(variance)} spread model "
-           "(change it on the Forecasts page).")
+st.caption("The expected next orders are the Forecasts page's (how they are made is set there).")
 
-with st.spinner("Projecting revenue and ranking customers ..."):
-    outcome = state.tiers(dataset, method, variance, float(horizon), rank, split)
+outcome = work.step("Fitting how often customers come back, projecting revenue and ranking customers",
+                    state.tiers, dataset, method, variance, float(horizon), rank, split)
+work.finish()
 if not outcome.ok:
-    st.error(outcome.problem)
+    layout.show_problem(outcome, HERE)
     st.stop()
 if outcome.note:
     st.warning(outcome.note)
@@ -55,7 +63,7 @@ tiered = outcome.value["customers"]
 if tiered.attrs.get("note"):
     st.info(tiered.attrs["note"])
 summary = outcome.value["summary"]
-files = outcome.value["files"]
+lists = outcome.value["lists"]
 
 figure_word = "projected revenue" if rank == "revenue" else "expected next order"
 shown = summary.assign(customers_pct=100 * summary["share_of_customers"],
@@ -77,7 +85,7 @@ st.dataframe(
             "Projected", format=money_format, help=f"Revenue projected from the tier in the next {horizon} days."),
         "revenue_pct": st.column_config.NumberColumn("Share of revenue", format="%.0f%%"),
         "average_own_history_weight": st.column_config.ProgressColumn(
-            "Own-history weight", format="percent", min_value=0.0, max_value=1.0,
+            f"{HEADINGS['own_history_weight']} (average)", format="percent", min_value=0.0, max_value=1.0,
             help="Average over the tier. Low means the tier's forecasts rest mostly on similar customers."),
         "mostly_shop_pattern": st.column_config.NumberColumn(
             "Mostly shop pattern", format="%d",
@@ -100,8 +108,10 @@ names = list(summary["tier"])
 tier = st.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
 members = tiered[tiered["tier"] == tier]
 members = members.assign(active_pct=100 * members["chance_active"])
+SHOWN_MEMBERS = 1000  # a big shop's tier can hold tens of thousands: the list below has them all
 st.dataframe(
-    members, hide_index=True, key="tier_members", height=layout.table_height(len(members), most=380),
+    state.shown_ids(members.head(SHOWN_MEMBERS), dataset), hide_index=True, key="tier_members",
+    height=layout.table_height(len(members), most=380),
     column_order=["rank", "customer", "orders", "last_order", "active_pct", "expected_next_order", "expected_orders",
                   "projected_revenue", "projected_low", "projected_high", "own_history_weight", "cohort"],
     column_config={
@@ -118,15 +128,27 @@ st.dataframe(
         "projected_low": st.column_config.NumberColumn("Projected from", format=money_format),
         "projected_high": st.column_config.NumberColumn("Projected to", format=money_format),
         "own_history_weight": st.column_config.ProgressColumn(
-            "Weight on own history", format="percent", min_value=0.0, max_value=1.0),
+            HEADINGS["own_history_weight"], format="percent", min_value=0.0, max_value=1.0),
         "cohort": st.column_config.TextColumn("First ordered"),
     },
 )
+if len(members) > SHOWN_MEMBERS:
+    st.caption(f"The first {SHOWN_MEMBERS:,} of the tier's {len(members):,} customers; the lists below have them all.")
+
+
+def list_csv(table, salt: str | None) -> str:
+    """A tier list as safe CSV text, with pseudonyms while they are on."""
+    return csv_text(pseudonymise(table, salt=salt) if salt else table)
+
 
 st.subheader("Download the tier lists")
+layout.sharing_controls(HERE)
+salt = state.pseudonym_salt()
 stem = Path(dataset.name).stem
-buttons = st.columns(len(files))
-for column, (name, text) in zip(buttons, files.items()):
+buttons = st.columns(len(lists))
+for column, (name, table) in zip(buttons, lists.items()):
+    # Made when clicked (Streamlit runs the function then), not on every run of the page.
+    text = partial(list_csv, table, salt)
     label = "All customers with their tier" if name == "all" else f"{name.capitalize()}"
     slug = "all" if name == "all" else "-".join(name.lower().split())
     column.download_button(f"{label} (CSV)", data=text, file_name=f"{stem}_tier_{slug}.csv", mime="text/csv",

@@ -1,27 +1,32 @@
 """The dashboard, driven through Streamlit's AppTest: every page runs, and the numbers shown are the library's.
 
 The reference for every number on screen is the library called directly
-(``read_orders``, ``forecast_customers``, ``evaluate_methods``); the wording helpers
-are checked by their doctests and against the library's own error messages.
+(``read_orders``, ``forecast_customers``, ``evaluate_methods``, ``project_revenue``); the
+wording helpers are checked by their doctests and against the library's own errors; the
+Excel download is read back with openpyxl (ECMA-376: frozen panes, number formats).
 """
 
 from __future__ import annotations
 
 import doctest
 import io
+import json
 import re
 from pathlib import Path
 
 import numpy as np
+import openpyxl
 import pandas as pd
 import pytest
 from streamlit.testing.v1 import AppTest
 
-from dashboard import charts, state, words
+from dashboard import charts, layout, state, words
 from forecasting import OrderDataError, customer_statistics, read_orders
 from forecasting import evaluation as evaluation_module
 from forecasting import forecasts as forecasts_module
 from forecasting import outlook as outlook_module
+from forecasting.exports import HEADINGS, pseudonymise
+from forecasting.options import low_confidence
 
 ROOT = Path(__file__).resolve().parent.parent
 APP = ROOT / "app.py"
@@ -29,11 +34,13 @@ DEMO = ROOT / "demo_data" / "plant_shop_orders.csv"
 MESSY = ROOT / "demo_data" / "messy_orders.csv"
 PAGES = ["pages/load_orders.py", "pages/forecasts.py", "pages/accuracy.py", "pages/value_tiers.py",
          "pages/cohort_outlook.py"]
-
+# A command-line flag: two dashes and a letter (as in --decimal); plain dashes in prose do not match.
+FLAG = re.compile(r"--[a-z]")
+SECRET = "fernhollow-secret"
 
 
 def new_app() -> AppTest:
-    at = AppTest.from_file(str(APP), default_timeout=60)
+    at = AppTest.from_file(str(APP), default_timeout=120)
     at.run()
     assert not at.exception, at.exception
     return at
@@ -65,16 +72,71 @@ def errors(at: AppTest) -> list[str]:
     return [element.value for element in at.error]
 
 
+def page_text(at: AppTest) -> str:
+    """Everything the page sends to the browser, as text: labels, help, captions, markdown, table cells."""
+    parts = []
+
+    def walk(node):
+        proto = getattr(node, "proto", None)
+        if proto is not None:
+            parts.append(str(proto))
+        children = getattr(node, "children", None)
+        for child in (children.values() if isinstance(children, dict) else children or []):
+            walk(child)
+
+    walk(at._tree)
+    for element in at.dataframe:
+        parts.append(element.value.to_csv())
+    return "\n".join(parts)
+
+
+def open_forecasts(at: AppTest) -> AppTest:
+    at.switch_page("pages/forecasts.py").run()
+    assert not at.exception, at.exception
+    return at
+
+
+def find(at: AppTest, text: str) -> AppTest:
+    at.text_input(key="search").input(text).run()
+    assert not at.exception, at.exception
+    return at
+
+
+def turn_pseudonyms_on(at: AppTest, page: str, phrase: str = SECRET) -> AppTest:
+    at.text_input(key=f"pseudonym_phrase_{page}").input(phrase)
+    at.button(key=f"pseudonyms_on_{page}").click().run()
+    assert not at.exception, at.exception
+    return at
+
+
+def sentence_of(at: AppTest, name: str) -> str:
+    return next(m.value for m in at.markdown if m.value.startswith(f"**{name}.**"))
+
+
 @pytest.fixture(scope="module")
 def demo():
     result = read_orders(DEMO)
     return result, customer_statistics(result.orders)
 
 
+@pytest.fixture(scope="module")
+def demo_dataset():
+    return state.Dataset.from_bytes(DEMO.read_bytes(), DEMO.name, demo=True)
+
+
+@pytest.fixture(scope="module")
+def automatic(demo):
+    """The automatic forecasts and the method and spread model they settled on."""
+    result, stats = demo
+    table = forecasts_module.forecast_customers(stats, method="auto", orders=result.orders)
+    return table, str(table["method"].iloc[0]), str(table["variance"].iloc[0])
+
+
 class TestEveryPage:
     def test_first_open_loads_the_demo_shop_with_a_note(self, demo):
         at = new_app()
-        assert any("demo shop's orders are already loaded" in info.value for info in at.info)
+        note = next(info.value for info in at.info if "demo shop's orders are already loaded" in info.value)
+        assert "refreshing the page starts over" in note
         assert metric(at, "Rows used") == demo[0].audit()["rows_used"]
 
     @pytest.mark.parametrize("page", PAGES)
@@ -85,6 +147,17 @@ class TestEveryPage:
         assert not errors(at)
         assert any("not guarantees" in caption.value for caption in at.caption)
         assert any("stays on this computer" in caption.value for caption in at.caption)
+
+    @pytest.mark.parametrize("page", PAGES)
+    def test_no_command_line_flag_on_any_page(self, page):
+        # Labels, help texts, captions, messages and table cells: the demo shop, then the messy export.
+        at = new_app()
+        at.switch_page(page).run()
+        assert not FLAG.search(page_text(at)), FLAG.search(page_text(at))
+        upload(at, MESSY.name, MESSY.read_bytes())
+        at.switch_page(page).run()
+        text = page_text(at)
+        assert not FLAG.search(text), text[max(0, FLAG.search(text).start() - 200):][:400] if FLAG.search(text) else ""
 
     def test_upload_limit_is_the_configured_one(self):
         # .streamlit/config.toml is the reference for the limit stated on the page.
@@ -126,9 +199,15 @@ class TestLoadOrders:
         assert len(split_failed) == audit["excluded"]["malformed_row"]
         assert not left_out.isna().any().any()
 
+    def test_an_upload_says_a_refresh_starts_over(self):
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        using = next(s.value for s in at.success if f"Using **{MESSY.name}**" in s.value)
+        assert layout.SESSION_NOTE in using
+        assert "refreshing the page" in layout.SESSION_NOTE and "starts over with the demo shop" in layout.SESSION_NOTE
+
     def test_messy_export_shows_euros(self):
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())
-        at.switch_page("pages/forecasts.py").run()
+        open_forecasts(at)
         sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
         assert "averaging €" in sentence  # demo_data/README.md: amounts like 1.234,50 €
 
@@ -145,6 +224,37 @@ class TestLoadOrders:
         assert not errors(at)
         assert metric(at, "Rows used") == audit["rows_used"] == 300
         assert metric(at, "Customers") == audit["customers"]
+
+    def test_currency_comes_from_the_data_not_the_bytes(self, demo):
+        # A pound-sterling workbook: the currency column says GBP, and no amount carries a mark.
+        orders = demo[0].orders.head(200)
+        table = pd.DataFrame({"Customer": orders["customer"], "Order Date": orders["order_date"],
+                              "Total": orders["order_value"], "Currency": "GBP"})
+        buffer = io.BytesIO()
+        table.to_excel(buffer, index=False)
+        at = upload(new_app(), "pounds.xlsx", buffer.getvalue())
+        open_forecasts(at)
+        sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
+        assert "averaging £" in sentence and "$" not in sentence
+        # Without a currency column or marks, no sign is made up; the reading options can set one.
+        table = table.drop(columns="Currency")
+        buffer = io.BytesIO()
+        table.to_excel(buffer, index=False)
+        dataset = state.Dataset.from_bytes(buffer.getvalue(), "plain.xlsx")
+        assert state.currency_code(dataset) == ""
+        at = upload(new_app(), "plain.xlsx", buffer.getvalue())
+        at.selectbox(key="shown_currency").set_value("GBP").run()
+        open_forecasts(at)
+        sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
+        assert "averaging £" in sentence
+
+    def test_currency_column_of_a_big_text_export_read_from_its_first_cells(self, demo):
+        # Past the first megabyte the whole file is read only when the first cells say nothing.
+        lines = ["customer,date,amount,currency"] + [f"K{i % 900},2025-01-{1 + i % 28:02d},{10 + i % 50},CHF"
+                                                     for i in range(60_000)]
+        data = ("\n".join(lines) + "\n").encode()
+        assert len(data) > state.CURRENCY_SAMPLE_BYTES
+        assert state.currency_code(state.Dataset.from_bytes(data, "big.csv")) == "CHF"
 
     def test_changing_a_column_box_reads_again(self, demo):
         at = new_app()
@@ -172,10 +282,9 @@ class TestLoadOrders:
         assert shown and "broken.csv cannot be used yet" in shown[0]
         assert "Traceback" not in shown[0]
         assert metric(at, "Rows used") == demo[0].audit()["rows_used"]
-        at.switch_page("pages/forecasts.py").run()
-        assert not at.exception
+        open_forecasts(at)
         assert any("could not be used yet" in warning.value for warning in at.warning)
-        assert len(table_with(at, "expected_next_order")) == len(demo[1])
+        assert metric(at, "Customers") == len(demo[1])
 
     def test_forgetting_the_bad_file(self):
         at = upload(new_app(), "broken.csv", b"\x00\x01\x02")
@@ -210,28 +319,53 @@ class TestLoadOrders:
         else:
             assert metric(at, "Rows used") == audit["rows_used"]
 
+    def test_rows_left_out_with_pseudonyms_on(self, demo):
+        at = turn_pseudonyms_on(new_app(), "load")
+        left_out = table_with(at, "reason")
+        mapping = demo[0].mapping
+        assert "raw_text" not in left_out.columns and "Product" not in left_out.columns
+        ids = left_out[mapping.customer]
+        assert not ids.str.fullmatch(r"C-\d{5}|C-TEST").any()
+        assert ids[ids != ""].str.startswith("cust-").all()
+        cleaned = table_with(at, HEADINGS["order_date"])
+        assert cleaned[HEADINGS["customer"]].str.startswith("cust-").all()
+
 
 class TestForecasts:
-    def test_table_is_the_librarys_automatic_forecast(self, demo):
-        result, stats = demo
-        expected = forecasts_module.forecast_customers(stats, method="auto", orders=result.orders)
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+    def test_table_is_the_librarys_automatic_forecast(self, demo, automatic):
+        expected = automatic[0].sort_values("expected_next_order", ascending=False, kind="stable")
+        at = open_forecasts(new_app())
         shown = table_with(at, "expected_next_order")
-        assert shown["customer"].tolist() == expected["customer"].tolist()
-        np.testing.assert_allclose(shown["expected_next_order"], expected["expected_next_order"], rtol=1e-12)
-        np.testing.assert_allclose(shown["own_history_weight"], expected["own_history_weight"], rtol=1e-12)
-        assert shown["low_confidence"].tolist() == expected["low_confidence"].tolist()
+        assert len(shown) == 50 and metric(at, "Customers") == len(demo[1])
+        assert shown["customer"].tolist() == expected["customer"].head(50).tolist()
+        np.testing.assert_allclose(shown["expected_next_order"], expected["expected_next_order"].head(50), rtol=1e-12)
+        np.testing.assert_allclose(shown["own_history_weight"], expected["own_history_weight"].head(50), rtol=1e-12)
+
+    def test_pages_of_customers(self, automatic):
+        expected = automatic[0].sort_values("orders", ascending=False, kind="stable")
+        at = open_forecasts(new_app())
+        at.selectbox(key="forecast_sort").set_value("orders").run()
+        at.number_input(key="forecast_page").set_value(3).run()
+        shown = table_with(at, "expected_next_order")
+        assert shown["customer"].tolist() == expected["customer"].iloc[100:150].tolist()
+        assert at.number_input(key="forecast_page").max == -(-len(expected) // 50)
+
+    def test_low_confidence_agrees_with_the_weight_shown(self, automatic):
+        table = automatic[0]
+        at = open_forecasts(new_app())
+        assert metric(at, "Low confidence") == int((table["own_history_weight"] < 0.5).sum())
+        shown = table_with(at, "expected_next_order")
+        assert shown["low_confidence"].tolist() == (shown["own_history_weight"] < 0.5).tolist()
 
     def test_method_and_spread_model_by_key(self, demo):
         result, stats = demo
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+        at = open_forecasts(new_app())
         at.selectbox(key="method").set_value("james-stein").run()
         at.selectbox(key="variance").set_value("classic").run()
         assert not at.exception
         expected = forecasts_module.forecast_customers(stats, method="james-stein", variance="classic",
                                                        orders=result.orders)
+        expected = expected.sort_values("expected_next_order", ascending=False, kind="stable").head(50)
         shown = table_with(at, "expected_next_order")
         np.testing.assert_allclose(shown["expected_next_order"], expected["expected_next_order"], rtol=1e-12)
         assert set(shown["method"]) == {"james-stein"}
@@ -241,39 +375,38 @@ class TestForecasts:
         chosen = evaluation_module.choose_method(result.orders, stats, variances=["classic"])
         expected = forecasts_module.forecast_customers(stats, method=chosen["method"], variance="classic",
                                                        orders=result.orders)
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+        at = open_forecasts(new_app())
         at.selectbox(key="variance").set_value("classic").run()
         shown = table_with(at, "expected_next_order")
-        np.testing.assert_allclose(shown["expected_next_order"], expected["expected_next_order"], rtol=1e-12)
+        top = expected.sort_values("expected_next_order", ascending=False, kind="stable").head(50)
+        np.testing.assert_allclose(shown["expected_next_order"], top["expected_next_order"], rtol=1e-12)
 
     def test_choice_survives_a_visit_to_another_page(self):
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+        at = open_forecasts(new_app())
         at.selectbox(key="method").set_value("empirical-bayes").run()
         at.switch_page("pages/load_orders.py").run()
-        at.switch_page("pages/forecasts.py").run()
+        open_forecasts(at)
         assert at.selectbox(key="method").value == "empirical-bayes"
         assert set(table_with(at, "expected_next_order")["method"]) == {"empirical-bayes"}
 
-    def test_search_box(self, demo):
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
-        at.text_input(key="search").input("c-0001").run()
+    def test_search_finds_on_the_server(self, demo):
+        at = find(open_forecasts(new_app()), "c-0001")
         shown = table_with(at, "expected_next_order")
         expected = [c for c in demo[1].index if "c-0001" in c.lower()]
-        assert shown["customer"].tolist() == expected and len(expected) > 0
+        assert sorted(shown["customer"]) == sorted(expected) and len(expected) > 0
+        assert any(f"{len(expected)} of {len(demo[1]):,} customers match 'c-0001'" in c.value for c in at.caption)
+        # The customer to explain is picked among the matches, not from every customer.
+        assert sorted(at.selectbox(key="customer").options) == sorted(expected)
 
     def test_one_customer_explained(self, demo):
         result, stats = demo
         name = stats.index[stats["orders"] == 2][0]
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+        at = find(open_forecasts(new_app()), name)
         at.selectbox(key="customer").set_value(name).run()
         assert not at.exception
         table = table_with(at, "expected_next_order")
         row = table[table["customer"] == name].iloc[0]
-        sentence = next(m.value for m in at.markdown if m.value.startswith(f"**{name}.**"))
+        sentence = sentence_of(at, name)
         assert f"With 2 orders averaging {words.money(stats.loc[name, 'mean'])}" in sentence
         assert words.money(row["expected_next_order"]) in sentence
         assert f"{1 - row['own_history_weight']:.0%}" in sentence
@@ -290,77 +423,179 @@ class TestForecasts:
         centre = (table["expected_next_order"] - w * table["average_order_value"]).to_numpy()[keep] / (1 - w[keep])
         np.testing.assert_allclose(centre, table.attrs["fit"]["centre"], rtol=1e-9)
 
-    def test_method_problem_is_a_message(self):
+    def test_log_model_never_names_a_value_the_forecast_moved_away_from(self, demo):
+        result, stats = demo
+        table = forecasts_module.forecast_customers(stats, method="mta", variance="log", orders=result.orders)
+        centre = table.attrs["fit"]["centre"]
+        outside = 0
+        for row in table.itertuples():
+            sentence = words.forecast_sentence(orders=row.orders, average=row.average_order_value,
+                                               forecast=row.expected_next_order, own_weight=row.own_history_weight,
+                                               centre=centre, log_scale=True)
+            between = (min(row.average_order_value, centre) - 0.005 <= row.expected_next_order
+                       <= max(row.average_order_value, centre) + 0.005)
+            outside += not between
+            assert (f"({words.money(centre)})" in sentence) == (between and row.own_history_weight < 0.995)
+        assert outside > 0  # the demo has such customers: the case is really met
+
+    def test_own_averages_pull_toward_nothing(self):
+        at = open_forecasts(new_app())
+        at.selectbox(key="method").set_value("plain").run()
+        sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
+        assert "own orders alone" in sentence and "similar customers" not in sentence
+        assert "centre" not in table_with(at, "what it is")["number"].tolist()
+
+    def test_a_range_that_does_not_open_is_not_called_one(self):
+        # The shop-wide average gives every customer one figure; its ranges carry the spread between
+        # customers, and no sentence says "between $75.96 and $75.96".
+        at = open_forecasts(new_app())
+        at.selectbox(key="method").set_value("pooled").run()
+        text = page_text(at)
+        assert not re.search(r"between (\$[\d,.]+) and \1\b", text)
+        sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
+        assert "rests entirely on what similar customers spend" in sentence
+
+    def test_gamma_gamma_is_not_called_a_spread_model(self):
+        at = open_forecasts(new_app())
+        at.selectbox(key="method").set_value("gamma-gamma").run()
+        assert not at.exception
+        assert "Gamma-Gamma spread model" not in page_text(at)
+        assert any("Gamma-Gamma spend model (it has its own spread)" in m.value for m in at.markdown)
+
+    def test_method_problem_names_the_controls(self):
         # The messy export has no segment column, so "mta-segments" cannot run.
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())
-        at.switch_page("pages/forecasts.py").run()
+        open_forecasts(at)
         at.selectbox(key="method").set_value("mta-segments").run()
         assert not at.exception
-        assert any("segment" in text for text in errors(at))
-        assert not any("--" in text for text in errors(at))
+        shown = errors(at)
+        assert shown and "segment" in shown[0]
 
+    def test_method_problem_has_no_flag(self):
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        open_forecasts(at)
+        at.selectbox(key="method").set_value("mta-segments").run()
+        shown = errors(at)
+        assert shown and not FLAG.search(shown[0])
+        assert "the 'Segment' box on the Load orders page" in shown[0]
 
-    def test_pseudonym_downloads(self, demo):
-        # Turning pseudonyms on asks for a secret first; with one, the files carry the library's pseudonyms.
-        from forecasting.exports import pseudonymise
+    def test_pseudonyms_on_every_table_and_download(self, demo, demo_dataset):
+        at = open_forecasts(new_app())
+        at.text_input(key="pseudonym_phrase_forecasts").input("short")
+        at.button(key="pseudonyms_on_forecasts").click().run()
+        assert any("at least 8 characters" in w.value for w in at.warning)
+        assert not table_with(at, "expected_next_order")["customer"].str.startswith("cust-").any()
 
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
-        at.toggle(key="pseudonyms_on").set_value(True).run()
-        assert not at.exception
-        assert any("secret phrase" in element.value for element in at.info)
-        at.text_input(key="pseudonym_salt").input("fernhollow-secret").run()
-        assert not at.exception
-        assert not any("secret phrase of at least" in element.value for element in at.info)
-        dataset = state.Dataset.from_bytes(DEMO.read_bytes(), DEMO.name, demo=True)
-        method, variance = at.selectbox(key="method").value, at.selectbox(key="variance").value
-        text, _ = state.forecast_files(dataset, method, variance, "fernhollow-secret")
-        shared = pd.read_csv(io.StringIO(text))
-        plain = state.forecasts(dataset, method, variance).value
-        assert shared["customer"].tolist() == pseudonymise(plain, salt="fernhollow-secret")["customer"].tolist()
+        turn_pseudonyms_on(at, "forecasts")
+        assert any("Pseudonyms are on" in info.value for info in at.info)
+        shown = table_with(at, "expected_next_order")
+        codes = pseudonymise(pd.DataFrame({"customer": demo[1].index.astype(str)}), salt=SECRET)["customer"]
+        assert shown["customer"].str.startswith("cust-").all()
+        assert set(shown["customer"]) <= set(codes)
+        picked = at.selectbox(key="customer")
+        assert sentence_of(at, picked.format_func(picked.value)).startswith("**cust-")
+        shared = pd.read_csv(io.StringIO(state.forecast_csv(demo_dataset, "auto", "auto", SECRET)))
+        plain = state.forecasts(demo_dataset, "auto", "auto").value
+        assert shared["customer"].tolist() == pseudonymise(plain, salt=SECRET)["customer"].tolist()
         # The download gives money to the cent, as the command line's file does.
         np.testing.assert_allclose(shared["expected_next_order"], plain["expected_next_order"].round(2), atol=1e-9)
+        # The codes hold on the other pages too, and the search finds a customer by code or by id.
+        at.switch_page("pages/value_tiers.py").run()
+        assert table_with(at, "chance_active")["customer"].str.startswith("cust-").all()
+        open_forecasts(at)
+        real = str(demo[1].index[7])
+        find(at, real)
+        assert table_with(at, "expected_next_order")["customer"].tolist() == [
+            pseudonymise(pd.DataFrame({"customer": [real]}), salt=SECRET)["customer"].iloc[0]]
+        at.button(key="pseudonyms_off_forecasts").click().run()
+        assert table_with(at, "expected_next_order")["customer"].tolist() == [real]
+
+    def test_excel_download_has_headings_formats_and_a_frozen_header(self, demo_dataset, automatic):
+        book = openpyxl.load_workbook(io.BytesIO(state.forecast_excel(demo_dataset, "auto", "auto", "", "$")))
+        sheet = book.active
+        headings = [cell.value for cell in sheet[1]]
+        assert headings == [HEADINGS[c] for c in forecasts_module.FORECAST_COLUMNS]
+        assert sheet.freeze_panes == "A2"  # ECMA-376 pane: rows above row 2 stay in view
+        second = dict(zip(forecasts_module.FORECAST_COLUMNS, sheet[2]))
+        assert second["expected_next_order"].number_format == '"$"#,##0.00'
+        assert second["own_history_weight"].number_format == "0.0%"
+        assert second["orders"].number_format == "#,##0"
+        table = automatic[0]
+        assert second["customer"].value == table["customer"].iloc[0]
+        assert second["expected_next_order"].value == pytest.approx(round(table["expected_next_order"].iloc[0], 2))
+        assert sheet.max_row == len(table) + 1
+        # The CSV keeps the names scripts rely on.
+        csv = state.forecast_csv(demo_dataset, "auto", "auto")
+        assert csv.splitlines()[0] == ",".join(forecasts_module.FORECAST_COLUMNS)
+
+    def test_big_excel_is_made_on_request_with_named_progress(self, monkeypatch):
+        monkeypatch.setattr(layout, "EXCEL_AT_ONCE", 100)
+        monkeypatch.setattr(state, "_DONE", set())  # as on a fresh server: no workbook made yet
+        at = open_forecasts(new_app())
+        prepare = at.button(key="download_forecasts_xlsx_prepare")
+        assert "prepare the file" in prepare.label
+        prepare.click().run()
+        assert not at.exception
 
 
 class TestAccuracy:
-    def test_verdict_is_the_evaluations(self, demo):
+    def test_verdict_follows_its_interval(self, demo):
         result, _ = demo
         found = evaluation_module.evaluate_methods(result.orders, bootstrap=200, seed=0)
         chosen = found.chosen
         row = found.backtest[(found.backtest["method"] == chosen["method"])
                              & (found.backtest["variance"] == chosen["variance"])].iloc[0]
+        tone, sentence = words.verdict(row["error_reduction_pct"], low=row["ci_low"], high=row["ci_high"])
         at = new_app()
         at.switch_page("pages/accuracy.py").run()
         assert not at.exception
-        verdict = at.success[0].value
-        sentence = words.verdict_sentence(row["error_reduction_pct"], low=row["ci_low"], high=row["ci_high"])
-        assert verdict == f"**{sentence}**"
-        assert f"{row['error_reduction_pct']:.0f}%" in verdict
-        shown = table_with(at, "coverage")
+        boxes = {words.GOOD: at.success, words.UNSETTLED: at.warning, words.WORSE: at.error}[tone]
+        assert any(box.value == f"**{sentence}**" for box in boxes)
+        assert f"{row['error_reduction_pct']:.0f}%" in sentence
+        # Green only when the whole interval is a gain.
+        assert (tone == words.GOOD) == (row["ci_low"] > 0 and row["error_reduction_pct"] > 0)
+        assert not any(box.value == f"**{sentence}**" for box in at.success) or tone == words.GOOD
+
+    def test_short_table_and_every_result_on_request(self, demo):
+        result, _ = demo
+        found = evaluation_module.evaluate_methods(result.orders, bootstrap=200, seed=0)
+        at = new_app()
+        at.switch_page("pages/accuracy.py").run()
+        short = table_with(at, "error_reduction_pct_loo")
+        assert len(short) <= len(set(found.leave_one_out["method"]))
+        at.toggle(key="accuracy_all").set_value(True).run()
+        shown = table_with(at, "variance_name")
         assert len(shown) == len(found.leave_one_out) + len(found.backtest)
+
+    def test_compared_charts_share_one_scale(self):
+        at = new_app()
+        at.switch_page("pages/accuracy.py").run()
+        figures = {chart.proto.id: json.loads(chart.proto.spec) for chart in at.get("plotly_chart")}
+        ranges = [figure["layout"]["xaxis"]["range"] for figure in figures.values()
+                  if figure["layout"].get("xaxis", {}).get("range") is not None]
+        assert len(ranges) == 2 and ranges[0] == ranges[1]
 
     def test_follows_the_method_in_use(self, demo):
         result, _ = demo
         found = evaluation_module.evaluate_methods(result.orders, bootstrap=200, seed=0)
         row = found.backtest[(found.backtest["method"] == "james-stein")
                              & (found.backtest["variance"] == "classic")].iloc[0]
-        at = new_app()
-        at.switch_page("pages/forecasts.py").run()
+        at = open_forecasts(new_app())
         at.selectbox(key="method").set_value("james-stein").run()
         at.selectbox(key="variance").set_value("classic").run()
         at.switch_page("pages/accuracy.py").run()
-        assert f"{row['error_reduction_pct']:.0f}%" in at.success[0].value
+        verdicts = [box.value for box in [*at.success, *at.warning, *at.error]]
+        assert any(f"{row['error_reduction_pct']:.0f}%" in text for text in verdicts)
         assert any("James-Stein with the classic spread model" in m.value for m in at.markdown)
 
-
-
-
-@pytest.fixture(scope="module")
-def automatic(demo):
-    """The automatic forecasts and the method and spread model they settled on."""
-    result, stats = demo
-    table = forecasts_module.forecast_customers(stats, method="auto", orders=result.orders)
-    return table, str(table["method"].iloc[0]), str(table["variance"].iloc[0])
+    def test_verdict_tones(self):
+        assert words.verdict(14.0, low=-34.0, high=77.0)[0] == words.UNSETTLED
+        assert words.verdict(14.0, low=2.0, high=30.0)[0] == words.GOOD
+        assert words.verdict(14.0)[0] == words.UNSETTLED  # no interval: not called good
+        assert words.verdict(-5.0, low=-9.0, high=-1.0)[0] == words.WORSE
+        assert words.verdict(-5.0, low=-9.0, high=4.0)[0] == words.UNSETTLED
+        assert words.verdict(float("nan"))[0] == words.UNKNOWN
+        assert "by 100%" in words.verdict(100.0, low=99.0, high=100.0)[1]
 
 
 class TestValueTiers:
@@ -405,6 +640,16 @@ class TestValueTiers:
         assert not errors(at)
         assert any("ranked by their expected next order" in w.value for w in at.warning)
 
+    def test_one_label_for_the_own_history_weight(self):
+        at = new_app()
+        labels = []
+        for page in ("pages/forecasts.py", "pages/value_tiers.py"):
+            at.switch_page(page).run()
+            labels.append(page_text(at))
+        text = "\n".join(labels)
+        assert "Own-history weight" not in text and "Weight on own history" not in text
+        assert text.count(HEADINGS["own_history_weight"]) >= 3
+
 
 class TestCohortOutlook:
     def test_cohorts_and_backtest_are_the_librarys(self, demo, automatic):
@@ -444,27 +689,52 @@ class TestCohortOutlook:
 
 
 class TestCharts:
-    def test_pull_chart_plots_every_customer_at_average_and_forecast(self, automatic):
-        table, _, _ = automatic
+    def test_pull_chart_dots_are_every_customer_at_average_and_forecast(self, automatic):
+        table = automatic[0].head(charts.DOTS_AT_MOST)  # a small shop: one dot per customer
         figure = charts.pull_toward_centre(table, highlight=table["customer"].iloc[0])
-        points = [trace for trace in figure.data if trace.mode == "markers" and trace.customdata is not None]
-        x = np.concatenate([np.asarray(trace.x, dtype=float) for trace in points])
-        y = np.concatenate([np.asarray(trace.y, dtype=float) for trace in points])
-        assert len(x) == len(table)
-        assert sorted(zip(x, y)) == sorted(zip(table["average_order_value"], table["expected_next_order"]))
+        dots = [trace for trace in figure.data if trace.mode == "markers" and trace.customdata is not None]
+        amounts = np.concatenate([np.asarray(trace.customdata[:, 2:4], dtype=float) for trace in dots])
+        assert len(amounts) == len(table)
+        assert sorted(map(tuple, amounts)) == sorted(zip(table["average_order_value"], table["expected_next_order"]))
+        x = np.concatenate([np.asarray(trace.x, dtype=float) for trace in dots])
+        np.testing.assert_allclose(np.sort(x), np.sort(np.log10(table["average_order_value"])))
         diagonal = figure.data[0]
         assert list(diagonal.x) == list(diagonal.y)
+        # Coloured as the one definition of low confidence.
+        leaning = [trace for trace in dots if trace.name == "mostly from similar customers"]
+        assert sum(len(trace.x) for trace in leaning) == int(low_confidence(table["own_history_weight"]).sum())
+
+    def test_pull_chart_stays_light_for_a_big_shop(self):
+        rng = np.random.default_rng(7)
+        n = 60_000
+        average = rng.lognormal(np.log(50), 0.6, n)
+        weight = rng.uniform(0.05, 1.0, n)
+        table = pd.DataFrame({"customer": [f"K{i}" for i in range(n)], "orders": rng.integers(1, 20, n),
+                              "average_order_value": average,
+                              "expected_next_order": weight * average + (1 - weight) * 52.0,
+                              "own_history_weight": weight})
+        figure = charts.pull_toward_centre(table, highlight="K123", label="K123")
+        points = sum(len(trace.x) for trace in figure.data if getattr(trace, "mode", None))
+        assert points <= 3  # the diagonal's two ends and the ringed customer
+        cells = next(trace for trace in figure.data if trace.type == "heatmap")
+        assert np.asarray(cells.z).shape == (charts.GRID_CELLS, charts.GRID_CELLS)
+        assert float(np.nansum(np.asarray(cells.customdata, dtype=float))) == n
+        ring = figure.data[-1]
+        assert ring.name == "K123"
+        assert ring.x[0] == pytest.approx(np.log10(average[123]))
 
     def test_method_bars_and_intervals_are_the_evaluations(self, demo):
         found = evaluation_module.evaluate_methods(demo[0].orders, bootstrap=50, seed=1)
         part = found.leave_one_out[found.leave_one_out["variance"] == "classic"]
-        figure = charts.method_comparison(part, title="t", highlight="mta")
+        figure = charts.method_comparison(part, title="t", highlight="mta", x_range=charts.shared_range(part))
         bar = figure.data[0]
         np.testing.assert_allclose(bar.x, part["error_reduction_pct"])
         np.testing.assert_allclose(np.asarray(bar.x) + np.asarray(bar.error_x.array), part["ci_high"])
         np.testing.assert_allclose(np.asarray(bar.x) - np.asarray(bar.error_x.arrayminus), part["ci_low"])
         assert list(bar.y) == [words.method_label(m) for m in part["method"]]
         assert [c == charts.PALETTE["vermilion"] for c in bar.marker.color] == list(part["method"] == "mta")
+        low, high = figure.layout.xaxis.range
+        assert low <= min(0, part["ci_low"].min()) and high >= part["ci_high"].max()
 
 
 class TestWords:
@@ -473,17 +743,35 @@ class TestWords:
         failures, tried = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
         assert tried > 0 and failures == 0
 
-    def test_library_messages_lose_their_command_line_options(self):
-        mixed = b"customer,date,amount\nA,2025-01-01,$10\nB,2025-01-02,EUR 12\n"
-        ambiguous = b"customer,date,amount\nA,03/04/2025,10\nB,05/06/2025,12\n"
-        unknown = b"x,y,z\n1,2,3\n"
-        for data in (mixed, ambiguous, unknown):
-            with pytest.raises(OrderDataError) as problem:
-                read_orders(data, file_name="f.csv")
-            assert "--" in str(problem.value)
-            assert "--" not in words.on_screen(str(problem.value))
+    @pytest.mark.parametrize("role", list(words.ROLE_LABELS))
+    def test_every_column_role_names_its_box(self, role):
+        problem = OrderDataError("no column holds them", file="f.csv", fix="Choose the column", role=role)
+        on_load = state.worded(state.problem_fields(problem), here="load")
+        elsewhere = state.worded(state.problem_fields(problem), here="forecasts")
+        assert f"the '{words.ROLE_LABELS[role]}' box under Which column is which" in on_load
+        assert "on the Load orders page" in elsewhere
+        assert "f.csv" not in on_load and not FLAG.search(on_load + elsewhere)
 
-    def test_verdict_extremes(self):
-        assert "did not beat" in words.verdict_sentence(0.0)
-        assert "not enough" in words.verdict_sentence(float("nan"))
-        assert "by 100%" in words.verdict_sentence(100.0)
+    @pytest.mark.parametrize("option", list(words.OPTION_CONTROLS))
+    def test_every_option_with_a_control_names_it(self, option):
+        problem = OrderDataError("not readable", fix="Set it", option=option)
+        page, where = words.OPTION_CONTROLS[option]
+        assert where in state.worded(state.problem_fields(problem), here=page)
+        assert f"on the {words.PAGE_TITLES[page]} page" in state.worded(state.problem_fields(problem), here="outlook")
+
+    def test_a_problem_outlives_the_cache(self):
+        # Cached outcomes are pickled: the role and option must come back with the message.
+        import pickle
+
+        outcome = state.Outcome(error=state.problem_fields(OrderDataError("x", role="date", option="date_order")))
+        again = pickle.loads(pickle.dumps(outcome))
+        assert again.worded("load") == outcome.worded("load")
+        assert "'Dates are written'" in again.worded("load")
+
+    @pytest.mark.parametrize("data", [b"customer,date,amount\nA,2025-01-01,$10\nB,2025-01-02,EUR 12\n",
+                                      b"customer,date,amount\nA,03/04/2025,10\nB,05/06/2025,12\n",
+                                      b"x,y,z\n1,2,3\n"], ids=["currencies", "date order", "columns"])
+    def test_readers_messages_reach_the_page_without_flags(self, data):
+        at = upload(new_app(), "f.csv", data)
+        shown = errors(at)
+        assert shown and not FLAG.search(shown[0])

@@ -2,9 +2,14 @@
 
 Uploads the demo export and the messy one through the page's file input, visits
 every page, downloads the forecasts CSV and reads it back with Python's csv module
-(RFC 4180), and saves a screenshot of each page to tests/screenshots/tmp/ (not tracked).
+(RFC 4180), checks page by page that no command-line flag (``--date``) is shown, and
+saves a screenshot of each page to tests/screenshots/tmp/ (not tracked).
 ``REFRESH_SCREENSHOTS=1 python -m pytest tests/test_browser.py`` writes them to
 docs/screenshots/ instead, for the README.
+
+A second session uploads an export of 60,000 customers: the Forecasts page draws a
+fixed number of shapes (not one dot per customer), the customer search answers with a
+page of matches, and the Excel file of every customer is made on request.
 """
 
 from __future__ import annotations
@@ -12,14 +17,19 @@ from __future__ import annotations
 import csv
 import io
 import os
+import re
 from pathlib import Path
 
+import numpy as np
+import openpyxl
+import pandas as pd
 import pytest
 
 import browser_support as support
 from playwright import sync_api as playwright_sync
 from forecasting import customer_statistics, read_orders
 from forecasting import forecasts as forecasts_module
+from forecasting.exports import HEADINGS
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = Path("/usr/bin/chromium")
@@ -31,6 +41,9 @@ CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-
 
 support.require_browser()
 
+FLAG = re.compile(r"--[a-z]")
+PAGE_TITLES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Cohort outlook"]
+
 
 @pytest.fixture(scope="module")
 def server():
@@ -39,18 +52,24 @@ def server():
 
 
 @pytest.fixture(scope="module")
-def page(server):
+def browser():
     with playwright_sync.sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        chromium = p.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
         try:
-            context = browser.new_context(viewport={"width": 1400, "height": 1000}, accept_downloads=True)
-            tab = context.new_page()
-            tab.set_default_timeout(60_000)
-            tab.goto(server)
-            settle(tab)
-            yield tab
+            yield chromium
         finally:
-            browser.close()
+            chromium.close()
+
+
+@pytest.fixture(scope="module")
+def page(server, browser):
+    context = browser.new_context(viewport={"width": 1400, "height": 1000}, accept_downloads=True)
+    tab = context.new_page()
+    tab.set_default_timeout(60_000)
+    tab.goto(server)
+    settle(tab)
+    yield tab
+    context.close()
 
 
 def settle(tab) -> None:
@@ -87,6 +106,23 @@ def no_exception_shown(tab) -> None:
     assert "Traceback" not in tab.content()
 
 
+def open_every_expander(tab) -> None:
+    """Open the collapsed sections, so that their text is on screen too."""
+    closed = tab.locator('[data-testid="stExpander"] details:not([open]) > summary')
+    for _ in range(20):
+        if closed.count() == 0:
+            break
+        closed.first.click()
+        tab.wait_for_timeout(200)
+    settle(tab)
+
+
+def flags_on_screen(tab) -> list[str]:
+    """Command-line flags in the text the page shows, with what stands around them."""
+    text = tab.inner_text("body")
+    return [text[max(0, m.start() - 60):m.end() + 60] for m in FLAG.finditer(text)]
+
+
 class TestInTheBrowser:
     def test_demo_loaded_on_first_open(self, page):
         page.get_by_text("already loaded").first.wait_for()
@@ -94,6 +130,13 @@ class TestInTheBrowser:
         assert metric_value(page, "Rows used") == f"{audit['rows_used']:,}"
         no_exception_shown(page)
         shoot(page, "load_orders")
+
+    def test_no_flag_on_any_page_of_the_demo(self, page):
+        for title in PAGE_TITLES:
+            open_page(page, title, title)
+            open_every_expander(page)
+            assert flags_on_screen(page) == [], title
+        open_page(page, "Load orders", "Load orders")
 
     def test_upload_the_messy_export(self, page):
         page.locator('input[type="file"]').set_input_files(str(MESSY))
@@ -104,6 +147,14 @@ class TestInTheBrowser:
         assert metric_value(page, "Customers") == f"{audit['customers']:,}"
         no_exception_shown(page)
         shoot(page, "load_orders_messy")
+
+    def test_no_flag_on_any_page_of_the_messy_export(self, page):
+        for title in PAGE_TITLES:
+            open_page(page, title, title)
+            open_every_expander(page)
+            no_exception_shown(page)
+            assert flags_on_screen(page) == [], title
+        open_page(page, "Load orders", "Load orders")
 
     def test_upload_the_demo_export(self, page):
         page.locator('input[type="file"]').set_input_files(str(DEMO))
@@ -149,3 +200,96 @@ class TestInTheBrowser:
         page.locator(".js-plotly-plot").nth(1).wait_for()
         no_exception_shown(page)
         shoot(page, "cohort_outlook")
+
+
+# ---------------------------------------------------------------------------
+# 60,000 customers
+
+
+BIG_CUSTOMERS = 60_000
+
+
+def big_export(path: Path, *, customers: int = BIG_CUSTOMERS, seed: int = 60) -> Path:
+    """A plant shop's export with ``customers`` customers, one row per order (about 2.5 orders each).
+
+    Spend levels lognormal around $45 (log spread 0.5 between customers, 0.45 between one
+    customer's orders), order counts geometric, dates over two years: a quick stand-in for
+    bench/big_shop.py's export, small enough to read in seconds.
+    """
+    rng = np.random.default_rng(seed)
+    counts = rng.geometric(0.4, customers)
+    who = np.repeat(np.arange(customers), counts)
+    level = rng.lognormal(np.log(45.0), 0.5, customers)
+    amount = np.round(rng.lognormal(np.log(level[who]), 0.45), 2).clip(0.5)
+    day = np.datetime64("2024-11-01") + rng.integers(0, 730, len(who)).astype("timedelta64[D]")
+    pd.DataFrame({"Order Number": [f"FH-{100001 + i}" for i in range(len(who))],
+                  "Order Date": day.astype(str),
+                  "Customer": [f"C-{c + 1:05d}" for c in who],
+                  "Total": amount}).to_csv(path, index=False)
+    return path
+
+
+@pytest.fixture(scope="module")
+def big_page(server, browser, tmp_path_factory):
+    path = big_export(tmp_path_factory.mktemp("big") / "plant_shop_60k_customers.csv")
+    context = browser.new_context(viewport={"width": 1400, "height": 1000}, accept_downloads=True)
+    tab = context.new_page()
+    tab.set_default_timeout(300_000)
+    tab.goto(server)
+    settle(tab)
+    tab.locator('input[type="file"]').set_input_files(str(path))
+    tab.get_by_text(f"Using {path.name}").first.wait_for()
+    settle(tab)
+    yield tab, path
+    context.close()
+
+
+class TestSixtyThousandCustomers:
+    def test_upload_accounts_for_every_customer(self, big_page):
+        tab, path = big_page
+        audit = read_orders(path).audit()
+        assert audit["customers"] == BIG_CUSTOMERS
+        assert metric_value(tab, "Customers") == f"{BIG_CUSTOMERS:,}"
+        assert metric_value(tab, "Orders") == f"{audit['orders']:,}"
+        no_exception_shown(tab)
+
+    def test_forecasts_page_draws_a_fixed_number_of_shapes(self, big_page):
+        tab, _ = big_page
+        open_page(tab, "Forecasts", "Forecasts")
+        tab.locator(".js-plotly-plot").first.wait_for()
+        no_exception_shown(tab)
+        assert metric_value(tab, "Customers") == f"{BIG_CUSTOMERS:,}"
+        # A heatmap of customers per cell is one image; the only dots are the ringed customer's.
+        chart = tab.locator(".js-plotly-plot").first
+        assert chart.locator("g.heatmaplayer image, g.heatmaplayer").count() >= 1
+        assert chart.locator("path.point").count() <= 3
+        tab.get_by_text(f"Customers 1 to 50 of {BIG_CUSTOMERS:,}").first.wait_for()
+        shoot(tab, "forecasts_60k")
+
+    def test_search_answers_with_a_page_of_matches(self, big_page):
+        tab, _ = big_page
+        box = tab.get_by_role("textbox", name="Find a customer")
+        box.fill("C-04711")
+        box.press("Enter")
+        tab.get_by_text(f"1 of {BIG_CUSTOMERS:,} customers match 'C-04711'").first.wait_for()
+        settle(tab)
+        tab.get_by_text("C-04711.", exact=False).first.wait_for()  # the customer explained beside the chart
+        box.fill("C-047")
+        box.press("Enter")
+        tab.get_by_text(f"100 of {BIG_CUSTOMERS:,} customers match 'C-047'").first.wait_for()
+        settle(tab)
+        no_exception_shown(tab)
+
+    def test_excel_of_every_customer_is_made_on_request(self, big_page, tmp_path):
+        tab, path = big_page
+        tab.get_by_role("button", name="Download all forecasts (Excel): prepare the file").click()
+        tab.get_by_role("button", name="Download all forecasts (Excel)", exact=True).wait_for()
+        settle(tab)
+        with tab.expect_download() as waiting:
+            tab.get_by_role("button", name="Download all forecasts (Excel)", exact=True).click()
+        target = tmp_path / waiting.value.suggested_filename
+        waiting.value.save_as(target)
+        sheet = openpyxl.load_workbook(target, read_only=True).active
+        rows = sheet.iter_rows(values_only=True)
+        assert list(next(rows)) == [HEADINGS[c] for c in forecasts_module.FORECAST_COLUMNS]
+        assert sum(1 for _ in rows) == BIG_CUSTOMERS

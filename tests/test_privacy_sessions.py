@@ -12,6 +12,9 @@ any request the page makes to another host is recorded and aborted, never sent.
 - Five sessions at once each upload the demo export and open every page; all finish within a
   stated time, and the server's memory afterwards stays within a stated margin of its level
   after a warm-up session.
+- With pseudonyms on, no download the page offers carries a real customer id: every download
+  button on every page and every table's own download (its toolbar), read back as CSV or
+  Excel; the charts' legends show the code too.
 
 The app keeps to this by drawing its page icon locally (an emoji, not a web font), listening on
 localhost only (which also stops Streamlit looking up the machine's outside address), building
@@ -23,6 +26,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import ctypes
+import io
 import ipaddress
 import os
 import re
@@ -603,3 +607,101 @@ class TestSeveralSessionsAtOnce:
         assert len(times) == SESSIONS
         assert elapsed < ALL_SESSIONS_BOUND_S, f"{SESSIONS} sessions took {elapsed:.0f} s ({times})"
         assert after - warm < MEMORY_MARGIN_MB, f"warm-up {warm:.0f} MB, after the load {after:.0f} MB"
+
+
+# ---------------------------------------------------------------------------
+# 4. Pseudonyms on: no download carries a real customer id
+
+
+# Every customer id of the demo export: "C-" and five digits, and the shop's test account.
+REAL_ID = re.compile(r"C-\d{5}|C-TEST")
+ALL_PAGES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Cohort outlook"]
+# The browser's save dialog (File System Access API) would wait for a person; without it the tables'
+# own download falls back to an ordinary download, which the test can read.
+NO_SAVE_DIALOG = "try { delete window.showSaveFilePicker; window.showSaveFilePicker = undefined; } catch (e) {}"
+
+
+def downloaded_text(download) -> str:
+    """A download's content as text: CSV as it is, an Excel workbook cell by cell."""
+    data = Path(download.path()).read_bytes()
+    if data[:4] == b"PK\x03\x04":
+        import openpyxl
+
+        sheet = openpyxl.load_workbook(io.BytesIO(data), read_only=True).active
+        return "\n".join(",".join("" if v is None else str(v) for v in row) for row in sheet.iter_rows(values_only=True))
+    return data.decode("utf-8-sig")
+
+
+def open_sections(tab) -> None:
+    closed = tab.locator('[data-testid="stExpander"] details:not([open]) > summary')
+    for _ in range(20):
+        if closed.count() == 0:
+            break
+        closed.first.click()
+        tab.wait_for_timeout(200)
+    support.settle(tab)
+
+
+def every_download(tab) -> list[tuple[str, str]]:
+    """(what, content) of every download button and every table's toolbar download on the page."""
+    found = []
+    buttons = tab.locator('[data-testid="stDownloadButton"] button')
+    for i in range(buttons.count()):
+        button = buttons.nth(i)
+        with tab.expect_download() as waiting:
+            button.click()
+        found.append((f"button '{button.inner_text().strip()}'", downloaded_text(waiting.value)))
+    tables = tab.locator('[data-testid="stDataFrame"]')
+    for i in range(tables.count()):
+        table = tables.nth(i)
+        table.evaluate("element => element.scrollIntoView({block: 'center'})")  # clear of the pinned header
+        table.hover()
+        save = table.locator('button[aria-label="Download as CSV"]')
+        if save.count() == 0:
+            save = tab.locator('[data-testid="stElementToolbar"]').get_by_role("button", name="Download as CSV")
+        with tab.expect_download() as waiting:
+            # A click event on the button itself: a narrow table's toolbar can sit under the pinned header.
+            save.first.dispatch_event("click")
+        found.append((f"table {i + 1}", downloaded_text(waiting.value)))
+        tab.mouse.move(0, 0)
+    return found
+
+
+class TestPseudonymsInTheBrowser:
+    def test_no_download_carries_a_real_id(self):
+        demo_ids = set(read_orders(DEMO).orders["customer"])
+        assert all(REAL_ID.fullmatch(c) for c in demo_ids)  # the pattern below sees every real id
+        checked, codes_seen, legends = [], 0, []
+        with support.running_app() as server, sync_playwright() as playwright:
+            browser = support.launch_chromium(playwright)
+            try:
+                context = browser.new_context(viewport={"width": 1400, "height": 1000}, accept_downloads=True)
+                context.add_init_script(NO_SAVE_DIALOG)
+                keep_on_loopback(context, [])
+                tab = context.new_page()
+                tab.set_default_timeout(120_000)
+                tab.goto(server.url)
+                support.settle(tab)
+                support.open_page(tab, "Forecasts")
+                tab.get_by_label("Secret phrase").first.fill("fernhollow-agency-2026")
+                tab.get_by_role("button", name="Turn pseudonyms on").first.click()
+                tab.get_by_text("Pseudonyms are on").first.wait_for()
+                support.settle(tab)
+                for title in ALL_PAGES:
+                    support.open_page(tab, title)
+                    open_sections(tab)
+                    support.no_exception_shown(tab)
+                    for what, text in every_download(tab):
+                        checked.append(f"{title}: {what}")
+                        leaked = REAL_ID.findall(text)
+                        assert leaked == [], f"{title}, {what}: real ids {leaked[:3]}"
+                        codes_seen += text.count("cust-")
+                    legends += tab.locator(".legendtext").evaluate_all("texts => texts.map(t => t.textContent)")
+            finally:
+                browser.close()
+        pages = {line.split(":")[0] for line in checked}
+        assert pages == set(ALL_PAGES), checked
+        assert sum("button" in line for line in checked) >= 6 and sum("table" in line for line in checked) >= 10
+        assert codes_seen > 1000  # the lists did hold customers, as codes
+        assert not any(REAL_ID.search(text) for text in legends)
+        assert any(text.startswith("cust-") for text in legends)  # the ringed customer, by code

@@ -591,11 +591,6 @@ class TestMessagesNameNoFlag:
     """Refusals name the option or column role (OrderDataError.role/option); the text never names a
     command-line flag: front ends add their own name for the control (OrderDataError.worded)."""
 
-    # Modules of other workstreams that still word a flag into their messages (to be converted there):
-    # the list can only shrink, since a module that no longer has one fails the test below.
-    NOT_YET = {"evaluation.py", "forecasts.py", "frequency.py", "outlook.py", "shrinkage.py", "variance.py"}
-    NOT_YET_FUNCTIONS = {("engines/dask_engine.py", "_cluster_pairs")}
-
     @staticmethod
     def flagged_strings(path: Path):
         """``(function, text)`` of every string constant in a module (not docstrings) with ``--word``."""
@@ -630,10 +625,6 @@ class TestMessagesNameNoFlag:
             if relative.startswith("cli/"):
                 continue
             found = self.flagged_strings(path)
-            if relative in self.NOT_YET:
-                assert found, f"{relative} has no flag left: take it off the list"
-                continue
-            found = [(f, t) for f, t in found if (relative, f) not in self.NOT_YET_FUNCTIONS]
             assert not found, f"{relative}: {found}"
 
 

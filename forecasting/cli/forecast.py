@@ -72,7 +72,7 @@ def run(args) -> int:
     if "auto_choice" in fit:
         print(f"chosen automatically: {fit['auto_choice']}")
     print(f"typical own-history weight: {table['own_history_weight'].median():.2f}; "
-          f"{few} customers marked low confidence (a single order or mostly the shop's pattern)")
+          f"{few} customers marked low confidence (their forecast rests mostly on similar customers)")
     print(f"shop-wide centre: {fit['centre']:.2f}")
     if fit.get("caution"):
         print(f"caution: {fit['caution']}")
