@@ -355,11 +355,11 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     ...     "order_date": pd.to_datetime(["2025-03-01", "2025-04-02", "2025-03-05",
     ...                                   "2025-05-01", "2025-06-01", "2025-06-03"])})
     >>> table = forecast_customers(customer_statistics(orders), method="mta", variance="log")
-    >>> table[["customer", "orders", "average_order_value", "low_confidence"]]
-      customer  orders  average_order_value  low_confidence
-    0     fern       2                 30.0           False
-    1      ivy       3                 72.0           False
-    2     moss       1                 15.0            True
+    >>> table[["customer", "orders", "average_order_value", "own_history_weight", "low_confidence"]].round(3)
+      customer  orders  average_order_value  own_history_weight  low_confidence
+    0     fern       2                 30.0               0.972           False
+    1      ivy       3                 72.0               0.981           False
+    2     moss       1                 15.0               0.945           False
     """
     if method != "auto":
         check_method(method)
