@@ -25,7 +25,7 @@ PAGES = [
             url_path="accuracy"),
     st.Page(HERE / "pages" / "value_tiers.py", title="Value tiers", icon=":material/stacked_bar_chart:",
             url_path="tiers"),
-    st.Page(HERE / "pages" / "cohort_outlook.py", title="Cohort outlook", icon=":material/timeline:",
+    st.Page(HERE / "pages" / "revenue_outlook.py", title="Revenue outlook", icon=":material/timeline:",
             url_path="outlook"),
 ]
 

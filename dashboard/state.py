@@ -26,6 +26,7 @@ import streamlit as st
 
 from forecasting import OrderDataError, csv_text, customer_statistics, excel_bytes, read_orders
 from forecasting import reading
+from forecasting.io import rules
 from forecasting.exports import HEADINGS, pseudonymise
 from forecasting.forecasts import MONEY_COLUMNS, forecasts_for_reading
 
@@ -61,9 +62,14 @@ class Dataset:
     data: bytes = field(repr=False, compare=False)
     demo: bool = False
     overrides: tuple = ()  # ((role, column or ""), ...) chosen by the user
+    # Reading options (the keyword arguments of forecasting.read_orders; empty or False: the reader decides).
     currency: str = ""
     date_order: str = ""
     decimal: str = ""
+    sheet: str = ""
+    header_row: int | None = None
+    keep_unpaid: bool = False
+    keep_implausible: bool = False
 
     @classmethod
     def from_bytes(cls, data: bytes, name: str, *, demo: bool = False) -> "Dataset":
@@ -71,7 +77,8 @@ class Dataset:
 
     @property
     def cache_key(self) -> tuple:
-        return (self.digest, self.name, self.overrides, self.currency, self.date_order, self.decimal)
+        return (self.digest, self.name, self.overrides, self.currency, self.date_order, self.decimal, self.sheet,
+                self.header_row, self.keep_unpaid, self.keep_implausible)
 
     @property
     def megabytes(self) -> float:
@@ -95,7 +102,20 @@ class Dataset:
             options["date_order"] = self.date_order
         if self.decimal:
             options["decimal"] = self.decimal
+        if self.sheet:
+            options["sheet"] = self.sheet
+        if self.header_row is not None:
+            options["header_row"] = int(self.header_row)
+        if self.keep_unpaid:
+            options["keep_unpaid"] = True
+        if self.keep_implausible:
+            options["keep_implausible"] = True
         return options
+
+    @property
+    def is_workbook(self) -> bool:
+        """An Excel workbook (.xlsx is a zip archive), the one kind of file with sheets."""
+        return self.data[:4] == b"PK\x03\x04"
 
 
 HASH_FUNCS = {Dataset: lambda dataset: dataset.cache_key}
@@ -180,11 +200,37 @@ def read_dataset(dataset: Dataset) -> Outcome:
 
 @cached()
 def file_cells(dataset: Dataset) -> pd.DataFrame | None:
-    """The file's cells as text (the reader's first step), or None when it is not a table."""
+    """The file's cells as text (the reader's first step), or None when it is not a table.
+
+    Read only when the file cannot be read as orders, to show its headings in the column boxes.
+    """
     try:
-        return reading.read_cells(dataset.data, file_name=dataset.name)
+        return reading.read_cells(dataset.data, file_name=dataset.name, sheet=dataset.sheet or None,
+                                  header_row=dataset.header_row)
     except OrderDataError:
         return None
+
+
+@cached()
+def workbook_sheets(dataset: Dataset) -> list[str]:
+    """The sheet names of an Excel workbook, in order ([] for other files).
+
+    Read from the workbook's table of contents (openpyxl's read-only mode opens no sheet).
+    """
+    if not dataset.is_workbook:
+        return []
+    import io
+
+    import openpyxl
+
+    try:
+        book = openpyxl.load_workbook(io.BytesIO(dataset.data), read_only=True)
+    except Exception:  # noqa: BLE001 - not a workbook openpyxl can open: the reader says why
+        return []
+    try:
+        return list(book.sheetnames)
+    finally:
+        book.close()
 
 
 @cached()
@@ -214,58 +260,55 @@ def guessed_mapping(dataset: Dataset) -> dict[str, str]:
     return {role: chosen.get(role, "") for role in ROLE_LABELS}
 
 
-# Bytes of a text export read for its currency first (a file read without a chosen currency holds one only).
-CURRENCY_SAMPLE_BYTES = 1 << 20
+# Rows left out whose currency says nothing about the rows used: another currency than the one kept,
+# and rows that did not split into the file's columns (they have no cells).
+_NOT_THE_SHOPS_CURRENCY = ("other_currency", "malformed_row")
 
 
 @cached()
 def currency_code(dataset: Dataset) -> str:
     """The currency of the amounts, as the data say ("" when nothing says).
 
-    The currency chosen under Reading options, else the code most used in the currency column,
-    else the currency marked beside most amounts. The reader refuses a file whose amounts are in
-    several currencies unless one is chosen, so in a file that was read they are all in one
-    currency: the cells of the first megabyte of a text export answer, and the whole file is
-    looked at only when those say nothing.
+    The reader keeps only the currency chosen under Reading options, when one is; otherwise it
+    refuses a file whose amounts are in several currencies, so the rows it used are all in one
+    currency. :class:`~forecasting.reading.ReadResult` does not carry that currency, so it is
+    read here, once, from what the result holds, with the reader's own rules
+    (:func:`forecasting.io.rules.currency_of_cell` for a currency column, the currency
+    :func:`forecasting.io.rules.read_amount` finds beside an amount otherwise): the cells of the
+    rows left out (a cancelled order is in the shop's currency too). The file is not read again.
+    A file whose every row was used and whose rows left out name no currency gives "": the page
+    then shows amounts without a sign, and *Show amounts in* sets one.
     """
     if dataset.currency:
-        return dataset.currency.strip().upper()
+        return rules.wanted_currency(dataset.currency) or ""
     outcome = read_dataset(dataset)
     if not outcome.ok:
         return ""
-    mapping = outcome.value.mapping
-    if len(dataset.data) > CURRENCY_SAMPLE_BYTES and dataset.data[:4] not in (b"PK\x03\x04", b"PAR1"):
-        head = dataset.data[:CURRENCY_SAMPLE_BYTES]
-        try:
-            code = _currency_in_cells(reading.read_cells(head[:head.rfind(b"\n") + 1], file_name=dataset.name),
-                                      mapping)
-        except OrderDataError:
-            code = ""
-        if code:
-            return code
-    cells = file_cells(dataset)
-    return "" if cells is None else _currency_in_cells(cells, mapping)
+    return currency_of_result(outcome.value)
 
 
-def _currency_in_cells(cells: pd.DataFrame, mapping) -> str:
-    if mapping.currency and mapping.currency in cells.columns:
-        codes = cells[mapping.currency].str.strip().str.upper()
-        codes = codes[codes.str.fullmatch(r"[A-Z]{3}").fillna(False).to_numpy(dtype=bool)]
-        if len(codes):
-            return str(codes.value_counts().index[0])
-    if mapping.value and mapping.value in cells.columns:
-        amounts = cells[mapping.value]
-        counts = {code: 0 for code in words.SYMBOLS}
-        written = amounts.str.upper().str.extract(r"\b([A-Z]{3})\b", expand=False).dropna()
-        for code, count in written.value_counts().items():
-            if code in counts:
-                counts[code] += int(count)
-        for mark, code in words.MARKS.items():
-            counts[code] += int(amounts.str.contains(mark, regex=False).fillna(False).sum())
-        best = max(counts, key=counts.get)
-        if counts[best] > 0:
-            return best
-    return ""
+def currency_of_result(result) -> str:
+    """The currency most of a read result's rows left out name (see :func:`currency_code`), or ""."""
+    import pyarrow as pa
+
+    from forecasting.io.backends import ArrowOps
+
+    carried = getattr(result, "currency", None)  # a reader that carries the rows' currency answers at once
+    if isinstance(carried, str) and carried:
+        return carried
+    mapping = result.mapping
+    rows = result.excluded[~result.excluded["reason_code"].isin(_NOT_THE_SHOPS_CURRENCY)]
+    column = mapping.currency if mapping.currency in rows.columns else mapping.value
+    if len(rows) == 0 or column not in rows.columns:
+        return ""
+    cells = pa.array(rows[column].fillna("").astype(str).tolist(), type=pa.string())
+    if column == mapping.currency:
+        codes = rules.currency_of_cell(ArrowOps(), cells)
+    else:
+        codes = rules.read_amount(ArrowOps(), cells)["currency"]
+    codes = pd.Series(ArrowOps().full_column(codes, len(rows)).to_pylist(), dtype=object).fillna("")
+    codes = codes[codes.str.fullmatch(r"[A-Z]{3}")]
+    return str(codes.value_counts().index[0]) if len(codes) else ""
 
 
 def money_symbol(dataset: Dataset) -> str:
@@ -385,20 +428,12 @@ def outlook(dataset: Dataset, method: str, variance: str, horizon: float, by: st
         return Outcome(error=problem_fields(problem))
 
 
-@cached(max_entries=24)
-def outlook_backtest(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
-    """The outlook made at an earlier date, against the revenue that came in after it."""
-    module = optional_module("outlook")
-    try:
-        return Outcome(module.backtest_outlook(read_dataset(dataset).value.orders, horizon=horizon, by=by,
-                                               method=method, variance=_outlook_variance(variance)))
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
-
-
 @cached(max_entries=12)
 def outlook_rolling(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
-    """The outlook made at several cut-offs over the last year, against all revenue that came in after each."""
+    """The outlook made at several cut-offs over the last year, against all revenue that came in after each.
+
+    Made when asked for (the Revenue outlook page's button): it is the outlook's work ten times over.
+    """
     module = optional_module("outlook")
     try:
         return Outcome(module.rolling_backtest(read_dataset(dataset).value.orders, horizon=horizon, by=by,
@@ -431,6 +466,15 @@ def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: st
     except OrderDataError as problem:
         return Outcome(error=problem_fields(problem))
     return Outcome({"customers": tiered, "summary": summary, "lists": lists, "rank": rank}, note=note)
+
+
+def customer_segments(dataset: Dataset) -> pd.Series | None:
+    """Each customer's segment (their latest order's, as the per-customer statistics carry it), or None
+    when the export has no segment column."""
+    stats = statistics(dataset)
+    if "segment" not in stats.columns:
+        return None
+    return stats["segment"].astype(str)
 
 
 # ---------------------------------------------------------------------------

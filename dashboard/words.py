@@ -11,16 +11,16 @@ import math
 
 from forecasting.options import METHOD_LABELS, METHOD_WORDS, VARIANCE_LABELS, VARIANCE_WORDS  # noqa: F401
 
+# How amounts are shown for each currency (which mark in a file means which currency is the reader's rule:
+# forecasting.io.rules.CURRENCY_SYMBOLS).
 SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "INR": "₹", "CAD": "CA$", "AUD": "A$",
            "CHF": "CHF ", "SEK": "kr ", "NOK": "kr ", "DKK": "kr "}
-# Marks written beside amounts, and the currency each stands for ("$" alone is taken as US dollars).
-MARKS = {"€": "EUR", "£": "GBP", "¥": "JPY", "₹": "INR", "$": "USD"}
 
 # ---------------------------------------------------------------------------
 # The controls on the pages, by the column role or library option a message concerns
 
 PAGE_TITLES = {"load": "Load orders", "forecasts": "Forecasts", "accuracy": "Accuracy check",
-               "tiers": "Value tiers", "outlook": "Cohort outlook"}
+               "tiers": "Value tiers", "outlook": "Revenue outlook"}
 
 # The words shown for each column role (the column boxes on Load orders).
 ROLE_LABELS = {
@@ -37,19 +37,56 @@ ROLE_HELP = {
     "date": "When the order was placed.",
     "value": "What the order (or order line) was worth. Lines with the same order number are added up.",
     "order_id": "Lines sharing an order number are added up into one order. Without it, each row is one order.",
-    "status": "Used to leave out test and cancelled orders and to net refunds.",
+    "status": "Used to leave out test, cancelled and unpaid orders and to net refunds.",
     "currency": "Needed when the amounts are not all in one currency.",
-    "segment": "An optional grouping, such as the sales channel; the accuracy check is broken down by it.",
+    "segment": "An optional grouping, such as the sales channel; the accuracy check is broken down by it, and the "
+               "tier lists can be narrowed to one.",
 }
 
-# Library option -> (page, where on the page the control is).
+# The label of the control for each library option (the pages draw their widgets with these words).
+READING_OPTIONS = "Reading options"
+CONTROL_LABELS = {
+    "currency": "Keep only this currency",
+    "date_order": "Dates are written",
+    "decimal": "Decimal mark",
+    "sheet": "Sheet",
+    "header_row": "Header is on row",
+    "keep_unpaid": "Keep unpaid and unfinished orders",
+    "keep_implausible": "Keep implausible amounts and dates",
+    "method": "Method",
+    "variance": "Spread model",
+    "horizon": "Period ahead",
+    "by": "Group customers by",
+    "rank": "Rank customers by",
+    "shares": "Tiers",
+}
+# One line under each reading option's control.
+CONTROL_HELP = {
+    "header_row": "The spreadsheet row that holds the column headings, when title lines sit above them. "
+                  "Left empty, it is found by itself.",
+    "keep_unpaid": "Orders whose status says pending, failed, draft or on hold are left out, as never paid; "
+                   "tick to count them as orders.",
+    "keep_implausible": "An amount a thousand times the shop's usual order or more, or a date in the future or "
+                        "before 1990, is taken for a typo and left out; tick to use them as they are.",
+    "sheet": "The sheet of the workbook that holds the orders (the first, unless you choose another).",
+}
+
+# Library option -> (pages with the control, where on the page the control is).
+_UNDER_READING = f"under {READING_OPTIONS}"
 OPTION_CONTROLS = {
-    "currency": ("load", "'Keep only this currency' under Reading options"),
-    "date_order": ("load", "'Dates are written' under Reading options"),
-    "decimal": ("load", "'Decimal mark' under Reading options"),
-    "method": ("forecasts", "the 'Method' box under How the forecasts are made"),
-    "variance": ("forecasts", "the 'Spread model' box under How the forecasts are made"),
-    "horizon": ("tiers", "the 'Period ahead' box"),
+    "currency": (("load",), f"'{CONTROL_LABELS['currency']}' {_UNDER_READING}"),
+    "date_order": (("load",), f"'{CONTROL_LABELS['date_order']}' {_UNDER_READING}"),
+    "decimal": (("load",), f"'{CONTROL_LABELS['decimal']}' {_UNDER_READING}"),
+    "sheet": (("load",), f"the '{CONTROL_LABELS['sheet']}' box {_UNDER_READING}"),
+    "header_row": (("load",), f"'{CONTROL_LABELS['header_row']}' {_UNDER_READING}"),
+    "keep_unpaid": (("load",), f"the '{CONTROL_LABELS['keep_unpaid']}' check box {_UNDER_READING}"),
+    "keep_implausible": (("load",), f"the '{CONTROL_LABELS['keep_implausible']}' check box {_UNDER_READING}"),
+    "method": (("forecasts",), f"the '{CONTROL_LABELS['method']}' box under How the forecasts are made"),
+    "variance": (("forecasts",), f"the '{CONTROL_LABELS['variance']}' box under How the forecasts are made"),
+    "horizon": (("tiers", "outlook"), f"the '{CONTROL_LABELS['horizon']}' box"),
+    "by": (("outlook",), f"the '{CONTROL_LABELS['by']}' box"),
+    "rank": (("tiers",), f"the '{CONTROL_LABELS['rank']}' box"),
+    "shares": (("tiers",), f"the '{CONTROL_LABELS['shares']}' box"),
 }
 
 
@@ -68,13 +105,15 @@ def control_name(role: str | None, option: str | None, *, here: str | None = Non
     "the 'Method' box under How the forecasts are made, or the 'Segment' box on the Load orders page"
     >>> control_name(None, "decimal", here="forecasts")
     "'Decimal mark' under Reading options on the Load orders page"
+    >>> control_name(None, "horizon", here="outlook")
+    "the 'Period ahead' box"
     >>> control_name(None, "engine") is None
     True
     """
     names = []
     if option in OPTION_CONTROLS:
-        page, where = OPTION_CONTROLS[option]
-        names.append(where if page == here else f"{where} on the {PAGE_TITLES[page]} page")
+        pages, where = OPTION_CONTROLS[option]
+        names.append(where if here in pages else f"{where} on the {PAGE_TITLES[pages[0]]} page")
     if role in ROLE_LABELS:
         where = f"the '{ROLE_LABELS[role]}' box"
         names.append(f"{where} under Which column is which" if here == "load"
@@ -247,6 +286,8 @@ def forecast_sentence(*, orders: int, average: float, forecast: float, own_weigh
     "With 1 order averaging $40.00, the forecast rests on this customer's own orders alone: $40.00."
     >>> forecast_sentence(orders=3, average=40, forecast=38, own_weight=0.6, centre=52.0, log_scale=True)
     'With 3 orders averaging $40.00, the forecast leans 40% on what similar customers spend; the weighing is done on proportions rather than on money amounts, so it comes to $38.00.'
+    >>> forecast_sentence(orders=2, average=1467, forecast=590, own_weight=0.82, centre=59.98, log_scale=True)
+    'With 2 orders averaging $1,467, the forecast leans 18% on what similar customers spend ($59.98), so it is $590: the weighing is done on proportions rather than on money amounts, so one large order moves it less than its amount.'
     """
     start = f"With {orders_word(orders)} averaging {money(average, symbol)}"
     if own_weight >= 0.995 or centre is None or not math.isfinite(centre):
@@ -257,6 +298,9 @@ def forecast_sentence(*, orders: int, average: float, forecast: float, own_weigh
         body = f"{start}, the forecast rests entirely on what similar customers spend{similar}"
     else:
         body = f"{start}, the forecast leans {1.0 - own_weight:.0%} on what similar customers spend{similar}"
+    if between and log_scale:
+        return (f"{body}, so it is {money(forecast, symbol)}: the weighing is done on proportions rather than on "
+                "money amounts, so one large order moves it less than its amount.")
     if between:
         return f"{body}, so it is {money(forecast, symbol)}."
     if log_scale:
@@ -332,3 +376,111 @@ FIT_WORDS = {
     "iterations": "Refits needed for the proportional spread model to settle.",
     "converged": "Whether those refits settled.",
 }
+
+
+# ---------------------------------------------------------------------------
+# The revenue outlook in a shop owner's words (model names only in the details section)
+
+MONTHS = ("January", "February", "March", "April", "May", "June", "July", "August", "September", "October",
+          "November", "December")
+
+# One line on each model and number the details section names.
+OUTLOOK_WORDS = {
+    "BG/NBD": "each customer orders at a steady pace of their own while active, and may stop for good only "
+              "right after a repeat order (a customer who ordered once counts as still active)",
+    "MBG/NBD": "each customer orders at a steady pace of their own while active, and may stop for good right "
+               "after any order, the first included (a customer who ordered once may already be gone)",
+    "likelihood": "how probable a model makes the orders the shop actually had; the higher, the better the "
+                  "model describes them",
+    "month index": "how busy each month is against an average month (1.5 means half as busy again), used only "
+                   "when a likelihood-ratio test finds the pattern beyond chance (p below 0.05)",
+    "r": "How much the pace of ordering differs between customers (the shape of its gamma distribution; "
+         "larger means more alike).",
+    "alpha_days": "The scale of that pace in days: r / alpha_days is the average active customer's orders per day.",
+    "a": "With b: how the chance of stopping for good after an order differs between customers (a beta "
+         "distribution); a / (a + b) is its average.",
+    "b": "See a.",
+}
+
+
+# The seasonal setting a check at a cut-off used (a details table's column).
+SEASON_LABELS = {"month": "by month of year", "none": "even through the year"}
+
+
+def return_sentence(orders_per_year: float, chance_stop: float, model: str) -> str:
+    """How often customers come back and how many stop, in shop words (``model``: the frequency model's code).
+
+    Examples
+    --------
+    >>> return_sentence(7.97, 0.414, "mbg-nbd")
+    'An active customer orders about 8.0 times a year, and after each order, the first one included, about 41% of customers stop for good.'
+    >>> return_sentence(3.0, 0.2, "bg-nbd")
+    'An active customer orders about 3.0 times a year, and after each repeat order about 20% of customers stop for good.'
+    """
+    after = "after each order, the first one included," if model == "mbg-nbd" else "after each repeat order"
+    return (f"An active customer orders about {orders_per_year:.1f} times a year, and {after} about "
+            f"{chance_stop:.0%} of customers stop for good.")
+
+
+def busiest_and_quietest(index) -> tuple[str, float, str, float]:
+    """The busiest and the quietest month of a twelve-month index, with their values."""
+    values = [float(v) for v in index]
+    high = max(range(12), key=values.__getitem__)
+    low = min(range(12), key=values.__getitem__)
+    return MONTHS[high], values[high], MONTHS[low], values[low]
+
+
+def new_customers_sentence(expected: float, horizon: int, *, terms=(), tests=None, growth_per_year: float = 0.0,
+                           month_index=None) -> str:
+    """How many new customers to expect, and whether their numbers grow or follow the time of year.
+
+    ``terms`` and ``tests`` are the arrival fit's (which patterns were kept, which were tried).
+
+    Examples
+    --------
+    >>> new_customers_sentence(485.5, 180, terms=("month",), tests={"trend": {}, "month": {}},
+    ...                        month_index=[0.6, 0.7, 1.3, 1.8, 1.3, 1.0, 0.8, 0.8, 1.0, 1.1, 0.8, 0.9])
+    'About 486 new customers are expected in the next 180 days, most of them in April and fewest in January; their numbers show no clear growth or decline.'
+    >>> new_customers_sentence(40.0, 90, terms=("trend",), tests={"trend": {}, "month": {}}, growth_per_year=0.5)
+    'About 40 new customers are expected in the next 90 days; their numbers are growing by about 50% a year.'
+    """
+    tests = tests or {}
+    sentence = f"About {expected:,.0f} new customers are expected in the next {horizon} days"
+    if "month" in terms and month_index is not None:
+        busiest, _, quietest, _ = busiest_and_quietest(month_index)
+        sentence += f", most of them in {busiest} and fewest in {quietest}"
+    if "trend" in terms:
+        change = "growing" if growth_per_year >= 0 else "shrinking"
+        sentence += f"; their numbers are {change} by about {abs(100 * growth_per_year):.0f}% a year"
+    elif "trend" in tests:
+        sentence += "; their numbers show no clear growth or decline"
+    return sentence + "."
+
+
+def season_sentence(seasons: str, index=None, *, test=None) -> str:
+    """Whether repeat orders follow the time of year, in shop words.
+
+    ``seasons`` is the repeat-order model's (``"month"`` when a month index is used) and ``test``
+    its likelihood-ratio test of the index (empty when none was tried: that needs a year of orders).
+
+    Examples
+    --------
+    >>> season_sentence("month", [0.56, 0.67, 1.31, 1.68, 1.42, 1.06, 0.78, 0.81, 1.02, 1.03, 0.76, 0.88])
+    'Repeat orders follow the time of year: busiest in April (1.7 times an average month), quietest in January (0.56 times).'
+    >>> season_sentence("none", test={"p_value": 0.4, "level": 0.05})
+    'Repeat orders are taken as even through the year: the differences between months are within chance.'
+    >>> season_sentence("none", test={"p_value": 0.001, "level": 0.05})
+    'Repeat orders are taken as even through the year: a pattern by month could not be pinned down on these orders.'
+    >>> season_sentence("none")
+    'Repeat orders are taken as even through the year: telling the seasons apart needs a full year of orders.'
+    """
+    start = "Repeat orders are taken as even through the year"
+    if seasons == "month" and index is not None:
+        busiest, high, quietest, low = busiest_and_quietest(index)
+        return (f"Repeat orders follow the time of year: busiest in {busiest} ({high:.2g} times an average month), "
+                f"quietest in {quietest} ({low:.2g} times).")
+    if not test:
+        return f"{start}: telling the seasons apart needs a full year of orders."
+    if float(test.get("p_value", 1.0)) >= float(test.get("level", 0.05)):
+        return f"{start}: the differences between months are within chance."
+    return f"{start}: a pattern by month could not be pinned down on these orders."

@@ -239,12 +239,14 @@ with st.expander("How the forecasts are made: methods, spread models and fitted 
                "your own orders; change them only to compare.")
     left, right = st.columns(2)
     with left:
-        chosen_method = st.selectbox("Method", methods, **state.remember("method", "auto", methods),
+        chosen_method = st.selectbox(words.CONTROL_LABELS["method"], methods,
+                                     **state.remember("method", "auto", methods),
                                      format_func=words.method_label,
                                      help="How each customer's average is combined with what other customers spend.")
         st.caption(words.METHOD_WORDS.get(chosen_method, ""))
     with right:
-        chosen_variance = st.selectbox("Spread model", variances, **state.remember("variance", "auto", variances),
+        chosen_variance = st.selectbox(words.CONTROL_LABELS["variance"], variances,
+                                       **state.remember("variance", "auto", variances),
                                        format_func=words.variance_label,
                                        help="How much one order's value varies around the customer's usual spend. "
                                             "It decides how far a customer's own average can be trusted.")

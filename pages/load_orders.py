@@ -11,7 +11,8 @@ import streamlit as st
 from dashboard import layout, state, words
 from forecasting import csv_text
 from forecasting.exports import HEADINGS
-from forecasting.reading import REASONS
+from forecasting.io import rules
+from forecasting.reading import NOTES, REASONS
 
 HERE = "load"
 
@@ -48,11 +49,9 @@ upload = st.file_uploader(
 
 
 def read_with_progress(dataset: state.Dataset, label: str) -> None:
-    """Read a file (named steps while it takes time), then use it or keep it aside with its problem."""
-    work = layout.Work(2)
-    read = work.step(label, state.read_dataset, dataset)
-    if read.ok:
-        work.step("Finding the currency of the amounts", state.currency_code, dataset)
+    """Read a file (a named step while it takes time), then use it or keep it aside with its problem."""
+    work = layout.Work(1)
+    work.step(label, state.read_dataset, dataset)
     work.finish()
     state.offer(dataset)
 
@@ -131,35 +130,57 @@ if edited is not None:
                 label, options, key=key, format_func=lambda c, empty=empty: c if c else empty,
                 on_change=_mapping_changed, args=(role,), help=state.ROLE_HELP[role],
             )
-    with st.expander("Reading options: currency, dates and decimal mark", expanded=pending is not None):
-        st.caption("Usually worked out from the file. Set them when a message above asks you to.")
+    pending_error = state.read_dataset(pending).error if pending is not None else None
+    with st.expander(f"{words.READING_OPTIONS}: currency, dates, decimal mark, header row, which orders to keep",
+                     expanded=bool(pending_error and pending_error.get("option"))):
+        st.caption("Usually worked out from the file. Set them when a message above asks you to; the orders are "
+                   "read again straight away.")
+        label = words.CONTROL_LABELS
         first, second, third = st.columns(3)
         st.session_state["opt_currency"] = edited.currency
-        first.text_input("Keep only this currency", key="opt_currency", placeholder="for example EUR",
+        first.text_input(label["currency"], key="opt_currency", placeholder="for example EUR",
                          on_change=_option_changed, args=("currency",),
                          help="When one file mixes currencies, choose one (a code like USD, EUR or GBP); "
                               "rows in other currencies are left out and listed below.")
         st.session_state["opt_date_order"] = edited.date_order
-        second.selectbox("Dates are written", ["", "day-first", "month-first"], key="opt_date_order",
+        second.selectbox(label["date_order"], ["", "day-first", "month-first"], key="opt_date_order",
                          format_func={"": "work it out from the dates", "day-first": "day first (31/12/2025)",
                                       "month-first": "month first (12/31/2025)"}.get,
                          on_change=_option_changed, args=("date_order",))
         st.session_state["opt_decimal"] = edited.decimal
-        third.selectbox("Decimal mark", ["", ".", ","], key="opt_decimal",
+        third.selectbox(label["decimal"], ["", ".", ","], key="opt_decimal",
                         format_func={"": "work it out from the amounts", ".": "point (1,234.50)",
                                      ",": "comma (1.234,50)"}.get,
                         on_change=_option_changed, args=("decimal",))
+        st.session_state["opt_header_row"] = edited.header_row
+        first.number_input(label["header_row"], key="opt_header_row", min_value=1, step=1, value=None,
+                           placeholder="found by itself", on_change=_option_changed, args=("header_row",),
+                           help=words.CONTROL_HELP["header_row"])
+        sheets = state.workbook_sheets(edited)
+        if len(sheets) > 1 or edited.sheet:
+            choices = [""] + sheets[1:] + ([edited.sheet] if edited.sheet and edited.sheet not in sheets[1:] else [])
+            st.session_state["opt_sheet"] = edited.sheet
+            second.selectbox(label["sheet"], choices, key="opt_sheet", on_change=_option_changed, args=("sheet",),
+                             format_func=lambda name: name if name else f"the first sheet ({sheets[0]})"
+                             if sheets else "the first sheet", help=words.CONTROL_HELP["sheet"])
+        st.session_state["opt_keep_unpaid"] = edited.keep_unpaid
+        st.checkbox(label["keep_unpaid"], key="opt_keep_unpaid", on_change=_option_changed, args=("keep_unpaid",))
+        st.caption(words.CONTROL_HELP["keep_unpaid"])
+        st.session_state["opt_keep_implausible"] = edited.keep_implausible
+        st.checkbox(label["keep_implausible"], key="opt_keep_implausible", on_change=_option_changed,
+                    args=("keep_implausible",))
+        st.caption(words.CONTROL_HELP["keep_implausible"])
         if dataset is not None and pending is None:
             found = state.currency_code(dataset)
             codes = [""] + list(words.SYMBOLS)
-            first.selectbox(
+            third.selectbox(
                 "Show amounts in", codes, **state.remember("shown_currency", "", codes),
                 format_func=lambda code, found=found: (f"the file's currency ({found})" if found
-                                                       else "no currency sign (none found in the file)")
+                                                       else "no currency sign (choose one here)")
                 if not code else f"{code} ({words.currency_symbol(code).strip()})",
                 help="Only how amounts are shown on these pages and in the Excel downloads; the numbers stay "
-                     "the same. The file's currency comes from its currency column, or from the marks written "
-                     "beside the amounts.")
+                     "the same. The file's currency is the one kept above, else the one its currency column or "
+                     "the marks beside its amounts name.")
 
 # ---------------------------------------------------------------------------
 # The row account of the data in use
@@ -176,8 +197,27 @@ if result is not None:
     cells[2].metric("Rows left out", f"{audit['rows_excluded']:,}")
     cells[3].metric("Orders", f"{audit['orders']:,}", help="Lines with the same order number count as one order.")
     cells[4].metric("Customers", f"{audit['customers']:,}")
+    implausible = {code: rows for code, rows in audit["excluded"].items() if code.startswith("implausible")}
+    if implausible:
+        said = "; ".join(f"{rows:,} {'row' if rows == 1 else 'rows'}: {REASONS[code]}"
+                         for code, rows in implausible.items())
+        st.warning(f"**Check these rows first**, listed first below ({said}). They look like typing mistakes, so "
+                   f"they are left out; if they are real, tick '{words.CONTROL_LABELS['keep_implausible']}' under "
+                   f"{words.READING_OPTIONS}.", icon=":material/priority_high:")
+    status_note = rules.unrecognised_status_note(result.unrecognised_statuses)
     for note in audit["notes"]:
-        st.markdown(f"- {note}")
+        if note not in status_note:  # the statuses have their own table below
+            st.markdown(f"- {note}")
+    if result.unrecognised_statuses:
+        st.markdown(f"**Statuses the reader does not know** (column '{result.mapping.status}'): these rows were "
+                    "used as paid orders. If one of them means unpaid, cancelled or refunded, change it in the "
+                    "export and upload it again.")
+        statuses = pd.DataFrame({"Status as written": list(result.unrecognised_statuses),
+                                 "Rows": list(result.unrecognised_statuses.values()),
+                                 "What was done": "used as paid orders"})
+        st.dataframe(statuses, hide_index=True, width="content", key="unknown_statuses",
+                     height=layout.table_height(len(statuses)),
+                     column_config={"Rows": st.column_config.NumberColumn(format="localized")})
 
     if audit["rows_excluded"]:
         reasons = pd.DataFrame(
@@ -210,6 +250,25 @@ if result is not None:
         )
     else:
         st.success("Every row was used.")
+    if audit["noted"]:
+        noted = result.noted
+        st.markdown(f"**Rows used with a note** ({noted['row'].nunique():,} rows): used as orders, with something "
+                    "you may want to know.")
+        kinds = pd.DataFrame({"What was noted": [NOTES[code] for code in audit["noted"]],
+                              "Rows": list(audit["noted"].values())})
+        st.dataframe(kinds, hide_index=True, width="content", key="noted_kinds",
+                     height=layout.table_height(len(kinds)),
+                     column_config={"Rows": st.column_config.NumberColumn(format="localized")})
+        with st.expander(f"See the {len(noted):,} notes row by row"):
+            st.dataframe(noted.drop(columns=["note_code"]).head(1000), hide_index=True, key="noted_rows",
+                         height=layout.table_height(min(len(noted), 1000), most=320),
+                         column_config={"row": st.column_config.NumberColumn(HEADINGS["row"], format="%d"),
+                                        "note": st.column_config.TextColumn("Note", width="large")})
+            if len(noted) > 1000:
+                st.caption("The first 1,000 are shown; the download has them all.")
+            st.download_button("Download the notes (CSV)", data=partial(csv_text, noted),
+                               file_name=f"{Path(dataset.name).stem}_rows_noted.csv", mime="text/csv",
+                               key="download_noted", on_click="ignore", icon=":material/download:")
     with st.expander("See the cleaned orders"):
         shown = state.shown_ids(result.orders.head(1000), dataset).rename(columns=HEADINGS)
         symbol = state.money_symbol(dataset)

@@ -3,14 +3,16 @@
 from __future__ import annotations
 
 import math
+import re
 from functools import partial
 from pathlib import Path
 
 import streamlit as st
 
-from dashboard import charts, layout, state
+from dashboard import charts, layout, state, words
 from forecasting import csv_text
 from forecasting.exports import HEADINGS, pseudonymise
+from forecasting.options import LOW_CONFIDENCE_WEIGHT
 
 HERE = "tiers"
 
@@ -39,14 +41,14 @@ SPLITS = {(0.1, 0.3): "top 10%, next 30%, the rest", (0.2, 0.3): "top 20%, next 
 RANKS = {"revenue": "projected revenue in the period ahead", "value": "expected next order"}
 
 first, second, third = st.columns(3)
-horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 180, HORIZONS),
+horizon = first.selectbox(words.CONTROL_LABELS["horizon"], HORIZONS, **state.remember("horizon", 180, HORIZONS),
                           format_func=lambda days: f"next {days} days",
                           help="How far ahead revenue is projected (from the last order date in the file).")
-rank = second.selectbox("Rank customers by", list(RANKS), **state.remember("tier_rank", "revenue", list(RANKS)),
+rank = second.selectbox(words.CONTROL_LABELS["rank"], list(RANKS), **state.remember("tier_rank", "revenue", list(RANKS)),
                         format_func=RANKS.get,
                         help="Projected revenue counts how often the customer is likely to order as well as "
                              "how much; the expected next order looks only at how much.")
-split = third.selectbox("Tiers", list(SPLITS), **state.remember("tier_split", (0.1, 0.3), list(SPLITS)),
+split = third.selectbox(words.CONTROL_LABELS["shares"], list(SPLITS), **state.remember("tier_split", (0.1, 0.3), list(SPLITS)),
                         format_func=SPLITS.get)
 st.caption("The expected next orders are the Forecasts page's (how they are made is set there).")
 
@@ -88,8 +90,9 @@ st.dataframe(
             f"{HEADINGS['own_history_weight']} (average)", format="percent", min_value=0.0, max_value=1.0,
             help="Average over the tier. Low means the tier's forecasts rest mostly on similar customers."),
         "mostly_shop_pattern": st.column_config.NumberColumn(
-            "Mostly shop pattern", format="%d",
-            help="Customers whose forecast rests more on similar customers than on their own orders."),
+            f"{HEADINGS['low_confidence']} (customers)", format="%d",
+            help=f"Customers whose forecast is of low confidence: less than {LOW_CONFIDENCE_WEIGHT:.0%} of it comes "
+                 "from their own orders, the rest from similar customers (the Forecasts page's rule)."),
     },
 )
 left, right = st.columns([2, 3])
@@ -105,18 +108,35 @@ with right:
 
 st.subheader("Customers in a tier")
 names = list(summary["tier"])
-tier = st.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
+segments = state.customer_segments(dataset)
+if segments is None:
+    tier = st.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
+    segment = ""
+else:
+    left, right = st.columns(2)
+    tier = left.selectbox("Tier", names, **state.remember("tier_shown", names[0], names))
+    choices = [""] + sorted(set(segments))
+    segment = right.selectbox("Segment", choices, **state.remember("tier_segment", "", choices),
+                              format_func=lambda s: s if s else "every segment",
+                              help="Only the customers of one segment (their latest order's), in the table and in "
+                                   "the lists below. The tiers stay those of the whole shop.")
+    tiered = tiered.assign(segment=tiered["customer"].astype(str).map(segments).fillna("").to_numpy())
 members = tiered[tiered["tier"] == tier]
+if segment:
+    members = members[members["segment"] == segment]
+    in_segment = int((tiered["segment"] == segment).sum())
+    st.caption(f"{len(members):,} of the {in_segment:,} customers of segment {segment} are in the {tier}.")
 members = members.assign(active_pct=100 * members["chance_active"])
 SHOWN_MEMBERS = 1000  # a big shop's tier can hold tens of thousands: the list below has them all
 st.dataframe(
     state.shown_ids(members.head(SHOWN_MEMBERS), dataset), hide_index=True, key="tier_members",
     height=layout.table_height(len(members), most=380),
-    column_order=["rank", "customer", "orders", "last_order", "active_pct", "expected_next_order", "expected_orders",
-                  "projected_revenue", "projected_low", "projected_high", "own_history_weight", "cohort"],
+    column_order=["rank", "customer", "segment", "orders", "last_order", "active_pct", "expected_next_order",
+                  "expected_orders", "projected_revenue", "own_history_weight", "cohort"],
     column_config={
         "rank": st.column_config.NumberColumn("Rank", format="%d"),
         "customer": st.column_config.TextColumn("Customer"),
+        "segment": st.column_config.TextColumn("Segment"),
         "orders": st.column_config.NumberColumn("Orders so far", format="%d"),
         "last_order": st.column_config.DatetimeColumn("Last order", format="D MMM YYYY"),
         "expected_next_order": st.column_config.NumberColumn("Expected next order", format=money_format),
@@ -124,16 +144,17 @@ st.dataframe(
         "active_pct": st.column_config.NumberColumn(
             "Still shopping here", format="%.0f%%",
             help="The chance this customer has not stopped for good, from how often and how recently they ordered."),
-        "projected_revenue": st.column_config.NumberColumn("Projected revenue", format=money_format),
-        "projected_low": st.column_config.NumberColumn("Projected from", format=money_format),
-        "projected_high": st.column_config.NumberColumn("Projected to", format=money_format),
+        "projected_revenue": st.column_config.NumberColumn(
+            "Projected revenue", format=money_format,
+            help="Orders expected in the period times the expected next order; the lists below give its range."),
         "own_history_weight": st.column_config.ProgressColumn(
             HEADINGS["own_history_weight"], format="percent", min_value=0.0, max_value=1.0),
         "cohort": st.column_config.TextColumn("First ordered"),
     },
 )
 if len(members) > SHOWN_MEMBERS:
-    st.caption(f"The first {SHOWN_MEMBERS:,} of the tier's {len(members):,} customers; the lists below have them all.")
+    st.caption(f"The first {SHOWN_MEMBERS:,} of the {len(members):,} customers shown; the lists below have them "
+               "all.")
 
 
 def list_csv(table, salt: str | None) -> str:
@@ -145,6 +166,11 @@ st.subheader("Download the tier lists")
 layout.sharing_controls(HERE)
 salt = state.pseudonym_salt()
 stem = Path(dataset.name).stem
+if segment:
+    wanted = set(tiered.loc[tiered["segment"] == segment, "customer"].astype(str))
+    lists = {name: table[table["customer"].astype(str).isin(wanted)] for name, table in lists.items()}
+    stem = f"{stem}_{re.sub(r'[^a-z0-9]+', '-', segment.lower()).strip('-') or 'segment'}"
+    st.caption(f"The lists hold the customers of segment {segment} only.")
 buttons = st.columns(len(lists))
 for column, (name, table) in zip(buttons, lists.items()):
     # Made when clicked (Streamlit runs the function then), not on every run of the page.

@@ -26,6 +26,7 @@ from forecasting import evaluation as evaluation_module
 from forecasting import forecasts as forecasts_module
 from forecasting import outlook as outlook_module
 from forecasting.exports import HEADINGS, pseudonymise
+from forecasting.reading import NOTES, REASONS
 from forecasting.options import low_confidence
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -33,7 +34,15 @@ APP = ROOT / "app.py"
 DEMO = ROOT / "demo_data" / "plant_shop_orders.csv"
 MESSY = ROOT / "demo_data" / "messy_orders.csv"
 PAGES = ["pages/load_orders.py", "pages/forecasts.py", "pages/accuracy.py", "pages/value_tiers.py",
-         "pages/cohort_outlook.py"]
+         "pages/revenue_outlook.py"]
+CORPUS = ROOT / "tests" / "corpus" / "exports"
+PAGE_FILES = {"load": "load_orders.py", "forecasts": "forecasts.py", "accuracy": "accuracy.py",
+              "tiers": "value_tiers.py", "outlook": "revenue_outlook.py"}
+# The widget of each library option (its key on the page).
+WIDGET_KEYS = {"currency": "opt_currency", "date_order": "opt_date_order", "decimal": "opt_decimal",
+               "header_row": "opt_header_row", "keep_unpaid": "opt_keep_unpaid",
+               "keep_implausible": "opt_keep_implausible", "method": "method", "variance": "variance",
+               "horizon": "horizon", "by": "cohort_by", "rank": "tier_rank", "shares": "tier_split"}
 # A command-line flag: two dashes and a letter (as in --decimal); plain dashes in prose do not match.
 FLAG = re.compile(r"--[a-z]")
 SECRET = "fernhollow-secret"
@@ -66,6 +75,15 @@ def upload(at: AppTest, name: str, data: bytes) -> AppTest:
     at.file_uploader(key="upload").set_value((name, data, "text/csv")).run()
     assert not at.exception, at.exception
     return at
+
+
+def widget_label(at: AppTest, key: str) -> str:
+    """The label of the widget with this key, whatever its kind."""
+    for kind in ("selectbox", "text_input", "number_input", "checkbox"):
+        for widget in at.get(kind):
+            if widget.key == key:
+                return widget.label
+    raise AssertionError(f"no widget with the key {key!r}")
 
 
 def errors(at: AppTest) -> list[str]:
@@ -226,10 +244,12 @@ class TestLoadOrders:
         assert metric(at, "Customers") == audit["customers"]
 
     def test_currency_comes_from_the_data_not_the_bytes(self, demo):
-        # A pound-sterling workbook: the currency column says GBP, and no amount carries a mark.
+        # A pound-sterling workbook: the currency column says GBP (one cancelled order among the rows), and no
+        # amount carries a mark.
         orders = demo[0].orders.head(200)
         table = pd.DataFrame({"Customer": orders["customer"], "Order Date": orders["order_date"],
-                              "Total": orders["order_value"], "Currency": "GBP"})
+                              "Total": orders["order_value"], "Currency": "GBP",
+                              "Status": ["cancelled"] + ["paid"] * (len(orders) - 1)})
         buffer = io.BytesIO()
         table.to_excel(buffer, index=False)
         at = upload(new_app(), "pounds.xlsx", buffer.getvalue())
@@ -248,13 +268,26 @@ class TestLoadOrders:
         sentence = next(m.value for m in at.markdown if m.value.startswith("**") and "averaging" in m.value)
         assert "averaging £" in sentence
 
-    def test_currency_column_of_a_big_text_export_read_from_its_first_cells(self, demo):
-        # Past the first megabyte the whole file is read only when the first cells say nothing.
-        lines = ["customer,date,amount,currency"] + [f"K{i % 900},2025-01-{1 + i % 28:02d},{10 + i % 50},CHF"
-                                                     for i in range(60_000)]
-        data = ("\n".join(lines) + "\n").encode()
-        assert len(data) > state.CURRENCY_SAMPLE_BYTES
-        assert state.currency_code(state.Dataset.from_bytes(data, "big.csv")) == "CHF"
+    @pytest.mark.parametrize("kept, code", [("EUR", "EUR"), ("C$", "CAD"), ("gbp", "GBP")])
+    def test_currency_kept_is_the_currency_shown(self, kept, code):
+        # forecasting.io.rules.CURRENCY_SYMBOLS: "C$" is the Canadian dollar, not the US one.
+        dataset = state.Dataset.from_bytes(b"customer,date,amount\nA,2025-01-01,10\n", "f.csv")
+        assert state.currency_code(dataset.with_options(currency=kept)) == code
+
+    def test_currency_is_found_without_reading_the_file_again(self, monkeypatch):
+        # The reader's result answers: the rows left out carry their cells (here a cancelled order in CHF, and
+        # a test order with a franc mark beside its amount).
+        with_column = (b"customer,date,amount,currency,status\nK1,2025-01-02,10,CHF,cancelled\n"
+                       b"K1,2025-01-03,12,CHF,paid\nK2,2025-01-04,14,CHF,paid\n")
+        with_marks = "customer,date,amount,status\nK1,2025-01-02,£10.00,test\nK1,2025-01-03,£12.00,paid\n".encode()
+        first = state.Dataset.from_bytes(with_column, "francs.csv")
+        second = state.Dataset.from_bytes(with_marks, "pounds.csv")
+        for dataset in (first, second):
+            assert state.read_dataset(dataset).ok
+        monkeypatch.setattr(state.reading, "read_cells", lambda *a, **k: pytest.fail("the file was read again"))
+        monkeypatch.setattr(state.reading, "load_raw", lambda *a, **k: pytest.fail("the file was read again"))
+        assert state.currency_code(first) == "CHF"
+        assert state.currency_code(second) == "GBP"
 
     def test_changing_a_column_box_reads_again(self, demo):
         at = new_app()
@@ -329,6 +362,112 @@ class TestLoadOrders:
         assert ids[ids != ""].str.startswith("cust-").all()
         cleaned = table_with(at, HEADINGS["order_date"])
         assert cleaned[HEADINGS["customer"]].str.startswith("cust-").all()
+
+
+def upload_corpus(name: str) -> AppTest:
+    """One of the messy exports of tests/corpus (written by make_corpus.py, with what each row should become)."""
+    return upload(new_app(), name, (CORPUS / name).read_bytes())
+
+
+class TestReadingOptions:
+    """The reader's options as controls on Load orders, each checked against read_orders with the same option."""
+
+    def test_header_row_box(self):
+        # Title lines above the headings: found by itself, or given; a wrong row is refused naming the box.
+        data = (CORPUS / "title_lines.csv").read_bytes()
+        at = upload_corpus("title_lines.csv")
+        assert at.number_input(key="opt_header_row").value is None  # empty: the reader finds it
+        assert metric(at, "Orders") == read_orders(data, file_name="title_lines.csv").audit()["orders"]
+        at.number_input(key="opt_header_row").set_value(2).run()
+        shown = errors(at)
+        assert shown and f"'{words.CONTROL_LABELS['header_row']}' under {words.READING_OPTIONS}" in shown[0]
+        assert not FLAG.search(shown[0])
+        at.number_input(key="opt_header_row").set_value(4).run()
+        assert not errors(at)
+        expected = read_orders(data, file_name="title_lines.csv", header_row=4).audit()
+        assert metric(at, "Rows read") == expected["rows_read"] and metric(at, "Orders") == expected["orders"]
+
+    def test_keep_unpaid_box(self):
+        data = (CORPUS / "platform_statuses.csv").read_bytes()
+        at = upload_corpus("platform_statuses.csv")
+        left_out = read_orders(data, file_name="platform_statuses.csv").audit()
+        assert metric(at, "Orders") == left_out["orders"]
+        at.checkbox(key="opt_keep_unpaid").check().run()
+        kept = read_orders(data, file_name="platform_statuses.csv", keep_unpaid=True).audit()
+        assert kept["orders"] > left_out["orders"]
+        assert metric(at, "Orders") == kept["orders"] and metric(at, "Rows used") == kept["rows_used"]
+        noted = table_with(at, "What was noted")
+        assert noted["Rows"].tolist() == list(kept["noted"].values())
+
+    def test_implausible_rows_first_and_the_box_that_keeps_them(self):
+        data = (CORPUS / "typo_thousands_of_times.csv").read_bytes()
+        result = read_orders(data, file_name="typo_thousands_of_times.csv")
+        implausible = result.audit()["excluded"]["implausible_amount"]
+        at = upload_corpus("typo_thousands_of_times.csv")
+        warning = next(w.value for w in at.warning if "Check these rows first" in w.value)
+        assert f"{implausible:,} rows" in warning and words.CONTROL_LABELS["keep_implausible"] in warning
+        reasons = table_with(at, "Why the rows were left out")
+        assert reasons["Why the rows were left out"].iloc[0] == REASONS["implausible_amount"]
+        left_out = table_with(at, "reason")
+        assert (left_out["reason"].head(implausible) == REASONS["implausible_amount"]).all()
+        at.checkbox(key="opt_keep_implausible").check().run()
+        kept = read_orders(data, file_name="typo_thousands_of_times.csv", keep_implausible=True).audit()
+        assert metric(at, "Rows used") == kept["rows_used"] == result.audit()["rows_used"] + implausible
+        assert not any("Check these rows first" in w.value for w in at.warning)
+
+    def test_statuses_the_reader_does_not_know(self):
+        # tests/corpus/expected/unknown_statuses.json: 'Awaiting pickup' on 2 rows and 'Gift' on 1, used as paid.
+        at = upload_corpus("unknown_statuses.csv")
+        statuses = table_with(at, "Status as written")
+        assert dict(zip(statuses["Status as written"], statuses["Rows"])) == {"Awaiting pickup": 2, "Gift": 1}
+        assert set(statuses["What was done"]) == {"used as paid orders"}
+        # Said once, in the table: not again among the notes above it.
+        assert not any(m.value.startswith("- Statuses the reader does not know") for m in at.markdown)
+
+    def test_rows_used_with_a_note(self):
+        # Merged e-mail ids: the same address with capitals, and with a zero-width space.
+        data = (CORPUS / "email_ids_written_otherwise.csv").read_bytes()
+        result = read_orders(data, file_name="email_ids_written_otherwise.csv")
+        at = upload_corpus("email_ids_written_otherwise.csv")
+        kinds = table_with(at, "What was noted")
+        assert kinds["What was noted"].tolist() == [NOTES[code] for code in result.audit()["noted"]]
+        assert kinds["Rows"].tolist() == list(result.audit()["noted"].values())
+        rows = table_with(at, "note")
+        assert rows["row"].tolist() == result.noted["row"].tolist()
+        assert "merged_customer_id" in result.audit()["noted"]
+
+    def test_orders_on_another_sheet(self):
+        name = "excel_orders_on_another_sheet.xlsx"
+        data = (CORPUS / name).read_bytes()
+        with pytest.raises(OrderDataError) as refused:
+            read_orders(data, file_name=name)
+        at = upload_corpus(name)
+        shown = errors(at)
+        assert shown and f"the '{words.CONTROL_LABELS['sheet']}' box under {words.READING_OPTIONS}" in shown[0]
+        assert "'Summary'" in shown[0] and "'Orders'" in shown[0]
+        assert refused.value.option == "sheet"
+        box = at.selectbox(key="opt_sheet")
+        assert box.label == words.CONTROL_LABELS["sheet"] and "Orders" in box.options
+        box.set_value("Orders").run()
+        assert not errors(at)
+        assert metric(at, "Orders") == read_orders(data, file_name=name, sheet="Orders").audit()["orders"]
+
+    @pytest.mark.parametrize("option", ["header_row", "keep_unpaid", "keep_implausible", "sheet"])
+    def test_every_reading_option_names_its_control(self, option):
+        problem = OrderDataError("something to change", fix="Change it", option=option)
+        on_load = state.worded(state.problem_fields(problem), here="load")
+        assert f"'{words.CONTROL_LABELS[option]}'" in on_load and f"under {words.READING_OPTIONS}" in on_load
+        assert "on the Load orders page" in state.worded(state.problem_fields(problem), here="outlook")
+
+    def test_options_are_the_readers_keyword_arguments(self):
+        dataset = state.Dataset.from_bytes(b"x", "f.xlsx").with_options(sheet="Orders", header_row=3,
+                                                                        keep_unpaid=True, keep_implausible=True)
+        options = dataset.read_options()
+        assert options == {"sheet": "Orders", "header_row": 3, "keep_unpaid": True, "keep_implausible": True}
+        import inspect
+
+        assert set(options) <= set(inspect.signature(read_orders).parameters)
+        assert dataset.cache_key != state.Dataset.from_bytes(b"x", "f.xlsx").cache_key
 
 
 class TestForecasts:
@@ -632,6 +771,30 @@ class TestValueTiers:
         top = expected[expected["tier"] == expected.attrs["tiers"][0]["tier"]]
         assert members["customer"].tolist() == top["customer"].tolist()
 
+    def test_tier_lists_narrowed_to_a_segment(self, demo, automatic):
+        result, stats = demo
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(result.orders, horizon=180, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        tiered = outlook_module.assign_tiers(projection.customers, rank="revenue", shares=(0.1, 0.3))
+        top = tiered.attrs["tiers"][0]["tier"]
+        # A customer's segment is their latest order's (forecasting.customers.customer_statistics).
+        latest = result.orders.sort_values("order_date", kind="stable").groupby("customer")["segment"].last()
+        expected = tiered[(tiered["tier"] == top) & (tiered["customer"].map(latest) == "market")]
+        at = new_app()
+        at.switch_page("pages/value_tiers.py").run()
+        assert at.selectbox(key="tier_segment").options == ["every segment", "instagram", "market", "web"]
+        at.selectbox(key="tier_segment").set_value("market").run()
+        assert not at.exception
+        members = table_with(at, "chance_active")
+        assert members["customer"].tolist() == expected["customer"].tolist()
+        assert set(members["segment"]) == {"market"}
+        assert any(f"{len(expected):,} of the {int((latest == 'market').sum()):,} customers of segment market"
+                   in c.value for c in at.caption)
+        # The tiers stay the whole shop's.
+        assert table_with(at, "share_of_projected_revenue")["customers"].tolist() == \
+            outlook_module.tier_summary(tiered)["customers"].tolist()
+
     def test_no_projection_falls_back_to_next_order_value(self):
         # Nine customers are too few for the order-frequency fit (see forecasting/frequency.py notes).
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())
@@ -648,25 +811,82 @@ class TestValueTiers:
             labels.append(page_text(at))
         text = "\n".join(labels)
         assert "Own-history weight" not in text and "Weight on own history" not in text
+        assert "shop pattern" not in text.lower()  # low confidence has one name, the Forecasts page's
         assert text.count(HEADINGS["own_history_weight"]) >= 3
 
 
-class TestCohortOutlook:
-    def test_cohorts_and_backtest_are_the_librarys(self, demo, automatic):
+# Model names and test statistics: in the outlook's details section only, never on its primary screen.
+MODEL_WORDS = re.compile(r"BG/NBD|likelihood|month index|\bp [<=]|Poisson|alpha", re.IGNORECASE)
+
+
+def primary_text(at: AppTest) -> str:
+    """The text elements shown outside every collapsed section (markdown, captions, alerts, metrics)."""
+    parts = []
+
+    def walk(node, inside=False):
+        kind = getattr(node, "type", "")
+        inside = inside or kind == "expander"
+        if not inside and kind in ("markdown", "caption", "error", "warning", "info", "success", "metric"):
+            parts.append(str(getattr(node, "value", "")) + " " + str(getattr(node, "label", "")))
+        children = getattr(node, "children", None)
+        for child in (children.values() if isinstance(children, dict) else children or []):
+            walk(child, inside)
+
+    walk(at._tree)
+    return "\n".join(parts)
+
+
+class TestRevenueOutlook:
+    def test_cohorts_are_the_librarys_and_the_past_waits_to_be_asked(self, demo, automatic):
         result, _ = demo
         table, method, variance = automatic
         projection = outlook_module.project_revenue(result.orders, horizon=180, by="quarter", forecasts=table,
                                                     method=method, variance=variance)
-        check = outlook_module.backtest_outlook(result.orders, horizon=180, by="quarter", method=method,
-                                                variance=variance)
         at = new_app()
-        at.switch_page("pages/cohort_outlook.py").run()
+        at.switch_page("pages/revenue_outlook.py").run()
         assert not at.exception
+        assert any(title.value == "Revenue outlook" for title in at.title)
         shown = table_with(at, "share_of_projected_revenue")
         assert shown["cohort"].tolist() == projection.cohorts["cohort"].tolist()
         np.testing.assert_allclose(shown["projected_revenue"], projection.cohorts["projected_revenue"], rtol=1e-12)
+        # The check at ten earlier dates is made on request, not on a first visit.
+        assert at.button(key="rolling_check").label == "Check it at ten earlier dates"
+        assert "actually spent" not in " ".join(m.value for m in at.markdown)
+
+    def test_check_at_ten_dates_on_request(self, demo):
+        result, _ = demo
+        checked = outlook_module.rolling_backtest(result.orders, horizon=180, by="quarter", method="auto",
+                                                  variance="auto")
+        at = new_app()
+        at.switch_page("pages/revenue_outlook.py").run()
+        at.button(key="rolling_check").click().run()
+        assert not at.exception
         text = " ".join(m.value for m in at.markdown)
-        assert f"they actually spent {words.money(check.total['actual_revenue'])}" in text
+        summary = checked.summary
+        assert (f"At {summary['cutoffs']} dates over the last year** the outlook of all revenue missed by "
+                f"**{summary['mean_abs_error_pct']:.1f}%**") in text
+        latest = checked.backtests[-1]
+        assert f"they actually spent {words.money(latest.total['actual_revenue'])}" in text
+        assert f"projected {words.money(latest.total['projected_revenue'])}" in text
+        shown = table_with(at, "cutoff")
+        np.testing.assert_allclose(shown["projected_revenue"], checked.table["projected_revenue"], rtol=1e-12)
+        assert set(shown["frequency_model"]) <= {"BG/NBD", "MBG/NBD"}  # plain labels, not code names
+        # Done once: the next run shows it without asking again.
+        at.run()
+        assert not [b for b in at.button if b.key == "rolling_check"]
+        assert any("dates over the last year" in m.value for m in at.markdown)
+
+    def test_primary_screen_speaks_of_customers_and_money(self, demo):
+        at = new_app()
+        at.switch_page("pages/revenue_outlook.py").run()
+        primary = primary_text(at)
+        assert "An active customer orders about" in primary and "new customers are expected" in primary
+        assert not MODEL_WORDS.search(primary), MODEL_WORDS.search(primary)
+        # The details section names the models, each with its line.
+        details = next(e for e in at.expander if e.label.startswith("How this is worked out"))
+        said = " ".join(m.value for m in details.markdown)
+        assert "MBG/NBD" in said and "BG/NBD" in said and "likelihood" in said and "month index" in said
+        assert words.OUTLOOK_WORDS["MBG/NBD"] in said and words.OUTLOOK_WORDS["BG/NBD"] in said
 
     def test_group_by_segment(self, demo, automatic):
         result, _ = demo
@@ -674,7 +894,7 @@ class TestCohortOutlook:
         projection = outlook_module.project_revenue(result.orders, horizon=180, by="segment", forecasts=table,
                                                     method=method, variance=variance)
         at = new_app()
-        at.switch_page("pages/cohort_outlook.py").run()
+        at.switch_page("pages/revenue_outlook.py").run()
         at.selectbox(key="cohort_by").set_value("segment").run()
         assert not at.exception
         shown = table_with(at, "share_of_projected_revenue")
@@ -683,9 +903,10 @@ class TestCohortOutlook:
 
     def test_too_little_history_is_a_message(self):
         at = upload(new_app(), MESSY.name, MESSY.read_bytes())
-        at.switch_page("pages/cohort_outlook.py").run()
+        at.switch_page("pages/revenue_outlook.py").run()
         assert not at.exception
-        assert any("could not be fitted" in w.value for w in at.warning)
+        assert any("could not be worked out well enough" in w.value for w in at.warning)
+        assert not MODEL_WORDS.search(primary_text(at))
 
 
 class TestCharts:
@@ -755,9 +976,20 @@ class TestWords:
     @pytest.mark.parametrize("option", list(words.OPTION_CONTROLS))
     def test_every_option_with_a_control_names_it(self, option):
         problem = OrderDataError("not readable", fix="Set it", option=option)
-        page, where = words.OPTION_CONTROLS[option]
-        assert where in state.worded(state.problem_fields(problem), here=page)
-        assert f"on the {words.PAGE_TITLES[page]} page" in state.worded(state.problem_fields(problem), here="outlook")
+        pages, where = words.OPTION_CONTROLS[option]
+        for page in pages:  # named plainly on a page that has the control, with its page elsewhere
+            on_page = state.worded(state.problem_fields(problem), here=page)
+            assert where in on_page and " page" not in on_page
+        elsewhere = next(page for page in words.PAGE_TITLES if page not in pages)
+        assert (f"{where} on the {words.PAGE_TITLES[pages[0]]} page"
+                in state.worded(state.problem_fields(problem), here=elsewhere))
+        # The control on the page is drawn with the words the message uses.
+        assert f"'{words.CONTROL_LABELS[option]}'" in where
+        if option in WIDGET_KEYS:  # the sheet box is drawn for workbooks of several sheets only (tested there)
+            at = new_app()
+            for page in pages:
+                at.switch_page(f"pages/{PAGE_FILES[page]}").run()
+                assert widget_label(at, WIDGET_KEYS[option]) == words.CONTROL_LABELS[option]
 
     def test_a_problem_outlives_the_cache(self):
         # Cached outcomes are pickled: the role and option must come back with the message.

@@ -8,29 +8,31 @@ from pathlib import Path
 import streamlit as st
 
 from dashboard import layout, outlook_charts, state, words
-from forecasting import csv_text
-from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE
+from forecasting import OrderDataError, csv_text
 from forecasting.exports import pseudonymise
+from forecasting.frequency import MODEL_NAMES
+from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE
 
 HERE = "outlook"
 
 layout.page_header(
-    "Cohort outlook",
+    "Revenue outlook",
     "The revenue to expect in the months ahead: from the customers you already have (grouped by when they first "
-    "ordered, or by segment) and from new customers still to come. Then the same outlook, made at earlier dates, "
-    "against what really came in.",
+    "ordered, or by segment) and from new customers still to come. Then, when you ask, the same outlook made at "
+    "earlier dates against what really came in.",
 )
 if not layout.dataset_line():
     st.stop()
-if state.optional_module("outlook") is None or state.optional_module("forecasts") is None:
-    layout.coming("The cohort outlook page")
+outlook_module = state.optional_module("outlook")
+if outlook_module is None or state.optional_module("forecasts") is None:
+    layout.coming("The revenue outlook page")
     st.stop()
 
 dataset = state.current()
 result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
-work = layout.Work(4)
+work = layout.Work(2)
 work.step("Working out each customer's next order", state.forecasts, dataset, state.kept("method", DEFAULT_METHOD),
           state.kept("variance", DEFAULT_VARIANCE))
 # The forward outlook uses the forecasts the Forecasts page shows; the checks against the past make the same
@@ -44,18 +46,14 @@ if "segment" in result.orders.columns:
     groupings["segment"] = "segment"
 
 first, second = st.columns(2)
-horizon = first.selectbox("Period ahead", HORIZONS, **state.remember("horizon", 180, HORIZONS),
+horizon = first.selectbox(words.CONTROL_LABELS["horizon"], HORIZONS, **state.remember("horizon", 180, HORIZONS),
                           format_func=lambda days: f"next {days} days",
                           help="How far ahead revenue is projected (from the last order date in the file).")
-by = second.selectbox("Group customers by", list(groupings),
+by = second.selectbox(words.CONTROL_LABELS["by"], list(groupings),
                       **state.remember("cohort_by", "quarter", list(groupings)), format_func=groupings.get)
 
-ahead = work.step(f"Fitting how often customers come back, how many new ones arrive, and projecting the next "
-                  f"{horizon} days", state.outlook, dataset, method, variance, float(horizon), by)
-past = work.step("Trying the same outlook on the past", state.outlook_backtest, dataset, chosen_method,
-                 chosen_variance, float(horizon), by)
-rolling = work.step("Trying it at several dates over the last year", state.outlook_rolling, dataset, chosen_method,
-                    chosen_variance, float(horizon), by)
+ahead = work.step(f"Working out how often customers come back and how many new ones arrive, and projecting the "
+                  f"next {horizon} days", state.outlook, dataset, method, variance, float(horizon), by)
 work.finish()
 
 if not ahead.ok:
@@ -67,20 +65,54 @@ frequency = projection.fit.as_dict()
 
 st.subheader(f"The next {horizon} days")
 if not math.isfinite(float(total["projected_revenue"])):
-    st.warning("The order-frequency model could not be fitted well enough on this data to project revenue. "
-               + (frequency.get("notes") or "") + " A longer order history with more customers helps.")
-    st.stop()
+    st.warning("How often customers come back could not be worked out well enough from these orders to project "
+               "revenue: a longer order history with more customers who ordered twice or more helps. The details "
+               "are under How this is worked out below.")
 
 
 def money_range(low, high) -> str:
     return f"{words.money(low, symbol)} to {words.money(high, symbol)}"
 
 
+def how_it_is_worked_out() -> None:
+    """The models, the tests that chose them and their fitted numbers, each with a line on what it is."""
+    with st.expander("How this is worked out: the models and their fitted numbers"):
+        name = frequency.get("model_name", "")
+        other = next((n for n in MODEL_NAMES.values() if n != name), "")
+        st.markdown(
+            f"- **How often customers come back**: the {name} model: {words.OUTLOOK_WORDS.get(name, '')}. "
+            f"The other model on offer is {other}: {words.OUTLOOK_WORDS.get(other, '')}. Both are fitted by "
+            f"maximum likelihood (the *likelihood* is {words.OUTLOOK_WORDS['likelihood']}). "
+            + (frequency.get("model_choice") or "")
+            + f"\n- **Time of year** (the *month index* is {words.OUTLOOK_WORDS['month index']}). "
+            + projection.repeat_model.season_words
+            + ("\n- **New customers**: a Poisson regression of the first orders per day, with a month-of-year "
+               "pattern and a yearly trend, each kept only when a likelihood-ratio test finds it at the 5% level. "
+               + projection.arrivals.words if projection.arrivals is not None else "")
+            + "\n- Each customer's revenue is their expected number of orders times their expected next order "
+              "(from the Forecasts page). New customers bring a first order worth the shop's average first order "
+              "and repeat orders by the same model. The ranges come from simulating who orders, how often, for how "
+              "much, and how many new customers arrive.")
+        if frequency.get("notes"):
+            st.caption(frequency["notes"])
+        fitted = [key for key in ("r", "alpha_days", "a", "b") if key in frequency]
+        if fitted:
+            st.dataframe(
+                {"Fitted number": fitted, "Value": [f"{float(frequency[k]):,.4g}" for k in fitted],
+                 "What it is": [words.OUTLOOK_WORDS[k] for k in fitted]},
+                hide_index=True, key="outlook_fit_numbers", height=layout.table_height(len(fitted)),
+                column_config={"What it is": st.column_config.TextColumn(width="large")})
+
+
+if not math.isfinite(float(total["projected_revenue"])):
+    how_it_is_worked_out()
+    st.stop()
+
 has_new = "projected_revenue_new" in total
 cells = st.columns(3)
 cells[0].metric(f"All revenue, from {projection.as_of:%d %b %Y}", words.money(total["projected_revenue"], symbol),
                 help="Customers you have and new customers together.")
-cells[0].caption(f"What may actually come in: {money_range(total['revenue_range_low'], total['revenue_range_high'])}")
+cells[0].caption(f"May actually come in: {money_range(total['revenue_range_low'], total['revenue_range_high'])}")
 cells[1].metric(f"From the {int(total['customers']):,} customers you have",
                 words.money(total["projected_revenue_existing"], symbol))
 cells[1].caption("May come in: "
@@ -95,26 +127,20 @@ st.caption(f"Ranges are {projection.level:.0%} ranges of what may actually come 
            "customers order and how much, as well as what the data leave unknown. The average outcome itself is "
            f"known to within {money_range(total['projected_low'], total['projected_high'])}.")
 
-stop_words = ("after each order, the first included," if frequency["model"] == "mbg-nbd"
-              else "after each repeat order")
-lines = [f"An active customer orders about **{frequency['orders_per_year_active']:.1f} times a year**, and "
-         f"{stop_words} about **{frequency['chance_stop_after_order']:.0%}** stop for good."]
-if projection.arrivals is not None:
+lines = [words.return_sentence(frequency["orders_per_year_active"], frequency["chance_stop_after_order"],
+                               frequency["model"])]
+if projection.arrivals is not None and has_new:
+    arrivals = projection.arrivals
+    lines.append(words.new_customers_sentence(total["new_customers_expected"], horizon, terms=arrivals.terms,
+                                              tests=arrivals.tests, growth_per_year=arrivals.growth_per_year,
+                                              month_index=arrivals.month_index))
     values = projection.new_customer_values
-    lines.append(f"{projection.arrivals.words} A first order averages {words.money(values['first_mean'], symbol)}, "
-                 f"a repeat order {words.money(values['repeat_mean'], symbol)}.")
-lines.append(projection.repeat_model.season_words)
+    lines.append(f"A first order averages {words.money(values['first_mean'], symbol)}, a repeat order "
+                 f"{words.money(values['repeat_mean'], symbol)}.")
+repeat = projection.repeat_model
+lines.append(words.season_sentence(repeat.seasons, repeat.index, test=repeat.season_test))
 st.markdown(" ".join(lines))
-with st.expander("How this is worked out"):
-    st.markdown(
-        f"- How often customers come back: the **{frequency['model_name']}** model. "
-        + (frequency["model_choice"] or "")
-        + f"\n- Time of year: {projection.repeat_model.season_words}"
-        + "\n- Each customer's revenue is their expected number of orders times their expected next order "
-          "(from the Forecasts page). New customers arrive at the rate the shop's own first orders show; each "
-          "brings a first order and repeat orders by the same model.")
-    if frequency.get("notes"):
-        st.caption(frequency["notes"])
+how_it_is_worked_out()
 
 st.plotly_chart(outlook_charts.group_projection(
     projection.cohorts, symbol=symbol, grouped_by=groupings[by],
@@ -147,38 +173,39 @@ st.download_button("Download the month-by-month schedule (CSV)", data=csv_text(s
                    key="download_schedule", on_click="ignore", icon=":material/download:")
 st.caption("Month figures are the expected amounts; the ranges above are for the whole period.")
 
-st.subheader("Tried on the past")
-if not past.ok:
-    st.info(f"The outlook could not be tried on the past: {past.worded(HERE)}")
-else:
-    check = past.value
-    bt = check.total
-    st.plotly_chart(outlook_charts.group_backtest(
-        check.cohorts, symbol=symbol, grouped_by=groupings[by],
-        title=f"Made on {check.cutoff:%d %b %Y}: projected (with the range of what may come in) against actual, "
-              f"{check.window_days:.0f} days"),
-        key="cohort_backtest_chart", theme=None, config={"displaylogo": False})
-    sentences = [f"Made from the orders before {check.cutoff:%d %B %Y}, the outlook projected "
-                 f"{words.money(bt['projected_revenue'], symbol)} of revenue for the next {check.window_days:.0f} "
-                 f"days, new customers included; they actually spent {words.money(bt['actual_revenue'], symbol)}"]
-    if bt.get("error_pct") is not None and math.isfinite(float(bt["error_pct"])):
-        sentences[0] += f" ({float(bt['error_pct']):+.0f}%)."
-    else:
-        sentences[0] += "."
-    sentences.append(f"Of that, the {bt['customers']:,} customers known then spent "
-                     f"{words.money(bt['actual_revenue_existing'], symbol)} (projected "
-                     f"{words.money(bt['projected_revenue_existing'], symbol)}) and new customers "
-                     f"{words.money(bt['actual_revenue_new'], symbol)} (projected "
-                     f"{words.money(bt['projected_revenue_new'], symbol)}).")
-    if bt.get("run_rate_error_pct") is not None and math.isfinite(float(bt["run_rate_error_pct"])):
-        sentences.append(f"Carrying the recent pace forward would have given "
-                         f"{words.money(bt['run_rate_revenue'], symbol)} ({float(bt['run_rate_error_pct']):+.0f}%).")
-    st.markdown(" ".join(sentences))
-    st.caption(f"The actual amount fell inside the {check.outlook.level:.0%} range of what may come in (the "
-               f"whiskers) for {bt['cohorts_inside_revenue_range']} of {len(check.cohorts)} groups. When it misses "
-               "for most groups on the same side, the projection itself is off, not just unlucky.")
+# ---------------------------------------------------------------------------
+# Tried on the past: the outlook made again at ten earlier dates, when asked (it is ten outlooks' work)
 
-if rolling.ok:
+st.subheader("Tried on the past")
+try:
+    cutoffs = outlook_module.rolling_cutoffs(result.orders, horizon=horizon)
+except OrderDataError as problem:
+    cutoffs = []
+    reason = state.Outcome(error=state.problem_fields(problem)).worded(HERE)
+    st.info(f"The outlook cannot be tried on the past here. {reason}")
+check_args = (dataset, chosen_method, chosen_variance, float(horizon), by)
+rolling = None
+if cutoffs:
+    asked = state.outlook_rolling.is_done(*check_args)
+    if not asked:
+        offer = st.empty()  # the offer goes once the check is made
+        with offer.container():
+            st.markdown(f"How far off would this outlook have been? It can be made again from the orders before each "
+                        f"of {len(cutoffs)} dates between {cutoffs[0]:%d %b %Y} and {cutoffs[-1]:%d %b %Y}, each "
+                        f"time for the {horizon} days after it, and compared with the revenue that really came in. "
+                        f"That is {len(cutoffs)} outlooks' work, so it is made when you ask.")
+            asked = st.button("Check it at ten earlier dates", key="rolling_check", icon=":material/history:")
+        if asked:
+            offer.empty()
+    if asked:
+        work = layout.Work(1)
+        rolling = work.step(f"Making the outlook again at {len(cutoffs)} earlier dates and comparing each with what "
+                            "came in after it", state.outlook_rolling, *check_args)
+        work.finish()
+
+if rolling is not None and not rolling.ok:
+    st.info(f"The outlook could not be tried on the past: {rolling.worded(HERE)}")
+elif rolling is not None:
     checked = rolling.value
     summary = checked.summary
     st.markdown(f"**At {summary['cutoffs']} dates over the last year** the outlook of all revenue missed by "
@@ -192,8 +219,37 @@ if rolling.ok:
         checked.table, symbol=symbol,
         title=f"The {horizon}-day outlook made at each date against all revenue that came in after it"),
         key="rolling_chart", theme=None, config={"displaylogo": False})
+
+    latest = checked.backtests[-1]
+    bt = latest.total
+    sentences = [f"Made from the orders before {latest.cutoff:%d %B %Y}, the latest of those dates, the outlook "
+                 f"projected {words.money(bt['projected_revenue'], symbol)} for the next "
+                 f"{latest.window_days:.0f} days, new customers included; they actually spent "
+                 f"{words.money(bt['actual_revenue'], symbol)}"]
+    if bt.get("error_pct") is not None and math.isfinite(float(bt["error_pct"])):
+        sentences[0] += f" ({float(bt['error_pct']):+.0f}%)."
+    else:
+        sentences[0] += "."
+    sentences.append(f"Of that, the {bt['customers']:,} customers known then spent "
+                     f"{words.money(bt['actual_revenue_existing'], symbol)} (projected "
+                     f"{words.money(bt['projected_revenue_existing'], symbol)}) and new customers "
+                     f"{words.money(bt['actual_revenue_new'], symbol)} (projected "
+                     f"{words.money(bt['projected_revenue_new'], symbol)}).")
+    st.markdown(" ".join(sentences))
+    st.plotly_chart(outlook_charts.group_backtest(
+        latest.cohorts, symbol=symbol, grouped_by=groupings[by],
+        title=f"Made on {latest.cutoff:%d %b %Y}: projected (with the range of what may come in) against actual, "
+              f"by group"),
+        key="cohort_backtest_chart", theme=None, config={"displaylogo": False})
+    st.caption(f"The actual amount fell inside the {latest.outlook.level:.0%} range of what may come in (the "
+               f"whiskers) for {bt['cohorts_inside_revenue_range']} of {len(latest.cohorts)} groups. When it misses "
+               "for most groups on the same side, the projection itself is off, not just unlucky.")
+
     with st.expander("Table of the checks"):
-        st.dataframe(checked.table, hide_index=True, key="rolling_table",
+        shown = checked.table.assign(
+            frequency_model=checked.table["frequency_model"].map(lambda m: MODEL_NAMES.get(m, m)),
+            seasons=checked.table["seasons"].map(lambda s: words.SEASON_LABELS.get(s, s)))
+        st.dataframe(shown, hide_index=True, key="rolling_table",
                      column_order=["cutoff", "actual_revenue", "projected_revenue", "error_pct",
                                    "revenue_range_low", "revenue_range_high", "error_existing_pct", "error_new_pct",
                                    "run_rate_error_pct", "cell_error_pct", "seasons", "frequency_model"],
@@ -210,10 +266,8 @@ if rolling.ok:
                          "run_rate_error_pct": st.column_config.NumberColumn("Run-rate guess miss", format="%+.0f%%"),
                          "cell_error_pct": st.column_config.NumberColumn("Grid miss", format="%+.0f%%"),
                          "seasons": st.column_config.TextColumn("Time of year"),
-                         "frequency_model": st.column_config.TextColumn("Model"),
+                         "frequency_model": st.column_config.TextColumn("How often customers come back"),
                      })
-else:
-    st.info(f"The outlook could not be tried at several dates: {rolling.worded(HERE)}")
 
 with st.expander("Table and download"):
     st.dataframe(projection.cohorts, hide_index=True, key="cohort_table",
