@@ -68,7 +68,7 @@ def group_backtest(cohorts: pd.DataFrame, *, symbol: str, title: str, grouped_by
     x = np.where(new, "new customers", cohorts["cohort"].astype(str))
     value = cohorts["projected_revenue"].to_numpy(dtype=float)
     fig = go.Figure()
-    fig.add_trace(go.Bar(x=x, y=value, name="projected at the cut-off", marker_color=PALETTE["blue"],
+    fig.add_trace(go.Bar(x=x, y=value, name="projected on that date", marker_color=PALETTE["blue"],
                          error_y=_whiskers(cohorts, value, "revenue_range_low", "revenue_range_high"),
                          hovertemplate=f"%{{x}}: projected {symbol}%{{y:,.0f}}<extra></extra>"))
     fig.add_trace(go.Bar(x=x, y=cohorts["actual_revenue"], name="what actually came in",
@@ -103,11 +103,11 @@ def rolling_check(table: pd.DataFrame, *, symbol: str, title: str) -> go.Figure:
                                      "line": {"width": 1, "color": INK}},
                              customdata=table["run_rate_error_pct"],
                              hovertemplate=f"run rate %{{x}}: {symbol}%{{y:,.0f}} (%{{customdata:+.0f}}%)<extra></extra>"))
-    fig.add_trace(go.Scatter(x=x, y=table["cell_revenue"], name="recency/frequency cells", mode="markers",
+    fig.add_trace(go.Scatter(x=x, y=table["cell_revenue"], name="simple grid guess", mode="markers",
                              marker={"symbol": "square", "size": 8, "color": PALETTE["sky"],
                                      "line": {"width": 1, "color": INK}},
                              customdata=table["cell_error_pct"],
-                             hovertemplate=f"cells %{{x}}: {symbol}%{{y:,.0f}} (%{{customdata:+.0f}}%)<extra></extra>"))
+                             hovertemplate=f"grid %{{x}}: {symbol}%{{y:,.0f}} (%{{customdata:+.0f}}%)<extra></extra>"))
     fig.update_yaxes(title="All revenue in the window", tickprefix=symbol, rangemode="tozero")
-    fig.update_xaxes(title="Cut-off (the outlook made from the orders before it)", type="category")
+    fig.update_xaxes(title="Date the outlook was made (from the orders before it)", type="category")
     return _layout(fig, title=title, height=420)

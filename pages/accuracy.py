@@ -55,8 +55,8 @@ def row_for(results: pd.DataFrame, method: str, variance: str):
 
 checked_note = ""
 if row_for(found.leave_one_out, *pair) is None:
-    checked_note = (f"The forecasts in use ({words.pair_words(*pair)}) have no quick check yet; the results are for "
-                    f"the automatic choice, {words.pair_words(found.chosen['method'], found.chosen['variance'])}.")
+    checked_note = ("The way of forecasting picked on the Forecasts page has no quick check yet; the results are "
+                    "for the automatic choice (both are named under Compare the ways of forecasting below).")
     pair = (found.chosen["method"], found.chosen["variance"])
 
 # ---------------------------------------------------------------------------
@@ -135,7 +135,7 @@ with st.expander("How the check works"):
 # ---------------------------------------------------------------------------
 # Details: every method
 
-with st.expander("Compare the methods: every method and spread model against the own averages"):
+with st.expander("Compare the ways of forecasting against the own averages (for the statistically minded)"):
     st.caption("For the statistically minded. The forecasts use the automatic choice unless another method is "
                "picked under How the forecasts are made on the Forecasts page.")
     st.markdown(f"Checked above: {words.pair_words(*pair)}.")

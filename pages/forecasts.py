@@ -233,7 +233,7 @@ if table is not None:
 # ---------------------------------------------------------------------------
 # Details: how the forecasts are made
 
-with st.expander("How the forecasts are made: methods, spread models and fitted numbers",
+with st.expander("How the forecasts are made (for the statistically minded): the method and its fitted numbers",
                  expanded=table is None):
     st.caption("For the statistically minded. The automatic choices are what the accuracy check found best on "
                "your own orders; change them only to compare.")

@@ -77,7 +77,7 @@ st.dataframe(
     column_config={
         "tier": st.column_config.TextColumn("Tier"),
         "rule": st.column_config.TextColumn("Who"),
-        "customers": st.column_config.NumberColumn("Customers", format="%d"),
+        "customers": st.column_config.NumberColumn("Customers", format="localized"),
         "customers_pct": st.column_config.NumberColumn("Share", format="%.0f%%", help="Share of all customers."),
         "lowest_figure": st.column_config.NumberColumn("Lowest", format=money_format,
                                                    help=f"The lowest {figure_word} in the tier."),

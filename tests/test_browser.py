@@ -2,8 +2,10 @@
 
 Uploads the demo export and the messy one through the page's file input, visits
 every page, downloads the forecasts CSV and reads it back with Python's csv module
-(RFC 4180), checks page by page that no command-line flag (``--date``) is shown, and
-saves a screenshot of each page to tests/screenshots/tmp/ (not tracked).
+(RFC 4180), checks page by page that no command-line flag (``--date``) and no code name
+(``mta-segments``, ``bg-nbd``) is shown, and no method or model name on a primary screen
+(only in the details sections, which are opened for the check), and saves a screenshot of
+each page to tests/screenshots/tmp/ (not tracked).
 ``REFRESH_SCREENSHOTS=1 python -m pytest tests/test_browser.py`` writes them to
 docs/screenshots/ instead, for the README.
 
@@ -26,10 +28,13 @@ import pandas as pd
 import pytest
 
 import browser_support as support
+from dashboard import words
 from playwright import sync_api as playwright_sync
 from forecasting import customer_statistics, read_orders
 from forecasting import forecasts as forecasts_module
 from forecasting.exports import HEADINGS
+from forecasting.frequency import FREQUENCY_MODELS
+from forecasting.options import METHODS, OWN_SPREAD
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = Path("/usr/bin/chromium")
@@ -42,7 +47,15 @@ CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-
 support.require_browser()
 
 FLAG = re.compile(r"--[a-z]")
-PAGE_TITLES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Cohort outlook"]
+PAGE_TITLES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Revenue outlook"]
+# The code names of methods, spread models and order-frequency models (forecasting.options, forecasting.frequency):
+# never on the page; details sections name methods by their plain labels.
+CODE_NAMES = sorted({name for name in METHODS if "-" in name} | {OWN_SPREAD, *FREQUENCY_MODELS, "mta"},
+                    key=len, reverse=True)
+CODE = re.compile(r"(?<![\w-])(?:" + "|".join(map(re.escape, CODE_NAMES)) + r")(?![\w-])")
+# Method and model names, parameters and test statistics: in details sections only, not on a primary screen.
+STATISTICS = re.compile(r"BG/NBD|likelihood|month index|\bp [<=] ?0|James-Stein|empirical Bayes|Gamma-Gamma|"
+                        r"multi-task|\bMTA\b|REML|smearing|Poisson|spread model", re.IGNORECASE)
 
 
 @pytest.fixture(scope="module")
@@ -117,10 +130,44 @@ def open_every_expander(tab) -> None:
     settle(tab)
 
 
+def found_on_screen(tab, pattern: re.Pattern) -> list[str]:
+    """What matches ``pattern`` in the text the page shows (collapsed sections' text is not shown), in context."""
+    text = tab.inner_text("body")
+    return [text[max(0, m.start() - 60):m.end() + 60] for m in pattern.finditer(text)]
+
+
 def flags_on_screen(tab) -> list[str]:
     """Command-line flags in the text the page shows, with what stands around them."""
-    text = tab.inner_text("body")
-    return [text[max(0, m.start() - 60):m.end() + 60] for m in FLAG.finditer(text)]
+    return found_on_screen(tab, FLAG)
+
+
+def ask_for_the_check_of_the_past(tab) -> None:
+    """On the Revenue outlook page: make the check at ten earlier dates (it is made on request) and wait for it."""
+    button = tab.get_by_role("button", name="Check it at ten earlier dates")
+    if button.count():
+        button.first.click()
+        tab.get_by_text("dates over the last year").first.wait_for()
+    settle(tab)
+
+
+def check_every_page_speaks_plainly(tab) -> None:
+    """Page by page: the primary screen (sections closed) shows no flag, no code name and no statistics; with
+    every section open there is still no flag and no code name."""
+    for title in PAGE_TITLES:
+        open_page(tab, title, title)
+        if title == "Revenue outlook":
+            ask_for_the_check_of_the_past(tab)
+        no_exception_shown(tab)
+        assert flags_on_screen(tab) == [], title
+        assert found_on_screen(tab, CODE) == [], title
+        assert found_on_screen(tab, STATISTICS) == [], title
+        open_every_expander(tab)
+        assert flags_on_screen(tab) == [], title
+        assert found_on_screen(tab, CODE) == [], title
+        if title in ("Forecasts", "Revenue outlook"):
+            # The details sections are open now and name the methods: the check above sees what they say.
+            assert found_on_screen(tab, STATISTICS) != [], title
+    open_page(tab, "Load orders", "Load orders")
 
 
 class TestInTheBrowser:
@@ -131,12 +178,8 @@ class TestInTheBrowser:
         no_exception_shown(page)
         shoot(page, "load_orders")
 
-    def test_no_flag_on_any_page_of_the_demo(self, page):
-        for title in PAGE_TITLES:
-            open_page(page, title, title)
-            open_every_expander(page)
-            assert flags_on_screen(page) == [], title
-        open_page(page, "Load orders", "Load orders")
+    def test_every_page_of_the_demo_speaks_plainly(self, page):
+        check_every_page_speaks_plainly(page)
 
     def test_upload_the_messy_export(self, page):
         page.locator('input[type="file"]').set_input_files(str(MESSY))
@@ -146,15 +189,12 @@ class TestInTheBrowser:
         assert metric_value(page, "Rows used") == f"{audit['rows_used']:,}"
         assert metric_value(page, "Customers") == f"{audit['customers']:,}"
         no_exception_shown(page)
+        page.locator('[data-testid="stExpander"] summary', has_text="Reading options").first.click()
+        page.get_by_text(words.CONTROL_LABELS["keep_implausible"]).first.wait_for()
         shoot(page, "load_orders_messy")
 
-    def test_no_flag_on_any_page_of_the_messy_export(self, page):
-        for title in PAGE_TITLES:
-            open_page(page, title, title)
-            open_every_expander(page)
-            no_exception_shown(page)
-            assert flags_on_screen(page) == [], title
-        open_page(page, "Load orders", "Load orders")
+    def test_every_page_of_the_messy_export_speaks_plainly(self, page):
+        check_every_page_speaks_plainly(page)
 
     def test_upload_the_demo_export(self, page):
         page.locator('input[type="file"]').set_input_files(str(DEMO))
@@ -194,12 +234,14 @@ class TestInTheBrowser:
         no_exception_shown(page)
         shoot(page, "value_tiers")
 
-    def test_cohort_outlook_page(self, page):
-        open_page(page, "Cohort outlook", "Cohort outlook")
-        page.get_by_text("they actually spent").first.wait_for()
+    def test_revenue_outlook_page(self, page):
+        open_page(page, "Revenue outlook", "Revenue outlook")
         page.locator(".js-plotly-plot").nth(1).wait_for()
+        ask_for_the_check_of_the_past(page)
+        page.get_by_text("they actually spent").first.wait_for()
+        page.locator(".js-plotly-plot").nth(3).wait_for()
         no_exception_shown(page)
-        shoot(page, "cohort_outlook")
+        shoot(page, "revenue_outlook")
 
 
 # ---------------------------------------------------------------------------

@@ -64,7 +64,7 @@ MESSY = ROOT / "demo_data" / "messy_orders.csv"
 CONFIG = ROOT / ".streamlit" / "config.toml"
 NOT_SCANNED = {"__pycache__", ".pytest_cache"}
 # Every page after Load orders, with the chart that shows the page is drawn (index among its charts).
-PAGES = [("Forecasts", 0), ("Accuracy check", 0), ("Value tiers", 0), ("Cohort outlook", 1)]
+PAGES = [("Forecasts", 0), ("Accuracy check", 0), ("Value tiers", 0), ("Revenue outlook", 1)]
 # Where Streamlit's front end fetches a ":material/...:" page icon from (seen in its bundled JavaScript).
 MATERIAL_ICON_URL = "https://fonts.gstatic.com/s/i/short-term/release/materialsymbolsrounded/"
 
@@ -615,7 +615,7 @@ class TestSeveralSessionsAtOnce:
 
 # Every customer id of the demo export: "C-" and five digits, and the shop's test account.
 REAL_ID = re.compile(r"C-\d{5}|C-TEST")
-ALL_PAGES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Cohort outlook"]
+ALL_PAGES = ["Load orders", "Forecasts", "Accuracy check", "Value tiers", "Revenue outlook"]
 # The browser's save dialog (File System Access API) would wait for a person; without it the tables'
 # own download falls back to an ordinary download, which the test can read.
 NO_SAVE_DIALOG = "try { delete window.showSaveFilePicker; window.showSaveFilePicker = undefined; } catch (e) {}"
