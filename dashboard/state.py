@@ -89,7 +89,7 @@ class Dataset:
         chosen[role] = column
         return replace(self, overrides=tuple(sorted(chosen.items())))
 
-    def with_options(self, **options: str) -> "Dataset":
+    def with_options(self, **options: Any) -> "Dataset":
         return replace(self, **options)
 
     def read_options(self) -> dict[str, Any]:

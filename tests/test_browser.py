@@ -191,6 +191,7 @@ class TestInTheBrowser:
         no_exception_shown(page)
         page.locator('[data-testid="stExpander"] summary', has_text="Reading options").first.click()
         page.get_by_text(words.CONTROL_LABELS["keep_implausible"]).first.wait_for()
+        page.wait_for_timeout(500)  # the section's opening, before the page is measured for the screenshot
         shoot(page, "load_orders_messy")
 
     def test_every_page_of_the_messy_export_speaks_plainly(self, page):
