@@ -836,6 +836,8 @@ def _check_horizons(horizon):
 # and stop chance first, then Poisson and geometric counts); below it by inverting the count's
 # distribution with one uniform number, which is several times cheaper.
 _INVERSION_MEAN = 12.0
+# Order numbers worked out for every ordering cell at once before the loop takes the rest one at a time.
+_FIRST_STEPS = 6
 
 
 def _draw_counts(rng, r, alpha, a, b, x, t_x, age, horizon, model):
@@ -857,7 +859,7 @@ def _draw_counts(rng, r, alpha, a, b, x, t_x, age, horizon, model):
     return np.where(active, np.minimum(arrivals, stop_count), 0).astype(np.int64)
 
 
-def _sample_counts(rng, alive, shape, keep_log, a, stop_b):
+def _sample_counts(rng, alive, shape, keep_log, a, stop_b, *, heavy=None):
     """Orders placed in the horizon, one draw per cell: the count's distribution inverted.
 
     Parameters
@@ -871,6 +873,9 @@ def _sample_counts(rng, alive, shape, keep_log, a, stop_b):
         log((alpha + T) / (alpha + T + h)) <= 0, per cell.
     a, stop_b : array
         The posterior Beta(a, b + k) of the stop chance.
+    heavy : array of bool, optional
+        Cells that may expect more than ``_INVERSION_MEAN`` orders while
+        active (a superset is fine); worked out here when not given.
 
     All broadcast together; the result has their broadcast shape.
 
@@ -893,69 +898,101 @@ def _sample_counts(rng, alive, shape, keep_log, a, stop_b):
     check against a literal event-by-event simulation.
     """
     out = np.broadcast_shapes(*(np.shape(v) for v in (alive, shape, keep_log, a, stop_b)))
-    none_log = shape * keep_log  # log P(N = 0)
-    with np.errstate(over="ignore", invalid="ignore"):
-        direct = ~(shape * (np.exp(-keep_log) - 1.0) <= _INVERSION_MEAN)  # E[N] = (r+x) q / (1-q)
+    if heavy is None:
+        with np.errstate(over="ignore", invalid="ignore"):
+            heavy = ~(shape * np.expm1(-keep_log) <= _INVERSION_MEAN)  # E[N] = (r+x) q / (1-q)
+    heavy = np.broadcast_to(heavy, out)
     u = rng.random(out)
     counts = np.zeros(out, dtype=np.int64)
     flat = counts.reshape(-1)
-    with np.errstate(invalid="ignore"):
-        ordering = (u < alive * (1.0 - np.exp(none_log))) & ~direct
-    cells = np.flatnonzero(ordering)
+    # P(the customer orders at all) = alive (1 - P(N = 0)), P(N = 0) = (1-q)^(r+x).
+    ordering = np.empty(out)
+    np.multiply(shape, keep_log, out=ordering)
+    np.exp(ordering, out=ordering)
+    np.subtract(1.0, ordering, out=ordering)
+    np.multiply(ordering, alive, out=ordering)
+    cells = np.flatnonzero((u < ordering) & ~heavy)
     if cells.size:
-        flat[cells] = 1
-        v = u.reshape(-1)[cells] / _at(alive, cells, out)
-        rate_shape = _at(shape, cells, out)
-        log_none = _at(none_log, cells, out)
-        q = 1.0 - np.exp(_at(keep_log, cells, out))
+        place = _Places(cells, out)
+        rate_shape = place.take(shape)
+        keep = place.take(keep_log)
+        log_none = rate_shape * keep
+        beta_b = place.take(stop_b)
+        beta_ab = place.take(a) + beta_b
+        # The first _FIRST_STEPS order numbers for every ordering cell without dropping any (most
+        # customers place one to three orders; dropping cells costs more than these few passes).
+        # (1 - exp rather than expm1: only differences of 1e-16 against a uniform number matter here.)
+        q = 1.0 - np.exp(keep)
         chance_n = np.exp(log_none)  # P(N = n), from n = 0
-        tail_n = -np.expm1(log_none)  # P(N >= n + 1), from n = 0
-        beta_b = _at(stop_b, cells, out)
-        beta_ab = _at(a, cells, out) + beta_b
+        tail_n = 1.0 - chance_n  # P(N >= n + 1), from n = 0
         tail_g = np.ones(cells.size)  # P(G >= n + 1), from n = 0
-        n = 1
-        while cells.size and n < 100_000:
-            chance_n = chance_n * q * (rate_shape + (n - 1)) / n
-            tail_n = tail_n - chance_n
-            tail_g = tail_g * (beta_b + (n - 1)) / (beta_ab + (n - 1))
-            going = np.flatnonzero(v < tail_n * tail_g)
-            cells = cells[going]
-            flat[cells] += 1
-            v, rate_shape, q, chance_n, tail_n, beta_b, beta_ab, tail_g = (
-                arr[going] for arr in (v, rate_shape, q, chance_n, tail_n, beta_b, beta_ab, tail_g))
-            n += 1
-    far = np.flatnonzero(direct)
+        v = u.reshape(-1)[cells] / place.take(alive)
+        more = np.zeros(cells.size, dtype=np.int64)
+        for n in range(1, _FIRST_STEPS + 1):
+            chance_n *= q * (rate_shape + (n - 1)) / n
+            tail_n -= chance_n
+            tail_g *= (beta_b + (n - 1)) / (beta_ab + (n - 1))
+            more += v < tail_n * tail_g  # S decreases, so this counts a prefix
+        flat[cells] = 1 + more
+        # The few cells still going after that: one order number at a time, keeping only those.
+        going = np.flatnonzero(more == _FIRST_STEPS)
+        if going.size:
+            cells, v, rate_shape, q, beta_b, beta_ab = (arr[going] for arr in (cells, v, rate_shape, q, beta_b,
+                                                                               beta_ab))
+            chance_n, tail_n, tail_g = chance_n[going], tail_n[going], tail_g[going]
+            n = _FIRST_STEPS + 1
+            while cells.size and n < 100_000:
+                chance_n = chance_n * q * (rate_shape + (n - 1)) / n
+                tail_n = tail_n - chance_n
+                tail_g = tail_g * (beta_b + (n - 1)) / (beta_ab + (n - 1))
+                going = np.flatnonzero(v < tail_n * tail_g)
+                cells = cells[going]
+                flat[cells] += 1
+                v, rate_shape, q, chance_n, tail_n, beta_b, beta_ab, tail_g = (
+                    arr[going] for arr in (v, rate_shape, q, chance_n, tail_n, beta_b, beta_ab, tail_g))
+                n += 1
+    far = np.flatnonzero(heavy)
     if far.size:
-        far = far[u.reshape(-1)[far] < _at(alive, far, out)]
+        far = far[u.reshape(-1)[far] < _Places(far, out).take(alive)]
+        place = _Places(far, out)
         with np.errstate(over="ignore"):
-            rate = rng.gamma(_at(shape, far, out), 1.0) * np.expm1(-_at(keep_log, far, out))
-        stop = rng.beta(_at(a, far, out), _at(stop_b, far, out))
+            rate = rng.gamma(place.take(shape), 1.0) * np.expm1(-place.take(keep_log))
+        stop = rng.beta(place.take(a), place.take(stop_b))
         arrivals = rng.poisson(np.minimum(np.nan_to_num(rate, nan=_MAX_SIMULATED_ARRIVALS), _MAX_SIMULATED_ARRIVALS))
         stop_count = rng.geometric(np.clip(stop, 1e-300, 1.0))
         flat[far] = np.minimum(arrivals, stop_count)
     return counts
 
 
-def _at(values, cells, out):
-    """``np.broadcast_to(values, out).reshape(-1)[cells]`` without building the broadcast array.
+class _Places:
+    """Cells of a one- or two-axis array of shape ``out``, by flat position: values of broadcast arrays there."""
 
-    ``out`` has one or two axes; ``values`` is a scalar or broadcasts to it (a row, a column or
-    the whole shape).
-    """
-    values = np.asarray(values, dtype=np.float64)
-    if values.ndim == 0:
-        return np.full(len(cells), float(values))
-    if values.shape == tuple(out):
-        return values.reshape(-1)[cells]
-    if len(out) == 1:
-        return np.broadcast_to(values.reshape(-1), out)[cells]
-    values = values.reshape((1,) * (2 - values.ndim) + values.shape)
-    rows, columns = values.shape
-    if rows == 1 and columns == 1:
-        return np.full(len(cells), float(values[0, 0]))
-    if rows == 1:
-        return values[0, cells % out[1]]
-    return values[cells // out[1], 0]
+    def __init__(self, cells, out):
+        self.cells = cells
+        self.out = tuple(out)
+        self._rows = self._columns = None
+
+    def take(self, values):
+        """``np.broadcast_to(values, out).reshape(-1)[cells]`` without building the broadcast array."""
+        values = np.asarray(values, dtype=np.float64)
+        out = self.out
+        if values.ndim == 0:
+            return np.full(len(self.cells), float(values))
+        if values.shape == out:
+            return values.reshape(-1)[self.cells]
+        if len(out) == 1:
+            return np.broadcast_to(values.reshape(-1), out)[self.cells]
+        values = values.reshape((1,) * (2 - values.ndim) + values.shape)
+        rows, columns = values.shape
+        if rows == 1 and columns == 1:
+            return np.full(len(self.cells), float(values[0, 0]))
+        if rows == 1:
+            if self._columns is None:
+                self._columns = self.cells % out[1]
+            return values[0, self._columns]
+        if self._rows is None:
+            self._rows = self.cells // out[1]
+        return values[self._rows, 0]
 
 
 def _total_counts(rng, customers, alive, shape, keep_log, a, stop_b):
@@ -974,8 +1011,8 @@ def _total_counts(rng, customers, alive, shape, keep_log, a, stop_b):
     out = np.broadcast_shapes(*(np.shape(v) for v in (customers, alive, shape, keep_log, a, stop_b)))
     customers = np.broadcast_to(np.asarray(customers, dtype=np.int64), out).reshape(-1)
     totals = np.zeros(customers.size, dtype=np.int64)
-    every = np.arange(customers.size)
-    take = {name: _at(v, every, out) for name, v in
+    every = _Places(np.arange(customers.size), out)
+    take = {name: every.take(v) for name, v in
             (("alive", alive), ("shape", shape), ("keep_log", keep_log), ("a", a), ("stop_b", stop_b))}
     with np.errstate(over="ignore", invalid="ignore"):
         direct = ~(take["shape"] * (np.exp(-take["keep_log"]) - 1.0) <= _INVERSION_MEAN)
@@ -1335,6 +1372,9 @@ _MAX_MOVE = 2.0
 # A full Newton step smaller than this in every coordinate ends the minimisation (the next would be
 # below rounding: Newton steps shrink quadratically near the optimum).
 _SETTLED = 1e-11
+# A slope this small relative to the value (a mean over customers of terms of order one) is rounding
+# noise in the sums: the minimisation ends there.
+_ROUNDING_SLOPE = 1e-13
 
 
 def _minimise(objective, start, lower, upper, *, max_steps=200) -> _Descent:
@@ -1366,8 +1406,9 @@ def _minimise(objective, start, lower, upper, *, max_steps=200) -> _Descent:
     promises (Armijo's rule). Near the optimum, where the Hessian is positive
     definite and the step small, the full Newton step is taken and converges
     quadratically; the minimisation ends when such a step moves no
-    coordinate by more than ``_SETTLED``, so fits started from different
-    points agree to rounding. Whether the end point is an optimum is judged
+    coordinate by more than ``_SETTLED`` or the slope is down to rounding
+    noise (``_ROUNDING_SLOPE``), so fits started from different points agree
+    to rounding. Whether the end point is an optimum is judged
     by the caller (:func:`judge_optimum`), not by this function's message.
     Moré and Sorensen (1984), "Newton's method", in Studies in Numerical
     Analysis, MAA, describe the modified Newton step (from memory).
@@ -1393,6 +1434,11 @@ def _minimise(objective, start, lower, upper, *, max_steps=200) -> _Descent:
         sub_gradient = gradient[free]
         if not (np.all(np.isfinite(sub)) and np.all(np.isfinite(sub_gradient))):
             message = "the slope or the curvature is not finite"
+            break
+        if np.max(np.abs(sub_gradient)) <= _ROUNDING_SLOPE * max(1.0, abs(value)):
+            # The slope left is rounding noise: where the value is nearly flat in one direction, a
+            # step on it would only wander.
+            message = "settled"
             break
         eigenvalues, vectors = np.linalg.eigh(0.5 * (sub + sub.T))
         largest = float(np.max(np.abs(eigenvalues))) if eigenvalues.size else 0.0
