@@ -570,7 +570,14 @@ def _spend_draws(counts, order_sd, rng):
     cells = np.flatnonzero(flat)
     if cells.size == 0:
         return sums.reshape(shape)
-    spreads = np.broadcast_to(order_sd, shape).reshape(-1)[cells]
+    spread = np.asarray(order_sd, dtype=np.float64)
+    same = spread.size > 0 and bool(np.all(spread == spread.reshape(-1)[0]))
+    if same:
+        spreads = None
+    elif spread.ndim == 2 and spread.shape[1] == 1 and len(shape) == 2:
+        spreads = spread[cells // shape[1], 0]  # one per row, without building the broadcast array
+    else:
+        spreads = np.broadcast_to(spread, shape).reshape(-1)[cells]
     placed = flat[cells]
     running = np.cumsum(placed)
     start = 0
@@ -579,8 +586,10 @@ def _spend_draws(counts, order_sd, rng):
         stop = max(start + 1, int(np.searchsorted(running, done + _ORDERS_PER_BLOCK, side="right")))
         stop = min(stop, cells.size)
         owners = np.repeat(np.arange(start, stop), placed[start:stop])
-        values = np.exp(spreads[owners] * rng.standard_normal(owners.size))
-        sums[cells[start:stop]] = np.bincount(owners - start, weights=values, minlength=stop - start)
+        draws = rng.standard_normal(owners.size)
+        draws *= spread.reshape(-1)[0] if same else spreads[owners]
+        np.exp(draws, out=draws)
+        sums[cells[start:stop]] = np.bincount(owners - start, weights=draws, minlength=stop - start)
         start = stop
     return sums.reshape(shape)
 
