@@ -211,9 +211,9 @@ _ROLLING_SPAN_DAYS = 365
 # Draws of the simulations at each cut-off of a rolling check (its figures are the point projections;
 # the ranges only say whether each actual amount fell inside).
 _ROLLING_DRAWS = 100
-#: Draws of the simulations of an outlook and its backtest by default (see project_revenue, Notes): the
-#: tests hold the ranges to their stated coverage with 150.
-DEFAULT_DRAWS = 200
+#: Draws of the simulations of an outlook and its backtest by default: the number with which the tests
+#: hold the ranges to their stated coverage (shops simulated with known truth, tests/test_outlook.py).
+DEFAULT_DRAWS = 150
 # The cell baseline "clearly beats" the model when the model's typical miss on existing customers is above
 # 5% and the baseline's is at most two thirds of it (our rule, see _slowing_down_warning).
 _WARN_ABOVE_PCT = 5.0
