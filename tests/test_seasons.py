@@ -159,6 +159,24 @@ class TestJointLikelihood:
         np.testing.assert_allclose(likelihood.value_and_gradient(point)[1], numeric, rtol=1e-4, atol=1e-7)
 
 
+    @pytest.mark.parametrize("model", ["bg-nbd", "mbg-nbd"])
+    def test_hessian_matches_differences_of_the_gradient(self, model):
+        # Slow twin: central differences of the analytic gradient (checked against approx_fprime above).
+        from forecasting.frequency import hessian_by_differences
+
+        orders = simulate_shop(params=BUSY, arrivals_per_day=0.8, days=500, clock_weights=SPRING_WEIGHTS, seed=4)
+        stats = customer_statistics(orders)
+        x = (stats["orders"].to_numpy() - 1).astype(float)
+        repeat = orders.sort_values(["customer", "order_date"])
+        months = repeat.loc[repeat["customer"].duplicated(), "order_date"].dt.month.to_numpy()
+        likelihood = _SeasonalLikelihood(x, stats["first_order"].to_numpy(), stats["last_order"].to_numpy(),
+                                         stats["last_order"].max(), np.bincount(months - 1, minlength=12).astype(float),
+                                         model)
+        point = np.concatenate([np.log([1.5, 50.0, 0.9, 3.0]), np.linspace(-0.3, 0.4, 11)])
+        numeric = hessian_by_differences(lambda p: likelihood.value_and_gradient(p)[1], point)
+        np.testing.assert_allclose(likelihood.hessian(point), numeric, rtol=1e-6, atol=1e-8)
+
+
 class TestFitRepeatOrders:
     @pytest.fixture(scope="class")
     @classmethod
@@ -210,6 +228,19 @@ class TestFitRepeatOrders:
         assert np.all(np.abs(logs.mean(axis=0) - centre) < 4 * np.sqrt(np.diag(model.covariance) / 20000))
         np.testing.assert_allclose(np.cov(logs.T), model.covariance, atol=0.05 * np.abs(model.covariance).max())
         np.testing.assert_allclose(indexes @ MONTH_DAYS / MONTH_DAYS.sum(), 1.0, rtol=1e-12)
+
+    def test_a_fit_started_from_an_earlier_one_ends_at_the_same_optimum(self, spring):
+        # The rolling check starts each cut-off's fits from the previous cut-off's optima; the answer
+        # must be the same as from the default start, to rounding.
+        earlier = fit_repeat_orders(spring[spring["order_date"] < pd.Timestamp("2024-10-01")],
+                                    as_of="2024-10-01")
+        cold = fit_repeat_orders(spring)
+        warm = fit_repeat_orders(spring, start=earlier)
+        assert set(earlier.optima) == {(m, i) for m in ("bg-nbd", "mbg-nbd") for i in (False, True)}
+        assert warm.fit.model == cold.fit.model and warm.seasons == cold.seasons
+        np.testing.assert_allclose(warm.fit.params, cold.fit.params, rtol=1e-9)
+        np.testing.assert_allclose(warm.index, cold.index, rtol=1e-9)
+        assert warm.fit.log_likelihood == pytest.approx(cold.fit.log_likelihood, rel=1e-12)
 
     def test_shops_without_seasons_are_left_on_the_calendar(self):
         # Twenty shops simulated without seasons: the test keeps an index at the 5% level in about

@@ -16,6 +16,7 @@ from ..options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
 from ..outlook import (
     COHORT_PERIODS,
     DEFAULT_CUTOFFS,
+    DEFAULT_DRAWS,
     FREQUENCY_CHOICES,
     NEW_CUSTOMERS,
     SEASONS,
@@ -58,7 +59,8 @@ def add_arguments(parser) -> None:
     # One set of defaults for the command line and the dashboard (forecasting.options).
     parser.set_defaults(method=DEFAULT_METHOD, variance=DEFAULT_VARIANCE)
     parser.add_argument("--level", default="0.9", help="range level (default 0.9)")
-    parser.add_argument("--draws", default="400", help="simulation draws for the ranges (default 400)")
+    parser.add_argument("--draws", default=str(DEFAULT_DRAWS),
+                        help=f"simulation draws for the ranges (default {DEFAULT_DRAWS})")
     parser.add_argument("--seed", default="0", help="seed of the draws (default 0)")
     parser.add_argument("--out", metavar="CSV", help="write the per-customer projection to this CSV")
     parser.add_argument("--schedule-out", metavar="CSV", help="write the month-by-month schedule to this CSV")
