@@ -38,7 +38,7 @@ import pandas as pd
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.forecasts import forecast_customers, forecast_left_out
+from forecasting.forecasts import ShopFits, forecast_left_out, shop_fits
 from forecasting.holdout import held_out_orders
 from forecasting.options import AUTO_TOLERANCE, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of
 
@@ -109,6 +109,7 @@ class CustomerScores:
     claimed: list  # per pair: sum of the forecast's own error variance
     level: float = 0.90
     next_level: float = 0.80
+    cache: dict = field(default_factory=dict, repr=False)  # bootstrap draws, computed once
 
     def subset(self, keep):
         """The same sums for some customers only."""
@@ -119,46 +120,96 @@ class CustomerScores:
                               pick(self.inside), pick(self.excess), pick(self.claimed), self.level, self.next_level)
 
 
-def customer_scores(scored: Scored) -> CustomerScores:
-    """Per-customer sums of a :class:`Scored` evaluation (customers in order of first appearance)."""
-    codes, first = pd.factorize(scored.customer)
-    T = len(first)
-    at = np.zeros(T, dtype=np.int64)
-    at[codes] = np.arange(len(codes))  # one scored order of each customer (any: they share past and segment)
+def _scored_customers(positions):
+    """(customers scored, in the order of the statistics table; each scored order's place among them)."""
+    first, codes = np.unique(np.asarray(positions, dtype=np.int64), return_inverse=True)
+    return first, codes.reshape(-1)
 
+
+def _pair_sums(codes, T, x, log_x, f):
+    """Per customer: squared errors, differences, orders inside the next-order range, the log-scale
+    excess and the claimed variance of one pair's forecasts (:class:`CustomerScores`)."""
     def total(values):
         return np.bincount(codes, weights=values, minlength=T)
 
-    x = scored.value
-    with np.errstate(divide="ignore", invalid="ignore"):
-        log_x = np.log(x)
-    sq, diff, inside, excess, claimed = [], [], [], [], []
     # A model with no finite spread for some customers (gamma-gamma with too few orders) has no
     # log-scale description there: those orders are left out of the implied coverage.
     with np.errstate(invalid="ignore"):
-        for f in scored.forecasts:
-            expected = np.asarray(f.expected, dtype=np.float64)
-            sq.append(total((expected - x) ** 2))
-            diff.append(total(expected - x))
-            inside.append(total(((x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high)))
-                                .astype(np.float64)))
-            spread = (log_x - np.asarray(f.check_centre)) ** 2 - np.asarray(f.check_order_var)
-            own = np.asarray(f.check_estimate_var, dtype=np.float64) + np.zeros_like(x)
-            described = np.isfinite(spread) & np.isfinite(own)
-            excess.append(total(np.where(described, spread, 0.0)))
-            claimed.append(total(np.where(described, own, 0.0)))
-    return CustomerScores(scored.kind, list(scored.pairs), np.asarray(first), scored.past_orders[at],
-                          None if scored.segment is None else scored.segment[at], np.bincount(codes, minlength=T)
-                          .astype(np.float64), total(x), total((scored.plain - x) ** 2), sq, diff, inside, excess,
-                          claimed, scored.level, scored.next_level)
+        expected = np.asarray(f.expected, dtype=np.float64)
+        error = expected - x
+        inside = (x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high))
+        spread = (log_x - np.asarray(f.check_centre)) ** 2 - np.asarray(f.check_order_var)
+        own = np.asarray(f.check_estimate_var, dtype=np.float64) + np.zeros_like(x)
+        described = np.isfinite(spread) & np.isfinite(own)
+        return (total(error * error), total(error), total(inside.astype(np.float64)),
+                total(np.where(described, spread, 0.0)), total(np.where(described, own, 0.0)))
+
+
+def _log_values(x):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log(x)
+
+
+def customer_scores(scored: Scored) -> CustomerScores:
+    """Per-customer sums of a :class:`Scored` evaluation (customers in the order of the statistics)."""
+    first, codes = _scored_customers(scored.customer)
+    T = len(first)
+    at = np.zeros(T, dtype=np.int64)
+    at[codes] = np.arange(len(codes))  # one scored order of each customer (any: they share past and segment)
+    x = scored.value
+    log_x = _log_values(x)
+    sums = [_pair_sums(codes, T, x, log_x, f) for f in scored.forecasts]
+    count = np.bincount(codes, minlength=T).astype(np.float64)
+    value = np.bincount(codes, weights=x, minlength=T)
+    plain_sq = np.bincount(codes, weights=(scored.plain - x) ** 2, minlength=T)
+    return CustomerScores(scored.kind, list(scored.pairs), first, scored.past_orders[at],
+                          None if scored.segment is None else scored.segment[at], count, value, plain_sq,
+                          *[[part[i] for part in sums] for i in range(5)], scored.level, scored.next_level)
+
+
+def left_out_scores(fits: ShopFits, pairs, *, level=0.90, next_level=0.80) -> CustomerScores:
+    """Leave-one-out :class:`CustomerScores` of every pair, each pair's computed once per dataset.
+
+    The held-out bookkeeping (:meth:`forecasting.forecasts.ShopFits.held`) and each pair's sums
+    are kept with the shared fits, so the automatic choice, the evaluation and the forecasts of
+    one shop never compute a pair twice.
+    """
+    held = fits.held()
+
+    def base():
+        first, codes = _scored_customers(held.customer)
+        T = len(first)
+        at = np.zeros(T, dtype=np.int64)
+        at[codes] = np.arange(len(codes))
+        x = held.value
+        segment = fits.stats["segment"].to_numpy()[first] if "segment" in fits.stats.columns else None
+        return {"first": first, "codes": codes, "T": T, "log_x": _log_values(x),
+                "past": held.past_orders[at], "segment": segment,
+                "count": np.bincount(codes, minlength=T).astype(np.float64),
+                "value": np.bincount(codes, weights=x, minlength=T),
+                "plain_sq": np.bincount(codes, weights=(held.money.mean_after - x) ** 2, minlength=T)}
+
+    common = held.cached("score base", base)
+
+    def pair(method, variance):
+        forecast = forecast_left_out(held, method, variance, level=level, next_level=next_level, fits=fits)
+        return _pair_sums(common["codes"], common["T"], held.value, common["log_x"], forecast)
+
+    sums = [held.cached(("pair scores", method, variance, float(level), float(next_level)),
+                        lambda m=method, v=variance: pair(m, v)) for method, variance in pairs]
+    return CustomerScores("leave-one-out", list(pairs), common["first"], common["past"], common["segment"],
+                          common["count"], common["value"], common["plain_sq"],
+                          *[[part[i] for part in sums] for i in range(5)], level, next_level)
 
 
 def combine_scores(parts) -> CustomerScores:
-    """Per-customer sums computed in parts (on a cluster, each part holds whole customers), joined."""
+    """Per-customer sums computed in parts (on a cluster, each part holds whole customers), joined
+    and put in the order of the statistics table."""
     parts = [part for part in parts if part is not None]
     first = parts[0]
-    join = lambda name: np.concatenate([getattr(p, name) for p in parts])  # noqa: E731
-    listed = lambda name: [np.concatenate([getattr(p, name)[i] for p in parts])  # noqa: E731
+    order = np.argsort(np.concatenate([p.customer for p in parts]), kind="stable")
+    join = lambda name: np.concatenate([getattr(p, name) for p in parts])[order]  # noqa: E731
+    listed = lambda name: [np.concatenate([getattr(p, name)[i] for p in parts])[order]  # noqa: E731
                            for i in range(len(first.pairs))]
     segment = None if first.segment is None else join("segment")
     return CustomerScores(first.kind, first.pairs, join("customer"), join("past_orders"), segment, join("count"),
@@ -289,31 +340,72 @@ def calibration_measures(scores: CustomerScores, i):
 # ---------------------------------------------------------------------------
 
 
-def _bootstrap_reductions(per_customer_plain, per_customer_methods, *, resamples, seed):
-    """Error reduction of every method in every bootstrap resample of customers (resamples x methods).
+#: Resamples whose counts are drawn and applied at once (bounds memory; no effect on the draws).
+BOOTSTRAP_BLOCK = 32
 
-    ``per_customer_methods`` is customers x methods of summed squared errors. Each resample
-    draws T customers with replacement; their counts (a multinomial count vector, made by
-    counting T uniform draws with ``numpy.bincount``, much faster than
-    ``Generator.multinomial`` for many customers) turn the resampled SSE into counts @
-    per-customer SSE. Counts are drawn for a few resamples at a time to bound memory. The same
-    seed gives the same resamples, so comparisons between methods are paired.
+
+def bootstrap_sums(per_customer, *, resamples, seed):
+    """Column sums of ``per_customer`` (customers x columns) in every bootstrap resample of customers.
+
+    Parameters
+    ----------
+    per_customer : numpy.ndarray
+        One row per customer (T rows), one column per quantity to add up.
+    resamples : int
+        R, the number of resamples.
+    seed : int
+
+    Returns
+    -------
+    numpy.ndarray
+        R x columns: row r is sum_t c_rt per_customer[t], with c_r the counts of resample r.
+
+    Notes
+    -----
+    Resample r draws T customers with replacement: the r-th run of T draws of
+    ``numpy.random.default_rng(seed).integers(0, T)`` (64-bit integers, in order), so the
+    resamples are a documented function of the seed, the number of customers and their order
+    (the order of the statistics table), whatever the block size. The draws are turned into a
+    weight matrix of multinomial counts (``numpy.bincount`` of a block of resamples at once,
+    much faster than ``Generator.multinomial`` for many customers) and applied to every column
+    in one matrix product, so every method's resampled error comes from the same customers
+    (paired comparisons).
     """
-    T = len(per_customer_plain)
+    table = np.asarray(per_customer, dtype=np.float64)
+    T = table.shape[0]
     rng = np.random.default_rng(seed)
-    block = int(max(1, min(resamples, (1 << 20) // T)))
-    table = np.column_stack([per_customer_plain, per_customer_methods])
-    draws = []
+    block = int(max(1, min(resamples, BOOTSTRAP_BLOCK, (1 << 22) // max(T, 1))))
+    out = np.empty((resamples, table.shape[1]))
+    offsets = (np.arange(block, dtype=np.int64) * T)[:, None]
+    weights = np.empty((block, T))
     done = 0
     while done < resamples:
         size = min(block, resamples - done)
         picks = rng.integers(0, T, size=(size, T))
-        picks += (np.arange(size, dtype=picks.dtype) * T)[:, None]  # resample r counts in bins r T .. r T + T - 1
+        picks += offsets[:size]  # resample r counts in bins r T .. r T + T - 1
         counts = np.bincount(picks.ravel(), minlength=size * T).reshape(size, T)
-        draws.append(counts @ table)
+        np.copyto(weights[:size], counts)
+        out[done:done + size] = weights[:size] @ table
         done += size
-    sums = np.vstack(draws)
+    return out
+
+
+def _bootstrap_reductions(per_customer_plain, per_customer_methods, *, resamples, seed):
+    """Error reduction of every method in every bootstrap resample of customers (resamples x methods),
+    from :func:`bootstrap_sums` of the plain averages' and every method's squared errors."""
+    sums = bootstrap_sums(np.column_stack([per_customer_plain, per_customer_methods]), resamples=resamples,
+                          seed=seed)
     return _reduction_pct(sums[:, :1], sums[:, 1:])
+
+
+def _scores_reductions(scores, *, resamples, seed):
+    """:func:`_bootstrap_reductions` of the scores' pairs, computed once per scores (the intervals of
+    the results table and the paired margins share them)."""
+    key = ("bootstrap", int(resamples), int(seed))
+    if key not in scores.cache:
+        scores.cache[key] = _bootstrap_reductions(scores.plain_sq, _methods_matrix(scores), resamples=resamples,
+                                                  seed=seed)
+    return scores.cache[key]
 
 
 def _percentile_interval(draws, level=0.95):
@@ -324,14 +416,15 @@ def _percentile_interval(draws, level=0.95):
         return np.nanpercentile(draws, tail, axis=0), np.nanpercentile(draws, 100.0 - tail, axis=0)
 
 
-def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95):
+def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95, draws=None):
     """Percentile interval of every error reduction, resampling customers."""
     n_methods = per_customer_methods.shape[1]
     if resamples <= 0 or len(per_customer_plain) < 2:
         nan = np.full(n_methods, np.nan)
         return nan, nan
-    reductions = _bootstrap_reductions(per_customer_plain, per_customer_methods, resamples=resamples, seed=seed)
-    return _percentile_interval(reductions, level)
+    if draws is None:
+        draws = _bootstrap_reductions(per_customer_plain, per_customer_methods, resamples=resamples, seed=seed)
+    return _percentile_interval(draws, level)
 
 
 def _methods_matrix(scores):
@@ -354,7 +447,7 @@ def _paired_margins(scores: CustomerScores, chosen_pair, *, resamples, seed, lev
     # Plain averages that are exact (every order alike) leave every reduction undefined: NaN margins.
     with np.errstate(invalid="ignore"):
         if resamples > 0 and len(scores.plain_sq) >= 2:
-            draws = _bootstrap_reductions(scores.plain_sq, _methods_matrix(scores), resamples=resamples, seed=seed)
+            draws = _scores_reductions(scores, resamples=resamples, seed=seed)
             low, high = _percentile_interval(draws[:, [best]] - draws, level)
         else:
             low = high = np.full(len(point), np.nan)
@@ -413,8 +506,11 @@ def summarise(scores, *, resamples=0, seed=0, tolerance=AUTO_TOLERANCE, keep=Non
         scores = customer_scores(scores)
     if keep is not None:
         scores = scores.subset(keep)
+    draws = None
+    if resamples > 0 and len(scores.plain_sq) >= 2:
+        draws = _scores_reductions(scores, resamples=resamples, seed=seed)
     ci_low, ci_high = _bootstrap_intervals(scores.plain_sq, _methods_matrix(scores), resamples=resamples,
-                                           seed=seed)
+                                           seed=seed, draws=draws)
     counts = np.maximum(scores.count, 1.0)
     mean_plain = float(np.sum(scores.plain_sq / counts))
     sse_plain = float(scores.plain_sq.sum())
@@ -527,7 +623,8 @@ def _loo_predict(held, method, variance, *, level=0.90, next_level=0.80):
 
 
 def leave_one_out(orders, stats, pairs, *, level=0.90, next_level=0.80, held=None) -> Scored:
-    """Forecast every held-out order with each pair, refitted without it."""
+    """Forecast every held-out order with each pair, refitted without it (one forecast per held-out
+    order and pair; :func:`left_out_scores` gives their per-customer sums without keeping them)."""
     held = held if held is not None else held_out_orders(orders, stats)
     forecasts = [forecast_left_out(held, method, variance, level=level, next_level=next_level)
                  for method, variance in pairs]
@@ -567,68 +664,93 @@ def default_cutoff(order_dates):
     return pd.Timestamp(dates[position])
 
 
-class _TableForecast:
-    """A forecast table's columns as the scores need them (for the backtest)."""
+class _BacktestForecast:
+    """A forecast's columns at the scored customers, as the scores need them (for the backtest)."""
 
-    def __init__(self, table, position, level, next_level):
-        fit = table.attrs["fit"]
-        self.expected = table["expected_next_order"].to_numpy(np.float64)[position]
-        self.next_low = table["next_order_low"].to_numpy(np.float64)[position]
-        self.next_high = table["next_order_high"].to_numpy(np.float64)[position]
+    def __init__(self, money, position, level, next_level):
+        self.expected = money.expected[position]
+        self.next_low = money.next_low[position]
+        self.next_high = money.next_high[position]
         # The log-scale description of the next order from the ranges themselves.
         z_next = NormalDist().inv_cdf(0.5 + next_level / 2.0)
         z = NormalDist().inv_cdf(0.5 + level / 2.0)
         self.check_centre = (np.log(self.next_low) + np.log(self.next_high)) / 2.0
         next_var = ((np.log(self.next_high) - np.log(self.next_low)) / (2.0 * z_next)) ** 2
-        low = table["expected_low"].to_numpy(np.float64)[position]
-        high = table["expected_high"].to_numpy(np.float64)[position]
+        low = money.expected_low[position]
+        high = money.expected_high[position]
         with np.errstate(divide="ignore"):
             self.check_estimate_var = ((np.log(high) - np.log(low)) / (2.0 * z)) ** 2
         self.check_order_var = np.maximum(next_var - self.check_estimate_var, 0.0)
-        self.fit = fit
 
 
-def _backtest(orders, pairs, cutoff, *, level=0.90, next_level=0.80):
-    """Fit on orders before the cut-off; score each customer's first order after it."""
-    notes = []
-    if "order_date" not in orders.columns or orders["order_date"].isna().all():
-        return None, cutoff, ["no order dates, so no backtest"]
+def _cutoff_of(orders, cutoff):
     if cutoff is None:
-        cutoff = default_cutoff(orders["order_date"])
+        return default_cutoff(orders["order_date"])
+    try:
+        return pd.Timestamp(cutoff)
+    except (TypeError, ValueError):
+        raise OrderDataError("the cut-off is not a date", value=cutoff, option="cutoff",
+                             fix="Give the cut-off as YYYY-MM-DD")
+
+
+def backtest_split(fits: ShopFits, cutoff):
+    """The orders before a cut-off, their shared fits and each customer's first order after it.
+
+    Returns ``(cutoff, split)`` where ``split`` is None when there is nothing to backtest (no
+    dates, or no orders on one side), else a dict with the shared fits of the orders before
+    the cut-off (``fits``, :class:`forecasting.forecasts.ShopFits`), the scored customers'
+    ``position`` in their statistics and their first order after it (``value``), or a
+    ``note``. Kept with ``fits``: a second evaluation of the same shop and cut-off reuses it.
+    """
+    orders = fits.orders
+    if "order_date" not in orders.columns or orders["order_date"].isna().all():
+        return cutoff, {"note": "no order dates, so no backtest"}
+    if cutoff is None:
+        cutoff = fits.cached("default cutoff", lambda: default_cutoff(orders["order_date"]))
     else:
-        try:
-            cutoff = pd.Timestamp(cutoff)
-        except (TypeError, ValueError):
-            raise OrderDataError("the cut-off is not a date", value=cutoff, option="cutoff",
-                                 fix="Give the cut-off as YYYY-MM-DD")
-    before_mask = (orders["order_date"] < cutoff).to_numpy()
-    before = orders.loc[before_mask]
-    after = orders.loc[~before_mask]
-    if len(before) == 0 or len(after) == 0:
-        return None, cutoff, [f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"]
-    stats_before = customer_statistics(before)
-    first_after = after.sort_values("order_date", kind="stable").groupby("customer", sort=False).first()
-    customers = stats_before.index.intersection(first_after.index)
-    if len(customers) == 0:
-        return None, cutoff, ["no customer ordered both before and after the cut-off, so no backtest"]
-    position = stats_before.index.get_indexer(customers)
-    x = first_after.loc[customers, "order_value"].to_numpy(np.float64)
-    plain = stats_before["mean"].to_numpy()[position]
-    forecasts, kept = [], []
+        cutoff = _cutoff_of(orders, cutoff)
+
+    def split():
+        before_mask = (orders["order_date"] < cutoff).to_numpy()
+        before = orders.loc[before_mask]
+        after = orders.loc[~before_mask]
+        if len(before) == 0 or len(after) == 0:
+            return {"note": f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"}
+        stats_before = customer_statistics(before)
+        first_after = after.sort_values("order_date", kind="stable").groupby("customer", sort=False).first()
+        customers = stats_before.index.intersection(first_after.index)
+        if len(customers) == 0:
+            return {"note": "no customer ordered both before and after the cut-off, so no backtest"}
+        position = stats_before.index.get_indexer(customers)
+        order = np.argsort(position, kind="stable")  # customers in the order of the statistics
+        position = position[order]
+        return {"fits": ShopFits(stats_before, before), "position": position,
+                "value": first_after.loc[customers, "order_value"].to_numpy(np.float64)[order]}
+
+    return cutoff, fits.cached(("backtest split", cutoff), split)
+
+
+def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80):
+    """Fit on orders before the cut-off; score each customer's first order after it."""
+    cutoff, split = backtest_split(fits, cutoff)
+    if "note" in split:
+        return None, cutoff, [split["note"]]
+    before, position, x = split["fits"], split["position"], split["value"]
+    stats_before = before.stats
+    plain = before.column("mean")[position]
+    notes, forecasts, kept = [], [], []
     for method, variance in pairs:
         try:
-            table = forecast_customers(stats_before, method=method,
-                                       variance="classic" if variance == OWN_SPREAD else variance, orders=before,
-                                       level=level, next_level=next_level)
+            parts = before.parts(method, "classic" if variance == OWN_SPREAD else variance, level=level,
+                                 next_level=next_level)
         except OrderDataError as problem:
             notes.append(f"backtest of {method} with {variance} variance skipped: {problem}")
             continue
-        forecasts.append(_TableForecast(table, position, level, next_level))
+        forecasts.append(_BacktestForecast(parts.money, position, level, next_level))
         kept.append((method, variance))
     segment = stats_before["segment"].to_numpy()[position] if "segment" in stats_before.columns else None
-    scored = Scored(kind="backtest", pairs=kept, customer=position,
-                    past_orders=stats_before["orders"].to_numpy(np.float64)[position], segment=segment, value=x,
-                    plain=plain, forecasts=forecasts, level=level, next_level=next_level)
+    scored = Scored(kind="backtest", pairs=kept, customer=position, past_orders=before.column("orders")[position],
+                    segment=segment, value=x, plain=plain, forecasts=forecasts, level=level, next_level=next_level)
     return scored, cutoff, notes
 
 
@@ -681,7 +803,7 @@ class Evaluation:
 
 
 def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, bootstrap=500, seed=0, level=0.90,
-                     next_level=0.80):
+                     next_level=0.80, fits=None):
     """Compare every method x spread model with plain customer averages, and check their calibration.
 
     Parameters
@@ -699,6 +821,11 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         Seed of the bootstrap and of the split of customers that checks the automatic choice.
     level, next_level : float
         Levels of the expected-value and next-order ranges whose coverage is reported.
+    fits : forecasting.forecasts.ShopFits, optional
+        The shared fits of these orders (``ShopFits(customer_statistics(orders), orders)``):
+        whatever the forecasts or an earlier check computed with them (spread models, the
+        held-out bookkeeping, each pair's leave-one-out, the backtest's fits) is reused, and
+        what this evaluation computes is kept for the next (see :class:`forecasting.shop.Shop`).
 
     Returns
     -------
@@ -737,17 +864,22 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
     for value, name in ((level, "level"), (next_level, "next_level")):
         if not 0 < value < 1:
             raise OrderDataError(f"{name} must be between 0 and 1", value=value, option=name)
-    stats = customer_statistics(orders)
+    if fits is None:
+        fits = ShopFits(customer_statistics(orders), orders)
+    elif fits.orders is not orders:
+        raise ValueError("the shared fits belong to another orders table")
+    stats = fits.stats
     pairs = _combinations(methods, variances, stats=stats)
     notes = []
-    scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
-    if len(scored.count) == 0:
+    scored = left_out_scores(fits, pairs, level=level, next_level=next_level) if len(stats) else None
+    if scored is None or len(scored.count) == 0:
         notes.append("no customer has two or more orders, so there is nothing to hold out")
+    if scored is None:
+        scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
     loo = summarise(scored, resamples=bootstrap, seed=seed)
     by_past, by_segment = _breakdowns(scored)
 
-    backtest_scored, cutoff_used, backtest_notes = _backtest(orders, pairs, cutoff, level=level,
-                                                             next_level=next_level)
+    backtest_scored, cutoff_used, backtest_notes = _backtest(fits, pairs, cutoff, level=level, next_level=next_level)
     notes.extend(backtest_notes)
     if backtest_scored is not None:
         backtest_scores = customer_scores(backtest_scored)
@@ -777,11 +909,11 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
     )
 
 
-def choose_method(orders, stats=None, *, methods=None, variances=None):
+def choose_method(orders, stats=None, *, methods=None, variances=None, fits=None):
     """The automatic choice (see :func:`forecasting.selection.choose_method`)."""
     from forecasting.selection import choose_method as choose
 
-    return choose(orders, stats, methods=methods, variances=variances)
+    return choose(orders, stats, methods=methods, variances=variances, fits=fits)
 
 
 def best_of(results, allowed=None) -> dict:

@@ -257,6 +257,7 @@ class HeldOut:
     log: Side
     segment_codes: np.ndarray | None = None  # segment number of every customer, when segments are given
     orders: pd.DataFrame | None = None  # the orders held out (for fits that need order-level values)
+    codes: np.ndarray | None = None  # position in stats of every order's customer (all of ``orders``)
     cache: dict = field(default_factory=dict)
 
     @property
@@ -298,7 +299,7 @@ def customer_positions(orders: pd.DataFrame, stats: pd.DataFrame) -> np.ndarray:
     return codes
 
 
-def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None) -> HeldOut:
+def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None, codes=None) -> HeldOut:
     """Hold out, one at a time, every order of every customer with at least two orders.
 
     Parameters
@@ -310,8 +311,10 @@ def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=Non
         Per-customer statistics of the whole shop.
     order_sums : array of 4 floats, optional
         :func:`order_value_sums` over all the shop's orders (default: over ``orders``).
+    codes : array of int, optional
+        :func:`customer_positions` of ``orders``, when already known.
     """
-    codes = customer_positions(orders, stats)
+    codes = customer_positions(orders, stats) if codes is None else np.asarray(codes, dtype=np.int64)
     counts = stats["orders"].to_numpy(np.float64)
     values = orders["order_value"].to_numpy(dtype=np.float64)
     keep = counts[codes] >= 2
@@ -327,4 +330,5 @@ def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=Non
     if "segment" in stats.columns:
         labels = pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
         segments = np.unique(labels, return_inverse=True)[1].astype(np.int64)
-    return HeldOut(stats=stats, customer=t, value=x, money=money, log=log, segment_codes=segments, orders=orders)
+    return HeldOut(stats=stats, customer=t, value=x, money=money, log=log, segment_codes=segments, orders=orders,
+                   codes=codes)

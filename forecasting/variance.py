@@ -276,7 +276,9 @@ def _chi2_median_ratio(dof):
     from scipy import special  # a tenth of a second to import: only this spread needs it
 
     k = np.asarray(dof, dtype=np.float64)
-    return 2.0 * special.gammaincinv(k / 2.0, 0.5) / k
+    # The ratio depends on k alone: one evaluation per distinct number of degrees of freedom.
+    values, where = np.unique(k, return_inverse=True)
+    return (2.0 * special.gammaincinv(values / 2.0, 0.5) / values)[where].reshape(k.shape)
 
 
 def order_spread(orders, log_sum_sq_dev):

@@ -179,11 +179,33 @@ def solve_reml(sums_at, start, upper, *, tol=1e-13, max_iter=200):
 
 
 def _direct_sums(tau2, s, d):
-    """The weighted sums over customers, for every tau2 in an array (full fits)."""
-    w = 1.0 / (np.asarray(tau2, dtype=np.float64)[:, None] + s[None, :])
+    """The weighted sums over customers, for every tau2 in an array (full fits).
+
+    Customers with the same s share their weights, so the sums run over the distinct values of
+    s (the order counts, for s = sigma2 / n) with the customers' columns added up within each.
+    """
+    return _value_group_sums(_value_groups(s, d), tau2)
+
+
+def _value_groups(s, d):
+    """(distinct s, and per distinct s: the number of customers, sum d, sum d^2)."""
+    values, where = np.unique(s, return_inverse=True)
+    size = values.size
+    return values, np.stack([np.bincount(where, minlength=size).astype(np.float64),
+                             np.bincount(where, weights=d, minlength=size),
+                             np.bincount(where, weights=d * d, minlength=size)], axis=1)
+
+
+def _value_group_sums(groups, tau2):
+    values, table = groups
+    w = 1.0 / (np.asarray(tau2, dtype=np.float64)[:, None] + values[None, :])
     powers = {1: w, 2: w * w}
     powers[3] = powers[2] * w
-    return {p: {"one": wp.sum(axis=1), "d": wp @ d, "d2": wp @ (d * d)} for p, wp in powers.items()}
+    out = {}
+    for p, wp in powers.items():
+        one, d, d2 = (wp @ table).T
+        out[p] = {"one": one, "d": d, "d2": d2}
+    return out
 
 
 def _between_from(tau2, sums_at, origin):
@@ -241,8 +263,10 @@ def fit_between(means, mean_vars) -> Between:
         notes = ("Some customers' averages have no spread at all; the spread between customers was measured "
                  "by moments instead of restricted likelihood.",)
     else:
+        groups = _value_groups(s, d)
+
         def sums_at(t):
-            return _direct_sums(t, s, d)
+            return _value_group_sums(groups, t)
 
         upper = np.array([2.0 * var_m + float(np.max(s)) + np.finfo(float).tiny])
         start = np.array([max(0.0, var_m - float(np.mean(s)))])
@@ -250,7 +274,8 @@ def fit_between(means, mean_vars) -> Between:
     if np.any(s == 0) and tau2 == 0:
         exact = s == 0
         return Between(0.0, float(np.mean(m[exact])), 0.0, float("inf"), notes)
-    centre, centre_var, tau2_var = _between_from(np.array([tau2]), lambda t: _direct_sums(t, s, d), origin)
+    groups = _value_groups(s, d)
+    centre, centre_var, tau2_var = _between_from(np.array([tau2]), lambda t: _value_group_sums(groups, t), origin)
     return Between(tau2, float(centre[0]), float(centre_var[0]), float(tau2_var[0]), notes)
 
 
