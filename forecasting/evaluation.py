@@ -39,7 +39,7 @@ import pandas as pd
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
 from forecasting.forecasts import ShopFits, forecast_left_out, shop_fits
-from forecasting.holdout import held_out_orders
+from forecasting.holdout import held_out_orders, thread_pool
 from forecasting.options import AUTO_TOLERANCE, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of
 
 #: Methods whose leave-one-out refits everything exactly, and the spread models (all exact).
@@ -137,7 +137,11 @@ def _pair_sums(codes, T, x, log_x, f):
     with np.errstate(invalid="ignore"):
         expected = np.asarray(f.expected, dtype=np.float64)
         error = expected - x
-        inside = (x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high))
+        bounds = getattr(f, "next_log", None)
+        if bounds is not None:  # the range is symmetric on the log scale: no return to money needed
+            inside = np.abs(log_x - bounds[0]) <= bounds[1]
+        else:
+            inside = (x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high))
         spread = (log_x - np.asarray(f.check_centre)) ** 2 - np.asarray(f.check_order_var)
         own = np.asarray(f.check_estimate_var, dtype=np.float64) + np.zeros_like(x)
         described = np.isfinite(spread) & np.isfinite(own)
@@ -232,6 +236,23 @@ def _ratio_and_se(numerator, denominator):
     return float(ratio), float(np.sqrt(np.sum((numerator - ratio * denominator) ** 2)) / b)
 
 
+def _grouped_ratios(numerator, denominator, groups, size):
+    """:func:`_ratio_and_se` within each group (codes 0..size-1) and over all customers, from two
+    passes of ``numpy.bincount``: ((ratio, se) per group, (ratio, se) overall)."""
+    a = np.bincount(groups, weights=numerator, minlength=size)
+    b = np.bincount(groups, weights=denominator, minlength=size)
+    total_a, total_b = float(a.sum()), float(b.sum())
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(b > 0, a / b, np.nan)
+        overall = total_a / total_b if total_b > 0 else np.nan
+        residual = np.bincount(groups, weights=(numerator - np.nan_to_num(ratio)[groups] * denominator) ** 2,
+                               minlength=size)
+        se = np.where(b > 0, np.sqrt(residual) / b, np.nan)
+        overall_se = (float(np.sqrt(np.sum((numerator - overall * denominator) ** 2)) / total_b)
+                      if total_b > 0 else np.nan)
+    return list(zip(ratio, se)), (overall, overall_se)
+
+
 def implied_coverage(excess, claimed, level):
     """The share of true means an expected-value range would hold, implied by the errors.
 
@@ -259,8 +280,13 @@ def implied_coverage(excess, claimed, level):
     (tests/test_calibration.py) counts it on shops with known truth. The standard error is the
     delta method's, customers independent.
     """
-    z = NormalDist().inv_cdf(0.5 + level / 2.0)
     ratio, se = _ratio_and_se(np.asarray(excess, dtype=np.float64), np.asarray(claimed, dtype=np.float64))
+    return _coverage_from_ratio(ratio, se, level)
+
+
+def _coverage_from_ratio(ratio, se, level):
+    """2 Phi(z / sqrt(r)) - 1 and its delta-method standard error (see :func:`implied_coverage`)."""
+    z = NormalDist().inv_cdf(0.5 + level / 2.0)
     if not np.isfinite(ratio):
         return float("nan"), float("nan")
     if ratio <= 0:
@@ -269,17 +295,6 @@ def implied_coverage(excess, claimed, level):
     coverage = 2.0 * standard.cdf(z / np.sqrt(ratio)) - 1.0
     slope = standard.pdf(z / np.sqrt(ratio)) * z * ratio ** -1.5
     return float(coverage), float(slope * se)
-
-
-def _calibration(scores: CustomerScores, i, keep=None):
-    """Money bias, next-order coverage and implied expected coverage of pair i (with standard errors)."""
-    sel = slice(None) if keep is None else keep
-    bias, bias_se = _ratio_and_se(scores.diff[i][sel], scores.value[sel])
-    coverage, coverage_se = _ratio_and_se(scores.inside[i][sel], scores.count[sel])
-    expected_cov, expected_se = implied_coverage(scores.excess[i][sel], scores.claimed[i][sel], scores.level)
-    return {"money_bias_pct": 100.0 * bias, "money_bias_se": 100.0 * bias_se, "coverage": coverage,
-            "coverage_se": coverage_se, "expected_coverage": expected_cov, "expected_coverage_se": expected_se,
-            "orders": int(np.sum(scores.count[sel]))}
 
 
 def judge_calibration(measures, *, level, next_level, tolerance=AUTO_TOLERANCE):
@@ -324,15 +339,42 @@ def _band_of(past):
     return labels
 
 
-def calibration_measures(scores: CustomerScores, i):
-    """Calibration of pair i over all scored customers and in each band of past orders."""
-    measures = {"all": _calibration(scores, i)}
-    bands = _band_of(scores.past_orders)
-    for _, _, label in CALIBRATION_BANDS:
-        mask = bands == label
-        if mask.any():
-            measures[label] = _calibration(scores, i, mask)
-    return measures
+def _band_codes(past):
+    """The calibration band of every scored customer as 0, 1, 2 (:data:`CALIBRATION_BANDS`)."""
+    codes = np.zeros(len(past), dtype=np.int64)
+    for index, (low, high, _) in enumerate(CALIBRATION_BANDS):
+        codes[(past >= low) & (past <= high)] = index
+    return codes
+
+
+def calibration_measures(scores: CustomerScores, i, bands=None):
+    """Calibration of pair i over all scored customers and in each band of past orders.
+
+    Money bias, next-order coverage and implied expected coverage with their standard errors
+    (as :func:`_ratio_and_se` and :func:`implied_coverage`), for all customers and for each
+    band of :data:`CALIBRATION_BANDS` that has customers, each from one pass of
+    ``numpy.bincount`` over the bands. ``bands`` is :func:`_band_codes` of the scores' past
+    orders, when already made.
+    """
+    bands = _band_codes(scores.past_orders) if bands is None else bands
+    size = len(CALIBRATION_BANDS)
+    count = np.bincount(bands, weights=scores.count, minlength=size)
+    bias, bias_all = _grouped_ratios(scores.diff[i], scores.value, bands, size)
+    coverage, coverage_all = _grouped_ratios(scores.inside[i], scores.count, bands, size)
+    implied, implied_all = _grouped_ratios(scores.excess[i], scores.claimed[i], bands, size)
+
+    def measures(bias_pair, coverage_pair, implied_pair, orders):
+        expected, expected_se = _coverage_from_ratio(implied_pair[0], implied_pair[1], scores.level)
+        return {"money_bias_pct": 100.0 * float(bias_pair[0]), "money_bias_se": 100.0 * float(bias_pair[1]),
+                "coverage": float(coverage_pair[0]), "coverage_se": float(coverage_pair[1]),
+                "expected_coverage": expected, "expected_coverage_se": expected_se, "orders": int(orders)}
+
+    out = {"all": measures(bias_all, coverage_all, implied_all, count.sum())}
+    present = np.bincount(bands, minlength=size) > 0
+    for index, (_, _, label) in enumerate(CALIBRATION_BANDS):
+        if present[index]:
+            out[label] = measures(bias[index], coverage[index], implied[index], count[index])
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -376,17 +418,31 @@ def bootstrap_sums(per_customer, *, resamples, seed):
     rng = np.random.default_rng(seed)
     block = int(max(1, min(resamples, BOOTSTRAP_BLOCK, (1 << 22) // max(T, 1))))
     out = np.empty((resamples, table.shape[1]))
-    offsets = (np.arange(block, dtype=np.int64) * T)[:, None]
-    weights = np.empty((block, T))
+
+    def apply(picks, start):
+        # Counts of each resample's draws: the weight matrix, applied to every column at once.
+        weights = np.empty((picks.shape[0], T))
+        for row in range(picks.shape[0]):
+            weights[row] = np.bincount(picks[row], minlength=T)
+        out[start:start + picks.shape[0]] = weights @ table
+
+    # The draws come from one generator in order (this thread); the counting and the matrix
+    # product of a block run in a worker thread meanwhile (they release the interpreter lock).
+    pool = thread_pool() if resamples > block else None
+    pending = None
     done = 0
     while done < resamples:
         size = min(block, resamples - done)
         picks = rng.integers(0, T, size=(size, T))
-        picks += offsets[:size]  # resample r counts in bins r T .. r T + T - 1
-        counts = np.bincount(picks.ravel(), minlength=size * T).reshape(size, T)
-        np.copyto(weights[:size], counts)
-        out[done:done + size] = weights[:size] @ table
+        if pool is None:
+            apply(picks, done)
+        else:
+            if pending is not None:
+                pending.result()
+            pending = pool.submit(apply, picks, done)
         done += size
+    if pending is not None:
+        pending.result()
     return out
 
 
@@ -515,10 +571,11 @@ def summarise(scores, *, resamples=0, seed=0, tolerance=AUTO_TOLERANCE, keep=Non
     mean_plain = float(np.sum(scores.plain_sq / counts))
     sse_plain = float(scores.plain_sq.sum())
     rows = []
+    bands = _band_codes(scores.past_orders)
     for i, (method, variance) in enumerate(scores.pairs):
         sse = float(scores.sq[i].sum())
         scored_any = len(scores.count) > 0
-        measures = calibration_measures(scores, i)
+        measures = calibration_measures(scores, i, bands)
         ok, note = judge_calibration(measures, level=scores.level, next_level=scores.next_level, tolerance=tolerance)
         overall = measures["all"]
         entry = METHODS[method]
@@ -711,21 +768,30 @@ def backtest_split(fits: ShopFits, cutoff):
         cutoff = _cutoff_of(orders, cutoff)
 
     def split():
-        before_mask = (orders["order_date"] < cutoff).to_numpy()
+        dates = orders["order_date"]
+        before_mask = (dates < cutoff).to_numpy()
         before = orders.loc[before_mask]
-        after = orders.loc[~before_mask]
-        if len(before) == 0 or len(after) == 0:
+        if len(before) == 0 or before_mask.all():
             return {"note": f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"}
         stats_before = customer_statistics(before)
-        first_after = after.sort_values("order_date", kind="stable").groupby("customer", sort=False).first()
-        customers = stats_before.index.intersection(first_after.index)
-        if len(customers) == 0:
+        # Positions among the customers before the cut-off, from the positions among all customers
+        # (both tables are sorted by customer).
+        codes = fits.codes()
+        inside = np.bincount(codes[before_mask], minlength=fits.customers) > 0
+        if int(inside.sum()) != len(stats_before):
+            raise RuntimeError("the customers before the cut-off do not match the customer statistics")
+        position_of = np.cumsum(inside) - 1
+        # Each customer's first order on or after the cut-off (the earliest date; the first in the
+        # file among orders of that date).
+        after = np.flatnonzero(~before_mask)
+        after = after[np.argsort(dates.to_numpy()[after], kind="stable")]
+        customers, first = np.unique(codes[after], return_index=True)
+        keep = inside[customers]
+        if not keep.any():
             return {"note": "no customer ordered both before and after the cut-off, so no backtest"}
-        position = stats_before.index.get_indexer(customers)
-        order = np.argsort(position, kind="stable")  # customers in the order of the statistics
-        position = position[order]
-        return {"fits": ShopFits(stats_before, before), "position": position,
-                "value": first_after.loc[customers, "order_value"].to_numpy(np.float64)[order]}
+        values = orders["order_value"].to_numpy(np.float64)
+        return {"fits": ShopFits(stats_before, before, codes=position_of[codes[before_mask]]),
+                "position": position_of[customers[keep]], "value": values[after[first[keep]]]}
 
     return cutoff, fits.cached(("backtest split", cutoff), split)
 

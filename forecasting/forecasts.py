@@ -86,23 +86,51 @@ def _z(level):
 # ---------------------------------------------------------------------------
 
 
-@dataclass
 class MoneyForecast:
     """Forecasts in money with both ranges, and what the shop's own check needs to judge them.
 
     ``check_centre``, ``check_estimate_var`` and ``check_order_var`` describe the next order on
     the log scale: log(next order) - check_centre has variance check_estimate_var (the
-    forecast's own error) + check_order_var (one order's spread).
+    forecast's own error) + check_order_var (one order's spread). ``next_log`` is the
+    next-order range on the log scale, (centre, half-width), when it is symmetric there. The
+    ranges in money (``expected_low``, ``expected_high``, ``next_low``, ``next_high``) are
+    computed on first use: the shop's own check scores the next-order range on the log scale
+    and never needs the expected-value range in money.
     """
 
-    expected: np.ndarray
-    expected_low: np.ndarray
-    expected_high: np.ndarray
-    next_low: np.ndarray
-    next_high: np.ndarray
-    check_centre: np.ndarray
-    check_estimate_var: np.ndarray
-    check_order_var: np.ndarray
+    def __init__(self, expected, check_centre, check_estimate_var, check_order_var, *, expected_range, next_range,
+                 next_log=None):
+        self.expected = expected
+        self.check_centre = check_centre
+        self.check_estimate_var = check_estimate_var
+        self.check_order_var = check_order_var
+        self.next_log = next_log
+        self._expected_range = expected_range
+        self._next_range = next_range
+
+    def _ranges(self, which):
+        name = "_" + which + "_range"
+        value = getattr(self, name)
+        if callable(value):
+            value = value()
+            setattr(self, name, value)
+        return value
+
+    @property
+    def expected_low(self):
+        return self._ranges("expected")[0]
+
+    @property
+    def expected_high(self):
+        return self._ranges("expected")[1]
+
+    @property
+    def next_low(self):
+        return self._ranges("next")[0]
+
+    @property
+    def next_high(self):
+        return self._ranges("next")[1]
 
 
 def _lognormal_with(mean, variance, z):
@@ -202,20 +230,28 @@ def money_forecast(spread: VarianceFit, between: Between, estimate, weight, orde
             - g2 * g * excess / (n * n)
         expected = smearing * np.exp(estimate + shift)
         half = z * np.sqrt(v)
-        expected_low = smearing * np.exp(estimate - half)
-        expected_high = smearing * np.exp(estimate + half)
+
+        def expected_range():
+            return (np.minimum(smearing * np.exp(estimate - half), expected),
+                    np.maximum(smearing * np.exp(estimate + half), expected))
+
         # The central range of the next order is set by usual orders, in the customer's history as
         # in the next order: the one-order spread w (not the pooled sigma2) on both.
         one_order = np.asarray(spread.details["order_spread"], dtype=np.float64)
         v_next = error_variance(g, one_order / n, between)
         next_half = z_next * np.sqrt(v_next + one_order)
-        return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
-                             np.exp(estimate - next_half), np.exp(estimate + next_half),
-                             estimate + np.zeros_like(v), v, sigma2 + np.zeros_like(v))
+        centre = estimate + np.zeros_like(v)
+        return MoneyForecast(expected, centre, v, sigma2 + np.zeros_like(v), expected_range=expected_range,
+                             next_range=lambda: (np.exp(estimate - next_half), np.exp(estimate + next_half)),
+                             next_log=(centre, next_half))
     expected = estimate
     if spread.model == "proportional":
         v = v * expected * expected / np.asarray(spread.details["mean_square_level"], dtype=np.float64)
-    expected_low, expected_high, _, v_log = _lognormal_with(expected, v, z)
+
+    def expected_range():
+        low, high, _, _ = _lognormal_with(expected, v, z)
+        return np.minimum(low, expected), np.maximum(high, expected)
+
     # The next order: lognormal around the forecast, with the shop's log spread of one order and the
     # forecast's own uncertainty relative to the level it concerns: the customer's own for the
     # proportional model, the shop's centre for the classic one (whose v is one amount of money for
@@ -223,12 +259,15 @@ def money_forecast(spread: VarianceFit, between: Between, estimate, weight, orde
     if spread.model != "proportional":
         centre_money = np.asarray(between.centre, dtype=np.float64)
         v_log = np.log1p(v / np.maximum(centre_money * centre_money, np.finfo(float).tiny))
+    else:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            v_log = np.log1p(np.where(expected > 0, v / (expected * expected), 0.0))
     order_log = np.asarray(spread.details["log_order_spread"], dtype=np.float64)
     next_log = order_log + v_log
     centre = np.log(np.maximum(expected, np.finfo(float).tiny)) - next_log / 2.0
     half = z_next * np.sqrt(next_log)
-    return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
-                         np.exp(centre - half), np.exp(centre + half), centre, v_log, order_log + np.zeros_like(v_log))
+    return MoneyForecast(expected, centre, v_log, order_log + np.zeros_like(v_log), expected_range=expected_range,
+                         next_range=lambda: (np.exp(centre - half), np.exp(centre + half)), next_log=(centre, half))
 
 
 def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForecast:
@@ -248,8 +287,9 @@ def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForeca
         v_log = np.log1p(np.where(finite, posterior_var / estimate ** 2, np.inf))
         next_log = np.log1p(np.where(finite, (posterior_var + order_var) / estimate ** 2, np.inf))
         order_log = np.where(finite, next_log - v_log, np.inf)
-    return MoneyForecast(estimate, np.minimum(low, estimate), np.maximum(high, estimate), next_low, next_high,
-                         np.log(estimate) - next_log / 2.0, v_log, order_log)
+    return MoneyForecast(estimate, np.log(estimate) - next_log / 2.0, v_log, order_log,
+                         expected_range=(np.minimum(low, estimate), np.maximum(high, estimate)),
+                         next_range=(next_low, next_high))
 
 
 # ---------------------------------------------------------------------------

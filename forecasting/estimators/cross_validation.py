@@ -85,54 +85,66 @@ def cv_folds(codes, values, T, *, folds=CV_FOLDS, seed=CV_SEED) -> list:
 
 def _fold_errors(fold: Fold, grid, estimates):
     """sum over held-out orders of (x - estimate)^2, up to a term that does not depend on the
-    estimate, for every multiplier: sum n_ho (held-out average - estimate)^2."""
+    estimate, for every multiplier: sum n_ho (held-out average - estimate)^2 (the estimates of
+    every multiplier at once; the slow path of the errors below)."""
     est = estimates(fold, grid)  # multipliers x scored customers
     return ((fold.held_mean - est) ** 2 * fold.held_count).sum(axis=1)
 
 
-def _mta_estimates(fold: Fold, grid):
-    """Constant MTA on the fold's training averages for every multiplier (as :func:`mta_constant`)."""
+def _shrunk_errors(fold: Fold, keep_groups, size, pull, centre):
+    """The errors of :func:`_fold_errors` for estimates c + g (m - c) with g = 1 - pull[:, group]
+    the same for every scored customer of a group, from sums over the groups.
+
+    With r = held-out average - m, y = m - o (o the mean of the training averages) and
+    gamma = c - o, the error is sum w (r + h (y - gamma))^2 with h the pull, so per group only
+    sum w, w r, w r^2, w y, w y^2 and w r y are needed.
+    """
+    w = fold.held_count
+    m = fold.m[fold.keep]
+    origin = float(np.mean(fold.m))
+    r = fold.held_mean - m
+    y = m - origin
+    sums = [np.bincount(keep_groups, weights=values, minlength=size)
+            for values in (w, w * r, w * r * r, w * y, w * y * y, w * r * y)]
+    W, R, RR, Y, YY, RY = sums
+    gamma = (np.asarray(centre, dtype=np.float64) - origin)[:, None]
+    h = pull
+    return (RR.sum() + 2.0 * (h * (RY - gamma * R)).sum(axis=1)
+            + (h * h * (YY - 2.0 * gamma * Y + gamma * gamma * W)).sum(axis=1))
+
+
+def _mta_errors(fold: Fold, grid):
+    """:func:`_fold_errors` of constant MTA for every multiplier, from sums over training counts."""
     m, s = fold.m, fold.s
     grid = np.asarray(grid, dtype=np.float64)
-    if m.size <= 1:
-        return np.broadcast_to(m[fold.keep], (grid.size, int(fold.keep.sum())))
-    var = float(np.var(m, ddof=1))
-    if not (var > 0 and np.all(s > 0) and np.all(np.isfinite(s))):
-        return np.stack([mta_constant(m, s, multiplier=lam).estimate[fold.keep] for lam in grid])
+    var = float(np.var(m, ddof=1)) if m.size > 1 else 0.0
+    if m.size <= 1 or not (var > 0 and np.all(s > 0) and np.all(np.isfinite(s))):
+        return _fold_errors(fold, grid, _mta_estimates)
     a = 1.0 / var
-    # Customers with the same training count share g = 1 / (1 + lam a s): the centre comes from
-    # sums over the counts.
     counts, where = np.unique(fold.train_count, return_inverse=True)
     size = np.bincount(where, minlength=counts.size).astype(np.float64)
     total = np.bincount(where, weights=m, minlength=counts.size)
     s_of = np.bincount(where, weights=s, minlength=counts.size) / size
     g = 1.0 / (1.0 + (grid[:, None] * a) * s_of[None, :])  # multipliers x counts
     centre = (g @ total) / (g @ size)
-    g_keep = g[:, where[fold.keep]]
-    out = centre[:, None] + g_keep * (m[fold.keep][None, :] - centre[:, None])
-    plain = grid == 0
-    if plain.any():  # a = 0: the averages themselves, exactly
-        out[plain] = m[fold.keep]
-    return out
+    return _shrunk_errors(fold, where[fold.keep], counts.size, 1.0 - g, centre)
 
 
-def _james_stein_estimates(fold: Fold, grid):
-    """James-Stein on the fold's training averages for every multiplier of the shrink amount
-    (as :func:`james_stein` with ``amount_scale``)."""
+def _james_stein_errors(fold: Fold, grid):
+    """:func:`_fold_errors` of James-Stein for every multiplier of the shrink amount."""
     m, s = fold.m, fold.s
     grid = np.asarray(grid, dtype=np.float64)
     fitted = james_stein(m, s)
+    keep_groups = np.zeros(int(fold.keep.sum()), dtype=np.int64)
     if "closed_form_factor" not in fitted.params:  # plain averages whatever the multiplier
-        return np.broadcast_to(m[fold.keep], (grid.size, int(fold.keep.sum())))
-    factor = fitted.params["closed_form_factor"]
-    used = 1.0 - np.clip(grid * (1.0 - factor), 0.0, 1.0)
-    xi = fitted.centre
-    return xi + used[:, None] * (m[fold.keep][None, :] - xi)
+        return _shrunk_errors(fold, keep_groups, 1, np.zeros((grid.size, 1)), np.zeros(grid.size))
+    amount = np.clip(grid * (1.0 - fitted.params["closed_form_factor"]), 0.0, 1.0)
+    return _shrunk_errors(fold, keep_groups, 1, amount[:, None], np.full(grid.size, fitted.centre))
 
 
 #: Each cross-validated method's grid and its estimates on a fold for every multiplier.
-_CV_RUNS = {"mta-cv": (lambda: MTA_CV_GRID, _mta_estimates),
-            "james-stein-cv": (lambda: JS_CV_GRID, _james_stein_estimates)}
+_CV_RUNS = {"mta-cv": (lambda: MTA_CV_GRID, _mta_errors),
+            "james-stein-cv": (lambda: JS_CV_GRID, _james_stein_errors)}
 
 
 def cross_validated_multiplier(name, codes, values, T, *, folds=None):
@@ -161,13 +173,13 @@ def cross_validated_multiplier(name, codes, values, T, *, folds=None):
     if np.asarray(values).size < 2 * CV_FOLDS:
         return 1.0, (f"Too few orders to cross-validate ({np.asarray(values).size}); "
                      "the closed-form amount of shrinkage is used.",)
-    grid_of, estimates = _CV_RUNS[name]
+    grid_of, fold_errors = _CV_RUNS[name]
     grid = grid_of()
     if folds is None:
         folds = cv_folds(codes, values, T)
     errors = np.zeros(len(grid))
     for fold in folds:
-        errors += _fold_errors(fold, grid, estimates)
+        errors += fold_errors(fold, grid)
     return float(grid[int(np.argmin(errors))]), ()
 
 
