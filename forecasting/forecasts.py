@@ -21,6 +21,9 @@ front end can explain them.
 
 from __future__ import annotations
 
+import contextvars
+from collections import OrderedDict
+from contextlib import contextmanager
 from dataclasses import dataclass
 from statistics import NormalDist
 
@@ -392,6 +395,14 @@ class ShopFits:
             self.cache[key] = compute()
         return self.cache[key]
 
+    def for_tables(self, stats, orders) -> "ShopFits":
+        """These fits answering for equal tables (what was computed is shared, not copied)."""
+        if stats is self.stats and (orders is None or orders is self.orders):
+            return self
+        twin = ShopFits(stats, orders if orders is not None else self.orders)
+        twin.cache = self.cache
+        return twin
+
     # -- per-customer arrays ---------------------------------------------------------------
 
     def column(self, name) -> np.ndarray:
@@ -481,10 +492,79 @@ class ShopFits:
                            lambda: _forecast_parts(self, method, variance, level=level, next_level=next_level))
 
 
+class FitsRegistry:
+    """Shared fits kept for the statistics tables a piece of work meets, found again by content.
+
+    A front end's :class:`forecasting.shop.Shop` keeps one and makes it current while it works
+    (:func:`reusing_fits`): a library function that builds statistics of its own -- the revenue
+    outlook's backtests fit on the orders before a cut-off, two of them on the same cut-off when
+    the outlook is checked once and at many cut-offs -- then finds the fits (and the automatic
+    choice made with them) computed the first time instead of computing them again.
+
+    Parameters
+    ----------
+    size : int
+        How many tables are kept (the least recently used goes first).
+
+    Notes
+    -----
+    A table is known by a hash of every value of the statistics (index included) and of the
+    orders' values, their customers and their number, so only identical inputs share fits.
+    """
+
+    def __init__(self, size: int = 6):
+        self.size = size
+        self._kept = OrderedDict()
+
+    def fits_for(self, stats: pd.DataFrame, orders: pd.DataFrame | None) -> ShopFits:
+        key = _fingerprint(stats, orders)
+        found = self._kept.get(key)
+        if found is None:
+            found = ShopFits(stats, orders)
+            self._kept[key] = found
+            while len(self._kept) > self.size:
+                self._kept.popitem(last=False)
+        else:
+            self._kept.move_to_end(key)
+            # The same content in new tables: the fits answer for them (their values are equal).
+            found = found.for_tables(stats, orders)
+        return found
+
+    def __len__(self):
+        return len(self._kept)
+
+
+_CURRENT_FITS = contextvars.ContextVar("forecasting_current_fits", default=None)
+
+
+@contextmanager
+def reusing_fits(registry: FitsRegistry):
+    """Make ``registry`` current: :func:`forecast_customers` called without ``fits`` looks there."""
+    token = _CURRENT_FITS.set(registry)
+    try:
+        yield registry
+    finally:
+        _CURRENT_FITS.reset(token)
+
+
+def _fingerprint(stats, orders):
+    import hashlib
+
+    digest = hashlib.blake2b(digest_size=16)
+    digest.update(pd.util.hash_pandas_object(stats, index=True).to_numpy().tobytes())
+    if orders is not None:
+        digest.update(np.int64(len(orders)).tobytes())
+        digest.update(orders["order_value"].to_numpy(dtype=np.float64).tobytes())
+        digest.update(pd.util.hash_array(orders["customer"].to_numpy(dtype=object)).tobytes())
+    return digest.hexdigest()
+
+
 def shop_fits(stats, orders=None, fits=None) -> ShopFits:
-    """``fits`` when it belongs to ``stats`` (and ``orders``), else new ones."""
+    """``fits`` when it belongs to ``stats`` (and ``orders``), else the current registry's
+    (:func:`reusing_fits`), else new ones."""
     if fits is None:
-        return ShopFits(stats, orders)
+        registry = _CURRENT_FITS.get()
+        return registry.fits_for(stats, orders) if registry is not None else ShopFits(stats, orders)
     if fits.stats is not stats:
         raise ValueError("the shared fits belong to another table of customer statistics")
     if orders is not None and fits.orders is not None and fits.orders is not orders:

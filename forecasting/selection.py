@@ -343,6 +343,15 @@ def resolve_choice(stats, orders=None, *, method: str = DEFAULT_METHOD, variance
     own_spread = method != "auto" and METHODS[method].own_spread
     if method != "auto" and (variance != "auto" or own_spread):
         return Choice(method, OWN_SPREAD if own_spread else variance, "user")
+    if fits is not None and orders is not None:
+        key = ("resolved choice", method, variance)
+        if key not in fits.cache:
+            fits.cache[key] = _resolve(stats, orders, method, variance, checked, fits)
+        return fits.cache[key]
+    return _resolve(stats, orders, method, variance, checked, fits)
+
+
+def _resolve(stats, orders, method, variance, checked, fits) -> Choice:
     if orders is None:
         chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
         chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance

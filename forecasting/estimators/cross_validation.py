@@ -91,6 +91,16 @@ def _fold_errors(fold: Fold, grid, estimates):
     return ((fold.held_mean - est) ** 2 * fold.held_count).sum(axis=1)
 
 
+def _mta_estimates(fold: Fold, grid):
+    """Constant MTA on the fold's training averages for every multiplier, one fit each (the
+    rare folds the sums over training counts do not cover: one customer, equal averages, or an
+    average without spread)."""
+    m, s = fold.m, fold.s
+    if m.size <= 1:
+        return np.broadcast_to(m[fold.keep], (len(grid), int(fold.keep.sum())))
+    return np.stack([mta_constant(m, s, multiplier=lam).estimate[fold.keep] for lam in grid])
+
+
 def _shrunk_errors(fold: Fold, keep_groups, size, pull, centre):
     """The errors of :func:`_fold_errors` for estimates c + g (m - c) with g = 1 - pull[:, group]
     the same for every scored customer of a group, from sums over the groups.
