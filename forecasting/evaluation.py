@@ -40,7 +40,8 @@ from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
 from forecasting.forecasts import ShopFits, forecast_left_out, shop_fits
 from forecasting.holdout import held_out_orders, thread_pool
-from forecasting.options import AUTO_TOLERANCE, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of
+from forecasting.options import (AUTO_TOLERANCE, CHECK_CUSTOMERS, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of,
+                                 checked_customers)
 
 #: Methods whose leave-one-out refits everything exactly, and the spread models (all exact).
 EXACT_METHODS = tuple(name for name, m in METHODS.items() if m.exact_left_out)
@@ -171,14 +172,16 @@ def customer_scores(scored: Scored) -> CustomerScores:
                           *[[part[i] for part in sums] for i in range(5)], scored.level, scored.next_level)
 
 
-def left_out_scores(fits: ShopFits, pairs, *, level=0.90, next_level=0.80) -> CustomerScores:
+def left_out_scores(fits: ShopFits, pairs, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS) -> CustomerScores:
     """Leave-one-out :class:`CustomerScores` of every pair, each pair's computed once per dataset.
 
     The held-out bookkeeping (:meth:`forecasting.forecasts.ShopFits.held`) and each pair's sums
     are kept with the shared fits, so the automatic choice, the evaluation and the forecasts of
-    one shop never compute a pair twice.
+    one shop never compute a pair twice. The orders of at most ``limit`` customers are scored
+    (:data:`forecasting.options.CHECK_CUSTOMERS`; None: all), each forecast refitted on all the
+    shop's other orders.
     """
-    held = fits.held()
+    held = fits.held(limit)
 
     def base():
         first, codes = _scored_customers(held.customer)
@@ -796,12 +799,15 @@ def backtest_split(fits: ShopFits, cutoff):
     return cutoff, fits.cached(("backtest split", cutoff), split)
 
 
-def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80):
-    """Fit on orders before the cut-off; score each customer's first order after it."""
+def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS):
+    """Fit on orders before the cut-off; score each customer's first order after it (of at most
+    ``limit`` customers, :func:`forecasting.options.checked_customers`)."""
     cutoff, split = backtest_split(fits, cutoff)
     if "note" in split:
         return None, cutoff, [split["note"]]
     before, position, x = split["fits"], split["position"], split["value"]
+    scored = checked_customers(np.ones(position.size, dtype=bool), limit)
+    position, x = position[scored], x[scored]
     stats_before = before.stats
     plain = before.column("mean")[position]
     notes, forecasts, kept = [], [], []
@@ -852,6 +858,9 @@ class Evaluation:
         ``honest_gain_pct``: its error cut on customers it was not chosen on.
     orders, customers, held_out : int
         Orders and customers in the data; orders held out in leave-one-out.
+    customers_checked : int
+        Customers whose orders were held out (all repeat customers, or
+        :data:`forecasting.options.CHECK_CUSTOMERS` of them drawn at random).
     """
 
     leave_one_out: pd.DataFrame
@@ -866,10 +875,11 @@ class Evaluation:
     cutoff: pd.Timestamp | None = None
     notes: list = field(default_factory=list)
     margins: pd.DataFrame = field(default_factory=pd.DataFrame)
+    customers_checked: int = 0
 
 
 def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, bootstrap=500, seed=0, level=0.90,
-                     next_level=0.80, fits=None):
+                     next_level=0.80, fits=None, check_customers=CHECK_CUSTOMERS):
     """Compare every method x spread model with plain customer averages, and check their calibration.
 
     Parameters
@@ -892,6 +902,11 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         whatever the forecasts or an earlier check computed with them (spread models, the
         held-out bookkeeping, each pair's leave-one-out, the backtest's fits) is reused, and
         what this evaluation computes is kept for the next (see :class:`forecasting.shop.Shop`).
+    check_customers : int or None
+        Score the orders of at most this many customers, in the leave-one-out and in the
+        backtest, drawn at random (seeded) when there are more
+        (:data:`forecasting.options.CHECK_CUSTOMERS`); None scores every customer. Every
+        forecast is still refitted on all the shop's other orders.
 
     Returns
     -------
@@ -937,15 +952,22 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
     stats = fits.stats
     pairs = _combinations(methods, variances, stats=stats)
     notes = []
-    scored = left_out_scores(fits, pairs, level=level, next_level=next_level) if len(stats) else None
+    scored = (left_out_scores(fits, pairs, level=level, next_level=next_level, limit=check_customers)
+              if len(stats) else None)
     if scored is None or len(scored.count) == 0:
         notes.append("no customer has two or more orders, so there is nothing to hold out")
+    repeat = int(np.count_nonzero(stats["orders"].to_numpy() >= 2)) if len(stats) else 0
+    if scored is not None and len(scored.count) < repeat:
+        notes.append(f"the orders of {len(scored.count):,} of the {repeat:,} customers with two or more orders, "
+                     "drawn at random, were held out (each forecast refitted on all other orders); more would "
+                     "move the figures by less than their stated uncertainty")
     if scored is None:
         scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
     loo = summarise(scored, resamples=bootstrap, seed=seed)
     by_past, by_segment = _breakdowns(scored)
 
-    backtest_scored, cutoff_used, backtest_notes = _backtest(fits, pairs, cutoff, level=level, next_level=next_level)
+    backtest_scored, cutoff_used, backtest_notes = _backtest(fits, pairs, cutoff, level=level, next_level=next_level,
+                                                             limit=check_customers)
     notes.extend(backtest_notes)
     if backtest_scored is not None:
         backtest_scores = customer_scores(backtest_scored)
@@ -972,6 +994,7 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         cutoff=cutoff_used,
         notes=notes,
         margins=_paired_margins(scored, (chosen["method"], chosen["variance"]), resamples=bootstrap, seed=seed),
+        customers_checked=int(len(scored.count)),
     )
 
 

@@ -35,7 +35,7 @@ from forecasting.errors import OrderDataError
 from forecasting.estimators.base import Between, between_left_out, error_variance, fit_between, rows_of
 from forecasting.exports import rounded_for_reading
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
-from forecasting.options import DEFAULT_CHOICE, low_confidence
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, checked_customers, low_confidence
 from forecasting.options import METHODS as METHOD_REGISTRY
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
@@ -477,14 +477,20 @@ class ShopFits:
         return self.cached(key, lambda: tail_report(self.orders["order_value"].to_numpy(dtype=np.float64),
                                                     checked=checked))
 
-    def held(self):
-        """Every order of every repeat customer held out in turn (:func:`forecasting.holdout.held_out_orders`)."""
+    def held(self, limit=CHECK_CUSTOMERS):
+        """Every order of every repeat customer held out in turn (:func:`forecasting.holdout.held_out_orders`),
+        of at most ``limit`` customers (:func:`forecasting.options.checked_customers`; None: all)."""
         from forecasting.holdout import held_out_orders
 
         if self.orders is None:
             raise OrderDataError("the leave-one-out needs the order-level table", option="method",
                                  fix="Give the cleaned orders, or choose a method")
-        return self.cached("held", lambda: held_out_orders(self.orders, self.stats, codes=self.codes()))
+
+        def make():
+            customers = checked_customers(self.column("orders") >= 2, limit)
+            return held_out_orders(self.orders, self.stats, codes=self.codes(), customers=customers)
+
+        return self.cached(("held", limit), make)
 
     def parts(self, method: str, variance: str, *, level=0.90, next_level=0.80) -> "ForecastParts":
         """The forecast of a method x spread model (never ``"auto"``), kept for each level."""

@@ -24,7 +24,7 @@ import pandas as pd
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.options import DEFAULT_CHOICE, DEFAULT_METHOD, DEFAULT_VARIANCE, METHODS, OWN_SPREAD
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, DEFAULT_METHOD, DEFAULT_VARIANCE, METHODS, OWN_SPREAD
 from forecasting.evaluation import (
     AUTO_METHODS,
     AUTO_VARIANCES,
@@ -188,7 +188,8 @@ def choose_from_scores(scored, results, *, restricted=False, seed=0) -> dict:
     return chosen
 
 
-def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0, fits=None) -> dict:
+def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0, fits=None,
+                  check_customers=CHECK_CUSTOMERS) -> dict:
     """Pick the method and spread model for a shop from its own orders.
 
     Parameters
@@ -203,6 +204,9 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0, f
         Seed of the split-half check.
     fits : forecasting.forecasts.ShopFits, optional
         The shared fits of these orders: each pair's leave-one-out is computed once with them.
+    check_customers : int or None
+        Score the orders of at most this many customers (as
+        :func:`forecasting.evaluation.evaluate_methods`; None: all).
 
     Returns
     -------
@@ -220,9 +224,9 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0, f
         raise OrderDataError("the automatic choice of method needs the order-level data", option="method",
                              fix="Give the cleaned orders, or choose a method")
     fits = _fits_of(orders, stats, fits)
-    key = ("choice", _names_key(methods), _names_key(variances), int(seed))
+    key = ("choice", _names_key(methods), _names_key(variances), int(seed), check_customers)
     if key not in fits.cache:
-        scores, results = _checked_pairs(fits, methods, variances)
+        scores, results = _checked_pairs(fits, methods, variances, check_customers)
         fits.cache[key] = choose_from_scores(scores, results, restricted=methods is not None or variances is not None,
                                              seed=seed)
     return dict(fits.cache[key])
@@ -242,11 +246,11 @@ def _fits_of(orders, stats, fits) -> ShopFits:
     return ShopFits(customer_statistics(orders) if stats is None else stats, orders)
 
 
-def _checked_pairs(fits, methods, variances):
+def _checked_pairs(fits, methods, variances, limit=CHECK_CUSTOMERS):
     """The shop's own check (leave-one-out scores and their summary) of the candidate pairs."""
     pairs = _combinations(methods, variances, stats=fits.stats, default_methods=AUTO_METHODS,
                           default_variances=AUTO_VARIANCES)
-    scores = left_out_scores(fits, pairs)
+    scores = left_out_scores(fits, pairs, limit=limit)
     return scores, summarise(scores)
 
 

@@ -46,7 +46,7 @@ import pandas as pd
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
 from forecasting.forecasts import FitsRegistry, ShopFits, forecast_customers, reusing_fits
-from forecasting.options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE, OWN_SPREAD
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE, OWN_SPREAD
 
 __all__ = ["Shop"]
 
@@ -172,7 +172,9 @@ class Shop:
             checked = None
             if method == "auto" and variance == "auto":
                 for key, found in list(self._answers.items()):
-                    if key[0] == "evaluation" and key[1:4] == (None, None, None):
+                    # methods, variances, customers checked, seed and levels as the automatic choice's
+                    if key[0] == "evaluation" and key[1:4] == (None, None, CHECK_CUSTOMERS) and key[6:] == (0, 0.9,
+                                                                                                           0.8):
                         checked = found.chosen
                         break
             return resolve_choice(self.statistics, self.orders, method=method, variance=variance, checked=checked,
@@ -198,7 +200,7 @@ class Shop:
         return method == "auto" or (variance == "auto" and method in METHODS and not METHODS[method].own_spread)
 
     def evaluation(self, *, methods=None, variances=None, cutoff=None, bootstrap: int = 500, seed: int = 0,
-                   level: float = 0.90, next_level: float = 0.80):
+                   level: float = 0.90, next_level: float = 0.80, check_customers=CHECK_CUSTOMERS):
         """The accuracy check (:func:`forecasting.evaluation.evaluate_methods`) with the shared fits."""
         self._needs_orders("the accuracy check")
 
@@ -207,9 +209,9 @@ class Shop:
 
             return evaluate_methods(self.orders, methods=methods, variances=variances, cutoff=cutoff,
                                     bootstrap=bootstrap, seed=seed, level=level, next_level=next_level,
-                                    fits=self.fits)
+                                    fits=self.fits, check_customers=check_customers)
 
-        key = ("evaluation", _key(methods), _key(variances), cutoff, bootstrap, seed, float(level),
+        key = ("evaluation", _key(methods), _key(variances), check_customers, cutoff, bootstrap, seed, float(level),
                float(next_level))
         return self._once(key, run)
 

@@ -198,3 +198,39 @@ class TestSharedFits:
         table["expected_next_order"] = 0.0
         again = forecast_customers(shop.statistics, method="mta", variance="log", orders=orders, fits=shop.fits)
         assert (again["expected_next_order"] > 0).all()
+
+
+class TestCheckedCustomers:
+    """The shop's own check scores the orders of at most CHECK_CUSTOMERS customers, drawn at random."""
+
+    def test_a_sample_scores_exactly_the_forecasts_of_the_whole(self):
+        # Sampling chooses which held-out orders are scored, nothing else: each sampled customer's
+        # sums are those of the check over every customer.
+        orders = spend_orders(customers=400, seed=13)
+        fits = ShopFits(customer_statistics(orders), orders)
+        pairs = [("mta", "log"), ("empirical-bayes", "classic"), ("gamma-gamma", "gamma-model")]
+        every = evaluation.left_out_scores(fits, pairs, limit=None)
+        some = evaluation.left_out_scores(fits, pairs, limit=60)
+        assert len(some.count) == 60 < len(every.count)
+        where = np.searchsorted(every.customer, some.customer)
+        np.testing.assert_array_equal(every.customer[where], some.customer)
+        for i in range(len(pairs)):
+            np.testing.assert_allclose(some.sq[i], every.sq[i][where], rtol=1e-12)
+            np.testing.assert_allclose(some.inside[i], every.inside[i][where], rtol=1e-12)
+
+    def test_the_draw_is_seeded_and_stated(self):
+        from forecasting.options import checked_customers
+
+        orders = spend_orders(customers=400, seed=14)
+        found = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=50)
+        again = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=50)
+        pd.testing.assert_frame_equal(found.leave_one_out, again.leave_one_out)
+        assert found.customers_checked == 50 and found.backtest_scored <= 50
+        assert any("drawn at random" in note for note in found.notes)
+        whole = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=None)
+        assert whole.customers_checked == int((customer_statistics(orders)["orders"] >= 2).sum())
+        assert not any("drawn at random" in note for note in whole.notes)
+        eligible = np.array([True, False] * 10)
+        assert checked_customers(eligible, None) is eligible
+        chosen = checked_customers(eligible, 4)
+        assert chosen.sum() == 4 and not chosen[~eligible].any()
