@@ -7,7 +7,8 @@ statistics) -> ``variance`` (pooled spread of order values) -> ``shrinkage``
 (each customer's average pulled toward similar customers) -> ``forecasts`` (one row
 per customer with intervals) -> ``evaluation`` (leave-one-out and backtest proof),
 ``frequency`` and ``outlook`` (order rates, tiers, cohort revenue), ``exports``
-(safe CSV/Excel). The package never imports streamlit.
+(safe CSV/Excel). ``shop.Shop`` carries one shop through these stages, each computed
+once: the command line and the dashboard use it. The package never imports streamlit.
 
 The names below are loaded on first use, so that a command which needs only a
 few stages does not wait for the libraries of the others (scipy.stats is slow to load).
@@ -26,6 +27,7 @@ _HOMES = {
     "Evaluation": "evaluation",
     "OrderDataError": "errors",
     "ReadResult": "reading",
+    "Shop": "shop",
     "assign_tiers": "outlook",
     "backtest_outlook": "outlook",
     "choose_method": "evaluation",

@@ -38,9 +38,10 @@ import pandas as pd
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.forecasts import forecast_customers, forecast_left_out
-from forecasting.holdout import held_out_orders
-from forecasting.options import AUTO_TOLERANCE, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of
+from forecasting.forecasts import ShopFits, forecast_left_out, shop_fits
+from forecasting.holdout import held_out_orders, thread_pool
+from forecasting.options import (AUTO_TOLERANCE, CHECK_CUSTOMERS, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of,
+                                 checked_customers)
 
 #: Methods whose leave-one-out refits everything exactly, and the spread models (all exact).
 EXACT_METHODS = tuple(name for name, m in METHODS.items() if m.exact_left_out)
@@ -109,6 +110,7 @@ class CustomerScores:
     claimed: list  # per pair: sum of the forecast's own error variance
     level: float = 0.90
     next_level: float = 0.80
+    cache: dict = field(default_factory=dict, repr=False)  # bootstrap draws, computed once
 
     def subset(self, keep):
         """The same sums for some customers only."""
@@ -119,46 +121,102 @@ class CustomerScores:
                               pick(self.inside), pick(self.excess), pick(self.claimed), self.level, self.next_level)
 
 
-def customer_scores(scored: Scored) -> CustomerScores:
-    """Per-customer sums of a :class:`Scored` evaluation (customers in order of first appearance)."""
-    codes, first = pd.factorize(scored.customer)
-    T = len(first)
-    at = np.zeros(T, dtype=np.int64)
-    at[codes] = np.arange(len(codes))  # one scored order of each customer (any: they share past and segment)
+def _scored_customers(positions):
+    """(customers scored, in the order of the statistics table; each scored order's place among them)."""
+    first, codes = np.unique(np.asarray(positions, dtype=np.int64), return_inverse=True)
+    return first, codes.reshape(-1)
 
+
+def _pair_sums(codes, T, x, log_x, f):
+    """Per customer: squared errors, differences, orders inside the next-order range, the log-scale
+    excess and the claimed variance of one pair's forecasts (:class:`CustomerScores`)."""
     def total(values):
         return np.bincount(codes, weights=values, minlength=T)
 
-    x = scored.value
-    with np.errstate(divide="ignore", invalid="ignore"):
-        log_x = np.log(x)
-    sq, diff, inside, excess, claimed = [], [], [], [], []
     # A model with no finite spread for some customers (gamma-gamma with too few orders) has no
     # log-scale description there: those orders are left out of the implied coverage.
     with np.errstate(invalid="ignore"):
-        for f in scored.forecasts:
-            expected = np.asarray(f.expected, dtype=np.float64)
-            sq.append(total((expected - x) ** 2))
-            diff.append(total(expected - x))
-            inside.append(total(((x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high)))
-                                .astype(np.float64)))
-            spread = (log_x - np.asarray(f.check_centre)) ** 2 - np.asarray(f.check_order_var)
-            own = np.asarray(f.check_estimate_var, dtype=np.float64) + np.zeros_like(x)
-            described = np.isfinite(spread) & np.isfinite(own)
-            excess.append(total(np.where(described, spread, 0.0)))
-            claimed.append(total(np.where(described, own, 0.0)))
-    return CustomerScores(scored.kind, list(scored.pairs), np.asarray(first), scored.past_orders[at],
-                          None if scored.segment is None else scored.segment[at], np.bincount(codes, minlength=T)
-                          .astype(np.float64), total(x), total((scored.plain - x) ** 2), sq, diff, inside, excess,
-                          claimed, scored.level, scored.next_level)
+        expected = np.asarray(f.expected, dtype=np.float64)
+        error = expected - x
+        bounds = getattr(f, "next_log", None)
+        if bounds is not None:  # the range is symmetric on the log scale: no return to money needed
+            inside = np.abs(log_x - bounds[0]) <= bounds[1]
+        else:
+            inside = (x >= np.asarray(f.next_low)) & (x <= np.asarray(f.next_high))
+        spread = (log_x - np.asarray(f.check_centre)) ** 2 - np.asarray(f.check_order_var)
+        own = np.asarray(f.check_estimate_var, dtype=np.float64) + np.zeros_like(x)
+        described = np.isfinite(spread) & np.isfinite(own)
+        return (total(error * error), total(error), total(inside.astype(np.float64)),
+                total(np.where(described, spread, 0.0)), total(np.where(described, own, 0.0)))
+
+
+def _log_values(x):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log(x)
+
+
+def customer_scores(scored: Scored) -> CustomerScores:
+    """Per-customer sums of a :class:`Scored` evaluation (customers in the order of the statistics)."""
+    first, codes = _scored_customers(scored.customer)
+    T = len(first)
+    at = np.zeros(T, dtype=np.int64)
+    at[codes] = np.arange(len(codes))  # one scored order of each customer (any: they share past and segment)
+    x = scored.value
+    log_x = _log_values(x)
+    sums = [_pair_sums(codes, T, x, log_x, f) for f in scored.forecasts]
+    count = np.bincount(codes, minlength=T).astype(np.float64)
+    value = np.bincount(codes, weights=x, minlength=T)
+    plain_sq = np.bincount(codes, weights=(scored.plain - x) ** 2, minlength=T)
+    return CustomerScores(scored.kind, list(scored.pairs), first, scored.past_orders[at],
+                          None if scored.segment is None else scored.segment[at], count, value, plain_sq,
+                          *[[part[i] for part in sums] for i in range(5)], scored.level, scored.next_level)
+
+
+def left_out_scores(fits: ShopFits, pairs, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS) -> CustomerScores:
+    """Leave-one-out :class:`CustomerScores` of every pair, each pair's computed once per dataset.
+
+    The held-out bookkeeping (:meth:`forecasting.forecasts.ShopFits.held`) and each pair's sums
+    are kept with the shared fits, so the automatic choice, the evaluation and the forecasts of
+    one shop never compute a pair twice. The orders of at most ``limit`` customers are scored
+    (:data:`forecasting.options.CHECK_CUSTOMERS`; None: all), each forecast refitted on all the
+    shop's other orders.
+    """
+    held = fits.held(limit)
+
+    def base():
+        first, codes = _scored_customers(held.customer)
+        T = len(first)
+        at = np.zeros(T, dtype=np.int64)
+        at[codes] = np.arange(len(codes))
+        x = held.value
+        segment = fits.stats["segment"].to_numpy()[first] if "segment" in fits.stats.columns else None
+        return {"first": first, "codes": codes, "T": T, "log_x": _log_values(x),
+                "past": held.past_orders[at], "segment": segment,
+                "count": np.bincount(codes, minlength=T).astype(np.float64),
+                "value": np.bincount(codes, weights=x, minlength=T),
+                "plain_sq": np.bincount(codes, weights=(held.money.mean_after - x) ** 2, minlength=T)}
+
+    common = held.cached("score base", base)
+
+    def pair(method, variance):
+        forecast = forecast_left_out(held, method, variance, level=level, next_level=next_level, fits=fits)
+        return _pair_sums(common["codes"], common["T"], held.value, common["log_x"], forecast)
+
+    sums = [held.cached(("pair scores", method, variance, float(level), float(next_level)),
+                        lambda m=method, v=variance: pair(m, v)) for method, variance in pairs]
+    return CustomerScores("leave-one-out", list(pairs), common["first"], common["past"], common["segment"],
+                          common["count"], common["value"], common["plain_sq"],
+                          *[[part[i] for part in sums] for i in range(5)], level, next_level)
 
 
 def combine_scores(parts) -> CustomerScores:
-    """Per-customer sums computed in parts (on a cluster, each part holds whole customers), joined."""
+    """Per-customer sums computed in parts (on a cluster, each part holds whole customers), joined
+    and put in the order of the statistics table."""
     parts = [part for part in parts if part is not None]
     first = parts[0]
-    join = lambda name: np.concatenate([getattr(p, name) for p in parts])  # noqa: E731
-    listed = lambda name: [np.concatenate([getattr(p, name)[i] for p in parts])  # noqa: E731
+    order = np.argsort(np.concatenate([p.customer for p in parts]), kind="stable")
+    join = lambda name: np.concatenate([getattr(p, name) for p in parts])[order]  # noqa: E731
+    listed = lambda name: [np.concatenate([getattr(p, name)[i] for p in parts])[order]  # noqa: E731
                            for i in range(len(first.pairs))]
     segment = None if first.segment is None else join("segment")
     return CustomerScores(first.kind, first.pairs, join("customer"), join("past_orders"), segment, join("count"),
@@ -179,6 +237,23 @@ def _ratio_and_se(numerator, denominator):
         return float("nan"), float("nan")
     ratio = a / b
     return float(ratio), float(np.sqrt(np.sum((numerator - ratio * denominator) ** 2)) / b)
+
+
+def _grouped_ratios(numerator, denominator, groups, size):
+    """:func:`_ratio_and_se` within each group (codes 0..size-1) and over all customers, from two
+    passes of ``numpy.bincount``: ((ratio, se) per group, (ratio, se) overall)."""
+    a = np.bincount(groups, weights=numerator, minlength=size)
+    b = np.bincount(groups, weights=denominator, minlength=size)
+    total_a, total_b = float(a.sum()), float(b.sum())
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(b > 0, a / b, np.nan)
+        overall = total_a / total_b if total_b > 0 else np.nan
+        residual = np.bincount(groups, weights=(numerator - np.nan_to_num(ratio)[groups] * denominator) ** 2,
+                               minlength=size)
+        se = np.where(b > 0, np.sqrt(residual) / b, np.nan)
+        overall_se = (float(np.sqrt(np.sum((numerator - overall * denominator) ** 2)) / total_b)
+                      if total_b > 0 else np.nan)
+    return list(zip(ratio, se)), (overall, overall_se)
 
 
 def implied_coverage(excess, claimed, level):
@@ -208,8 +283,13 @@ def implied_coverage(excess, claimed, level):
     (tests/test_calibration.py) counts it on shops with known truth. The standard error is the
     delta method's, customers independent.
     """
-    z = NormalDist().inv_cdf(0.5 + level / 2.0)
     ratio, se = _ratio_and_se(np.asarray(excess, dtype=np.float64), np.asarray(claimed, dtype=np.float64))
+    return _coverage_from_ratio(ratio, se, level)
+
+
+def _coverage_from_ratio(ratio, se, level):
+    """2 Phi(z / sqrt(r)) - 1 and its delta-method standard error (see :func:`implied_coverage`)."""
+    z = NormalDist().inv_cdf(0.5 + level / 2.0)
     if not np.isfinite(ratio):
         return float("nan"), float("nan")
     if ratio <= 0:
@@ -218,17 +298,6 @@ def implied_coverage(excess, claimed, level):
     coverage = 2.0 * standard.cdf(z / np.sqrt(ratio)) - 1.0
     slope = standard.pdf(z / np.sqrt(ratio)) * z * ratio ** -1.5
     return float(coverage), float(slope * se)
-
-
-def _calibration(scores: CustomerScores, i, keep=None):
-    """Money bias, next-order coverage and implied expected coverage of pair i (with standard errors)."""
-    sel = slice(None) if keep is None else keep
-    bias, bias_se = _ratio_and_se(scores.diff[i][sel], scores.value[sel])
-    coverage, coverage_se = _ratio_and_se(scores.inside[i][sel], scores.count[sel])
-    expected_cov, expected_se = implied_coverage(scores.excess[i][sel], scores.claimed[i][sel], scores.level)
-    return {"money_bias_pct": 100.0 * bias, "money_bias_se": 100.0 * bias_se, "coverage": coverage,
-            "coverage_se": coverage_se, "expected_coverage": expected_cov, "expected_coverage_se": expected_se,
-            "orders": int(np.sum(scores.count[sel]))}
 
 
 def judge_calibration(measures, *, level, next_level, tolerance=AUTO_TOLERANCE):
@@ -273,15 +342,42 @@ def _band_of(past):
     return labels
 
 
-def calibration_measures(scores: CustomerScores, i):
-    """Calibration of pair i over all scored customers and in each band of past orders."""
-    measures = {"all": _calibration(scores, i)}
-    bands = _band_of(scores.past_orders)
-    for _, _, label in CALIBRATION_BANDS:
-        mask = bands == label
-        if mask.any():
-            measures[label] = _calibration(scores, i, mask)
-    return measures
+def _band_codes(past):
+    """The calibration band of every scored customer as 0, 1, 2 (:data:`CALIBRATION_BANDS`)."""
+    codes = np.zeros(len(past), dtype=np.int64)
+    for index, (low, high, _) in enumerate(CALIBRATION_BANDS):
+        codes[(past >= low) & (past <= high)] = index
+    return codes
+
+
+def calibration_measures(scores: CustomerScores, i, bands=None):
+    """Calibration of pair i over all scored customers and in each band of past orders.
+
+    Money bias, next-order coverage and implied expected coverage with their standard errors
+    (as :func:`_ratio_and_se` and :func:`implied_coverage`), for all customers and for each
+    band of :data:`CALIBRATION_BANDS` that has customers, each from one pass of
+    ``numpy.bincount`` over the bands. ``bands`` is :func:`_band_codes` of the scores' past
+    orders, when already made.
+    """
+    bands = _band_codes(scores.past_orders) if bands is None else bands
+    size = len(CALIBRATION_BANDS)
+    count = np.bincount(bands, weights=scores.count, minlength=size)
+    bias, bias_all = _grouped_ratios(scores.diff[i], scores.value, bands, size)
+    coverage, coverage_all = _grouped_ratios(scores.inside[i], scores.count, bands, size)
+    implied, implied_all = _grouped_ratios(scores.excess[i], scores.claimed[i], bands, size)
+
+    def measures(bias_pair, coverage_pair, implied_pair, orders):
+        expected, expected_se = _coverage_from_ratio(implied_pair[0], implied_pair[1], scores.level)
+        return {"money_bias_pct": 100.0 * float(bias_pair[0]), "money_bias_se": 100.0 * float(bias_pair[1]),
+                "coverage": float(coverage_pair[0]), "coverage_se": float(coverage_pair[1]),
+                "expected_coverage": expected, "expected_coverage_se": expected_se, "orders": int(orders)}
+
+    out = {"all": measures(bias_all, coverage_all, implied_all, count.sum())}
+    present = np.bincount(bands, minlength=size) > 0
+    for index, (_, _, label) in enumerate(CALIBRATION_BANDS):
+        if present[index]:
+            out[label] = measures(bias[index], coverage[index], implied[index], count[index])
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -289,31 +385,86 @@ def calibration_measures(scores: CustomerScores, i):
 # ---------------------------------------------------------------------------
 
 
-def _bootstrap_reductions(per_customer_plain, per_customer_methods, *, resamples, seed):
-    """Error reduction of every method in every bootstrap resample of customers (resamples x methods).
+#: Resamples whose counts are drawn and applied at once (bounds memory; no effect on the draws).
+BOOTSTRAP_BLOCK = 32
 
-    ``per_customer_methods`` is customers x methods of summed squared errors. Each resample
-    draws T customers with replacement; their counts (a multinomial count vector, made by
-    counting T uniform draws with ``numpy.bincount``, much faster than
-    ``Generator.multinomial`` for many customers) turn the resampled SSE into counts @
-    per-customer SSE. Counts are drawn for a few resamples at a time to bound memory. The same
-    seed gives the same resamples, so comparisons between methods are paired.
+
+def bootstrap_sums(per_customer, *, resamples, seed):
+    """Column sums of ``per_customer`` (customers x columns) in every bootstrap resample of customers.
+
+    Parameters
+    ----------
+    per_customer : numpy.ndarray
+        One row per customer (T rows), one column per quantity to add up.
+    resamples : int
+        R, the number of resamples.
+    seed : int
+
+    Returns
+    -------
+    numpy.ndarray
+        R x columns: row r is sum_t c_rt per_customer[t], with c_r the counts of resample r.
+
+    Notes
+    -----
+    Resample r draws T customers with replacement: the r-th run of T draws of
+    ``numpy.random.default_rng(seed).integers(0, T)`` (64-bit integers, in order), so the
+    resamples are a documented function of the seed, the number of customers and their order
+    (the order of the statistics table), whatever the block size. The draws are turned into a
+    weight matrix of multinomial counts (``numpy.bincount`` of a block of resamples at once,
+    much faster than ``Generator.multinomial`` for many customers) and applied to every column
+    in one matrix product, so every method's resampled error comes from the same customers
+    (paired comparisons).
     """
-    T = len(per_customer_plain)
+    table = np.asarray(per_customer, dtype=np.float64)
+    T = table.shape[0]
     rng = np.random.default_rng(seed)
-    block = int(max(1, min(resamples, (1 << 20) // T)))
-    table = np.column_stack([per_customer_plain, per_customer_methods])
-    draws = []
+    block = int(max(1, min(resamples, BOOTSTRAP_BLOCK, (1 << 22) // max(T, 1))))
+    out = np.empty((resamples, table.shape[1]))
+
+    def apply(picks, start):
+        # Counts of each resample's draws: the weight matrix, applied to every column at once.
+        weights = np.empty((picks.shape[0], T))
+        for row in range(picks.shape[0]):
+            weights[row] = np.bincount(picks[row], minlength=T)
+        out[start:start + picks.shape[0]] = weights @ table
+
+    # The draws come from one generator in order (this thread); the counting and the matrix
+    # product of a block run in a worker thread meanwhile (they release the interpreter lock).
+    pool = thread_pool() if resamples > block else None
+    pending = None
     done = 0
     while done < resamples:
         size = min(block, resamples - done)
         picks = rng.integers(0, T, size=(size, T))
-        picks += (np.arange(size, dtype=picks.dtype) * T)[:, None]  # resample r counts in bins r T .. r T + T - 1
-        counts = np.bincount(picks.ravel(), minlength=size * T).reshape(size, T)
-        draws.append(counts @ table)
+        if pool is None:
+            apply(picks, done)
+        else:
+            if pending is not None:
+                pending.result()
+            pending = pool.submit(apply, picks, done)
         done += size
-    sums = np.vstack(draws)
+    if pending is not None:
+        pending.result()
+    return out
+
+
+def _bootstrap_reductions(per_customer_plain, per_customer_methods, *, resamples, seed):
+    """Error reduction of every method in every bootstrap resample of customers (resamples x methods),
+    from :func:`bootstrap_sums` of the plain averages' and every method's squared errors."""
+    sums = bootstrap_sums(np.column_stack([per_customer_plain, per_customer_methods]), resamples=resamples,
+                          seed=seed)
     return _reduction_pct(sums[:, :1], sums[:, 1:])
+
+
+def _scores_reductions(scores, *, resamples, seed):
+    """:func:`_bootstrap_reductions` of the scores' pairs, computed once per scores (the intervals of
+    the results table and the paired margins share them)."""
+    key = ("bootstrap", int(resamples), int(seed))
+    if key not in scores.cache:
+        scores.cache[key] = _bootstrap_reductions(scores.plain_sq, _methods_matrix(scores), resamples=resamples,
+                                                  seed=seed)
+    return scores.cache[key]
 
 
 def _percentile_interval(draws, level=0.95):
@@ -324,14 +475,15 @@ def _percentile_interval(draws, level=0.95):
         return np.nanpercentile(draws, tail, axis=0), np.nanpercentile(draws, 100.0 - tail, axis=0)
 
 
-def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95):
+def _bootstrap_intervals(per_customer_plain, per_customer_methods, *, resamples, seed, level=0.95, draws=None):
     """Percentile interval of every error reduction, resampling customers."""
     n_methods = per_customer_methods.shape[1]
     if resamples <= 0 or len(per_customer_plain) < 2:
         nan = np.full(n_methods, np.nan)
         return nan, nan
-    reductions = _bootstrap_reductions(per_customer_plain, per_customer_methods, resamples=resamples, seed=seed)
-    return _percentile_interval(reductions, level)
+    if draws is None:
+        draws = _bootstrap_reductions(per_customer_plain, per_customer_methods, resamples=resamples, seed=seed)
+    return _percentile_interval(draws, level)
 
 
 def _methods_matrix(scores):
@@ -354,7 +506,7 @@ def _paired_margins(scores: CustomerScores, chosen_pair, *, resamples, seed, lev
     # Plain averages that are exact (every order alike) leave every reduction undefined: NaN margins.
     with np.errstate(invalid="ignore"):
         if resamples > 0 and len(scores.plain_sq) >= 2:
-            draws = _bootstrap_reductions(scores.plain_sq, _methods_matrix(scores), resamples=resamples, seed=seed)
+            draws = _scores_reductions(scores, resamples=resamples, seed=seed)
             low, high = _percentile_interval(draws[:, [best]] - draws, level)
         else:
             low = high = np.full(len(point), np.nan)
@@ -413,16 +565,20 @@ def summarise(scores, *, resamples=0, seed=0, tolerance=AUTO_TOLERANCE, keep=Non
         scores = customer_scores(scores)
     if keep is not None:
         scores = scores.subset(keep)
+    draws = None
+    if resamples > 0 and len(scores.plain_sq) >= 2:
+        draws = _scores_reductions(scores, resamples=resamples, seed=seed)
     ci_low, ci_high = _bootstrap_intervals(scores.plain_sq, _methods_matrix(scores), resamples=resamples,
-                                           seed=seed)
+                                           seed=seed, draws=draws)
     counts = np.maximum(scores.count, 1.0)
     mean_plain = float(np.sum(scores.plain_sq / counts))
     sse_plain = float(scores.plain_sq.sum())
     rows = []
+    bands = _band_codes(scores.past_orders)
     for i, (method, variance) in enumerate(scores.pairs):
         sse = float(scores.sq[i].sum())
         scored_any = len(scores.count) > 0
-        measures = calibration_measures(scores, i)
+        measures = calibration_measures(scores, i, bands)
         ok, note = judge_calibration(measures, level=scores.level, next_level=scores.next_level, tolerance=tolerance)
         overall = measures["all"]
         entry = METHODS[method]
@@ -527,7 +683,8 @@ def _loo_predict(held, method, variance, *, level=0.90, next_level=0.80):
 
 
 def leave_one_out(orders, stats, pairs, *, level=0.90, next_level=0.80, held=None) -> Scored:
-    """Forecast every held-out order with each pair, refitted without it."""
+    """Forecast every held-out order with each pair, refitted without it (one forecast per held-out
+    order and pair; :func:`left_out_scores` gives their per-customer sums without keeping them)."""
     held = held if held is not None else held_out_orders(orders, stats)
     forecasts = [forecast_left_out(held, method, variance, level=level, next_level=next_level)
                  for method, variance in pairs]
@@ -567,68 +724,105 @@ def default_cutoff(order_dates):
     return pd.Timestamp(dates[position])
 
 
-class _TableForecast:
-    """A forecast table's columns as the scores need them (for the backtest)."""
+class _BacktestForecast:
+    """A forecast's columns at the scored customers, as the scores need them (for the backtest)."""
 
-    def __init__(self, table, position, level, next_level):
-        fit = table.attrs["fit"]
-        self.expected = table["expected_next_order"].to_numpy(np.float64)[position]
-        self.next_low = table["next_order_low"].to_numpy(np.float64)[position]
-        self.next_high = table["next_order_high"].to_numpy(np.float64)[position]
+    def __init__(self, money, position, level, next_level):
+        self.expected = money.expected[position]
+        self.next_low = money.next_low[position]
+        self.next_high = money.next_high[position]
         # The log-scale description of the next order from the ranges themselves.
         z_next = NormalDist().inv_cdf(0.5 + next_level / 2.0)
         z = NormalDist().inv_cdf(0.5 + level / 2.0)
         self.check_centre = (np.log(self.next_low) + np.log(self.next_high)) / 2.0
         next_var = ((np.log(self.next_high) - np.log(self.next_low)) / (2.0 * z_next)) ** 2
-        low = table["expected_low"].to_numpy(np.float64)[position]
-        high = table["expected_high"].to_numpy(np.float64)[position]
+        low = money.expected_low[position]
+        high = money.expected_high[position]
         with np.errstate(divide="ignore"):
             self.check_estimate_var = ((np.log(high) - np.log(low)) / (2.0 * z)) ** 2
         self.check_order_var = np.maximum(next_var - self.check_estimate_var, 0.0)
-        self.fit = fit
 
 
-def _backtest(orders, pairs, cutoff, *, level=0.90, next_level=0.80):
-    """Fit on orders before the cut-off; score each customer's first order after it."""
-    notes = []
-    if "order_date" not in orders.columns or orders["order_date"].isna().all():
-        return None, cutoff, ["no order dates, so no backtest"]
+def _cutoff_of(orders, cutoff):
     if cutoff is None:
-        cutoff = default_cutoff(orders["order_date"])
+        return default_cutoff(orders["order_date"])
+    try:
+        return pd.Timestamp(cutoff)
+    except (TypeError, ValueError):
+        raise OrderDataError("the cut-off is not a date", value=cutoff, option="cutoff",
+                             fix="Give the cut-off as YYYY-MM-DD")
+
+
+def backtest_split(fits: ShopFits, cutoff):
+    """The orders before a cut-off, their shared fits and each customer's first order after it.
+
+    Returns ``(cutoff, split)`` where ``split`` is None when there is nothing to backtest (no
+    dates, or no orders on one side), else a dict with the shared fits of the orders before
+    the cut-off (``fits``, :class:`forecasting.forecasts.ShopFits`), the scored customers'
+    ``position`` in their statistics and their first order after it (``value``), or a
+    ``note``. Kept with ``fits``: a second evaluation of the same shop and cut-off reuses it.
+    """
+    orders = fits.orders
+    if "order_date" not in orders.columns or orders["order_date"].isna().all():
+        return cutoff, {"note": "no order dates, so no backtest"}
+    if cutoff is None:
+        cutoff = fits.cached("default cutoff", lambda: default_cutoff(orders["order_date"]))
     else:
-        try:
-            cutoff = pd.Timestamp(cutoff)
-        except (TypeError, ValueError):
-            raise OrderDataError("the cut-off is not a date", value=cutoff, option="cutoff",
-                                 fix="Give the cut-off as YYYY-MM-DD")
-    before_mask = (orders["order_date"] < cutoff).to_numpy()
-    before = orders.loc[before_mask]
-    after = orders.loc[~before_mask]
-    if len(before) == 0 or len(after) == 0:
-        return None, cutoff, [f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"]
-    stats_before = customer_statistics(before)
-    first_after = after.sort_values("order_date", kind="stable").groupby("customer", sort=False).first()
-    customers = stats_before.index.intersection(first_after.index)
-    if len(customers) == 0:
-        return None, cutoff, ["no customer ordered both before and after the cut-off, so no backtest"]
-    position = stats_before.index.get_indexer(customers)
-    x = first_after.loc[customers, "order_value"].to_numpy(np.float64)
-    plain = stats_before["mean"].to_numpy()[position]
-    forecasts, kept = [], []
+        cutoff = _cutoff_of(orders, cutoff)
+
+    def split():
+        dates = orders["order_date"]
+        before_mask = (dates < cutoff).to_numpy()
+        before = orders.loc[before_mask]
+        if len(before) == 0 or before_mask.all():
+            return {"note": f"no orders on one side of the cut-off {cutoff.date()}, so no backtest"}
+        stats_before = customer_statistics(before)
+        # Positions among the customers before the cut-off, from the positions among all customers
+        # (both tables are sorted by customer).
+        codes = fits.codes()
+        inside = np.bincount(codes[before_mask], minlength=fits.customers) > 0
+        if int(inside.sum()) != len(stats_before):
+            raise RuntimeError("the customers before the cut-off do not match the customer statistics")
+        position_of = np.cumsum(inside) - 1
+        # Each customer's first order on or after the cut-off (the earliest date; the first in the
+        # file among orders of that date).
+        after = np.flatnonzero(~before_mask)
+        after = after[np.argsort(dates.to_numpy()[after], kind="stable")]
+        customers, first = np.unique(codes[after], return_index=True)
+        keep = inside[customers]
+        if not keep.any():
+            return {"note": "no customer ordered both before and after the cut-off, so no backtest"}
+        values = orders["order_value"].to_numpy(np.float64)
+        return {"fits": ShopFits(stats_before, before, codes=position_of[codes[before_mask]]),
+                "position": position_of[customers[keep]], "value": values[after[first[keep]]]}
+
+    return cutoff, fits.cached(("backtest split", cutoff), split)
+
+
+def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS):
+    """Fit on orders before the cut-off; score each customer's first order after it (of at most
+    ``limit`` customers, :func:`forecasting.options.checked_customers`)."""
+    cutoff, split = backtest_split(fits, cutoff)
+    if "note" in split:
+        return None, cutoff, [split["note"]]
+    before, position, x = split["fits"], split["position"], split["value"]
+    scored = checked_customers(np.ones(position.size, dtype=bool), limit)
+    position, x = position[scored], x[scored]
+    stats_before = before.stats
+    plain = before.column("mean")[position]
+    notes, forecasts, kept = [], [], []
     for method, variance in pairs:
         try:
-            table = forecast_customers(stats_before, method=method,
-                                       variance="classic" if variance == OWN_SPREAD else variance, orders=before,
-                                       level=level, next_level=next_level)
+            parts = before.parts(method, "classic" if variance == OWN_SPREAD else variance, level=level,
+                                 next_level=next_level)
         except OrderDataError as problem:
             notes.append(f"backtest of {method} with {variance} variance skipped: {problem}")
             continue
-        forecasts.append(_TableForecast(table, position, level, next_level))
+        forecasts.append(_BacktestForecast(parts.money, position, level, next_level))
         kept.append((method, variance))
     segment = stats_before["segment"].to_numpy()[position] if "segment" in stats_before.columns else None
-    scored = Scored(kind="backtest", pairs=kept, customer=position,
-                    past_orders=stats_before["orders"].to_numpy(np.float64)[position], segment=segment, value=x,
-                    plain=plain, forecasts=forecasts, level=level, next_level=next_level)
+    scored = Scored(kind="backtest", pairs=kept, customer=position, past_orders=before.column("orders")[position],
+                    segment=segment, value=x, plain=plain, forecasts=forecasts, level=level, next_level=next_level)
     return scored, cutoff, notes
 
 
@@ -664,6 +858,9 @@ class Evaluation:
         ``honest_gain_pct``: its error cut on customers it was not chosen on.
     orders, customers, held_out : int
         Orders and customers in the data; orders held out in leave-one-out.
+    customers_checked : int
+        Customers whose orders were held out (all repeat customers, or
+        :data:`forecasting.options.CHECK_CUSTOMERS` of them drawn at random).
     """
 
     leave_one_out: pd.DataFrame
@@ -678,10 +875,11 @@ class Evaluation:
     cutoff: pd.Timestamp | None = None
     notes: list = field(default_factory=list)
     margins: pd.DataFrame = field(default_factory=pd.DataFrame)
+    customers_checked: int = 0
 
 
 def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, bootstrap=500, seed=0, level=0.90,
-                     next_level=0.80):
+                     next_level=0.80, fits=None, check_customers=CHECK_CUSTOMERS):
     """Compare every method x spread model with plain customer averages, and check their calibration.
 
     Parameters
@@ -699,6 +897,16 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         Seed of the bootstrap and of the split of customers that checks the automatic choice.
     level, next_level : float
         Levels of the expected-value and next-order ranges whose coverage is reported.
+    fits : forecasting.forecasts.ShopFits, optional
+        The shared fits of these orders (``ShopFits(customer_statistics(orders), orders)``):
+        whatever the forecasts or an earlier check computed with them (spread models, the
+        held-out bookkeeping, each pair's leave-one-out, the backtest's fits) is reused, and
+        what this evaluation computes is kept for the next (see :class:`forecasting.shop.Shop`).
+    check_customers : int or None
+        Score the orders of at most this many customers, in the leave-one-out and in the
+        backtest, drawn at random (seeded) when there are more
+        (:data:`forecasting.options.CHECK_CUSTOMERS`); None scores every customer. Every
+        forecast is still refitted on all the shop's other orders.
 
     Returns
     -------
@@ -737,17 +945,29 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
     for value, name in ((level, "level"), (next_level, "next_level")):
         if not 0 < value < 1:
             raise OrderDataError(f"{name} must be between 0 and 1", value=value, option=name)
-    stats = customer_statistics(orders)
+    if fits is None:
+        fits = ShopFits(customer_statistics(orders), orders)
+    elif fits.orders is not orders:
+        raise ValueError("the shared fits belong to another orders table")
+    stats = fits.stats
     pairs = _combinations(methods, variances, stats=stats)
     notes = []
-    scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
-    if len(scored.count) == 0:
+    scored = (left_out_scores(fits, pairs, level=level, next_level=next_level, limit=check_customers)
+              if len(stats) else None)
+    if scored is None or len(scored.count) == 0:
         notes.append("no customer has two or more orders, so there is nothing to hold out")
+    repeat = int(np.count_nonzero(stats["orders"].to_numpy() >= 2)) if len(stats) else 0
+    if scored is not None and len(scored.count) < repeat:
+        notes.append(f"the orders of {len(scored.count):,} of the {repeat:,} customers with two or more orders, "
+                     "drawn at random, were held out (each forecast refitted on all other orders); more would "
+                     "move the figures by less than their stated uncertainty")
+    if scored is None:
+        scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
     loo = summarise(scored, resamples=bootstrap, seed=seed)
     by_past, by_segment = _breakdowns(scored)
 
-    backtest_scored, cutoff_used, backtest_notes = _backtest(orders, pairs, cutoff, level=level,
-                                                             next_level=next_level)
+    backtest_scored, cutoff_used, backtest_notes = _backtest(fits, pairs, cutoff, level=level, next_level=next_level,
+                                                             limit=check_customers)
     notes.extend(backtest_notes)
     if backtest_scored is not None:
         backtest_scores = customer_scores(backtest_scored)
@@ -774,14 +994,15 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         cutoff=cutoff_used,
         notes=notes,
         margins=_paired_margins(scored, (chosen["method"], chosen["variance"]), resamples=bootstrap, seed=seed),
+        customers_checked=int(len(scored.count)),
     )
 
 
-def choose_method(orders, stats=None, *, methods=None, variances=None):
+def choose_method(orders, stats=None, *, methods=None, variances=None, fits=None):
     """The automatic choice (see :func:`forecasting.selection.choose_method`)."""
     from forecasting.selection import choose_method as choose
 
-    return choose(orders, stats, methods=methods, variances=variances)
+    return choose(orders, stats, methods=methods, variances=variances, fits=fits)
 
 
 def best_of(results, allowed=None) -> dict:

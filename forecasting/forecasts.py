@@ -21,6 +21,9 @@ front end can explain them.
 
 from __future__ import annotations
 
+import contextvars
+from collections import OrderedDict
+from contextlib import contextmanager
 from dataclasses import dataclass
 from statistics import NormalDist
 
@@ -32,7 +35,7 @@ from forecasting.errors import OrderDataError
 from forecasting.estimators.base import Between, between_left_out, error_variance, fit_between, rows_of
 from forecasting.exports import rounded_for_reading
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
-from forecasting.options import DEFAULT_CHOICE, low_confidence
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, checked_customers, low_confidence
 from forecasting.options import METHODS as METHOD_REGISTRY
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
@@ -86,23 +89,51 @@ def _z(level):
 # ---------------------------------------------------------------------------
 
 
-@dataclass
 class MoneyForecast:
     """Forecasts in money with both ranges, and what the shop's own check needs to judge them.
 
     ``check_centre``, ``check_estimate_var`` and ``check_order_var`` describe the next order on
     the log scale: log(next order) - check_centre has variance check_estimate_var (the
-    forecast's own error) + check_order_var (one order's spread).
+    forecast's own error) + check_order_var (one order's spread). ``next_log`` is the
+    next-order range on the log scale, (centre, half-width), when it is symmetric there. The
+    ranges in money (``expected_low``, ``expected_high``, ``next_low``, ``next_high``) are
+    computed on first use: the shop's own check scores the next-order range on the log scale
+    and never needs the expected-value range in money.
     """
 
-    expected: np.ndarray
-    expected_low: np.ndarray
-    expected_high: np.ndarray
-    next_low: np.ndarray
-    next_high: np.ndarray
-    check_centre: np.ndarray
-    check_estimate_var: np.ndarray
-    check_order_var: np.ndarray
+    def __init__(self, expected, check_centre, check_estimate_var, check_order_var, *, expected_range, next_range,
+                 next_log=None):
+        self.expected = expected
+        self.check_centre = check_centre
+        self.check_estimate_var = check_estimate_var
+        self.check_order_var = check_order_var
+        self.next_log = next_log
+        self._expected_range = expected_range
+        self._next_range = next_range
+
+    def _ranges(self, which):
+        name = "_" + which + "_range"
+        value = getattr(self, name)
+        if callable(value):
+            value = value()
+            setattr(self, name, value)
+        return value
+
+    @property
+    def expected_low(self):
+        return self._ranges("expected")[0]
+
+    @property
+    def expected_high(self):
+        return self._ranges("expected")[1]
+
+    @property
+    def next_low(self):
+        return self._ranges("next")[0]
+
+    @property
+    def next_high(self):
+        return self._ranges("next")[1]
 
 
 def _lognormal_with(mean, variance, z):
@@ -202,20 +233,28 @@ def money_forecast(spread: VarianceFit, between: Between, estimate, weight, orde
             - g2 * g * excess / (n * n)
         expected = smearing * np.exp(estimate + shift)
         half = z * np.sqrt(v)
-        expected_low = smearing * np.exp(estimate - half)
-        expected_high = smearing * np.exp(estimate + half)
+
+        def expected_range():
+            return (np.minimum(smearing * np.exp(estimate - half), expected),
+                    np.maximum(smearing * np.exp(estimate + half), expected))
+
         # The central range of the next order is set by usual orders, in the customer's history as
         # in the next order: the one-order spread w (not the pooled sigma2) on both.
         one_order = np.asarray(spread.details["order_spread"], dtype=np.float64)
         v_next = error_variance(g, one_order / n, between)
         next_half = z_next * np.sqrt(v_next + one_order)
-        return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
-                             np.exp(estimate - next_half), np.exp(estimate + next_half),
-                             estimate + np.zeros_like(v), v, sigma2 + np.zeros_like(v))
+        centre = estimate + np.zeros_like(v)
+        return MoneyForecast(expected, centre, v, sigma2 + np.zeros_like(v), expected_range=expected_range,
+                             next_range=lambda: (np.exp(estimate - next_half), np.exp(estimate + next_half)),
+                             next_log=(centre, next_half))
     expected = estimate
     if spread.model == "proportional":
         v = v * expected * expected / np.asarray(spread.details["mean_square_level"], dtype=np.float64)
-    expected_low, expected_high, _, v_log = _lognormal_with(expected, v, z)
+
+    def expected_range():
+        low, high, _, _ = _lognormal_with(expected, v, z)
+        return np.minimum(low, expected), np.maximum(high, expected)
+
     # The next order: lognormal around the forecast, with the shop's log spread of one order and the
     # forecast's own uncertainty relative to the level it concerns: the customer's own for the
     # proportional model, the shop's centre for the classic one (whose v is one amount of money for
@@ -223,12 +262,15 @@ def money_forecast(spread: VarianceFit, between: Between, estimate, weight, orde
     if spread.model != "proportional":
         centre_money = np.asarray(between.centre, dtype=np.float64)
         v_log = np.log1p(v / np.maximum(centre_money * centre_money, np.finfo(float).tiny))
+    else:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            v_log = np.log1p(np.where(expected > 0, v / (expected * expected), 0.0))
     order_log = np.asarray(spread.details["log_order_spread"], dtype=np.float64)
     next_log = order_log + v_log
     centre = np.log(np.maximum(expected, np.finfo(float).tiny)) - next_log / 2.0
     half = z_next * np.sqrt(next_log)
-    return MoneyForecast(expected, np.minimum(expected_low, expected), np.maximum(expected_high, expected),
-                         np.exp(centre - half), np.exp(centre + half), centre, v_log, order_log + np.zeros_like(v_log))
+    return MoneyForecast(expected, centre, v_log, order_log + np.zeros_like(v_log), expected_range=expected_range,
+                         next_range=lambda: (np.exp(centre - half), np.exp(centre + half)), next_log=(centre, half))
 
 
 def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForecast:
@@ -248,8 +290,9 @@ def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForeca
         v_log = np.log1p(np.where(finite, posterior_var / estimate ** 2, np.inf))
         next_log = np.log1p(np.where(finite, (posterior_var + order_var) / estimate ** 2, np.inf))
         order_log = np.where(finite, next_log - v_log, np.inf)
-    return MoneyForecast(estimate, np.minimum(low, estimate), np.maximum(high, estimate), next_low, next_high,
-                         np.log(estimate) - next_log / 2.0, v_log, order_log)
+    return MoneyForecast(estimate, np.log(estimate) - next_log / 2.0, v_log, order_log,
+                         expected_range=(np.minimum(low, estimate), np.maximum(high, estimate)),
+                         next_range=(next_low, next_high))
 
 
 # ---------------------------------------------------------------------------
@@ -257,11 +300,11 @@ def _gamma_forecast(params, n, m, estimate, *, level, next_level) -> MoneyForeca
 # ---------------------------------------------------------------------------
 
 
-def _automatic_choice(stats, orders, method, variance):
+def _automatic_choice(fits, method, variance):
     """(method, variance, reason, spread models that passed) by :func:`forecasting.selection.resolve_choice`."""
     from forecasting.selection import resolve_choice  # the only module that imports both sides
 
-    choice = resolve_choice(stats, orders, method=method, variance=variance)
+    choice = resolve_choice(fits.stats, fits.orders, method=method, variance=variance, fits=fits)
     checked = choice.check.get("spread_checked") if choice.check is not None else None
     return choice.method, choice.variance, choice.reason, checked
 
@@ -292,6 +335,11 @@ def _flat(prefix, mapping):
 
 
 def _order_positions(stats, orders):
+    """Position in ``stats`` of every order's customer."""
+    codes, names = pd.factorize(orders["customer"], sort=True)
+    if len(names) == len(stats) and np.array_equal(np.asarray(names, dtype=object),
+                                                   stats.index.to_numpy(dtype=object)):
+        return codes  # the usual case: stats = customer_statistics(orders), sorted the same way
     codes = stats.index.get_indexer(orders["customer"])
     if (codes < 0).any():
         raise OrderDataError(
@@ -305,9 +353,293 @@ def _segment_codes(stats):
     return pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
 
 
+class ShopFits:
+    """What every forecast of one table of per-customer statistics shares, each computed once.
+
+    The spread models (:func:`forecasting.variance.pooled_variance`), the spread between
+    customers on each model's scale (:func:`forecasting.estimators.base.fit_between`), the
+    effective spread of the log locations, the cross-validated multipliers (with their folds),
+    every order's customer position, the tail report, the parts of each method's forecast and
+    the held-out bookkeeping of the leave-one-out (:func:`forecasting.holdout.held_out_orders`)
+    are computed on first use and kept. Handing the same object to
+    :func:`forecast_customers`, :func:`forecast_left_out` and the evaluation
+    (:mod:`forecasting.evaluation`, :mod:`forecasting.selection`) makes each of them once
+    per dataset, whatever the number of methods asked for.
+
+    Parameters
+    ----------
+    stats : pandas.DataFrame
+        :func:`forecasting.customers.customer_statistics` of ``orders``.
+    orders : pandas.DataFrame, optional
+        The cleaned orders (the cross-validated methods, the automatic choice, the tail
+        report and the leave-one-out need them).
+    codes : numpy.ndarray, optional
+        Position in ``stats`` of every order's customer, when already known.
+
+    Notes
+    -----
+    The object holds references to ``stats`` and ``orders``; neither may change while it is
+    in use (nothing in the library changes them).
+    """
+
+    def __init__(self, stats: pd.DataFrame, orders: pd.DataFrame | None = None, *, codes=None):
+        self.stats = stats
+        self.orders = orders
+        self.cache = {}
+        if codes is not None:
+            self.cache["codes"] = np.asarray(codes, dtype=np.int64)
+
+    def cached(self, key, compute):
+        """``compute()`` the first time ``key`` is asked for, the kept value afterwards."""
+        if key not in self.cache:
+            self.cache[key] = compute()
+        return self.cache[key]
+
+    def for_tables(self, stats, orders) -> "ShopFits":
+        """These fits answering for equal tables (what was computed is shared, not copied)."""
+        if stats is self.stats and (orders is None or orders is self.orders):
+            return self
+        twin = ShopFits(stats, orders if orders is not None else self.orders)
+        twin.cache = self.cache
+        return twin
+
+    # -- per-customer arrays ---------------------------------------------------------------
+
+    def column(self, name) -> np.ndarray:
+        """A column of the statistics as float64 (kept: the table is read once per column)."""
+        return self.cached(("column", name), lambda: self.stats[name].to_numpy(dtype=np.float64))
+
+    @property
+    def customers(self) -> int:
+        return len(self.stats)
+
+    def codes(self) -> np.ndarray:
+        """Position in ``stats`` of every order's customer."""
+        if self.orders is None:
+            raise OrderDataError("this needs the order-level table", option="method",
+                                 fix="Give the cleaned orders too, or choose a method that is not cross-validated")
+        return self.cached("codes", lambda: _order_positions(self.stats, self.orders))
+
+    def order_values(self, scale: str) -> np.ndarray:
+        """Every order's value on the scale (``"log"`` or ``"money"``)."""
+        def values():
+            x = self.orders["order_value"].to_numpy(dtype=np.float64)
+            return np.log(x) if scale == "log" else x
+
+        return self.cached(("order values", scale), values)
+
+    def segments(self):
+        return self.cached("segments", lambda: _segment_codes(self.stats))
+
+    # -- shop-wide fits --------------------------------------------------------------------
+
+    def spread(self, model: str) -> VarianceFit:
+        """The spread model fitted on all customers (money models carry the log spread of one order)."""
+        return self.cached(("spread", model),
+                           lambda: _with_log_order_spread(pooled_variance(self.stats, model=model), self))
+
+    def between(self, model: str) -> Between:
+        """The spread between customers on the spread model's scale (REML)."""
+        def fit():
+            spread = self.spread(model)
+            working = self.column("log_mean" if spread.scale == "log" else "mean")
+            return fit_between(working, spread.mean_variance(self.column("orders")))
+
+        return self.cached(("between", model), fit)
+
+    def effective_tau2(self, model: str):
+        """tau2_eff of :func:`effective_between_variance` (the log model; 0 for the others)."""
+        def fit():
+            spread = self.spread(model)
+            if spread.scale != "log":
+                return 0.0
+            between = self.between(model)
+            return effective_between_variance(spread, between, sums=_log_location_sums(spread, between, self.stats))
+
+        return self.cached(("effective", model), fit)
+
+    def multiplier(self, method: str, scale: str):
+        """(lambda, notes) a cross-validated method chooses on the orders at this scale."""
+        from forecasting.estimators.cross_validation import CV_FOLDS, cross_validated_multiplier, cv_folds
+
+        def choose():
+            codes, values = self.codes(), self.order_values(scale)
+            folds = None
+            if values.size >= 2 * CV_FOLDS:  # (fewer orders: no cross-validation, no folds)
+                folds = self.cached(("cv folds", scale), lambda: cv_folds(codes, values, self.customers))
+            return cross_validated_multiplier(method, codes, values, self.customers, folds=folds)
+
+        return self.cached(("multiplier", method, scale), choose)
+
+    def tail(self, checked=None):
+        """The tail report of the order values (:func:`forecasting.variance.tail_report`)."""
+        key = ("tail", None if not checked else tuple(sorted(checked.items())))
+        return self.cached(key, lambda: tail_report(self.orders["order_value"].to_numpy(dtype=np.float64),
+                                                    checked=checked))
+
+    def held(self, limit=CHECK_CUSTOMERS):
+        """Every order of every repeat customer held out in turn (:func:`forecasting.holdout.held_out_orders`),
+        of at most ``limit`` customers (:func:`forecasting.options.checked_customers`; None: all)."""
+        from forecasting.holdout import held_out_orders
+
+        if self.orders is None:
+            raise OrderDataError("the leave-one-out needs the order-level table", option="method",
+                                 fix="Give the cleaned orders, or choose a method")
+
+        def make():
+            customers = checked_customers(self.column("orders") >= 2, limit)
+            return held_out_orders(self.orders, self.stats, codes=self.codes(), customers=customers)
+
+        return self.cached(("held", limit), make)
+
+    def parts(self, method: str, variance: str, *, level=0.90, next_level=0.80) -> "ForecastParts":
+        """The forecast of a method x spread model (never ``"auto"``), kept for each level."""
+        return self.cached(("parts", method, variance, float(level), float(next_level)),
+                           lambda: _forecast_parts(self, method, variance, level=level, next_level=next_level))
+
+
+class FitsRegistry:
+    """Shared fits kept for the statistics tables a piece of work meets, found again by content.
+
+    A front end's :class:`forecasting.shop.Shop` keeps one and makes it current while it works
+    (:func:`reusing_fits`): a library function that builds statistics of its own -- the revenue
+    outlook's backtests fit on the orders before a cut-off, two of them on the same cut-off when
+    the outlook is checked once and at many cut-offs -- then finds the fits (and the automatic
+    choice made with them) computed the first time instead of computing them again.
+
+    Parameters
+    ----------
+    size : int
+        How many tables are kept (the least recently used goes first).
+
+    Notes
+    -----
+    A table is known by a hash of every value of the statistics (index included) and of the
+    orders' values, their customers and their number, so only identical inputs share fits.
+    """
+
+    def __init__(self, size: int = 6):
+        self.size = size
+        self._kept = OrderedDict()
+
+    def fits_for(self, stats: pd.DataFrame, orders: pd.DataFrame | None) -> ShopFits:
+        key = _fingerprint(stats, orders)
+        found = self._kept.get(key)
+        if found is None:
+            found = ShopFits(stats, orders)
+            self._kept[key] = found
+            while len(self._kept) > self.size:
+                self._kept.popitem(last=False)
+        else:
+            self._kept.move_to_end(key)
+            # The same content in new tables: the fits answer for them (their values are equal).
+            found = found.for_tables(stats, orders)
+        return found
+
+    def __len__(self):
+        return len(self._kept)
+
+
+_CURRENT_FITS = contextvars.ContextVar("forecasting_current_fits", default=None)
+
+
+@contextmanager
+def reusing_fits(registry: FitsRegistry):
+    """Make ``registry`` current: :func:`forecast_customers` called without ``fits`` looks there."""
+    token = _CURRENT_FITS.set(registry)
+    try:
+        yield registry
+    finally:
+        _CURRENT_FITS.reset(token)
+
+
+def _fingerprint(stats, orders):
+    import hashlib
+
+    digest = hashlib.blake2b(digest_size=16)
+    digest.update(pd.util.hash_pandas_object(stats, index=True).to_numpy().tobytes())
+    if orders is not None:
+        digest.update(np.int64(len(orders)).tobytes())
+        digest.update(orders["order_value"].to_numpy(dtype=np.float64).tobytes())
+        digest.update(pd.util.hash_array(orders["customer"].to_numpy(dtype=object)).tobytes())
+    return digest.hexdigest()
+
+
+def shop_fits(stats, orders=None, fits=None) -> ShopFits:
+    """``fits`` when it belongs to ``stats`` (and ``orders``), else the current registry's
+    (:func:`reusing_fits`), else new ones."""
+    if fits is None:
+        registry = _CURRENT_FITS.get()
+        return registry.fits_for(stats, orders) if registry is not None else ShopFits(stats, orders)
+    if fits.stats is not stats:
+        raise ValueError("the shared fits belong to another table of customer statistics")
+    if orders is not None and fits.orders is not None and fits.orders is not orders:
+        raise ValueError("the shared fits belong to another orders table")
+    if orders is not None and fits.orders is None:
+        fits.orders = orders
+    return fits
+
+
+@dataclass
+class ForecastParts:
+    """A method x spread model's forecast before it becomes a table."""
+
+    method: str
+    variance: str  # the spread reported (``"gamma-model"`` for gamma-gamma)
+    spread: VarianceFit
+    between: Between
+    result: object  # the estimator's Shrunk
+    weight: np.ndarray
+    money: MoneyForecast
+    effective: float
+    notes: list
+
+
+def _forecast_parts(fits: ShopFits, method, variance, *, level, next_level) -> ForecastParts:
+    entry = METHOD_REGISTRY[method]
+    stats = fits.stats
+    if entry.needs_orders and fits.orders is None:
+        raise OrderDataError(f"the '{method}' method needs the order-level table", option="method",
+                             fix="Give the cleaned orders too, or choose a method that is not cross-validated")
+    if entry.needs_segments and "segment" not in stats.columns:
+        raise OrderDataError("the 'mta-segments' method needs a segment for every customer", role="segment",
+                             fix="Name the column that holds each customer's segment, or choose another method")
+    n_float = fits.column("orders")
+    money_mean = fits.column("mean")
+    spread_name = "classic" if entry.own_spread else (variance if variance != "auto" else DEFAULT_CHOICE[1])
+    spread = fits.spread(spread_name)
+    on_log = spread.scale == "log"
+    working = fits.column("log_mean") if on_log else money_mean
+
+    keywords, notes = {}, []
+    if entry.needs_orders:
+        scale = "log" if on_log else "money"
+        multiplier, cv_notes = fits.multiplier(method, scale)
+        keywords = {"codes": fits.codes(), "values": fits.order_values(scale), "multiplier": multiplier}
+        notes.extend(cv_notes)
+    segments = fits.segments() if entry.needs_segments else None
+
+    mean_vars = spread.mean_variance(n_float)
+    between = fits.between(spread_name)
+    result = shrink(working, mean_vars, method=method, orders=n_float, segments=segments, between=between,
+                    **keywords)
+    notes = list(spread.notes) + list(between.notes) + notes + list(result.notes)
+    weight = np.clip(result.weight, 0.0, 1.0)
+    effective = fits.effective_tau2(spread_name) if on_log else 0.0
+    if entry.own_spread and "population_mean" in result.params:
+        money = _gamma_forecast(result.params, n_float, money_mean, result.estimate, level=level,
+                                next_level=next_level)
+    else:
+        money = money_forecast(spread, between, result.estimate, weight, n_float, working,
+                               posterior=method == "empirical-bayes", level=level, next_level=next_level,
+                               effective_tau2=effective, customers=len(stats))
+    return ForecastParts(method, OWN_SPREAD if entry.own_spread else spread_name, spread, between, result, weight,
+                         money, float(effective), notes)
+
+
 def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
-                       orders: pd.DataFrame | None = None, level: float = 0.90,
-                       next_level: float = 0.80) -> pd.DataFrame:
+                       orders: pd.DataFrame | None = None, level: float = 0.90, next_level: float = 0.80,
+                       fits: ShopFits | None = None) -> pd.DataFrame:
     """Expected next-order value, with ranges, for every customer.
 
     Parameters
@@ -330,6 +662,11 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
         Coverage of ``expected_low`` / ``expected_high``.
     next_level : float, default 0.80
         Coverage of ``next_order_low`` / ``next_order_high``.
+    fits : ShopFits, optional
+        The fits shared by every forecast of ``stats`` (spread models, the spread between
+        customers, cross-validated multipliers, the shop's own check...); made afresh when not
+        given. Forecasts of several methods of one shop reuse them (see
+        :class:`forecasting.shop.Shop`).
 
     Returns
     -------
@@ -369,52 +706,22 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     next_level = _check_level(next_level, "next_level")
     if len(stats) == 0:
         raise OrderDataError("there are no customers to forecast", fix="Check that the file has order rows")
+    fits = shop_fits(stats, orders, fits)
+    orders = fits.orders
     fit = {}
     checked = None
     if method == "auto" or (variance == "auto" and not METHOD_REGISTRY[method].own_spread):
-        method, variance, reason, checked = _automatic_choice(stats, orders, method, variance)
+        method, variance, reason, checked = _automatic_choice(fits, method, variance)
         fit["auto_choice"] = f"{method} with {variance} variance: {reason}"
     entry = METHOD_REGISTRY[method]
-    if entry.needs_orders and orders is None:
-        raise OrderDataError(f"the '{method}' method needs the order-level table", option="method",
-                             fix="Give the cleaned orders too, or choose a method that is not cross-validated")
-    if entry.needs_segments and "segment" not in stats.columns:
-        raise OrderDataError("the 'mta-segments' method needs a segment for every customer", role="segment",
-                             fix="Name the column that holds each customer's segment, or choose another method")
-
-    n = stats["orders"].to_numpy(dtype=np.int64)
-    n_float = n.astype(np.float64)
-    money_mean = stats["mean"].to_numpy(dtype=np.float64)
-    spread_name = "classic" if entry.own_spread else (variance if variance != "auto" else DEFAULT_CHOICE[1])
-    spread = _with_log_order_spread(pooled_variance(stats, model=spread_name), stats)
+    parts = fits.parts(method, variance, level=level, next_level=next_level)
+    spread, between, result, money, weight = parts.spread, parts.between, parts.result, parts.money, parts.weight
     on_log = spread.scale == "log"
-    working = stats["log_mean"].to_numpy(dtype=np.float64) if on_log else money_mean
-
-    codes = values = None
-    if entry.needs_orders:
-        codes = _order_positions(stats, orders)
-        values = orders["order_value"].to_numpy(dtype=np.float64)
-        if on_log:
-            values = np.log(values)
-    segments = _segment_codes(stats) if entry.needs_segments else None
-
-    mean_vars = spread.mean_variance(n_float)
-    between = fit_between(working, mean_vars)
-    result = shrink(working, mean_vars, method=method, orders=n_float, segments=segments, codes=codes,
-                    values=values, between=between)
-    notes = list(spread.notes) + list(between.notes) + list(result.notes)
-    weight = np.clip(result.weight, 0.0, 1.0)
-    effective = 0.0
-    if on_log:
-        effective = effective_between_variance(spread, between, sums=_log_location_sums(spread, between, stats))
-    if entry.own_spread and "population_mean" in result.params:
-        money = _gamma_forecast(result.params, n_float, money_mean, result.estimate, level=level,
-                                next_level=next_level)
-    else:
-        money = money_forecast(spread, between, result.estimate, weight, n_float, working,
-                               posterior=method == "empirical-bayes", level=level, next_level=next_level,
-                               effective_tau2=effective, customers=len(stats))
-
+    notes = parts.notes
+    effective = parts.effective
+    n = stats["orders"].to_numpy(dtype=np.int64)
+    money_mean = fits.column("mean")
+    spread_name = spread.model
     variance_name = OWN_SPREAD if entry.own_spread else spread_name
     table = pd.DataFrame({
         # A copy of the index's array (Arrow text is shared until written to): no round trip
@@ -422,12 +729,13 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
         "customer": stats.index.array.copy(),
         "orders": n.copy(),
         "average_order_value": money_mean.copy(),
-        "expected_next_order": money.expected,
-        "own_history_weight": weight,
-        "expected_low": money.expected_low,
-        "expected_high": money.expected_high,
-        "next_order_low": money.next_low,
-        "next_order_high": money.next_high,
+        # Copies: the parts are kept in the shared fits, and a table may be edited.
+        "expected_next_order": money.expected.copy(),
+        "own_history_weight": weight.copy(),
+        "expected_low": money.expected_low.copy(),
+        "expected_high": money.expected_high.copy(),
+        "next_order_low": money.next_low.copy(),
+        "next_order_high": money.next_high.copy(),
         "low_confidence": low_confidence(weight),
         "method": _repeated_text(method, len(n)),
         "variance": _repeated_text(variance_name, len(n)),
@@ -457,7 +765,7 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
                                    if key not in ("smearing", "log_order_spread")}))
     if orders is not None:
         # With the shop's own check at hand, the report suggests only a spread model that passed it.
-        tail = tail_report(orders["order_value"].to_numpy(dtype=np.float64), checked=checked)
+        tail = fits.tail(checked)
         fit.update({"tail_top1_revenue_share": tail.top1_revenue_share, "tail_log_skewness": tail.log_skewness,
                     "tail_index": tail.tail_index, "tail_orders": float(tail.tail_orders),
                     "tail_suggested_variance": tail.suggested_variance, "tail_summary": tail.summary})
@@ -468,11 +776,11 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     return table
 
 
-def _with_log_order_spread(spread, stats):
+def _with_log_order_spread(spread, fits):
     """A money spread model with the shop's pooled log spread of one order (for the next-order range)."""
     if spread.scale == "log":
         return spread
-    log = pooled_variance(stats, model="log")
+    log = fits.spread("log") if isinstance(fits, ShopFits) else pooled_variance(fits, model="log")
     return VarianceFit(spread.model, spread.sigma2, spread.notes, {**spread.details, "log_order_spread": log.sigma2})
 
 
@@ -493,7 +801,7 @@ def _log_location_sums(spread, between, stats):
 # ---------------------------------------------------------------------------
 
 
-def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) -> MoneyForecast:
+def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80, fits=None) -> MoneyForecast:
     """:func:`forecast_customers` refitted without each held-out order, for all of them at once.
 
     Parameters
@@ -501,6 +809,9 @@ def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) ->
     held : forecasting.holdout.HeldOut
     method, variance : str
         A method and spread model (``"gamma-model"`` for gamma-gamma).
+    fits : ShopFits, optional
+        The fits on all orders (where each removal's solve starts, and what an approximate twin
+        keeps); made once per ``held`` when not given.
 
     Returns
     -------
@@ -512,9 +823,11 @@ def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) ->
         all orders.
     """
     entry = METHOD_REGISTRY[method]
+    if fits is None:
+        fits = held.cached("fits", lambda: ShopFits(held.stats, held.orders, codes=held.codes))
     fitted = {}
     if not entry.exact_left_out:
-        fitted = held.cached(("full fit", method, variance), lambda: _full_fit(held, method, variance))
+        fitted = fits.parts(method, "classic" if variance == OWN_SPREAD else variance).result.params
     if entry.own_spread:
         spread = spread_left_out(held, "classic")
         if "population_mean" in fitted:
@@ -532,7 +845,7 @@ def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) ->
     side = held.side(spread.scale)
     factor = np.asarray(spread.scale_factor, dtype=np.float64) + np.zeros(side.H)
     between = held.cached(("between", spread.model),
-                          lambda: between_left_out(side, factor, start=_between_on_all(held, spread.model)))
+                          lambda: between_left_out(side, factor, start=float(fits.between(spread.model).tau2)))
     twin = load(METHOD_REGISTRY[method_for_rest].left_out)
     d, g = twin(side, factor, between=between, segments=held.segment_codes, fitted=fitted)
     effective = 0.0
@@ -544,13 +857,6 @@ def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80) ->
     return money_forecast(spread, between, side.origin + d, np.clip(g, 0.0, 1.0), side.n_after, side.mean_after,
                           posterior=posterior, level=level, next_level=next_level, effective_tau2=effective,
                           customers=side.T)
-
-
-def _between_on_all(held, model):
-    """tau2 fitted on all orders (where each removal's solve starts)."""
-    spread = pooled_variance(held.stats, model=model)
-    working = held.stats["log_mean" if spread.scale == "log" else "mean"].to_numpy(np.float64)
-    return float(fit_between(working, spread.mean_variance(held.stats["orders"].to_numpy(np.float64))).tau2)
 
 
 def _log_location_sums_left_out(held, spread, between):
@@ -574,13 +880,6 @@ def _log_location_sums_left_out(held, spread, between):
     (weighted,) = log.sums_after(weight, ["exp"])
     (total,) = log.sums_after(precision, ["one"])
     return weighted, total, log.origin
-
-
-def _full_fit(held, method, variance):
-    """The fitted scalars of the forecast on all orders (what an approximate twin keeps)."""
-    table = forecast_customers(held.stats, method=method, variance="classic" if variance == OWN_SPREAD else variance,
-                               orders=held.orders)
-    return table.attrs["fit"]
 
 
 def forecasts_for_reading(table: pd.DataFrame) -> pd.DataFrame:

@@ -23,6 +23,8 @@ that updating sums of squares does not lose digits to cancellation.
 
 from __future__ import annotations
 
+import itertools
+import math
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -38,16 +40,24 @@ _WORKERS = min(4, os.cpu_count() or 1)
 _POOL = None
 
 
+def thread_pool():
+    """The pool of worker threads kept for the process (None on one core)."""
+    global _POOL
+    if _WORKERS <= 1:
+        return None
+    if _POOL is None:
+        _POOL = ThreadPoolExecutor(max_workers=_WORKERS)
+    return _POOL
+
+
 def rows_in_blocks(n_rows: int, width: int, run) -> None:
     """Call ``run(rows)`` with slices of about CHUNK_CELLS / width rows (in parallel threads of
     one pool kept for the process: numpy releases the interpreter lock inside its loops)."""
-    global _POOL
     chunk = max(1, CHUNK_CELLS // max(1, width))
     blocks = [slice(start, min(n_rows, start + chunk)) for start in range(0, n_rows, chunk)]
-    if len(blocks) > 1 and _WORKERS > 1:
-        if _POOL is None:
-            _POOL = ThreadPoolExecutor(max_workers=_WORKERS)
-        list(_POOL.map(run, blocks))
+    pool = thread_pool() if len(blocks) > 1 else None
+    if pool is not None:
+        list(pool.map(run, blocks))
     else:
         for rows in blocks:
             run(rows)
@@ -57,6 +67,37 @@ def rows_of(values, rows, k):
     """``values[rows]`` shaped to broadcast against k: (rows, 1) for a 2-D k, (rows,) for 1-D."""
     part = np.asarray(values)[rows]
     return part[:, None] if np.ndim(k) == 2 else part
+
+
+#: Held-out orders whose |delta| is at most this share of the smallest b(k) get the power series
+#: of :meth:`Side.power_sums_after` (its terms then shrink at least fourfold each), in tiers of
+#: that share, each with the number of terms its largest share needs.
+SERIES_RADIUS = 0.25
+SERIES_TIERS = (2.0 ** -24, 2.0 ** -12, 2.0 ** -6, SERIES_RADIUS)
+#: Held-out orders handled at a time in the sums (temporaries of this many floats stay in cache).
+ROW_BLOCK = 1 << 13
+
+
+def _binomial_negative(power, terms):
+    """binom(-p, j) for j = 0..terms: (-1)^j (p + j - 1)! / (j! (p - 1)!)."""
+    out = np.empty(terms + 1)
+    out[0] = 1.0
+    for j in range(1, terms + 1):
+        out[j] = -out[j - 1] * (power + j - 1) / j
+    return out
+
+
+def _series_terms(q, power):
+    """The last power j of the series needed: binom(p + j, j + 1) q^(j + 1) below 2^-60 (at most 200)."""
+    if q == 0:
+        return 0
+    bound, j = 1.0, 0
+    while j < 200:
+        bound *= q * (power + j) / (j + 1)  # binom(p + j, j + 1) q^(j + 1)
+        if bound < 2.0 ** -60:
+            return j
+        j += 1
+    return j
 
 
 class Side:
@@ -182,6 +223,236 @@ class Side:
             rows_in_blocks(rest, self.ks.size, lambda rows: run(slice(rows.start + offset, rows.stop + offset)))
         return out
 
+    def power_sums_after(self, scale, base, delta, powers, names, subset=None):
+        """sum_s a(n_s) (b(n_s) + delta)^-p column_s over customers after each removal, for every
+        power p in ``powers`` and every column in ``names``.
+
+        Parameters
+        ----------
+        scale, base : callable
+            a(k) and b(k) > 0 for an array of order counts k (the same for every held-out order).
+        delta : numpy.ndarray
+            One value per held-out order (or per order of ``subset``), with b(k) + delta > 0.
+        powers : sequence of int
+            The powers p >= 1, in increasing order.
+        names : sequence of str
+            Columns, as for :meth:`sums_after`.
+        subset : array of int, optional
+            Only these held-out orders.
+
+        Returns
+        -------
+        numpy.ndarray
+            Shape (len(powers), len(names), rows).
+
+        Notes
+        -----
+        The same sums as :meth:`sums_after` with the weight a(k) (b(k) + delta)^-p, computed
+        without going over the order-count groups for every held-out order: where |delta| is
+        at most ``SERIES_RADIUS`` times the smallest b(k), the sum over the groups is the power
+        series
+
+            sum_k C_k a_k (b_k + delta)^-p = sum_j binom(-p, j) delta^j sum_k C_k a_k b_k^(-p-j),
+
+        whose coefficients are sums over the K groups made once, taken to the term at which
+        binom(p + j - 1, j) q^j, q = |delta| / min b, falls below 2^-60 of the first (each
+        term of the tail is bounded so, relative to the first term's sum of magnitudes); the
+        rest of the held-out orders, and any with q above the radius, go over the groups. The
+        held-out customer's own weight before and after the removal is computed exactly. On a
+        large shop one order moves the shop-wide numbers by about 1/N, so q is tiny and two or
+        three terms do.
+        """
+        if list(powers) != sorted(powers) or min(powers) < 1:
+            raise ValueError(f"powers must be 1 or more, in increasing order (got {powers})")
+        pick = slice(None) if subset is None else np.asarray(subset)
+        delta = np.asarray(delta, dtype=np.float64)
+        n_old, n_new = self.n[pick], self.n_after[pick]
+        rows = delta.size
+        table = np.column_stack([self._group_sums[name] for name in names])  # K x columns
+        ks = self.ks
+        top = max(powers)
+        out = np.empty((len(powers), len(names), rows))
+        if rows == 0:
+            return out
+        # The series is centred at the median delta: b(k) + median, and each delta less it.
+        middle = float(np.median(delta))
+        a_k = np.asarray(scale(ks), dtype=np.float64) + np.zeros(ks.size)
+        b_k = np.asarray(base(ks), dtype=np.float64) + middle
+        own = delta
+        delta = delta - middle
+        smallest = float(b_k.min())
+        ratio = np.abs(delta) / smallest
+        inverse = 1.0 / b_k
+        done = np.zeros(rows, dtype=bool)
+        # Held-out orders in tiers of q (most move the shop-wide numbers by about 1/N and need two or
+        # three terms; a few big orders need more), each tier with the terms its largest q needs.
+        for bound in SERIES_TIERS:
+            tier = ~done & (ratio <= bound)
+            if not tier.any():
+                continue
+            done |= tier
+            every = bool(tier.all())
+            d_tier = delta if every else delta[tier]
+            terms = _series_terms(float(ratio.max() if every else ratio[tier].max()), top)
+            j = np.arange(terms + 1)
+            blocks = []
+            for power in powers:
+                # coefficient of delta^j: binom(-p, j) sum_k C_k a_k b_k^(-p - j)
+                weights = (a_k * inverse ** power)[None, :] * inverse[None, :] ** j[:, None]  # terms x K
+                blocks.append(_binomial_negative(power, terms)[:, None] * (weights @ table))  # terms x columns
+            coefficients = np.concatenate(blocks, axis=1).T  # (powers x columns) x terms
+            # The powers of delta, one row each, and all sums in one matrix product, a block of
+            # held-out orders at a time (small temporaries stay in the processor's cache).
+            value = np.empty((len(powers), len(names), d_tier.size))
+            flat = value.reshape(len(powers) * len(names), d_tier.size)
+            raised = np.empty((terms + 1, min(ROW_BLOCK, d_tier.size)))
+            for start in range(0, d_tier.size, ROW_BLOCK):
+                part = d_tier[start:start + ROW_BLOCK]
+                block = raised[:, :part.size]
+                block[0] = 1.0
+                for i in range(1, terms + 1):
+                    np.multiply(block[i - 1], part, out=block[i])
+                np.matmul(coefficients, block, out=flat[:, start:start + part.size])
+            if every:
+                out = value
+            else:
+                out[:, :, tier] = value
+        if not done.all():
+            far = ~done
+            inverse_far = 1.0 / (b_k[None, :] + delta[far][:, None])
+            for slot, power in enumerate(powers):
+                weight = a_k[None, :] * inverse_far
+                for _ in range(power - 1):
+                    weight *= inverse_far
+                out[slot][:, far] = (weight @ table).T
+        columns = [self._columns[name] for name in names]
+        for start in range(0, rows, ROW_BLOCK):
+            block = slice(start, min(rows, start + ROW_BLOCK))
+            chosen = block if subset is None else pick[block]
+            old_n, new_n, shift = n_old[block], n_new[block], own[block]
+            w_old = 1.0 / (np.asarray(base(old_n), dtype=np.float64) + shift)
+            w_new = 1.0 / (np.asarray(base(new_n), dtype=np.float64) + shift)
+            p_old = np.asarray(scale(old_n), dtype=np.float64) * w_old
+            p_new = np.asarray(scale(new_n), dtype=np.float64) * w_new
+            last = 1
+            for slot, power in enumerate(powers):
+                for _ in range(power - last):
+                    p_old = p_old * w_old
+                    p_new = p_new * w_new
+                last = power
+                for c, (was, becomes) in enumerate(columns):
+                    out[slot, c, block] += p_new * becomes[chosen] - p_old * was[chosen]
+        return out
+
+    def exp_sums_after(self, weights, exponents, theta, names, subset=None):
+        """sum_s w(n_s) exp(sum_m theta_m e_m(n_s)) column_s over customers after each removal, for
+        every weight function w, with parameters theta that differ by held-out order.
+
+        Parameters
+        ----------
+        weights : sequence of callable
+            w(k) for an array of order counts k (one result block each).
+        exponents : sequence of callable
+            e_m(k), one per parameter theta_m.
+        theta : sequence of numpy.ndarray
+            theta_m, one value per held-out order (or per order of ``subset``).
+        names : sequence of str
+            Columns, as for :meth:`sums_after`.
+        subset : array of int, optional
+
+        Returns
+        -------
+        numpy.ndarray
+            Shape (len(weights), len(names), rows).
+
+        Notes
+        -----
+        With c_m the median of theta_m and u_k = sum_m (theta_m - c_m) e_m(k),
+        exp(u_k) = sum_j u_k^j / j!, so the sum over the order-count groups is a sum over
+        multi-indices i of prod_m (theta_m - c_m)^(i_m) / i_m! times
+        sum_k C_k w_k exp(sum_m c_m e_m(k)) prod_m e_m(k)^(i_m), whose coefficients are made
+        once. Held-out orders are taken in tiers of U = max_k |u_k|, each to the total degree J
+        at which U^(J+1) / (J+1)! e^U falls below 2^-60 (relative to the sum of magnitudes at
+        the centre); those with U above 1 go over the groups. The held-out customer's own
+        weight before and after the removal is computed exactly.
+        """
+        pick = slice(None) if subset is None else np.asarray(subset)
+        theta = [np.asarray(value, dtype=np.float64) for value in theta]
+        rows = theta[0].size
+        out = np.empty((len(weights), len(names), rows))
+        if rows == 0:
+            return out
+        n_old, n_new = self.n[pick], self.n_after[pick]
+        table = np.column_stack([self._group_sums[name] for name in names])  # K x columns
+        ks = self.ks
+        powers_k = [np.asarray(e(ks), dtype=np.float64) + np.zeros(ks.size) for e in exponents]
+        centre = [float(np.median(value)) for value in theta]
+        shift = [value - c for value, c in zip(theta, centre)]
+        at_centre = np.exp(sum(c * e for c, e in zip(centre, powers_k)))
+        weights_k = [np.asarray(w(ks), dtype=np.float64) * at_centre for w in weights]
+        reach = sum(np.abs(value) * float(np.max(np.abs(e))) for value, e in zip(shift, powers_k))
+        done = np.zeros(rows, dtype=bool)
+        for bound in (2.0 ** -20, 2.0 ** -8, 1.0):
+            tier = ~done & (reach <= bound)
+            if not tier.any():
+                continue
+            done |= tier
+            every = bool(tier.all())
+            top = float(reach.max() if every else reach[tier].max())
+            degree, term = 0, top
+            while term * math.exp(top) >= 2.0 ** -60 and degree < 60:
+                degree += 1
+                term *= top / (degree + 1)
+            indices = [index for index in itertools.product(range(degree + 1), repeat=len(shift))
+                       if sum(index) <= degree]
+            parts = [part if every else part[tier] for part in shift]
+            size = parts[0].size
+            coefficients = np.empty((len(indices), len(weights) * len(names)))
+            for i, index in enumerate(indices):
+                factor = np.ones(ks.size)
+                scale = 1.0
+                for m, power in enumerate(index):
+                    factor = factor * powers_k[m] ** power
+                    scale /= math.factorial(power)
+                coefficients[i] = np.concatenate([(w * factor * scale) @ table for w in weights_k])
+            coefficients = np.ascontiguousarray(coefficients.T)
+            value = np.empty((len(weights), len(names), size))
+            flat = value.reshape(len(weights) * len(names), size)
+            monomials = np.empty((len(indices), min(ROW_BLOCK, size)))
+            for start in range(0, size, ROW_BLOCK):
+                # Powers of each shift, then one row of monomials per multi-index, a block at a time.
+                block = [part[start:start + ROW_BLOCK] for part in parts]
+                raised = []
+                for part in block:
+                    column = [np.ones_like(part)]
+                    for _ in range(degree):
+                        column.append(column[-1] * part)
+                    raised.append(column)
+                rows_here = monomials[:, :block[0].size]
+                for i, index in enumerate(indices):
+                    product = raised[0][index[0]]
+                    for m in range(1, len(index)):
+                        product = product * raised[m][index[m]]
+                    rows_here[i] = product
+                np.matmul(coefficients, rows_here, out=flat[:, start:start + block[0].size])
+            if every:
+                out = value
+            else:
+                out[:, :, tier] = value
+        if not done.all():
+            far = np.flatnonzero(~done)
+            for slot, w in enumerate(weights):
+                exponent = sum(t[far][:, None] * e[None, :] for t, e in zip(theta, powers_k))
+                out[slot][:, far] = ((np.asarray(w(ks), dtype=np.float64)[None, :] * np.exp(exponent)) @ table).T
+        before = np.stack([self._columns[name][0][pick] for name in names])
+        after = np.stack([self._columns[name][1][pick] for name in names])
+        own_old = np.exp(sum(t * np.asarray(e(n_old), dtype=np.float64) for t, e in zip(theta, exponents)))
+        own_new = np.exp(sum(t * np.asarray(e(n_new), dtype=np.float64) for t, e in zip(theta, exponents)))
+        for slot, w in enumerate(weights):
+            out[slot] += (np.asarray(w(n_new), dtype=np.float64) * own_new) * after \
+                - (np.asarray(w(n_old), dtype=np.float64) * own_old) * before
+        return out
+
     # -- closed-form sums after the removal ---------------------------------------------------
 
     def unweighted_centre_after(self):
@@ -257,6 +528,7 @@ class HeldOut:
     log: Side
     segment_codes: np.ndarray | None = None  # segment number of every customer, when segments are given
     orders: pd.DataFrame | None = None  # the orders held out (for fits that need order-level values)
+    codes: np.ndarray | None = None  # position in stats of every order's customer (all of ``orders``)
     cache: dict = field(default_factory=dict)
 
     @property
@@ -298,7 +570,8 @@ def customer_positions(orders: pd.DataFrame, stats: pd.DataFrame) -> np.ndarray:
     return codes
 
 
-def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None) -> HeldOut:
+def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None, codes=None,
+                    customers=None) -> HeldOut:
     """Hold out, one at a time, every order of every customer with at least two orders.
 
     Parameters
@@ -310,11 +583,19 @@ def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=Non
         Per-customer statistics of the whole shop.
     order_sums : array of 4 floats, optional
         :func:`order_value_sums` over all the shop's orders (default: over ``orders``).
+    codes : array of int, optional
+        :func:`customer_positions` of ``orders``, when already known.
+    customers : array of bool, optional
+        Only the orders of these customers (one entry per customer of ``stats``) are held out;
+        every shop-wide sum still runs over all of them (default: every customer with at least
+        two orders).
     """
-    codes = customer_positions(orders, stats)
+    codes = customer_positions(orders, stats) if codes is None else np.asarray(codes, dtype=np.int64)
     counts = stats["orders"].to_numpy(np.float64)
     values = orders["order_value"].to_numpy(dtype=np.float64)
     keep = counts[codes] >= 2
+    if customers is not None:
+        keep &= np.asarray(customers, dtype=bool)[codes]
     t = codes[keep]
     x = values[keep]
     origins = origins_of(stats) if len(stats) else (0.0, 0.0)
@@ -327,4 +608,5 @@ def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=Non
     if "segment" in stats.columns:
         labels = pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
         segments = np.unique(labels, return_inverse=True)[1].astype(np.int64)
-    return HeldOut(stats=stats, customer=t, value=x, money=money, log=log, segment_codes=segments, orders=orders)
+    return HeldOut(stats=stats, customer=t, value=x, money=money, log=log, segment_codes=segments, orders=orders,
+                   codes=codes)

@@ -24,16 +24,16 @@ import pandas as pd
 
 from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
-from forecasting.options import DEFAULT_CHOICE, DEFAULT_METHOD, DEFAULT_VARIANCE, METHODS, OWN_SPREAD
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, DEFAULT_METHOD, DEFAULT_VARIANCE, METHODS, OWN_SPREAD
 from forecasting.evaluation import (
     AUTO_METHODS,
     AUTO_VARIANCES,
     _combinations,
     _reduction_pct,
-    customer_scores,
-    leave_one_out,
+    left_out_scores,
     summarise,
 )
+from forecasting.forecasts import ShopFits, shop_fits
 
 #: What the choice falls back to, in order of preference (the first one evaluated is used).
 FALLBACKS = (("plain", "log"), ("plain", "classic"), ("plain", "proportional"))
@@ -188,7 +188,8 @@ def choose_from_scores(scored, results, *, restricted=False, seed=0) -> dict:
     return chosen
 
 
-def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -> dict:
+def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0, fits=None,
+                  check_customers=CHECK_CUSTOMERS) -> dict:
     """Pick the method and spread model for a shop from its own orders.
 
     Parameters
@@ -201,6 +202,11 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -
         Candidates (default: the registry's pairs allowed in the automatic choice).
     seed : int
         Seed of the split-half check.
+    fits : forecasting.forecasts.ShopFits, optional
+        The shared fits of these orders: each pair's leave-one-out is computed once with them.
+    check_customers : int or None
+        Score the orders of at most this many customers (as
+        :func:`forecasting.evaluation.evaluate_methods`; None: all).
 
     Returns
     -------
@@ -217,17 +223,34 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, seed=0) -
     if orders is None:
         raise OrderDataError("the automatic choice of method needs the order-level data", option="method",
                              fix="Give the cleaned orders, or choose a method")
-    scores, results = _checked_pairs(orders, stats, methods, variances)
-    return choose_from_scores(scores, results, restricted=methods is not None or variances is not None, seed=seed)
+    fits = _fits_of(orders, stats, fits)
+    key = ("choice", _names_key(methods), _names_key(variances), int(seed), check_customers)
+    if key not in fits.cache:
+        scores, results = _checked_pairs(fits, methods, variances, check_customers)
+        fits.cache[key] = choose_from_scores(scores, results, restricted=methods is not None or variances is not None,
+                                             seed=seed)
+    return dict(fits.cache[key])
 
 
-def _checked_pairs(orders, stats, methods, variances):
+def _names_key(names):
+    if names is None:
+        return None
+    return (names,) if isinstance(names, str) else tuple(names)
+
+
+def _fits_of(orders, stats, fits) -> ShopFits:
+    if fits is not None:
+        if fits.orders is not None and fits.orders is not orders:
+            raise ValueError("the shared fits belong to another orders table")
+        return shop_fits(fits.stats, orders, fits)
+    return ShopFits(customer_statistics(orders) if stats is None else stats, orders)
+
+
+def _checked_pairs(fits, methods, variances, limit=CHECK_CUSTOMERS):
     """The shop's own check (leave-one-out scores and their summary) of the candidate pairs."""
-    if stats is None:
-        stats = customer_statistics(orders)
-    pairs = _combinations(methods, variances, stats=stats, default_methods=AUTO_METHODS,
+    pairs = _combinations(methods, variances, stats=fits.stats, default_methods=AUTO_METHODS,
                           default_variances=AUTO_VARIANCES)
-    scores = customer_scores(leave_one_out(orders, stats, pairs))
+    scores = left_out_scores(fits, pairs, limit=limit)
     return scores, summarise(scores)
 
 
@@ -290,7 +313,7 @@ class Choice:
 
 
 def resolve_choice(stats, orders=None, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
-                   checked: dict | None = None) -> Choice:
+                   checked: dict | None = None, fits: ShopFits | None = None) -> Choice:
     """Settle ``"auto"`` in a method / spread-model choice: the one rule every front end uses.
 
     Parameters
@@ -305,6 +328,9 @@ def resolve_choice(stats, orders=None, *, method: str = DEFAULT_METHOD, variance
         The shop's own check when it is at hand already for both ``"auto"``
         (``Evaluation.chosen`` of :func:`forecasting.evaluation.evaluate_methods` on the same
         orders makes the same choice as :func:`choose_method`), to spare a second pass.
+    fits : forecasting.forecasts.ShopFits, optional
+        The shared fits of ``stats`` and ``orders`` (the check's leave-one-out is kept with
+        them, for the next choice or evaluation of the same shop).
 
     Returns
     -------
@@ -321,16 +347,27 @@ def resolve_choice(stats, orders=None, *, method: str = DEFAULT_METHOD, variance
     own_spread = method != "auto" and METHODS[method].own_spread
     if method != "auto" and (variance != "auto" or own_spread):
         return Choice(method, OWN_SPREAD if own_spread else variance, "user")
+    if fits is not None and orders is not None:
+        key = ("resolved choice", method, variance)
+        if key not in fits.cache:
+            fits.cache[key] = _resolve(stats, orders, method, variance, checked, fits)
+        return fits.cache[key]
+    return _resolve(stats, orders, method, variance, checked, fits)
+
+
+def _resolve(stats, orders, method, variance, checked, fits) -> Choice:
     if orders is None:
         chosen_method = DEFAULT_CHOICE[0] if method == "auto" else method
         chosen_variance = DEFAULT_CHOICE[1] if variance == "auto" else variance
         if METHODS[chosen_method].own_spread:
             chosen_variance = OWN_SPREAD
         return Choice(chosen_method, chosen_variance, "default")
+    if fits is None:
+        fits = ShopFits(stats, orders)
     if checked is not None and method == "auto" and variance == "auto":
         check = checked
     elif method != "auto":  # only the spread model is left to the check; the method stays the user's
-        check = spread_for_method(_checked_pairs(orders, stats, [method], None)[1], method)
+        check = spread_for_method(_checked_pairs(shop_fits(stats, orders, fits), [method], None)[1], method)
     else:
-        check = choose_method(orders, stats, variances=None if variance == "auto" else [variance])
+        check = choose_method(orders, stats, variances=None if variance == "auto" else [variance], fits=fits)
     return Choice(check["method"], check["variance"], "accuracy check", check=check)

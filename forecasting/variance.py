@@ -39,7 +39,6 @@ import numpy as np
 import pandas as pd
 
 from forecasting.errors import OrderDataError
-from forecasting.holdout import rows_of
 
 SPREAD_MODELS = ("log", "classic", "proportional")
 #: The name the rest of the product has always used for the same tuple.
@@ -174,36 +173,49 @@ def _smearing_curve(k, sigma2):
 def _solve_smearing(curve_sum, target, sigma2, informative, *, start=None, max_iter=100):
     """log S solving curve_sum(x) = target, vectorised (Newton inside a bracket, the curve rises in x).
 
-    ``curve_sum(x)`` returns (sum w exp(a + b x), sum w b exp(a + b x)); rows that are not
-    ``informative`` (no customer with three or more orders) get the lognormal value sigma2 / 2.
+    ``curve_sum(x, rows)`` returns (sum w exp(a + b x), sum w b exp(a + b x)) of the problems
+    ``rows`` (positions, or None for all); rows that are not ``informative`` (no customer with
+    three or more orders) get the lognormal value sigma2 / 2. With a ``start`` (the fit on all
+    orders, for the leave-one-out) Newton steps begin there and the bracket is found on the
+    way; problems that have stopped are not evaluated again.
     """
     sigma2 = np.asarray(sigma2, dtype=np.float64)
     lo = np.zeros_like(sigma2)
-    value_at_zero, _ = curve_sum(lo)
+    value_at_zero, _ = curve_sum(lo, None)
     floor = value_at_zero >= target  # already at S = 1 (E[exp(e)] >= 1, Jensen)
-    hi = np.maximum(sigma2, 0.0) + 1.0 if start is None else np.full_like(sigma2, 2.0 * start + 0.1)
-    for _ in range(200):
-        value, _ = curve_sum(hi)
-        short = (value < target) & informative & ~floor
-        if not short.any():
-            break
-        lo = np.where(short, hi, lo)
-        hi = np.where(short, 2.0 * hi, hi)
-    x = np.clip(np.maximum(sigma2, 0.0) / 2.0 if start is None else np.full_like(sigma2, start), lo, hi)
+    if start is None:
+        hi = np.maximum(sigma2, 0.0) + 1.0
+        for _ in range(200):
+            value, _ = curve_sum(hi, None)
+            short = (value < target) & informative & ~floor
+            if not short.any():
+                break
+            lo = np.where(short, hi, lo)
+            hi = np.where(short, 2.0 * hi, hi)
+        x = np.clip(np.maximum(sigma2, 0.0) / 2.0, lo, hi)
+    else:
+        hi = np.full_like(sigma2, np.inf)
+        x = np.full_like(sigma2, max(float(start), 0.0))
+    active = np.flatnonzero(informative & ~floor)
     for _ in range(max_iter):
-        value, slope = curve_sum(x)
-        gap = value - target
-        lo = np.where(gap < 0, x, lo)
-        hi = np.where(gap < 0, hi, x)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            newton = x - gap / slope
-        # A Newton step on the bracket's edge is the root to rounding (the step is below an ulp).
-        inside = (slope > 0) & (newton >= lo) & (newton <= hi)
-        step_to = np.where(inside, newton, 0.5 * (lo + hi))
-        done = np.abs(step_to - x) <= 1e-14 * np.maximum(1.0, np.abs(step_to))
-        x = step_to
-        if np.all(done | floor | ~informative):
+        if active.size == 0:
             break
+        now, low, high = x[active], lo[active], hi[active]
+        value, slope = curve_sum(now, active)
+        gap = value - target[active]
+        low = np.where(gap < 0, now, low)
+        high = np.where(gap < 0, high, now)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            newton = now - gap / slope
+        # A Newton step on the bracket's edge is the root to rounding (the step is below an ulp).
+        inside = (slope > 0) & (newton >= low) & (newton <= high)
+        step_to = np.where(inside, newton, np.where(np.isfinite(high), 0.5 * (low + high), 2.0 * now + 0.1))
+        # After a Newton step below 1e-7 the error left is about its square (quadratic convergence).
+        size = np.abs(step_to - now)
+        scale = np.maximum(1.0, np.abs(step_to))
+        done = (size <= 1e-14 * scale) | (inside & (size <= 1e-7 * scale))
+        x[active], lo[active], hi[active] = step_to, low, high
+        active = active[~done]
     return np.where(informative, np.where(floor, 0.0, x), np.maximum(sigma2, 0.0) / 2.0)
 
 
@@ -263,7 +275,7 @@ def smearing_factor(orders, means, log_means, sigma2_log):
     target = np.array([float(np.sum((n[keep] - 1.0) * r[keep]))])
     a, b = _smearing_curve(counts, sigma2_log)
 
-    def curve_sum(x):
+    def curve_sum(x, rows):
         terms = weight * np.exp(a + b * x[:, None])
         return terms.sum(axis=1), (terms * b).sum(axis=1)
 
@@ -276,7 +288,9 @@ def _chi2_median_ratio(dof):
     from scipy import special  # a tenth of a second to import: only this spread needs it
 
     k = np.asarray(dof, dtype=np.float64)
-    return 2.0 * special.gammaincinv(k / 2.0, 0.5) / k
+    # The ratio depends on k alone: one evaluation per distinct number of degrees of freedom.
+    values, where = np.unique(k, return_inverse=True)
+    return (2.0 * special.gammaincinv(values / 2.0, 0.5) / values)[where].reshape(k.shape)
 
 
 def order_spread(orders, log_sum_sq_dev):
@@ -343,16 +357,20 @@ def log_spread_left_out(held) -> VarianceFit:
               + np.where(money.n_after >= 2, (money.n_after - 1.0) * r_after, 0.0))
     informative = (np.count_nonzero(n >= 3) - (money.n >= 3) + (money.n_after >= 3)) > 0
 
-    def curve_sum(x):
-        def weights(k, rows):
-            a, b = _smearing_curve(k, rows_of(sigma2, rows, k))
-            value = np.where(k >= 2, (k - 1.0) * np.exp(a + b * rows_of(x, rows, k)), 0.0)
-            return value, value * b
-
-        value, slope = log.sums_after_many(weights, ["one"])[:, 0]
-        return value, slope
-
     start = held.cached("smearing on all orders", lambda: math.log(log_spread(held.stats).details["smearing"]))
+
+    def slope_of(k):
+        return (1.0 - 1.0 / k) * (1.0 - 2.0 / k)
+
+    def curve_sum(x, rows):
+        # exp(a_k + b_k x) with a_k = sigma2 (-1 / (2k) + (1 - b_k) / 2): a power series in sigma2
+        # and x around their typical values (Side.exp_sums_after; exact to rounding).
+        spread = sigma2 if rows is None else sigma2[rows]
+        parts = log.exp_sums_after(
+            (lambda k: np.where(k >= 2, k - 1.0, 0.0), lambda k: np.where(k >= 2, (k - 1.0) * slope_of(k), 0.0)),
+            (lambda k: -1.0 / (2.0 * k) + (1.0 - slope_of(k)) / 2.0, slope_of), (spread, x), ["one"], subset=rows)
+        return parts[0, 0], parts[1, 0]
+
     smearing = np.exp(_solve_smearing(curve_sum, target, sigma2, informative, start=start))
     one_order = held.cached("order_spread", lambda: _order_spread_left_out(held))
     return VarianceFit("log", sigma2, (), {"smearing": smearing, "excess": np.log(smearing) - sigma2 / 2.0,
@@ -483,7 +501,8 @@ def proportional_spread_left_out(held) -> VarianceFit:
     cv2 = _proportional_from_sums(ss_after, level_after, np.full(money.H, dof), fallback)
     if "m2" not in money._group_sums:
         money.add_column("m2", m * m, m[t] ** 2, money.mean_after ** 2)
-    (square_sum,) = money.sums_after(lambda k, rows: 1.0 / (1.0 + rows_of(cv2, rows, k) / k), ["m2"])
+    # 1 / (1 + cv2 / k) = k / (k + cv2): a power series in cv2 around its typical value.
+    ((square_sum,),) = money.power_sums_after(lambda k: k, lambda k: k, cv2 + np.zeros(money.H), (1,), ["m2"])
     return VarianceFit("proportional", cv2, (), {"mean_square_level": square_sum / money.T})
 
 

@@ -640,3 +640,233 @@ class TestPairedMargins:
             base = plain[picks].sum()
             slow.append([100 * (base - methods[picks, j].sum()) / base for j in range(2)])
         np.testing.assert_allclose(fast, np.array(slow), rtol=1e-12)
+
+
+# ---------------------------------------------------------------------------
+# Fast paths against their slow twins
+# ---------------------------------------------------------------------------
+
+
+def random_side(seed=0, customers=400, largest=25, spread=1.0):
+    """A Side of a made-up shop: order counts 1..largest, averages, sums of squares, held-out values."""
+    from forecasting.holdout import Side
+
+    rng = np.random.default_rng(seed)
+    n = np.minimum(rng.geometric(0.25, customers), largest).astype(np.float64)
+    means = rng.normal(3.5, spread, customers)
+    sum_sq = rng.gamma(2.0, 0.3, customers) * (n - 1.0)
+    t = np.repeat(np.arange(customers), n.astype(np.int64))
+    t = t[n[t] >= 2]
+    values = means[t] + rng.normal(0.0, 0.5, t.size)
+    return Side(n, means, sum_sq, t, values, (0.0, 1.0))
+
+
+class TestGroupSeries:
+    """Side.power_sums_after and Side.exp_sums_after (power series over the order-count groups)
+    against Side.sums_after_many, which goes over every group for every held-out order."""
+
+    @pytest.mark.parametrize("size", [1e-9, 1e-5, 1e-2, 0.2, 3.0])  # every tier, and beyond the series' reach
+    def test_power_sums_equal_the_direct_sums(self, size):
+        side = random_side(seed=1)
+        rng = np.random.default_rng(2)
+        delta = 0.7 + size * rng.standard_normal(side.H)
+        delta = np.maximum(delta, 0.0)
+        fast = side.power_sums_after(lambda k: 1.0, lambda k: 1.0 / k, delta, (1, 2, 3), ["one", "d", "d2"])
+
+        def weights(k, rows):
+            w = 1.0 / (1.0 / k + (delta[rows][:, None] if np.ndim(k) == 2 else delta[rows]))
+            return w, w * w, w * w * w
+
+        slow = side.sums_after_many(weights, ["one", "d", "d2"])
+        np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-12 * np.abs(slow).max())
+
+    def test_power_sums_with_a_scale_and_a_subset(self):
+        # k / (k + b), the weight of multi-task averaging and of the proportional model's level
+        side = random_side(seed=3)
+        rng = np.random.default_rng(4)
+        subset = rng.choice(side.H, side.H // 3, replace=False)
+        b = 2.0 + 1e-4 * rng.standard_normal(subset.size)
+        b[:5] = [0.0, 40.0, 1e-3, 7.0, 2.5]  # a few far from the rest
+        (fast_d, fast_one), = side.power_sums_after(lambda k: k, lambda k: k, b, (1,), ["d", "one"], subset=subset)
+        slow_d, slow_one = side.sums_after(lambda k, rows: k / (k + (b[rows][:, None] if np.ndim(k) == 2
+                                                                     else b[rows])), ["d", "one"], subset=subset)
+        np.testing.assert_allclose(fast_d, slow_d, rtol=1e-12, atol=1e-12 * np.abs(slow_d).max())
+        np.testing.assert_allclose(fast_one, slow_one, rtol=1e-13)
+
+    def test_the_series_needs_few_terms_when_one_order_moves_little(self):
+        from forecasting.holdout import _series_terms
+
+        assert _series_terms(0.0, 3) == 0
+        assert _series_terms(1e-6, 3) <= 4
+        assert _series_terms(0.25, 3) < 60
+        q, j = 0.01, _series_terms(0.01, 2)
+        from math import comb
+        assert comb(2 + j, j + 1) * q ** (j + 1) < 2.0 ** -60 <= comb(1 + j, j) * q ** j
+
+    @pytest.mark.parametrize("size", [1e-8, 1e-3, 0.3, 5.0])
+    def test_exp_sums_equal_the_direct_sums(self, size):
+        # The smearing curve: sum (k - 1) exp(sigma2 a_k + x b_k) and its slope in x.
+        side = random_side(seed=5)
+        rng = np.random.default_rng(6)
+        sigma2 = 0.36 + size * 0.1 * rng.standard_normal(side.H)
+        x = 0.2 + size * rng.standard_normal(side.H)
+
+        def slope(k):
+            return (1.0 - 1.0 / k) * (1.0 - 2.0 / k)
+
+        def curve(k):
+            return -1.0 / (2.0 * k) + (1.0 - slope(k)) / 2.0
+
+        fast = side.exp_sums_after((lambda k: np.where(k >= 2, k - 1.0, 0.0),
+                                    lambda k: np.where(k >= 2, (k - 1.0) * slope(k), 0.0)),
+                                   (curve, slope), (sigma2, x), ["one", "d"])
+
+        def weights(k, rows):
+            s2 = sigma2[rows][:, None] if np.ndim(k) == 2 else sigma2[rows]
+            xx = x[rows][:, None] if np.ndim(k) == 2 else x[rows]
+            value = np.where(k >= 2, (k - 1.0) * np.exp(s2 * curve(k) + xx * slope(k)), 0.0)
+            return value, value * slope(k)
+
+        slow = side.sums_after_many(weights, ["one", "d"])
+        np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-12 * np.abs(slow).max())
+
+    def test_blocks_of_rows_give_the_same_sums(self, monkeypatch):
+        from forecasting import holdout
+
+        side = random_side(seed=7)
+        delta = 0.5 + 1e-6 * np.arange(side.H)
+        whole = side.power_sums_after(lambda k: 1.0, lambda k: 1.0 / k, delta, (1, 2, 3), ["one", "d"])
+        monkeypatch.setattr(holdout, "ROW_BLOCK", 37)
+        np.testing.assert_array_equal(
+            side.power_sums_after(lambda k: 1.0, lambda k: 1.0 / k, delta, (1, 2, 3), ["one", "d"]), whole)
+
+
+class TestBootstrapByWeights:
+    def test_a_documented_function_of_the_seed(self, monkeypatch):
+        # Resample r counts the r-th run of T draws of default_rng(seed).integers(0, T): the same
+        # sums whatever the block size (to the last bits of the matrix product's order of adding)
+        # and whether a worker thread applies them (exactly).
+        rng = np.random.default_rng(1)
+        table = rng.gamma(2.0, 3.0, (53, 4))
+        whole = evaluation.bootstrap_sums(table, resamples=40, seed=8)
+        generator = np.random.default_rng(8)
+        slow = np.array([np.bincount(generator.integers(0, 53, 53), minlength=53) @ table for _ in range(40)])
+        np.testing.assert_allclose(whole, slow, rtol=1e-13)
+        for block in (1, 7, 64):
+            monkeypatch.setattr(evaluation, "BOOTSTRAP_BLOCK", block)
+            np.testing.assert_allclose(evaluation.bootstrap_sums(table, resamples=40, seed=8), whole, rtol=1e-14)
+        monkeypatch.setattr(evaluation, "BOOTSTRAP_BLOCK", 32)
+        monkeypatch.setattr(evaluation, "thread_pool", lambda: None)
+        np.testing.assert_array_equal(evaluation.bootstrap_sums(table, resamples=40, seed=8), whole)
+
+    def test_intervals_and_margins_share_the_draws(self, monkeypatch):
+        calls = []
+        original = evaluation.bootstrap_sums
+        monkeypatch.setattr(evaluation, "bootstrap_sums", lambda *a, **k: calls.append(1) or original(*a, **k))
+        evaluate_methods(simulated_shop(customers=120, seed=3), methods="mta,plain", variances="log",
+                         bootstrap=30, cutoff="2099-01-01")
+        assert len(calls) == 1  # leave-one-out intervals and margins; no backtest past 2099
+
+
+class TestCalibrationByBands:
+    def test_equals_the_measures_customer_group_by_group(self):
+        # Slow twin: ratios and delta-method errors over the customers of each band, by masks.
+        orders = simulated_shop(customers=300, seed=12)
+        stats = customer_statistics(orders)
+        scores = evaluation.customer_scores(evaluation.leave_one_out(orders, stats, [("mta", "log"), ("pooled",
+                                                                                                      "classic")]))
+        for i in range(2):
+            measures = evaluation.calibration_measures(scores, i)
+            bands = evaluation._band_of(scores.past_orders)
+            for label in ["all"] + [b[2] for b in evaluation.CALIBRATION_BANDS]:
+                keep = np.ones(len(bands), bool) if label == "all" else bands == label
+                if not keep.any():
+                    assert label not in measures
+                    continue
+                bias, bias_se = evaluation._ratio_and_se(scores.diff[i][keep], scores.value[keep])
+                cover, cover_se = evaluation._ratio_and_se(scores.inside[i][keep], scores.count[keep])
+                implied, implied_se = evaluation.implied_coverage(scores.excess[i][keep], scores.claimed[i][keep],
+                                                                  0.90)
+                got = measures[label]
+                assert got["money_bias_pct"] == pytest.approx(100 * bias, rel=1e-10)
+                assert got["money_bias_se"] == pytest.approx(100 * bias_se, rel=1e-9)
+                assert got["coverage"] == pytest.approx(cover, rel=1e-12)
+                assert got["coverage_se"] == pytest.approx(cover_se, rel=1e-9)
+                assert got["expected_coverage"] == pytest.approx(implied, rel=1e-10)
+                assert got["orders"] == int(scores.count[keep].sum())
+
+
+class TestCrossValidationBySums:
+    @pytest.mark.parametrize("seed", [0, 1])
+    def test_errors_of_every_multiplier_equal_one_fit_each(self, seed):
+        from forecasting.estimators import cross_validation as cv
+        from forecasting.estimators.james_stein import james_stein
+
+        rng = np.random.default_rng(seed)
+        T = 150
+        n = rng.integers(1, 8, T)
+        codes = np.repeat(np.arange(T), n)
+        values = rng.lognormal(3.5, 0.4, T)[codes] * rng.lognormal(0.0, 0.5, codes.size)
+        for fold in cv.cv_folds(codes, values, T):
+            fast = cv._mta_errors(fold, cv.MTA_CV_GRID)
+            slow = cv._fold_errors(fold, cv.MTA_CV_GRID, cv._mta_estimates)
+            np.testing.assert_allclose(fast, slow, rtol=1e-10)
+            slow_js = cv._fold_errors(fold, cv.JS_CV_GRID, lambda f, grid: np.stack(
+                [james_stein(f.m, f.s, amount_scale=lam).estimate[f.keep] for lam in grid]))
+            np.testing.assert_allclose(cv._james_stein_errors(fold, cv.JS_CV_GRID), slow_js, rtol=1e-10)
+
+    def test_folds_equal_the_orders_split_by_hand(self):
+        from forecasting.estimators import cross_validation as cv
+        from forecasting.variance import classic_pooled_variance
+
+        rng = np.random.default_rng(3)
+        T = 30
+        n = rng.integers(1, 6, T)
+        codes = rng.permutation(np.repeat(np.arange(T), n))
+        values = rng.gamma(3.0, 10.0, codes.size)
+        fold_of = np.random.default_rng(cv.CV_SEED).permutation(codes.size) % cv.CV_FOLDS
+        for number, fold in enumerate(cv.cv_folds(codes, values, T)):
+            train = fold_of != number
+            present = np.bincount(codes[train], minlength=T) > 0
+            m = np.array([values[train & (codes == t)].mean() for t in np.flatnonzero(present)])
+            ss = np.array([((values[train & (codes == t)] - values[train & (codes == t)].mean()) ** 2).sum()
+                           for t in np.flatnonzero(present)])
+            counts = np.bincount(codes[train], minlength=T)[present]
+            sigma2, _ = classic_pooled_variance(counts, ss, m)
+            np.testing.assert_allclose(fold.m, m, rtol=1e-12)
+            np.testing.assert_allclose(fold.s, sigma2 / counts, rtol=1e-10)
+
+
+class TestBacktestSplit:
+    def test_first_order_after_the_cut_off_by_hand(self):
+        orders = simulated_shop(customers=200, seed=13)
+        orders.loc[orders.index[:40], "order_date"] = pd.Timestamp("2025-06-01")  # ties on one date
+        fits = evaluation.ShopFits(customer_statistics(orders), orders)
+        cutoff, split = evaluation.backtest_split(fits, "2025-05-01")
+        before = orders[orders["order_date"] < cutoff]
+        after = orders[orders["order_date"] >= cutoff]
+        first = after.sort_values("order_date", kind="stable").groupby("customer").first()
+        stats_before = customer_statistics(before)
+        customers = stats_before.index.intersection(first.index)
+        assert list(stats_before.index[split["position"]]) == list(customers)
+        np.testing.assert_array_equal(split["value"], first.loc[customers, "order_value"].to_numpy())
+        pd.testing.assert_frame_equal(split["fits"].stats, stats_before)
+        np.testing.assert_array_equal(split["fits"].codes(), stats_before.index.get_indexer(before["customer"]))
+
+
+class TestEveryApproximatePair:
+    """Each pair whose leave-one-out keeps something from the fit on all orders, against the
+    brute-force refit, with the bound the registry's words promise ("a little")."""
+
+    @pytest.mark.parametrize("method, variance", [(m, v) for m, entry in METHODS.items() if not entry.exact_left_out
+                                                  for v in ((evaluation.GAMMA_MODEL,) if entry.own_spread
+                                                            else EXACT_VARIANCES)])
+    def test_close_to_the_refit(self, method, variance):
+        orders = simulated_shop(customers=50, seed=14)
+        held = evaluation._held_out_orders(orders, customer_statistics(orders))
+        fast = fast_leave_one_out(orders, method, variance).expected
+        brute = brute_force_leave_one_out(orders, method, variance)[0]
+        plain = np.sum((held.money.mean_after - held.value) ** 2)
+        gap = abs(100 * (np.sum((brute - held.value) ** 2) - np.sum((fast - held.value) ** 2)) / plain)
+        assert gap < 10.0  # points of error cut (our bound, about three times the largest seen)
+        assert np.median(np.abs(fast - brute) / brute) < 0.3

@@ -154,6 +154,18 @@ def column_options(args: argparse.Namespace) -> dict:
                 header_row=args.header_row, keep_unpaid=args.keep_unpaid, keep_implausible=args.keep_implausible)
 
 
+def shop_from_args(args: argparse.Namespace):
+    """The shop of the file named on the command line (:class:`forecasting.shop.Shop`): its orders
+    and row account with the pandas engine, its per-customer statistics and row account with a
+    scale engine (which never holds every order in this process)."""
+    from ..shop import Shop
+
+    if getattr(args, "engine", "pandas") == "pandas":
+        return Shop.from_read(load_from_args(args))
+    stats, account, _ = load_statistics_from_args(args)
+    return Shop(statistics=stats, account=account)
+
+
 def load_statistics_from_args(args: argparse.Namespace):
     """Per-customer statistics, the row account and (pandas engine only) the cleaned orders.
 

@@ -6,7 +6,7 @@ from __future__ import annotations
 import math
 
 from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine_options, json_number,
-               load_from_args, print_json)
+               print_json, shop_from_args)
 from ..errors import OrderDataError
 from ..options import AUTO_TOLERANCE
 
@@ -98,14 +98,12 @@ def run(args) -> int:
                              option="bootstrap")
     if args.engine != "pandas":
         return _run_on_cluster(args)
-    from ..evaluation import evaluate_methods
-
     progress = Progress(2)
     progress.step(f"reading {args.file}")
-    result = load_from_args(args)
-    progress.step(f"holding out {len(result.orders):,} orders one at a time, backtest, bootstrap")
-    found = evaluate_methods(result.orders, methods=args.methods, variances=args.variances,
-                             cutoff=args.cutoff, bootstrap=args.bootstrap, seed=args.seed)
+    shop = shop_from_args(args)
+    progress.step(f"holding out {len(shop.orders):,} orders one at a time, backtest, bootstrap")
+    found = shop.evaluation(methods=args.methods, variances=args.variances, cutoff=args.cutoff,
+                            bootstrap=args.bootstrap, seed=args.seed)
     progress.finish()
     chosen = found.chosen
     if args.json:

@@ -7,10 +7,10 @@
 from __future__ import annotations
 
 from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine_options, add_method_options,
-               json_number, load_statistics_from_args, print_json)
+               json_number, print_json, shop_from_args)
 from ..errors import OrderDataError
 from ..exports import pseudonymise, write_csv
-from ..forecasts import forecast_customers, forecasts_for_reading
+from ..forecasts import forecasts_for_reading
 
 
 def add_arguments(parser) -> None:
@@ -46,10 +46,10 @@ def run(args) -> int:
     if args.engine == "dask":
         table, account = _forecast_on_cluster(args)
     else:
-        stats, account, orders = load_statistics_from_args(args)
-        progress.step(f"forecasting {len(stats):,} customers")
-        table = forecast_customers(stats, method=args.method, variance=args.variance, orders=orders,
-                                   level=args.level, next_level=args.next_level)
+        shop = shop_from_args(args)
+        progress.step(f"forecasting {len(shop.statistics):,} customers")
+        table = shop.forecasts(args.method, args.variance, level=args.level, next_level=args.next_level)
+        account = shop.account
     progress.step(f"writing {args.out}")
     loaded_notes = account.get("notes", [])
     if args.pseudonym_salt is not None:

@@ -24,11 +24,9 @@ from ..outlook import (
     _check_horizon,
     _check_level,
     _parse_date,
-    backtest_outlook,
-    project_revenue,
     require_projection,
-    rolling_backtest,
 )
+from ..shop import Shop
 
 BY_COHORT = "cohort"
 
@@ -115,16 +113,16 @@ def run(args) -> int:
     if args.cutoff is not None:
         _parse_date(args.cutoff, "cutoff")
     by = grouping_from_args(args)
-    orders = load_from_args(args).orders
+    shop = Shop.from_read(load_from_args(args))
     options = dict(by=by, method=args.method, variance=args.variance, level=level, seed=seed, seasons=args.seasons,
                    frequency_model=args.frequency_model)
-    outlook = require_projection(project_revenue(orders, horizon=horizon, draws=draws, **options))
+    outlook = require_projection(shop.outlook(horizon=horizon, draws=draws, **options))
     backtest = rolling = None
     if not args.no_backtest:
-        backtest = backtest_outlook(orders, horizon=horizon, cutoff=args.cutoff, draws=draws, **options)
+        backtest = shop.outlook_backtest(horizon=horizon, cutoff=args.cutoff, draws=draws, **options)
         require_projection(backtest.outlook, what="the backtest")
         if cutoffs:
-            rolling = rolling_backtest(orders, horizon=horizon, cutoffs=cutoffs, **options)
+            rolling = shop.rolling_backtest(horizon=horizon, cutoffs=cutoffs, **options)
     if args.out:
         write_csv(outlook.customers, args.out)
     if args.schedule_out:

@@ -10,8 +10,8 @@ import math
 
 from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
 from ..options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
-from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, assign_tiers, export_tiers, \
-    project_revenue, require_projection, tier_summary
+from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, export_tiers, tier_summary
+from ..shop import Shop
 
 DEFAULT_HORIZON_DAYS = 365
 
@@ -43,13 +43,10 @@ def add_arguments(parser) -> None:
 def run(args) -> int:
     horizon = _check_horizon(args.horizon)
     _check_tier_options(args.rank, args.quantiles, args.thresholds, None)
-    orders = load_from_args(args).orders
+    shop = Shop.from_read(load_from_args(args))
     # Tiers rank the customers the shop has; customers still to come are not projected here.
-    outlook = project_revenue(orders, horizon=horizon, method=args.method, variance=args.variance,
-                              seasons=args.seasons, new_customers=False)
-    if args.rank == "revenue":
-        require_projection(outlook, what="projected revenue")
-    tiered = assign_tiers(outlook.customers, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds)
+    outlook, tiered = shop.tiers(horizon=horizon, rank=args.rank, shares=args.quantiles, thresholds=args.thresholds,
+                                 method=args.method, variance=args.variance, seasons=args.seasons)
     summary = tier_summary(tiered)
     files = export_tiers(tiered, args.out)
     if args.json:

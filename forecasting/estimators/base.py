@@ -127,15 +127,24 @@ def _reml_parts(sums):
     return score, slope, information, delta, s1
 
 
-def solve_reml(sums_at, start, upper, *, tol=1e-13, max_iter=200):
+def solve_reml(sums_at, start, upper, *, at_zero=None, bracket=True, tol=1e-13, max_iter=200):
     """Roots of the REML score for many problems at once (vectorised safeguarded Newton).
 
     Parameters
     ----------
     sums_at : callable
-        ``sums_at(tau2)`` -> weighted sums (see :func:`_reml_parts`) at an array of tau2.
+        ``sums_at(tau2, rows)`` -> weighted sums (see :func:`_reml_parts`) of the problems
+        ``rows`` (an array of their positions, or None for all) at their values of tau2.
     start, upper : numpy.ndarray
         A first guess and a value where the score is already negative (enlarged if not).
+    at_zero : numpy.ndarray of bool, optional
+        Where the score is not positive at tau2 = 0 (computed when not given).
+    bracket : bool, default True
+        Find a negative score above every root before the first Newton step (a few problems
+        whose sums are cheap, as in the fits on all orders). Without it, Newton steps start
+        at ``start`` and a bracket is found on the way (many problems whose roots are near
+        ``start``, as after holding out one order of a large shop); where a step cannot be
+        taken the value is doubled (at least to ``upper``) until the score turns negative.
 
     Returns
     -------
@@ -146,51 +155,89 @@ def solve_reml(sums_at, start, upper, *, tol=1e-13, max_iter=200):
     Notes
     -----
     Newton steps inside the bracket [lo, hi] that holds the sign change, bisection where a
-    step would leave it (Press et al., Numerical Recipes, rtsafe); stops when the step is
-    below ``tol`` relative to the root.
+    step would leave it (Press et al., Numerical Recipes, rtsafe); stops when a step is below
+    ``tol`` relative to the root, or a Newton step below sqrt(``tol``) (whose own error is then
+    of the order of its square). Problems that have stopped are not evaluated again.
     """
     upper = np.array(upper, dtype=np.float64)
     zero = np.zeros_like(upper)
-    at_zero = _reml_parts(sums_at(zero))[0] <= 0
+    if at_zero is None:
+        at_zero = _reml_parts(sums_at(zero, None))[0] <= 0
+    at_zero = np.asarray(at_zero, dtype=bool)
     lo = zero.copy()
-    hi = np.maximum(upper, np.asarray(start, dtype=np.float64) * 1.5)
-    for _ in range(200):
-        still = (_reml_parts(sums_at(hi))[0] > 0) & ~at_zero
-        if not still.any():
-            break
-        lo = np.where(still, hi, lo)
-        hi = np.where(still, hi * 4.0, hi)
-    x = np.asarray(start, dtype=np.float64)
-    x = np.where((x <= lo) | (x >= hi), 0.5 * (lo + hi), x)
+    x = np.array(start, dtype=np.float64) + zero
+    if bracket:
+        hi = np.maximum(upper, x * 1.5)
+        for _ in range(200):
+            still = (_reml_parts(sums_at(hi, None))[0] > 0) & ~at_zero
+            if not still.any():
+                break
+            lo = np.where(still, hi, lo)
+            hi = np.where(still, hi * 4.0, hi)
+        x = np.where((x <= lo) | (x >= hi), 0.5 * (lo + hi), x)
+    else:
+        hi = np.full_like(upper, np.inf)
+        x = np.maximum(x, 0.0)
+    active = np.flatnonzero(~at_zero)
     for _ in range(max_iter):
-        score, slope = _reml_parts(sums_at(x))[:2]
-        lo = np.where(score > 0, x, lo)
-        hi = np.where(score > 0, hi, x)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            newton = x - score / slope
-        # A Newton step on the bracket's edge is the root to rounding (the step is below an ulp).
-        inside = (slope < 0) & (newton >= lo) & (newton <= hi)
-        step_to = np.where(inside, newton, 0.5 * (lo + hi))
-        done = (np.abs(step_to - x) <= tol * np.maximum(np.abs(step_to), np.finfo(float).tiny)) | at_zero
-        x = step_to
-        if done.all():
+        if active.size == 0:
             break
+        now, low, high = x[active], lo[active], hi[active]
+        score, slope = _reml_parts(sums_at(now, active))[:2]
+        positive = score > 0
+        low = np.where(positive, now, low)
+        high = np.where(positive, high, now)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            newton = now - score / slope
+        # A Newton step on the bracket's edge is the root to rounding (the step is below an ulp).
+        inside = (slope < 0) & (newton >= low) & (newton <= high)
+        fallback = np.where(np.isfinite(high), 0.5 * (low + high), np.maximum(2.0 * now, upper[active]))
+        step_to = np.where(inside, newton, fallback)
+        # Newton converges quadratically: after a Newton step below sqrt(tol) of the root, the
+        # error left is about the step squared (the score is a smooth rational function of tau2).
+        size = np.abs(step_to - now)
+        scale = np.maximum(np.abs(step_to), np.finfo(float).tiny)
+        done = (size <= tol * scale) | (inside & (size <= np.sqrt(tol) * scale))
+        x[active], lo[active], hi[active] = step_to, low, high
+        active = active[~done]
     return np.where(at_zero, 0.0, x)
 
 
 def _direct_sums(tau2, s, d):
-    """The weighted sums over customers, for every tau2 in an array (full fits)."""
-    w = 1.0 / (np.asarray(tau2, dtype=np.float64)[:, None] + s[None, :])
+    """The weighted sums over customers, for every tau2 in an array (full fits).
+
+    Customers with the same s share their weights, so the sums run over the distinct values of
+    s (the order counts, for s = sigma2 / n) with the customers' columns added up within each.
+    """
+    return _value_group_sums(_value_groups(s, d), tau2)
+
+
+def _value_groups(s, d):
+    """(distinct s, and per distinct s: the number of customers, sum d, sum d^2)."""
+    values, where = np.unique(s, return_inverse=True)
+    size = values.size
+    return values, np.stack([np.bincount(where, minlength=size).astype(np.float64),
+                             np.bincount(where, weights=d, minlength=size),
+                             np.bincount(where, weights=d * d, minlength=size)], axis=1)
+
+
+def _value_group_sums(groups, tau2):
+    values, table = groups
+    w = 1.0 / (np.asarray(tau2, dtype=np.float64)[:, None] + values[None, :])
     powers = {1: w, 2: w * w}
     powers[3] = powers[2] * w
-    return {p: {"one": wp.sum(axis=1), "d": wp @ d, "d2": wp @ (d * d)} for p, wp in powers.items()}
+    out = {}
+    for p, wp in powers.items():
+        one, d, d2 = (wp @ table).T
+        out[p] = {"one": one, "d": d, "d2": d2}
+    return out
 
 
 def _between_from(tau2, sums_at, origin):
     # tau2 = 0 with no spread within customers (every order alike) has no finite weights; the
     # callers replace the centre there.
     with np.errstate(divide="ignore", invalid="ignore"):
-        score, slope, information, delta, s1 = _reml_parts(sums_at(tau2))
+        score, slope, information, delta, s1 = _reml_parts(sums_at(tau2, None))
         tau2_var = 1.0 / information
     return origin + delta, 1.0 / s1, tau2_var
 
@@ -241,8 +288,10 @@ def fit_between(means, mean_vars) -> Between:
         notes = ("Some customers' averages have no spread at all; the spread between customers was measured "
                  "by moments instead of restricted likelihood.",)
     else:
-        def sums_at(t):
-            return _direct_sums(t, s, d)
+        groups = _value_groups(s, d)
+
+        def sums_at(t, rows):
+            return _value_group_sums(groups, t)
 
         upper = np.array([2.0 * var_m + float(np.max(s)) + np.finfo(float).tiny])
         start = np.array([max(0.0, var_m - float(np.mean(s)))])
@@ -250,12 +299,46 @@ def fit_between(means, mean_vars) -> Between:
     if np.any(s == 0) and tau2 == 0:
         exact = s == 0
         return Between(0.0, float(np.mean(m[exact])), 0.0, float("inf"), notes)
-    centre, centre_var, tau2_var = _between_from(np.array([tau2]), lambda t: _direct_sums(t, s, d), origin)
+    groups = _value_groups(s, d)
+    centre, centre_var, tau2_var = _between_from(np.array([tau2]), lambda t, rows: _value_group_sums(groups, t),
+                                                 origin)
     return Between(tau2, float(centre[0]), float(centre_var[0]), float(tau2_var[0]), notes)
 
 
-def _grouped_sums(side, tau2, s_factor, subset=None):
-    """The weighted sums of :func:`_reml_parts` after each removal, all powers in one pass."""
+def _grouped_sums(side, tau2, s_factor, subset=None, *, series=True):
+    """The weighted sums of :func:`_reml_parts` after each removal, all powers in one pass.
+
+    w = 1 / (tau2 + f / k) = f^-1 (rho + 1 / k)^-1 with rho = tau2 / f is summed over the
+    order-count groups by the power series of :meth:`forecasting.holdout.Side.power_sums_after`
+    in rho; rows with f = 0 (no spread within customers), and every row without ``series``, go
+    over the groups.
+    """
+    tau2 = np.asarray(tau2, dtype=np.float64)
+    s_factor = np.asarray(s_factor, dtype=np.float64) + np.zeros_like(tau2)
+    rows = tau2.size if subset is None else len(subset)
+    positive = (s_factor > 0) & np.isfinite(tau2)
+    if not series or not positive.any():
+        return _grouped_sums_directly(side, tau2, s_factor, subset)
+    out = {p: {name: np.empty(rows) for name in ("one", "d", "d2")} for p in (1, 2, 3)}
+    every = np.arange(rows) if subset is None else np.asarray(subset)
+    f = s_factor[positive]
+    rho = tau2[positive] / f
+    parts = side.power_sums_after(lambda k: 1.0, lambda k: 1.0 / k, rho, (1, 2, 3), ("one", "d", "d2"),
+                                  subset=every[positive])
+    for slot, p in enumerate((1, 2, 3)):
+        scale = f ** -float(p)
+        for c, name in enumerate(("one", "d", "d2")):
+            out[p][name][positive] = parts[slot, c] * scale
+    rest = ~positive
+    if rest.any():
+        direct = _grouped_sums_directly(side, tau2[rest], s_factor[rest], every[rest])
+        for p in (1, 2, 3):
+            for name in ("one", "d", "d2"):
+                out[p][name][rest] = direct[p][name]
+    return out
+
+
+def _grouped_sums_directly(side, tau2, s_factor, subset=None):
     def weights(k, rows):
         w = 1.0 / (rows_of(tau2, rows, k) + rows_of(s_factor, rows, k) / k)
         w2 = w * w
@@ -279,8 +362,12 @@ def between_left_out(side, s_factor, *, start=None) -> Between:
     Notes
     -----
     The weights w = 1 / (tau2 + s_factor / n) depend on a customer only through n, so every
-    sum is taken over order-count groups (:meth:`forecasting.holdout.Side.sums_after_many`), and
-    the score equation of every held-out order is solved at once by :func:`solve_reml`.
+    sum is taken over order-count groups, and the score equation of every held-out order is
+    solved at once by :func:`solve_reml`: from the fit on all orders, Newton steps on the
+    orders not yet settled, the sums over the groups as a power series in tau2 / s_factor
+    (:meth:`forecasting.holdout.Side.power_sums_after`; exact to rounding). Whether the score
+    is positive at 0 needs no iteration: there w = n / s_factor, so every sum is s_factor^-p
+    times a sum over the groups that is the same for every held-out order.
     """
     H = side.H
     s_factor = np.asarray(s_factor, dtype=np.float64)
@@ -295,8 +382,15 @@ def between_left_out(side, s_factor, *, start=None) -> Between:
         factor = s_factor[free]
         upper = 2.0 * var_m[free] + factor / side.fewest_orders_after()[free] + np.finfo(float).tiny
         guess = np.maximum(0.0, var_m[free] - mean_s[free]) if start is None else np.full(free.size, float(start))
-        tau2[free] = solve_reml(lambda t: _grouped_sums(side, t, factor, free), guess, upper)
-    centre, centre_var, tau2_var = _between_from(tau2, lambda t: _grouped_sums(side, t, s_factor), side.origin)
+        at_zero = _reml_parts(_grouped_sums(side, np.zeros(free.size), factor, free))[0] <= 0
+
+        def sums_at(t, rows):
+            rows = np.arange(free.size) if rows is None else rows
+            return _grouped_sums(side, t, factor[rows], free[rows])
+
+        tau2[free] = solve_reml(sums_at, guess, upper, at_zero=at_zero, bracket=start is None)
+    centre, centre_var, tau2_var = _between_from(tau2, lambda t, rows: _grouped_sums(side, t, s_factor),
+                                                 side.origin)
     # s = 0 for everyone (no spread within customers): the centre is the unweighted mean.
     centre = np.where(exact, side.origin + side.unweighted_centre_after(), centre)
     return Between(tau2, centre, centre_var, tau2_var)

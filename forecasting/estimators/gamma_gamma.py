@@ -185,14 +185,17 @@ def gamma_gamma_ranges(params, orders, means, *, level=0.90, next_level=0.80):
     p, q, gam = float(params["p"]), float(params["q"]), float(params["gamma"])
     n = np.asarray(orders, dtype=np.float64)
     m = np.asarray(means, dtype=np.float64)
-    shape = p * n + q
     rate = gam + n * m
+    # The quantiles depend on the customer through n alone: one evaluation per distinct count.
+    counts, where = np.unique(n, return_inverse=True)
+    where = where.reshape(n.shape)
+    shapes = p * counts + q
     tail = (1.0 - level) / 2.0
-    expected_low = p * rate / special.gammaincinv(shape, 1.0 - tail)
-    expected_high = p * rate / special.gammaincinv(shape, tail)
+    expected_low = p * rate / special.gammaincinv(shapes, 1.0 - tail)[where]
+    expected_high = p * rate / special.gammaincinv(shapes, tail)[where]
     tail = (1.0 - next_level) / 2.0
-    low = special.betaincinv(p, shape, tail)
-    high = special.betaincinv(p, shape, 1.0 - tail)
+    low = special.betaincinv(p, shapes, tail)[where]
+    high = special.betaincinv(p, shapes, 1.0 - tail)[where]
     return expected_low, expected_high, rate * low / (1.0 - low), rate * high / (1.0 - high)
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from forecasting.estimators.base import ONE_CUSTOMER, Shrunk, as_arrays, combine, plain_result, rows_of
+from forecasting.estimators.base import ONE_CUSTOMER, Shrunk, as_arrays, combine, plain_result
 
 
 def _from_similarity(m, s, a, notes=(), params=None) -> Shrunk:
@@ -109,8 +109,10 @@ def weighted_left_out(side, b):
     proportional to n), as in :func:`_from_similarity`.
     """
     finite = np.isfinite(b)
-    fb = np.where(finite, b, 0.0)
-    num, den = side.sums_after(lambda k, rows: k / (k + rows_of(fb, rows, k)), ["d", "one"])
+    fb = np.where(finite, b, 0.0) + np.zeros(side.H)
+    # g = k / (k + b): the sums over the order-count groups as a power series in b around its
+    # typical value (Side.power_sums_after; exact to rounding).
+    (num, den), = side.power_sums_after(lambda k: k, lambda k: k, fb, (1,), ["d", "one"])
     qn, qd, _ = side.count_weighted_after()
     with np.errstate(invalid="ignore", divide="ignore"):
         centre = np.where(finite, num / den, qd / qn)
