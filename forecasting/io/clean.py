@@ -130,8 +130,60 @@ def encode_text(array) -> tuple[np.ndarray, pa.Array]:
 
 
 def sorted_order(values: pa.Array) -> np.ndarray:
-    """Positions that put Arrow text in order (by code point, as Python sorts text)."""
-    return pc.sort_indices(values).to_numpy(zero_copy_only=False)
+    """Positions that put Arrow text in order (by code point, as Python sorts text).
+
+    Texts of at most eight bytes without a NUL byte (most customer numbers) are sorted as the
+    64-bit numbers their bytes make, padded with zero bytes (UTF-8 sorts by code point byte by
+    byte, and a shorter text sorts before any longer one it begins)."""
+    keys = _short_text_keys(values)
+    if keys is None:
+        return pc.sort_indices(values).to_numpy(zero_copy_only=False)
+    return np.argsort(keys, kind="stable")
+
+
+# The bytes of a text of k bytes that count in its eight-byte number (big-endian, so the first
+# byte is the highest).
+_KEPT_BYTES = np.array([0] + [((1 << (8 * k)) - 1) << (8 * (8 - k)) for k in range(1, 9)], dtype=np.uint64)
+
+
+def _text_bytes(values: pa.Array):
+    """``(starts, lengths, padded)``: where each text's bytes start in ``padded`` (the array's bytes
+    followed by eight zero bytes), and how many they are."""
+    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
+    data = values.buffers()[2]
+    raw = np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8)
+    raw = raw[offsets[0]:offsets[-1]]
+    padded = np.concatenate([raw, np.zeros(8, dtype=np.uint8)])
+    return (offsets[:-1] - offsets[0]).astype(np.int64), offsets[1:] - offsets[:-1], padded
+
+
+def _first_eight(starts: np.ndarray, lengths: np.ndarray, padded: np.ndarray) -> np.ndarray:
+    """Each text's first eight bytes (fewer when it is shorter, then zero bytes) as a big-endian
+    64-bit number."""
+    windows = np.lib.stride_tricks.sliding_window_view(padded, 8)[starts]
+    return windows.view(">u8").ravel().astype(np.uint64) & _KEPT_BYTES[np.minimum(lengths, 8)]
+
+
+def _short_text_keys(values: pa.Array) -> np.ndarray | None:
+    """Each text as a 64-bit number with the same order, or None when some text is longer than eight
+    bytes or holds a NUL byte."""
+    values = _one_chunk(values)
+    if len(values) < 2 or values.type != pa.string() or values.null_count:
+        return None
+    starts, lengths, padded = _text_bytes(values)
+    if lengths.max() > 8 or (padded[:-8] == 0).any():
+        return None
+    return _first_eight(starts, lengths, padded)
+
+
+def _text_fingerprint(values: pa.Array) -> np.ndarray:
+    """A 64-bit number per text from its first eight bytes and its length (equal texts, equal
+    numbers; different texts mostly differ)."""
+    values = _one_chunk(values)
+    if len(values) == 0 or values.type != pa.string():
+        return np.zeros(len(values), dtype=np.uint64)
+    starts, lengths, padded = _text_bytes(values)
+    return _mixed([_first_eight(starts, lengths, padded), lengths.astype(np.int64)])
 
 
 def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | None = None) -> pd.Categorical:
@@ -247,50 +299,46 @@ _MIX = (np.uint64(0x9E3779B97F4A7C15), np.uint64(0xBF58476D1CE4E5B9), np.uint64(
 
 
 def _mixed(parts: list[np.ndarray]) -> np.ndarray:
-    """One 64-bit number per row from several columns of readings (equal readings give equal numbers)."""
+    """One 64-bit number per row from several columns of readings (equal readings give equal numbers;
+    a column with one value throughout tells no rows apart and is left out)."""
     key = np.zeros(len(parts[0]), dtype=np.uint64)
     for k, part in enumerate(parts):
+        if len(part) and part.dtype.itemsize == 1 and part.min() == part.max():
+            continue
         bits = part.view(np.uint64) if part.dtype.itemsize == 8 else part.astype(np.uint64)
-        key = (key ^ bits) * _MIX[k % 3]
+        key ^= bits
+        key *= _MIX[k % 3]
         key ^= key >> np.uint64(31)
     return key
 
 
 def repeated_keys(keys: np.ndarray) -> np.ndarray:
-    """The rows whose key occurs more than once, in row order.
-
-    Rows are counted into hashed bins, a few times with other bits of the key: a row alone in
-    its bin has a key no other row has, and most rows are dropped in the first passes; the few
-    left are sorted (equal keys are always in one bin, so no repeated key is dropped)."""
-    at = np.arange(len(keys), dtype=np.int64)
-    for salt in _MIX:
-        if len(at) < 1 << 16:
-            break
-        bits = max(16, int(len(at)).bit_length() + 1)
-        bins = ((keys[at] * salt) >> np.uint64(64 - bits)).astype(np.int64)
-        at = at[np.bincount(bins, minlength=1 << bits)[bins] > 1]
-    if not len(at):
-        return at
-    values = keys[at]
-    order = np.argsort(values, kind="stable")
-    ordered = values[order]
+    """The rows whose key occurs more than once, in row order (the keys sorted once; the repeated
+    ones looked up by bisection)."""
+    ordered = np.sort(keys)
     same = ordered[1:] == ordered[:-1]
-    hit = np.zeros(len(at), dtype=bool)
-    hit[order[1:][same]] = True
-    hit[order[:-1][same]] = True
-    return at[hit]
+    if not same.any():
+        return np.zeros(0, dtype=np.int64)
+    repeated = np.unique(ordered[1:][same])
+    # Rows whose key's low 16 bits are those of a repeated key (a table of 65,536 flags), then the
+    # key itself among the repeated ones.
+    table = np.zeros(1 << 16, dtype=bool)
+    table[(repeated & np.uint64(0xFFFF)).astype(np.intp)] = True
+    maybe = np.flatnonzero(table[(keys & np.uint64(0xFFFF)).astype(np.intp)])
+    return maybe[np.isin(keys[maybe], repeated)]
 
 
-def _copies(cells: pd.DataFrame, blank: np.ndarray, readings: list[np.ndarray]) -> np.ndarray:
+def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndarray:
     """Exact copies of an earlier record (every cell equal), blank records left aside.
 
-    Copies have equal readings, so only records whose readings repeat (:func:`repeated_keys`) are
+    ``keys`` mixes each record's readings and the start of its customer cell (:func:`_row_keys`):
+    copies have equal keys, so only records whose key repeats (:func:`repeated_keys`) are
     compared cell by cell."""
     n = len(blank)
     out = np.zeros(n, dtype=bool)
     if n < 2:
         return out
-    candidates = repeated_keys(_mixed(readings))
+    candidates = repeated_keys(keys)
     candidates = candidates[~blank[candidates]]
     if len(candidates) < 2:
         return out
@@ -305,6 +353,8 @@ def _per_distinct_text(cells: pa.Array, rule) -> tuple[np.ndarray, pa.Array, pa.
     the distinct cells."""
     raw_codes, raw = encode_text(cells)
     read = rule(raw)
+    if read is raw:
+        return raw_codes, raw, raw_codes  # the rule kept every text as it is
     merged, values = encode_text(read)
     return merged[raw_codes] if len(raw_codes) else raw_codes, values, raw_codes
 
@@ -364,6 +414,7 @@ class _Readings:
     micros: np.ndarray
     date_kind: np.ndarray
     hints: np.ndarray
+    key: np.ndarray  # uint64: the readings and the customer cell's start mixed (see _copies)
 
     @staticmethod
     def join(parts: list["_Readings"]) -> "_Readings":
@@ -398,13 +449,15 @@ def _read_block(columns: dict, mapping: ColumnMapping, *, decimal: str, date_ord
     amount = rules.read_amount(_OPS, cell("value"), decimal=decimal)
     currency = rules.currency_of_cell(_OPS, cell("currency")) if mapping.currency else amount["currency"]
     when = rules.read_date(_OPS, cell("date"), date_order=date_order)
-    return _Readings(blank=blank, too_long=too_long, damaged=damaged, status=status,
-                     amount=_numpy(amount["amount"], np.float64, fill=np.nan),
-                     amount_kind=_full(amount["kind"], n, np.int8),
-                     currency=_OPS.full_column(currency, n),
-                     micros=_numpy(when["micros"], np.int64, fill=0),
-                     date_kind=_full(when["kind"], n, np.int8),
-                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16))
+    amounts = _numpy(amount["amount"], np.float64, fill=np.nan)
+    amount_kind = _full(amount["kind"], n, np.int8)
+    micros = _numpy(when["micros"], np.int64, fill=0)
+    date_kind = _full(when["kind"], n, np.int8)
+    key = _mixed([_text_fingerprint(cell("customer")), amounts, micros, amount_kind, date_kind, status])
+    return _Readings(blank=blank, too_long=too_long, damaged=damaged, status=status, amount=amounts,
+                     amount_kind=amount_kind, currency=_OPS.full_column(currency, n), micros=micros,
+                     date_kind=date_kind,
+                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16), key=key)
 
 
 def _blocks(n: int) -> list[tuple[int, int]]:
@@ -435,6 +488,8 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
                    mapping, decimal=decimal, date_order=date_order, possibly_damaged=possibly_damaged)
             for start, stop in _blocks(n)]
     read = _Readings.join([job.result() for job in jobs])
+    # Copies are found while the ids are still being read.
+    duplicate = _copies(cells, read.blank, read.key)
     ids = ids_job.result()
     row = {"blank": pa.array(read.blank), "too_long": pa.array(read.too_long), "damaged": pa.array(read.damaged),
            "no_customer": pa.array(ids.no_customer), "customer": None, "status": pa.array(read.status),
@@ -451,8 +506,6 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
     notes = _full(rules.row_notes(_OPS, row, keep_unpaid=options.keep_unpaid,
                                   keep_implausible=options.keep_implausible, dates=dates), n, np.int16)
     # Copies of an earlier record overrule every reason after a damaged row (as in rules.row_reason).
-    duplicate = _copies(cells, read.blank, [ids.customer_code, read.amount, read.micros, read.amount_kind,
-                                            read.date_kind, read.status])
     reason[duplicate & ((reason == 0) | (reason > _CODE["duplicate_row"]))] = _CODE["duplicate_row"]
     has_order_id = None
     if ids.order_ids is not None:
@@ -800,15 +853,18 @@ def date_order(micros: np.ndarray) -> np.ndarray:
     n = len(micros)
     if n < 2 or bool((micros[1:] >= micros[:-1]).all()):
         return np.arange(n)
-    low = int(micros.min())
-    shifted = micros - low
-    day = 86_400_000_000
-    if not (shifted % day).any() and int(shifted.max()) // day < 1 << 16:
-        return np.argsort((shifted // day).astype(np.uint16), kind="stable")
-    if not (shifted % 1_000_000).any() and int(shifted.max()) // 1_000_000 < 1 << 32:
-        seconds = (shifted // 1_000_000).astype(np.uint32)
-        first = np.argsort((seconds & 0xFFFF).astype(np.uint16), kind="stable")
-        return first[np.argsort((seconds[first] >> 16).astype(np.uint16), kind="stable")]
+    low, high = int(micros.min()), int(micros.max())
+    day, second = 86_400_000_000, 1_000_000
+    if (high - low) // day < 1 << 16:
+        days, rest = np.divmod(micros - low, day)
+        if not rest.any():
+            return np.argsort(days.astype(np.uint16), kind="stable")
+    if (high - low) // second < 1 << 32:
+        seconds, rest = np.divmod(micros - low, second)
+        if not rest.any():
+            seconds = seconds.astype(np.uint32)
+            first = np.argsort((seconds & 0xFFFF).astype(np.uint16), kind="stable")
+            return first[np.argsort((seconds[first] >> 16).astype(np.uint16), kind="stable")]
     return np.argsort(micros, kind="stable")
 
 
@@ -915,6 +971,14 @@ def _note_merged_ids(rows: Rows, reason: np.ndarray, notes: np.ndarray) -> None:
 # The pandas engine: every step in this process
 
 
+def _customers(customer: pd.Series) -> int:
+    """How many customers a column names (a categorical's codes counted, not its text hashed)."""
+    if isinstance(customer.dtype, pd.CategoricalDtype):
+        codes = customer.cat.codes.to_numpy()
+        return int(np.count_nonzero(np.bincount(codes[codes >= 0], minlength=1)))
+    return int(customer.nunique())
+
+
 @dataclass
 class ReadResult:
     """A cleaned order table and the account of every input row."""
@@ -948,7 +1012,7 @@ class ReadResult:
             "rows_used": int(self.rows_used),
             "rows_excluded": int(len(self.excluded)),
             "orders": int(len(self.orders)),
-            "customers": int(self.orders["customer"].nunique()),
+            "customers": _customers(self.orders["customer"]),
             "excluded": rules.account_counts(counts.to_dict(), rules.REASONS),
             "noted": rules.account_counts(noted.to_dict(), rules.NOTES),
             "unrecognised_statuses": dict(self.unrecognised_statuses),
