@@ -57,6 +57,66 @@ def _all_equal(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarr
     return np.bincount(codes, weights=values != member[codes], minlength=n_groups) == 0
 
 
+def _first_and_last(codes: np.ndarray, dates: pd.Series, n_groups: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each customer's first and last order date (NaT where a customer has no date)."""
+    stamps = dates.to_numpy(dtype="datetime64[ns]")
+    moments = stamps.view(np.int64)
+    valid = ~np.isnat(stamps)
+    first = np.full(n_groups, np.iinfo(np.int64).max, dtype=np.int64)
+    last = np.full(n_groups, np.iinfo(np.int64).min, dtype=np.int64)
+    np.minimum.at(first, codes[valid], moments[valid])
+    np.maximum.at(last, codes[valid], moments[valid])
+    none = np.bincount(codes[valid], minlength=n_groups) == 0
+    first[none] = last[none] = np.iinfo(np.int64).min  # NaT
+    return first.view("datetime64[ns]"), last.view("datetime64[ns]")
+
+
+def _latest_segment(codes: np.ndarray, dates: pd.Series, segment: pd.Series, n_groups: int) -> np.ndarray:
+    """Each customer's segment on their latest order that names one (by date, then place)."""
+    stamps = dates.to_numpy(dtype="datetime64[ns]").view(np.int64)
+    if len(stamps) < 2 or bool((stamps[1:] >= stamps[:-1]).all()):
+        rank = np.arange(len(stamps))
+    else:
+        order = np.argsort(stamps, kind="stable")
+        rank = np.empty(len(stamps), dtype=np.int64)
+        rank[order] = np.arange(len(stamps))
+    named = segment.notna().to_numpy()
+    latest = np.full(n_groups, -1, dtype=np.int64)
+    np.maximum.at(latest, codes[named], rank[named])
+    at_rank = np.empty(len(stamps), dtype=np.int64)
+    at_rank[rank] = np.arange(len(stamps))
+    found = latest >= 0
+    values = np.full(n_groups, np.nan, dtype=object)
+    values[found] = segment.to_numpy(dtype=object)[at_rank[latest[found]]]
+    return values
+
+
+def _customer_index(names) -> pd.Index:
+    """The customers as the table's index (text as pandas keeps text: a sorted reader's categories are
+    used as they are)."""
+    if isinstance(names, pd.Index) and not isinstance(names, pd.CategoricalIndex) \
+            and isinstance(names.dtype, pd.StringDtype):
+        return names.rename("customer")
+    return pd.Index(np.asarray(names, dtype=object), name="customer")
+
+
+def customer_codes(customer: pd.Series) -> tuple[np.ndarray, pd.Index]:
+    """``(codes, names)``: each order's customer as its place among the customers, sorted.
+
+    The same as ``pandas.factorize(customer, sort=True)``; a Categorical column whose categories
+    are sorted (as the reader makes it) gives its codes as they are, without hashing the ids."""
+    if isinstance(customer.dtype, pd.CategoricalDtype):
+        categories = customer.cat.categories
+        codes = customer.cat.codes.to_numpy()
+        if len(codes) and categories.is_monotonic_increasing and codes.min() >= 0:
+            used = np.bincount(codes, minlength=len(categories)) > 0
+            if used.all():
+                return codes, categories
+            remap = np.cumsum(used) - 1
+            return remap[codes], categories[used]
+    return pd.factorize(customer, sort=True)
+
+
 def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
     """Summarise cleaned orders into one row per customer.
 
@@ -83,7 +143,7 @@ def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
     a              2  20.0       200.0
     b              1   5.0         0.0
     """
-    codes, names = pd.factorize(orders["customer"], sort=True)
+    codes, names = customer_codes(orders["customer"])
     n_groups = len(names)
     values = orders["order_value"].to_numpy(dtype=np.float64)
     counts = np.bincount(codes, minlength=n_groups)
@@ -97,11 +157,7 @@ def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
     with np.errstate(invalid="ignore", divide="ignore"):
         log_var = np.where(counts > 1, log_sum_sq / (counts - 1), np.nan)
 
-    dates = orders["order_date"]
-    date_codes = pd.Series(dates.to_numpy(), index=codes)
-    first = date_codes.groupby(level=0).min()
-    last = date_codes.groupby(level=0).max()
-
+    first, last = _first_and_last(codes, orders["order_date"], n_groups)
     table = pd.DataFrame(
         {
             "orders": counts.astype(np.int64),
@@ -111,14 +167,13 @@ def customer_statistics(orders: pd.DataFrame) -> pd.DataFrame:
             "log_mean": log_means,
             "log_sum_sq_dev": log_sum_sq,
             "log_var": log_var,
-            "first_order": first.reindex(range(n_groups)).to_numpy(),
-            "last_order": last.reindex(range(n_groups)).to_numpy(),
+            "first_order": first,
+            "last_order": last,
         },
-        index=pd.Index(np.asarray(names, dtype=object), name="customer"),
+        index=_customer_index(names),
     )
     if "segment" in orders.columns:
-        # A customer who moved between segments is placed by their latest order.
-        latest = orders.assign(_code=codes).sort_values("order_date", kind="stable")
-        segment = latest.groupby("_code")["segment"].last()
-        table["segment"] = segment.reindex(range(n_groups)).to_numpy()
+        # A customer who moved between segments is placed by their latest order (the last in date
+        # order, then file order, with a segment).
+        table["segment"] = _latest_segment(codes, orders["order_date"], orders["segment"], n_groups)
     return table

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 from typing import Callable
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -51,6 +52,10 @@ class ArrowOps:
     # -- text
     @staticmethod
     def strip(x, characters: str):
+        # A cell that starts and ends with a printable ASCII character other than a space is
+        # unchanged by any strip: the column is returned as it is (no copy) when every cell is so.
+        if isinstance(x, pa.Array) and x.type == pa.string() and _no_edges(x, characters):
+            return x
         return pc.utf8_trim(x, characters=characters)
 
     @staticmethod
@@ -99,16 +104,12 @@ class ArrowOps:
     @staticmethod
     def to_float(x, valid):
         """``x`` read as a float where ``valid`` (a pattern said it is a plain number), else null."""
-        valid = pc.fill_null(valid, False)
-        text = pc.if_else(valid, x, "0")
-        return pc.if_else(valid, pc.cast(text, pa.float64()), pa.scalar(None, pa.float64()))
+        return _cast_where(x, valid, pa.float64())
 
     @staticmethod
     def to_int(x, valid):
         """``x`` read as a whole number where ``valid`` (digits only, at most 18), else null."""
-        valid = pc.fill_null(valid, False)
-        text = pc.if_else(valid, x, "0")
-        return pc.if_else(valid, pc.cast(text, pa.int64()), pa.scalar(None, pa.int64()))
+        return _cast_where(x, valid, pa.int64())
 
     @staticmethod
     def is_finite(x):
@@ -152,10 +153,10 @@ class ArrowOps:
         Arrow's own cast reads the whole column at once; when one value is no real day
         (2025-02-30) it refuses them all, and the dates are then built from their digits."""
         valid = self.truth(valid)
-        out = pa.nulls(len(text), pa.int64())
-        subset = pc.filter(text, valid)
+        every = _all_true(valid)
+        subset = text if every else pc.filter(text, valid)
         if len(subset) == 0:
-            return out
+            return pa.nulls(len(text), pa.int64())
         try:
             stamps = pc.floor_temporal(pc.cast(subset, pa.timestamp("us")), unit="second")
             micros = pc.cast(stamps, pa.int64())
@@ -171,7 +172,9 @@ class ArrowOps:
                                   pc.fill_null(digits(17, 19), 0))
         if isinstance(micros, pa.ChunkedArray):
             micros = micros.combine_chunks()
-        return pc.replace_with_mask(out, valid, micros)
+        if every:
+            return micros
+        return pc.replace_with_mask(pa.nulls(len(text), pa.int64()), valid, micros)
 
     # -- comparisons and logic (null compares as null; a null condition is false)
     @staticmethod
@@ -233,7 +236,26 @@ class ArrowOps:
         return pc.if_else(self.truth(condition), then, otherwise)
 
     def case(self, choices: list[tuple], default):
-        """The value of the first condition that holds, else ``default``."""
+        """The value of the first condition that holds, else ``default``.
+
+        One pass of Arrow's ``case_when`` (a null condition is false there too) where the values
+        share a type; else a chain of ``if_else``."""
+        arrays = [x for pair in choices for x in pair if isinstance(x, (pa.Array, pa.ChunkedArray))]
+        if isinstance(default, (pa.Array, pa.ChunkedArray)):
+            arrays.append(default)
+        if choices and arrays:
+            n = len(arrays[0])
+            try:
+                conditions = pa.StructArray.from_arrays(
+                    [self.full_column(self.truth(c), n) if isinstance(c, (pa.Array, pa.ChunkedArray))
+                     else self.full_column(bool(c.as_py() if isinstance(c, pa.Scalar) else c), n)
+                     for c, _ in choices],
+                    names=[f"c{i}" for i in range(len(choices))])
+                values = [self.full_column(v, n) if isinstance(v, pa.ChunkedArray) else v
+                          for v in [v for _, v in choices] + [default]]
+                return pc.case_when(conditions, *values)
+            except (pa.ArrowNotImplementedError, pa.ArrowInvalid, pa.ArrowTypeError):
+                pass
         result = default
         for condition, value in reversed(choices):
             result = self.if_else(condition, value, result)
@@ -302,10 +324,54 @@ class ArrowOps:
         scalar = value if isinstance(value, pa.Scalar) else pa.scalar(value)
         if scalar.type == pa.int8() or scalar.type == pa.int32():
             scalar = pa.scalar(scalar.as_py(), pa.int64())
-        return pa.array([scalar.as_py()] * n, type=scalar.type) if n else pa.array([], type=scalar.type)
+        # The one value taken n times (built in C, not as a Python list).
+        return pc.take(pa.array([scalar.as_py()], type=scalar.type), pa.array(np.zeros(n, dtype=np.int32)))
 
 
 _ARROW_TYPES = {"float": pa.float64(), "int": pa.int64(), "text": pa.string(), "bool": pa.bool_()}
+
+
+def _all_true(condition) -> bool:
+    """Whether a condition (nulls already read as false) holds on every row."""
+    if not isinstance(condition, (pa.Array, pa.ChunkedArray)):
+        return bool(condition)
+    return condition.null_count == 0 and (len(condition) == 0 or bool(pc.all(condition).as_py()))
+
+
+def _cast_where(x, valid, to):
+    """``x`` cast to ``to`` where ``valid``, null elsewhere; the other rows are never cast (a cast
+    refuses a whole column for one value it cannot read)."""
+    valid = pc.fill_null(valid, False)
+    if _all_true(valid):
+        return pc.cast(x, to)
+    text = pc.if_else(valid, x, "0")
+    return pc.if_else(valid, pc.cast(text, to), pa.scalar(None, to))
+
+
+def _no_edges(x: pa.Array, characters: str) -> bool:
+    """Whether no cell of ``x`` starts or ends with one of ``characters`` (looked up in the first and
+    last byte of each cell: a printable ASCII character other than those is no part of any
+    character that strip removes)."""
+    if any(ord(c) in _PLAIN for c in characters):
+        return False
+    offsets = np.frombuffer(x.buffers()[1], dtype=np.int32, count=len(x) + 1, offset=x.offset * 4)
+    data = x.buffers()[2]
+    starts, ends = offsets[:-1], offsets[1:]
+    filled = ends > starts
+    if not filled.any():
+        return True
+    if data is None:
+        return False
+    raw = np.frombuffer(data, dtype=np.uint8)
+    first = raw[starts[filled]]
+    last = raw[ends[filled] - 1]
+    return bool(_PLAIN_BYTES[first].all() and _PLAIN_BYTES[last].all())
+
+
+# Printable ASCII characters other than the space.
+_PLAIN = frozenset(range(33, 127))
+_PLAIN_BYTES = np.zeros(256, dtype=bool)
+_PLAIN_BYTES[33:127] = True
 
 
 # ---------------------------------------------------------------------------

@@ -35,6 +35,8 @@ made on the sums of every partition's evidence; :func:`clean_orders` runs them a
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
@@ -47,7 +49,7 @@ import pyarrow.compute as pc
 from ..errors import OrderDataError
 from . import rules
 from .backends import ArrowOps
-from .read import TEXT_TYPES, ColumnMapping, RawTable
+from .read import TEXT_TYPES, ColumnMapping, RawTable, text_frame
 
 __all__ = ["Orders", "ReadOptions", "ReadResult", "Rows", "build_orders", "clean_orders", "finish_orders",
            "read_rows"]
@@ -86,31 +88,151 @@ class ReadOptions:
         return rules.plausible_dates(self.today)
 
 
-def arrow_text(values: pd.Series) -> pa.Array:
-    """A column of text cells as one Arrow string array ('' for missing)."""
-    try:
-        array = pa.array(values, type=pa.string(), from_pandas=True)
-    except (pa.ArrowInvalid, pa.ArrowTypeError):
-        array = pa.array(values.astype(str), type=pa.string())
+def arrow_text(values) -> pa.Array:
+    """A column of text cells as one Arrow string array ('' for missing); an Arrow-backed column is
+    not copied."""
+    if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        array = values
+    else:
+        try:
+            array = pa.array(values, type=pa.string(), from_pandas=True)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            array = pa.array(values.astype(str), type=pa.string())
+    array = _one_chunk(array)
+    if array.type != pa.string():
+        array = array.cast(pa.string())
+    return pc.fill_null(array, "") if array.null_count else array
+
+
+def _one_chunk(array):
     if isinstance(array, pa.ChunkedArray):
-        array = array.combine_chunks()
-    return pc.fill_null(array, "")
+        return array.chunk(0) if array.num_chunks == 1 else array.combine_chunks()
+    return array
 
 
 def _numpy(array, dtype, fill=None) -> np.ndarray:
-    if fill is not None:
+    if fill is not None and array.null_count:
         array = pc.fill_null(array, fill)
-    if isinstance(array, pa.ChunkedArray):
-        array = array.combine_chunks()
-    return array.to_numpy(zero_copy_only=False).astype(dtype, copy=False)
+    return _one_chunk(array).to_numpy(zero_copy_only=False).astype(dtype, copy=False)
 
 
 def pandas_text(array) -> pd.Series:
     """An Arrow string array as a pandas Series of pandas' Arrow-backed text (comparisons give numpy
     booleans)."""
-    if isinstance(array, pa.ChunkedArray):
-        array = array.combine_chunks()
-    return pd.Series(array.to_pandas(types_mapper=TEXT_TYPES.get))
+    return pd.Series(_one_chunk(array).to_pandas(types_mapper=TEXT_TYPES.get))
+
+
+def encode_text(array) -> tuple[np.ndarray, pa.Array]:
+    """``(codes, values)``: each text's number (int32) among the distinct ``values``, in the order
+    they first appear (one pass of Arrow's hash table)."""
+    encoded = _one_chunk(pc.dictionary_encode(_one_chunk(array)))
+    return encoded.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False), encoded.dictionary
+
+
+def sorted_order(values: pa.Array) -> np.ndarray:
+    """Positions that put Arrow text in order (by code point, as Python sorts text).
+
+    Texts of at most eight bytes without a NUL byte (most customer numbers) are sorted as the
+    64-bit numbers their bytes make, padded with zero bytes (UTF-8 sorts by code point byte by
+    byte, and a shorter text sorts before any longer one it begins)."""
+    keys = _short_text_keys(values)
+    if keys is None:
+        return pc.sort_indices(values).to_numpy(zero_copy_only=False)
+    return np.argsort(keys, kind="stable")
+
+
+# The bytes of a text of k bytes that count in its eight-byte number (big-endian, so the first
+# byte is the highest).
+_KEPT_BYTES = np.array([0] + [((1 << (8 * k)) - 1) << (8 * (8 - k)) for k in range(1, 9)], dtype=np.uint64)
+
+
+def _text_bytes(values: pa.Array):
+    """``(starts, lengths, padded)``: where each text's bytes start in ``padded`` (the array's bytes
+    followed by eight zero bytes), and how many they are."""
+    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
+    data = values.buffers()[2]
+    raw = np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8)
+    raw = raw[offsets[0]:offsets[-1]]
+    padded = np.concatenate([raw, np.zeros(8, dtype=np.uint8)])
+    return (offsets[:-1] - offsets[0]).astype(np.int64), offsets[1:] - offsets[:-1], padded
+
+
+def _first_eight(starts: np.ndarray, lengths: np.ndarray, padded: np.ndarray) -> np.ndarray:
+    """Each text's first eight bytes (fewer when it is shorter, then zero bytes) as a big-endian
+    64-bit number."""
+    windows = np.lib.stride_tricks.sliding_window_view(padded, 8)[starts]
+    return windows.view(">u8").ravel().astype(np.uint64) & _KEPT_BYTES[np.minimum(lengths, 8)]
+
+
+def _short_text_keys(values: pa.Array) -> np.ndarray | None:
+    """Each text as a 64-bit number with the same order, or None when some text is longer than eight
+    bytes or holds a NUL byte."""
+    values = _one_chunk(values)
+    if len(values) < 2 or values.type != pa.string() or values.null_count:
+        return None
+    starts, lengths, padded = _text_bytes(values)
+    if lengths.max() > 8 or (padded[:-8] == 0).any():
+        return None
+    return _first_eight(starts, lengths, padded)
+
+
+def _text_fingerprint(values: pa.Array) -> np.ndarray:
+    """A 64-bit number per text from its first eight bytes and its length (equal texts, equal
+    numbers; different texts mostly differ)."""
+    values = _one_chunk(values)
+    if len(values) == 0 or values.type != pa.string():
+        return np.zeros(len(values), dtype=np.uint64)
+    starts, lengths, padded = _text_bytes(values)
+    return _mixed([_first_eight(starts, lengths, padded), lengths.astype(np.int64)])
+
+
+def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | None = None) -> pd.Categorical:
+    """Codes into ``values`` (Arrow text) as a pandas Categorical: its categories are the values used,
+    sorted (as text sorts in Python), so that codes are the groups a sorting factorize makes.
+    ``order`` is :func:`sorted_order` of ``values`` when it is known already."""
+    used = np.bincount(codes, minlength=len(values)) > 0 if len(codes) else np.zeros(len(values), dtype=bool)
+    if order is None:
+        order = sorted_order(values)
+    picked = order[used[order]]
+    rank = np.zeros(len(values), dtype=np.int32)
+    rank[picked] = np.arange(len(picked), dtype=np.int32)
+    categories = pd.Index(pandas_text(values.take(pa.array(picked))))
+    return pd.Categorical.from_codes(rank[codes], dtype=pd.CategoricalDtype(categories), validate=False)
+
+
+# From this many rows the reader runs independent steps side by side, in threads of its own
+# (Arrow's and numpy's loops release the interpreter lock); below it a thread costs more than it
+# saves. The rules that read one cell run over blocks of BLOCK_ROWS records, whose working arrays
+# are small enough to be reused rather than taken afresh from the system.
+SIDE_BY_SIDE_ROWS = 200_000
+BLOCK_ROWS = 1 << 20
+_POOL: ThreadPoolExecutor | None = None
+
+
+def beside(rows: int, function, *args, **kwargs) -> Future:
+    """``function(*args, **kwargs)`` in the reader's threads when ``rows`` is large, else now; its
+    result (or its exception) comes from ``.result()``."""
+    global _POOL
+    workers = min(4, os.cpu_count() or 1)
+    if rows >= SIDE_BY_SIDE_ROWS and workers > 1:
+        if _POOL is None:
+            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="order-reader")
+        return _POOL.submit(function, *args, **kwargs)
+    done: Future = Future()
+    try:
+        done.set_result(function(*args, **kwargs))
+    except Exception as problem:  # handed to whoever asks for the result, as a thread would
+        done.set_exception(problem)
+    return done
+
+
+def _full(value, n: int, dtype) -> np.ndarray:
+    """A rule's output (an Arrow array, or one value for every row) as a numpy array of ``n``."""
+    if isinstance(value, (pa.Array, pa.ChunkedArray)):
+        return _numpy(value, dtype)
+    if isinstance(value, pa.Scalar):
+        value = value.as_py()
+    return np.full(n, value, dtype=dtype)
 
 
 # ---------------------------------------------------------------------------
@@ -119,86 +241,296 @@ def pandas_text(array) -> pd.Series:
 
 @dataclass
 class Rows:
-    """Each record's readings and reason (0 = used so far), in record order."""
+    """Each record's readings and reason (0 = used so far), in record order.
+
+    Text is kept as Arrow arrays; the customer id also as ``customer_code`` into the distinct
+    ids ``customer_ids`` (and the order id and segment likewise), so that grouping never hashes
+    text again."""
 
     reason: np.ndarray  # int8 codes of rules.CODES
     notes: np.ndarray  # int16 bits of rules.NOTE_BITS
     hints: np.ndarray  # int16 bits rules.HINT_* (amount and date together)
-    customer: pd.Series  # the customer id (rules.read_customer)
-    written: pd.Series  # the customer cell as written, stripped
+    customer_code: np.ndarray  # int32: the customer id (rules.read_customer) as its place in customer_ids
+    customer_ids: pa.Array
+    customer_order: np.ndarray  # positions that sort customer_ids
+    changed: np.ndarray  # bool: the customer cell, stripped, is not the id (an e-mail id written another way)
+    customer_cell: pa.Array  # the customer cells as written
     status: np.ndarray  # int8 status class
-    status_text: pd.Series | None
-    currency: pd.Series  # the currency a row names ('' for none)
+    status_cell: pa.Array | None
+    currency: pa.Array  # the currency a row names ('' for none)
     amount: np.ndarray  # float64, NaN where not read
     amount_kind: np.ndarray
     micros: np.ndarray  # int64 microseconds since 1970 of the date as written
     date_kind: np.ndarray
-    order_text: pd.Series | None
-    segment_text: pd.Series | None
+    order_code: np.ndarray | None  # int32 code of the order id, stripped, into order_ids
+    order_ids: pa.Array | None
+    has_order_id: np.ndarray | None  # bool: the order id is not empty
+    segment_code: np.ndarray | None  # int32 code of the segment, stripped, into segments
+    segments: pa.Array | None
 
     def reached(self, rule: str) -> np.ndarray:
         """Rows that no rule before ``rule`` left out."""
         return (self.reason == 0) | (self.reason >= _CODE[rule])
 
 
-def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions, *, decimal: str,
-              date_order: str, formulas: dict[str, np.ndarray] | None = None,
-              possibly_damaged: bool = True) -> Rows:
-    """The rules of :mod:`forecasting.io.rules` on every record (see the module docstring, step 1)."""
-    n = len(cells)
-    columns = {name: arrow_text(cells[name]) for name in cells.columns}
-    blank = pa.array(np.ones(n, dtype=bool))
-    too_long = pa.array(np.zeros(n, dtype=bool))
-    damaged = pa.array(np.zeros(n, dtype=bool))
-    for array in columns.values():
-        blank = pc.and_(blank, pc.equal(pc.utf8_trim(array, characters=rules.WHITESPACE), ""))
-        too_long = pc.or_(too_long, pc.greater(pc.utf8_length(array), rules.MAX_FIELD_CHARS))
-        if possibly_damaged:
-            damaged = pc.or_(damaged, pc.match_substring_regex(array, rules.DAMAGE_PATTERN))
-    blank_np = _numpy(blank, bool)
-    duplicate = cells.duplicated(keep="first").to_numpy() & ~blank_np if n else np.zeros(0, dtype=bool)
+def _blank_rows(columns: list, n: int) -> np.ndarray:
+    """Records whose every cell is empty or spaces (the cells stop being read at the first column
+    with no blank cell)."""
+    blank = np.ones(n, dtype=bool)
+    for array in columns:
+        blank &= _numpy(pc.equal(pc.utf8_trim(array, characters=rules.WHITESPACE), ""), bool)
+        if not blank.any():
+            break
+    return blank
+
+
+def _too_long(columns: list, n: int) -> np.ndarray:
+    """Records with a cell of more than :data:`forecasting.io.rules.MAX_FIELD_CHARS` characters (a
+    cell has at least as many bytes as characters: only cells with that many bytes are counted)."""
+    too_long = np.zeros(n, dtype=bool)
+    for array in columns:
+        if (pc.max(pc.binary_length(array)).as_py() or 0) > rules.MAX_FIELD_CHARS:
+            too_long |= _numpy(pc.greater(pc.utf8_length(array), rules.MAX_FIELD_CHARS), bool)
+    return too_long
+
+
+# Odd 64-bit constants (the golden ratio's and splitmix64's) that mix readings into one number.
+_MIX = (np.uint64(0x9E3779B97F4A7C15), np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB))
+
+
+def _mixed(parts: list[np.ndarray]) -> np.ndarray:
+    """One 64-bit number per row from several columns of readings (equal readings give equal numbers;
+    a column with one value throughout tells no rows apart and is left out)."""
+    key = np.zeros(len(parts[0]), dtype=np.uint64)
+    for k, part in enumerate(parts):
+        if len(part) and part.dtype.itemsize == 1 and part.min() == part.max():
+            continue
+        bits = part.view(np.uint64) if part.dtype.itemsize == 8 else part.astype(np.uint64)
+        key ^= bits
+        key *= _MIX[k % 3]
+        key ^= key >> np.uint64(31)
+    return key
+
+
+def repeated_keys(keys: np.ndarray) -> np.ndarray:
+    """The rows whose key occurs more than once, in row order (the keys sorted once; the repeated
+    ones looked up by bisection)."""
+    ordered = np.sort(keys)
+    same = ordered[1:] == ordered[:-1]
+    if not same.any():
+        return np.zeros(0, dtype=np.int64)
+    repeated = np.unique(ordered[1:][same])
+    # Rows whose key's low 16 bits are those of a repeated key (a table of 65,536 flags), then the
+    # key itself among the repeated ones.
+    table = np.zeros(1 << 16, dtype=bool)
+    table[(repeated & np.uint64(0xFFFF)).astype(np.intp)] = True
+    maybe = np.flatnonzero(table[(keys & np.uint64(0xFFFF)).astype(np.intp)])
+    return maybe[np.isin(keys[maybe], repeated)]
+
+
+def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Exact copies of an earlier record (every cell equal), blank records left aside.
+
+    ``keys`` mixes each record's readings and the start of its customer cell (:func:`_row_keys`):
+    copies have equal keys, so only records whose key repeats (:func:`repeated_keys`) are
+    compared cell by cell."""
+    n = len(blank)
+    out = np.zeros(n, dtype=bool)
+    if n < 2:
+        return out
+    candidates = repeated_keys(keys)
+    candidates = candidates[~blank[candidates]]
+    if len(candidates) < 2:
+        return out
+    same = cells.take(candidates).duplicated(keep="first").to_numpy()
+    out[candidates[same]] = True
+    return out
+
+
+def _per_distinct_text(cells: pa.Array, rule) -> tuple[np.ndarray, pa.Array, pa.Array]:
+    """``(codes, values, raw_codes)``: ``rule`` (text -> text) read once for each distinct cell, the
+    results numbered (cells that read the same share a number), and each cell's own number among
+    the distinct cells."""
+    raw_codes, raw = encode_text(cells)
+    read = rule(raw)
+    if read is raw:
+        return raw_codes, raw, raw_codes  # the rule kept every text as it is
+    merged, values = encode_text(read)
+    return merged[raw_codes] if len(raw_codes) else raw_codes, values, raw_codes
+
+
+@dataclass
+class _Ids:
+    """The columns read as whole columns (their values numbered): customer ids, order ids, segments."""
+
+    customer_code: np.ndarray
+    customer_ids: pa.Array
+    customer_order: np.ndarray
+    changed: np.ndarray
+    no_customer: np.ndarray
+    order_code: np.ndarray | None = None
+    order_ids: pa.Array | None = None
+    segment_code: np.ndarray | None = None
+    segments: pa.Array | None = None
+
+
+def _read_ids(customer: pa.Array, order: pa.Array | None, segment: pa.Array | None) -> _Ids:
+    """:func:`forecasting.io.rules.read_customer` once per distinct customer cell (a few hundred
+    thousand, not millions), the ids numbered and their sorting order; order ids and segments
+    stripped and numbered likewise."""
+    changed_of: list = []
+
+    def read_customer(values):
+        found = rules.read_customer(_OPS, values)
+        changed_of.append(_full(found["changed"], len(values), bool))
+        return found["customer"]
+
+    code, ids, raw_codes = _per_distinct_text(customer, read_customer)
+    found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
+                 changed=changed_of[0][raw_codes] if len(raw_codes) else np.zeros(0, dtype=bool),
+                 no_customer=_numpy(pc.equal(ids, ""), bool)[code] if len(code) else np.zeros(0, dtype=bool))
+
+    def strip(values):
+        return _OPS.strip(values, rules.WHITESPACE)
+
+    if order is not None:
+        found.order_code, found.order_ids, _ = _per_distinct_text(order, strip)
+    if segment is not None:
+        found.segment_code, found.segments, _ = _per_distinct_text(segment, strip)
+    return found
+
+
+@dataclass
+class _Readings:
+    """What a block of records says, cell by cell (the rules that read one cell)."""
+
+    blank: np.ndarray
+    too_long: np.ndarray
+    damaged: np.ndarray
+    status: np.ndarray
+    amount: np.ndarray
+    amount_kind: np.ndarray
+    currency: pa.Array
+    micros: np.ndarray
+    date_kind: np.ndarray
+    hints: np.ndarray
+    key: np.ndarray  # uint64: the readings and the customer cell's start mixed (see _copies)
+
+    @staticmethod
+    def join(parts: list["_Readings"]) -> "_Readings":
+        if len(parts) == 1:
+            return parts[0]
+        fields = {}
+        for name in _Readings.__dataclass_fields__:
+            values = [getattr(p, name) for p in parts]
+            fields[name] = (pa.concat_arrays(values) if isinstance(values[0], pa.Array)
+                            else np.concatenate(values))
+        return _Readings(**fields)
+
+
+def _read_block(columns: dict, mapping: ColumnMapping, *, decimal: str, date_order: str,
+                possibly_damaged: bool) -> _Readings:
+    """The rules on the cells of one block of records (``columns``: Arrow text, column -> array)."""
+    n = len(next(iter(columns.values())))
 
     def cell(role):
         column = getattr(mapping, role)
         return columns[column] if column else None
 
-    customer = rules.read_customer(_OPS, cell("customer"))
-    status = (rules.classify_status(_OPS, cell("status")) if mapping.status
-              else pa.array(np.full(n, rules.STATUS_NONE, dtype=np.int64)))
+    # The customer's column first: it is the one that tells most records from blank ones.
+    blank = _blank_rows([cell("customer")] + [a for name, a in columns.items() if name != mapping.customer], n)
+    too_long = _too_long(list(columns.values()), n)
+    damaged = np.zeros(n, dtype=bool)
+    if possibly_damaged:
+        for array in columns.values():
+            damaged |= _numpy(pc.match_substring_regex(array, rules.DAMAGE_PATTERN), bool)
+    status = (_full(rules.classify_status(_OPS, cell("status")), n, np.int8) if mapping.status
+              else np.full(n, rules.STATUS_NONE, dtype=np.int8))
     amount = rules.read_amount(_OPS, cell("value"), decimal=decimal)
     currency = rules.currency_of_cell(_OPS, cell("currency")) if mapping.currency else amount["currency"]
     when = rules.read_date(_OPS, cell("date"), date_order=date_order)
-    row = {"blank": blank, "too_long": too_long, "damaged": damaged, "duplicate": pa.array(duplicate),
-           "customer": customer["customer"], "status": status, "currency": currency,
-           "amount_kind": amount["kind"], "date_kind": when["kind"], "micros": when["micros"]}
+    amounts = _numpy(amount["amount"], np.float64, fill=np.nan)
+    amount_kind = _full(amount["kind"], n, np.int8)
+    micros = _numpy(when["micros"], np.int64, fill=0)
+    date_kind = _full(when["kind"], n, np.int8)
+    key = _mixed([_text_fingerprint(cell("customer")), amounts, micros, amount_kind, date_kind, status])
+    return _Readings(blank=blank, too_long=too_long, damaged=damaged, status=status, amount=amounts,
+                     amount_kind=amount_kind, currency=_OPS.full_column(currency, n), micros=micros,
+                     date_kind=date_kind,
+                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16), key=key)
+
+
+def _blocks(n: int) -> list[tuple[int, int]]:
+    """Blocks of records read side by side (each small enough for its working arrays to be reused)."""
+    if n < SIDE_BY_SIDE_ROWS:
+        return [(0, n)]
+    size = min(BLOCK_ROWS, -(-n // 2))
+    return [(start, min(n, start + size)) for start in range(0, n, size)]
+
+
+def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions, *, decimal: str,
+              date_order: str, formulas: dict[str, np.ndarray] | None = None,
+              possibly_damaged: bool = True) -> Rows:
+    """The rules of :mod:`forecasting.io.rules` on every record (see the module docstring, step 1).
+
+    The rules that read one cell run over blocks of records side by side; the customer ids (and
+    order ids and segments) are read once per distinct cell, beside them; then the reason of
+    each record, its notes and the copies of earlier records, over the whole table."""
+    n = len(cells)
+    columns = {name: arrow_text(cells[name]) for name in cells.columns}
+
+    def cell(role):
+        column = getattr(mapping, role)
+        return columns[column] if column else None
+
+    ids_job = beside(n, _read_ids, cell("customer"), cell("order_id"), cell("segment"))
+    jobs = [beside(n, _read_block, {name: array.slice(start, stop - start) for name, array in columns.items()},
+                   mapping, decimal=decimal, date_order=date_order, possibly_damaged=possibly_damaged)
+            for start, stop in _blocks(n)]
+    read = _Readings.join([job.result() for job in jobs])
+    # Copies are found while the ids are still being read.
+    duplicate = _copies(cells, read.blank, read.key)
+    ids = ids_job.result()
+    row = {"blank": pa.array(read.blank), "too_long": pa.array(read.too_long), "damaged": pa.array(read.damaged),
+           "no_customer": pa.array(ids.no_customer), "customer": None, "status": pa.array(read.status),
+           "currency": read.currency, "amount_kind": pa.array(read.amount_kind),
+           "date_kind": pa.array(read.date_kind), "micros": pa.array(read.micros)}
     if formulas:
         used = [formulas[c] for c in mapping.as_dict().values() if c in formulas]
         if used:
             row["formula"] = pa.array(np.logical_or.reduce(used))
     dates = options.dates
-    reason = rules.row_reason(_OPS, row, wanted_currency=options.wanted_currency, keep_unpaid=options.keep_unpaid,
-                              keep_implausible=options.keep_implausible, dates=dates)
-    notes = rules.row_notes(_OPS, row, keep_unpaid=options.keep_unpaid, keep_implausible=options.keep_implausible,
-                            dates=dates)
-
-    def stripped(role):
-        return pandas_text(pc.utf8_trim(cell(role), characters=rules.WHITESPACE)) if getattr(mapping, role) else None
-
+    reason = _full(rules.row_reason(_OPS, row, wanted_currency=options.wanted_currency,
+                                    keep_unpaid=options.keep_unpaid, keep_implausible=options.keep_implausible,
+                                    dates=dates), n, np.int8)
+    notes = _full(rules.row_notes(_OPS, row, keep_unpaid=options.keep_unpaid,
+                                  keep_implausible=options.keep_implausible, dates=dates), n, np.int16)
+    # Copies of an earlier record overrule every reason after a damaged row (as in rules.row_reason).
+    reason[duplicate & ((reason == 0) | (reason > _CODE["duplicate_row"]))] = _CODE["duplicate_row"]
+    has_order_id = None
+    if ids.order_ids is not None:
+        has_order_id = _numpy(pc.not_equal(ids.order_ids, ""), bool)[ids.order_code] if n else np.zeros(0, bool)
     return Rows(
-        reason=_numpy(_OPS.full_column(reason, n), np.int8),
-        notes=_numpy(_OPS.full_column(notes, n), np.int16),
-        hints=(_numpy(amount["hints"], np.int16) | _numpy(when["hints"], np.int16)),
-        customer=pandas_text(customer["customer"]),
-        written=pandas_text(pc.utf8_trim(cell("customer"), characters=rules.WHITESPACE)),
-        status=_numpy(_OPS.full_column(status, n), np.int8),
-        status_text=stripped("status"),
-        currency=pandas_text(_OPS.full_column(currency, n)),
-        amount=_numpy(amount["amount"], np.float64, fill=np.nan),
-        amount_kind=_numpy(amount["kind"], np.int8),
-        micros=_numpy(when["micros"], np.int64, fill=0),
-        date_kind=_numpy(when["kind"], np.int8),
-        order_text=stripped("order_id"),
-        segment_text=stripped("segment"),
+        reason=reason,
+        notes=notes,
+        hints=read.hints,
+        customer_code=ids.customer_code,
+        customer_ids=ids.customer_ids,
+        customer_order=ids.customer_order,
+        changed=ids.changed,
+        customer_cell=cell("customer"),
+        status=read.status,
+        status_cell=cell("status"),
+        currency=read.currency,
+        amount=read.amount,
+        amount_kind=read.amount_kind,
+        micros=read.micros,
+        date_kind=read.date_kind,
+        order_code=ids.order_code,
+        order_ids=ids.order_ids,
+        has_order_id=has_order_id,
+        segment_code=ids.segment_code,
+        segments=ids.segments,
     )
 
 
@@ -263,12 +595,15 @@ def gather_evidence(rows: Rows, cells: pd.DataFrame, mapping: ColumnMapping, lin
         month_first=first_of(dates_in_play & ((hints & rules.HINT_MONTH_FIRST) != 0), lines, when),
         slashed=first_of(dates_in_play & ((hints & rules.HINT_SLASHED) != 0), lines, when),
     )
-    currency_in_play = rows.reached("other_currency") & (rows.currency != "").to_numpy()
+    currency_in_play = rows.reached("other_currency") & _numpy(pc.not_equal(rows.currency, ""), bool)
     if currency_in_play.any():
         where = cells[mapping.currency] if mapping.currency else value
-        named = pd.DataFrame({"mark": rows.currency[currency_in_play].to_numpy(),
-                              "at": np.flatnonzero(currency_in_play)}).groupby("mark", sort=True)["at"].min()
-        evidence.currencies = {str(mark): (int(lines[at]), str(where.iloc[at]).strip()) for mark, at in named.items()}
+        at = np.flatnonzero(currency_in_play)
+        code, marks = encode_text(rows.currency.take(pa.array(at)))
+        first = np.full(len(marks), len(at), dtype=np.int64)
+        np.minimum.at(first, code, np.arange(len(at)))
+        evidence.currencies = {str(mark): (int(lines[at[k]]), str(where.iloc[at[k]]).strip())
+                               for mark, k in sorted(zip(marks.to_pylist(), first.tolist()))}
     for name, in_play, kind, cells_of in (("amounts", amounts_in_play, rows.amount_kind, value),
                                           ("dates", dates_in_play, rows.date_kind, when)):
         present = in_play & (kind != rules.KIND_EMPTY)
@@ -283,23 +618,35 @@ def order_total_evidence(rows: Rows) -> tuple[int, int, int]:
     """``(orders of several lines, of them with one amount between their lines, with blank lines)``,
     over lines that could belong to an order whose total is given once (see
     :func:`forecasting.io.rules.decide_order_total`)."""
-    if rows.order_text is None:
+    if rows.order_code is None:
         return 0, 0, 0
     refund = (rows.amount < 0) | (rows.status == rules.STATUS_REFUND)
-    candidate = (((rows.reason == 0) | (rows.reason == _CODE["missing_amount"])) & ~refund
-                 & (rows.order_text != "").to_numpy())
+    candidate = ((rows.reason == 0) | (rows.reason == _CODE["missing_amount"])) & ~refund & rows.has_order_id
     if not candidate.any():
         return 0, 0, 0
     at = np.flatnonzero(candidate)
-    frame = pd.DataFrame({"customer": rows.customer.take(at).to_numpy(), "order": rows.order_text.take(at).to_numpy(),
-                          "amount": rows.amount[at], "blank": rows.reason[at] != 0})
-    groups = frame.groupby(["customer", "order"], sort=False)
-    lines = groups.size()
+    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    amount = rows.amount[at]
+    blank = rows.reason[at] != 0
+    lines = np.bincount(group, minlength=groups)
+    blanks = np.bincount(group, weights=blank, minlength=groups)
+    # One amount between the lines (blank ones aside): the lowest and highest amount read are equal.
+    read = ~np.isnan(amount)
+    low = np.full(groups, np.inf)
+    high = np.full(groups, -np.inf)
+    np.minimum.at(low, group[read], amount[read])
+    np.maximum.at(high, group[read], amount[read])
+    one_amount = (low == high) | (np.bincount(group[read], minlength=groups) == 0)
     several = lines >= 2
-    distinct = groups["amount"].nunique()  # NaN (blank) is not counted
-    blanks = groups["blank"].sum()
-    fitting = several & (distinct <= 1) & (lines - blanks >= 1)
+    fitting = several & one_amount & (lines - blanks >= 1)
     return int(several.sum()), int(fitting.sum()), int((several & (blanks > 0) & fitting).sum())
+
+
+def order_groups(customer_code: np.ndarray, order_code: np.ndarray) -> tuple[np.ndarray, int]:
+    """``(group, count)``: one number per (customer, order id) pair, in the order pairs first appear."""
+    key = customer_code.astype(np.int64) * (int(order_code.max(initial=0)) + 1) + order_code
+    group, uniques = pd.factorize(key)
+    return group, len(uniques)
 
 
 def _placed(place, found, role):
@@ -392,14 +739,12 @@ class Orders:
 def inherited_reasons(rows: Rows) -> tuple[np.ndarray, np.ndarray]:
     """With order totals: the further lines (no amount) of an order whose first line was left out,
     and that line's reason (:data:`forecasting.io.rules.INHERITED_REASONS`)."""
-    lines = (rows.order_text != "").to_numpy() & ~np.isin(rows.reason, [_CODE[c] for c in rules.NOT_A_LINE])
+    lines = rows.has_order_id & ~np.isin(rows.reason, [_CODE[c] for c in rules.NOT_A_LINE])
     at = np.flatnonzero(lines)
     if not len(at):
         return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int8)
-    key = pd.MultiIndex.from_arrays([rows.customer.take(at).to_numpy(dtype=object),
-                                     rows.order_text.take(at).to_numpy(dtype=object)])
-    group, _ = pd.factorize(key)
-    first = np.full(group.max() + 1, len(at), dtype=np.int64)
+    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    first = np.full(groups, len(at), dtype=np.int64)
     np.minimum.at(first, group, np.arange(len(at)))
     first_reason = rows.reason[at][first][group]
     take = (rows.reason[at] == _CODE["missing_amount"]) & np.isin(first_reason,
@@ -416,10 +761,10 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     lines of it."""
     eligible = rows.reason == 0
     inherited = Orders.__dataclass_fields__["inherited"].default
-    if order_total and rows.order_text is not None:
+    if order_total and rows.order_code is not None:
         inherited = inherited_reasons(rows)
         refund_status = rows.status == rules.STATUS_REFUND
-        further = (rows.reason == _CODE["missing_amount"]) & ~refund_status & (rows.order_text != "").to_numpy()
+        further = (rows.reason == _CODE["missing_amount"]) & ~refund_status & rows.has_order_id
         further[inherited[0]] = False
         eligible = eligible | further
     position = np.flatnonzero(eligible)
@@ -427,14 +772,13 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     read = rows.reason[position] == 0
     is_refund = read & ((amount < 0) | (rows.status[position] == rules.STATUS_REFUND))
     signed = np.where(is_refund, -np.abs(amount), amount)
-    customer_code, _ = pd.factorize(rows.customer.take(position))
-    if rows.order_text is not None:
-        order_text = rows.order_text.take(position)
-        id_code, ids = pd.factorize(order_text)
+    if rows.order_code is not None:
+        has_id = rows.has_order_id[position]
+        group, groups = order_groups(rows.customer_code[position], rows.order_code[position])
         # A line without an order id is an order of its own.
-        no_id = (order_text == "").to_numpy()
-        id_code = np.where(no_id, len(ids) + np.arange(len(position)), id_code)
-        order, _ = pd.factorize(customer_code.astype(np.int64) * (len(ids) + len(position) + 1) + id_code)
+        key = np.where(has_id, group, groups + np.arange(len(position)))
+        order, _ = pd.factorize(key)
+        order = order.astype(np.int64, copy=False)
     else:
         order = np.arange(len(position))
     n_orders = int(order.max()) + 1 if len(order) else 0
@@ -447,20 +791,30 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     else:
         carrier = purchase
     counted = carrier | is_refund
-    # Lines are added in file order (bincount adds in array order), as every engine adds them.
-    value = np.bincount(order, weights=np.where(counted, signed, 0.0), minlength=n_orders)
-    purchases = np.bincount(order, weights=carrier, minlength=n_orders)
-    negatives = np.bincount(order, weights=counted & (amount < 0), minlength=n_orders)
-    refunds = np.bincount(order, weights=counted & is_refund, minlength=n_orders)
+    micros = rows.micros[position]
+    if rows.order_code is None:
+        # One line per order: its sums are its own.
+        value = np.where(counted, signed, 0.0)
+        purchases = carrier.view(np.uint8)
+        negatives = (counted & (amount < 0)).view(np.uint8)
+        refunds = (counted & is_refund).view(np.uint8)
+        order_micros = np.where(purchase, micros, np.iinfo(np.int64).max)
+        first = np.arange(len(position), dtype=np.int64)
+        real = read
+    else:
+        # Lines are added in file order (bincount adds in array order), as every engine adds them.
+        value = np.bincount(order, weights=np.where(counted, signed, 0.0), minlength=n_orders)
+        purchases = np.bincount(order, weights=carrier, minlength=n_orders)
+        negatives = np.bincount(order, weights=counted & (amount < 0), minlength=n_orders)
+        refunds = np.bincount(order, weights=counted & is_refund, minlength=n_orders)
+        order_micros = np.full(n_orders, np.iinfo(np.int64).max, dtype=np.int64)
+        np.minimum.at(order_micros, order[purchase], micros[purchase])
+        first = np.full(n_orders, len(position), dtype=np.int64)
+        np.minimum.at(first, order, np.arange(len(position)))
+        real = np.bincount(order, weights=read, minlength=n_orders) > 0
     verdict = _numpy(rules.order_verdict(_OPS, purchases=pa.array(purchases), negatives=pa.array(negatives),
                                          refunds=pa.array(refunds), value=pa.array(value)), np.int8)
-    micros = rows.micros[position]
-    order_micros = np.full(n_orders, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(order_micros, order[purchase], micros[purchase])
-    first = np.full(n_orders, len(position), dtype=np.int64)
-    np.minimum.at(first, order, np.arange(len(position)))
     # An order of further lines only (no line with an amount) is no order: its lines keep their reason.
-    real = np.bincount(order, weights=read, minlength=n_orders) > 0
     verdict = np.where(real, verdict, -1).astype(np.int8)
     return Orders(position=position, order=order, counted=counted, carrier=carrier, value=value, verdict=verdict,
                   order_micros=order_micros, first=first, inherited=inherited)
@@ -490,9 +844,36 @@ class Finished:
     unrecognised_first: dict = field(default_factory=dict)  # status -> (rows, first line)
 
 
+def date_order(micros: np.ndarray) -> np.ndarray:
+    """Positions that put ``micros`` in order, equal ones in their order (a stable sort).
+
+    Dates are sorted as whole days, or seconds, in passes of 16 bits (numpy's radix sort of
+    small integers): one pass for dates without a time over 179 years, two with times over
+    136 years."""
+    n = len(micros)
+    if n < 2 or bool((micros[1:] >= micros[:-1]).all()):
+        return np.arange(n)
+    low, high = int(micros.min()), int(micros.max())
+    day, second = 86_400_000_000, 1_000_000
+    if (high - low) // day < 1 << 16:
+        days, rest = np.divmod(micros - low, day)
+        if not rest.any():
+            return np.argsort(days.astype(np.uint16), kind="stable")
+    if (high - low) // second < 1 << 32:
+        seconds, rest = np.divmod(micros - low, second)
+        if not rest.any():
+            seconds = seconds.astype(np.uint32)
+            first = np.argsort((seconds & 0xFFFF).astype(np.uint16), kind="stable")
+            return first[np.argsort((seconds[first] >> 16).astype(np.uint16), kind="stable")]
+    return np.argsort(micros, kind="stable")
+
+
 def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, lines: np.ndarray) -> Finished:
     """Orders outside the usual range, every record's final reason and notes, merged e-mail ids, and
-    the table of kept orders (``lines``: each record's place, kept as the order's ``line``)."""
+    the table of kept orders (``lines``: each record's place, kept as the order's ``line``).
+
+    The table is compact: ``customer`` (and ``segment``) as pandas Categoricals of the values used
+    (sorted), the order id as Arrow-backed text, dates and amounts as numpy arrays."""
     outside = np.zeros(len(orders.value), dtype=bool)
     if usual is not None and len(orders.value):
         log_value = np.log(np.where(orders.value > 0, orders.value, 1.0))
@@ -517,52 +898,85 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     _note_merged_ids(rows, reason, notes)
 
     kept = np.flatnonzero(verdict == 0)
+    # Orders by date, then by place in the file (an order's number follows its first line): the order
+    # in which every engine adds them up.
+    kept = kept[date_order(orders.order_micros[kept])]
     first_line = orders.position[orders.first[kept]]
-    order_ids = (rows.order_text.take(first_line).to_numpy() if rows.order_text is not None
-                 else np.full(len(kept), "", dtype=object))
+    if rows.order_code is not None:
+        # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
+        order_ids = pandas_text(rows.order_ids.cast(pa.large_string()).take(
+            pa.array(rows.order_code[first_line]))).array
+    else:
+        order_ids = pandas_text(pa.array(np.full(len(kept), "", dtype=object), type=pa.string())).array
     table = pd.DataFrame({
-        "customer": rows.customer.take(first_line).to_numpy(dtype=object),
+        "customer": text_categories(rows.customer_code[first_line], rows.customer_ids, rows.customer_order),
         "order_id": order_ids,
         "order_date": orders.order_micros[kept].astype("datetime64[us]").astype("datetime64[ns]"),
         "order_value": orders.value[kept].astype(np.float64),
         "line": lines[first_line],
     })
-    if rows.segment_text is not None:
-        segment = rows.segment_text.take(orders.position).reset_index(drop=True)
-        first_segment = segment.where(segment != "").groupby(orders.order, sort=True).first()
-        table["segment"] = first_segment.reindex(kept).fillna("unknown").to_numpy(dtype=object)
-    # Orders by date, then by place in the file: the order in which every engine adds them up.
-    table = table.sort_values(["order_date", "line"], kind="stable").reset_index(drop=True)
+    if rows.segment_code is not None:
+        table["segment"] = _order_segments(rows, orders, kept)
     used = reason == 0
     unknown = used & (rows.status == rules.STATUS_UNKNOWN)
     first_seen = {}
-    if unknown.any() and rows.status_text is not None:
+    if unknown.any() and rows.status_cell is not None:
         # In the order each status first appears, as every engine lists them.
-        frame = pd.DataFrame({"status": rows.status_text[unknown].to_numpy(dtype=object), "line": lines[unknown]})
-        grouped = frame.groupby("status", sort=False)["line"].agg(["size", "min"]).sort_values("min", kind="stable")
-        first_seen = {str(k): (int(n), int(m)) for k, n, m in zip(grouped.index, grouped["size"], grouped["min"])}
+        at = np.flatnonzero(unknown)
+        code, statuses = encode_text(pc.utf8_trim(rows.status_cell.take(pa.array(at)), characters=rules.WHITESPACE))
+        count = np.bincount(code, minlength=len(statuses))
+        # Codes number the statuses in the order they first appear.
+        first = np.full(len(statuses), len(at), dtype=np.int64)
+        np.minimum.at(first, code, np.arange(len(at)))
+        first_seen = {str(k): (int(c), int(lines[at[f]])) for k, c, f in zip(statuses.to_pylist(), count, first)}
     return Finished(reason=reason, notes=notes, orders=table,
                     unrecognised={k: n for k, (n, _) in first_seen.items()}, unrecognised_first=first_seen)
+
+
+def _order_segments(rows: Rows, orders: Orders, kept: np.ndarray) -> pd.Categorical:
+    """Each kept order's segment: the first its lines name (in file order), else 'unknown'."""
+    segment = rows.segment_code[orders.position]
+    named = _numpy(pc.not_equal(rows.segments, ""), bool)[segment] if len(segment) else np.zeros(0, dtype=bool)
+    first = np.full(int(orders.order.max(initial=-1)) + 1, len(segment), dtype=np.int64)
+    np.minimum.at(first, orders.order[named], np.flatnonzero(named))
+    chosen = first[kept]
+    found = chosen < len(segment)
+    values = rows.segments
+    unknown = pc.index(values, "unknown").as_py()
+    if unknown < 0:
+        values, unknown = pa.concat_arrays([values, pa.array(["unknown"], type=pa.string())]), len(values)
+    codes = np.where(found, segment[np.minimum(chosen, max(len(segment) - 1, 0))], unknown)
+    return text_categories(codes.astype(np.int32), values)
 
 
 def _note_merged_ids(rows: Rows, reason: np.ndarray, notes: np.ndarray) -> None:
     """Rows used whose e-mail id is written otherwise than on the customer's first row used."""
     used = np.flatnonzero(reason == 0)
-    if not len(used):
+    if not len(used) or not rows.changed[used].any():
         return
-    written = rows.written.take(used).reset_index(drop=True)
-    changed = (written != rows.customer.take(used).reset_index(drop=True)).to_numpy()
-    if not changed.any():
-        return
-    customer = rows.customer.take(used).reset_index(drop=True)
-    frame = pd.DataFrame({"customer": customer.to_numpy(dtype=object), "written": written.to_numpy(dtype=object)})
-    first = frame.groupby("customer", sort=False)["written"].transform("first")
-    differs = (frame["written"] != first).to_numpy()
-    notes[used[differs]] |= rules.NOTE_BITS["merged_customer_id"]
+    # Only the customers with an id written another way somewhere among the rows used.
+    customer = rows.customer_code[used]
+    touched = np.zeros(len(rows.customer_ids), dtype=bool)
+    touched[customer[rows.changed[used]]] = True
+    at = used[touched[customer]]
+    written, _ = encode_text(pc.utf8_trim(rows.customer_cell.take(pa.array(at)), characters=rules.WHITESPACE))
+    customer = rows.customer_code[at]
+    first = np.full(len(rows.customer_ids), len(at), dtype=np.int64)
+    np.minimum.at(first, customer, np.arange(len(at)))
+    differs = written != written[first[customer]]
+    notes[at[differs]] |= rules.NOTE_BITS["merged_customer_id"]
 
 
 # ---------------------------------------------------------------------------
 # The pandas engine: every step in this process
+
+
+def _customers(customer: pd.Series) -> int:
+    """How many customers a column names (a categorical's codes counted, not its text hashed)."""
+    if isinstance(customer.dtype, pd.CategoricalDtype):
+        codes = customer.cat.codes.to_numpy()
+        return int(np.count_nonzero(np.bincount(codes[codes >= 0], minlength=1)))
+    return int(customer.nunique())
 
 
 @dataclass
@@ -598,7 +1012,7 @@ class ReadResult:
             "rows_used": int(self.rows_used),
             "rows_excluded": int(len(self.excluded)),
             "orders": int(len(self.orders)),
-            "customers": int(self.orders["customer"].nunique()),
+            "customers": _customers(self.orders["customer"]),
             "excluded": rules.account_counts(counts.to_dict(), rules.REASONS),
             "noted": rules.account_counts(noted.to_dict(), rules.NOTES),
             "unrecognised_statuses": dict(self.unrecognised_statuses),
@@ -643,11 +1057,10 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     notes += rules.unrecognised_status_note(done.unrecognised)
     table = done.orders
     table.insert(4, "row", rows_at[table.pop("line").to_numpy()])
-    table = table.sort_values(["order_date", "row"], kind="stable").reset_index(drop=True)
-    for column in ("customer", "order_id") + (("segment",) if mapping.segment else ()):
-        table[column] = table[column].astype(str)
-    if rows.order_text is None:
-        table["order_id"] = "row-" + table["row"].astype(str)
+    if rows.order_code is None:
+        # Each row is an order: its id is its row ("row-17").
+        table["order_id"] = pandas_text(pc.utf8_replace_slice(
+            pc.cast(pa.array(table["row"].to_numpy()), pa.large_string()), 0, 0, "row-")).array
     excluded = excluded_table(cells, rows_at, done.reason, raw.set_aside)
     noted = noted_table(rows_at, done.notes, done.reason)
     result = ReadResult(orders=table, excluded=excluded, mapping=mapping, rows_read=len(cells) + len(raw.set_aside),
@@ -663,7 +1076,7 @@ def excluded_table(cells: pd.DataFrame, rows_at: np.ndarray, reason: np.ndarray,
     """Every row left out: ``row``, ``reason_code``, ``reason``, its cells (and ``raw_text`` for rows
     that did not split); implausible values first, then in row order."""
     out = reason != 0
-    table = cells[out].copy().reset_index(drop=True)
+    table = text_frame(cells[out]).reset_index(drop=True)
     codes = np.asarray(rules.CODES, dtype=object)[reason[out].astype(np.int64)]
     table.insert(0, "reason", [rules.REASONS[c] for c in codes])
     table.insert(0, "reason_code", codes)

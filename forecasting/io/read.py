@@ -52,9 +52,20 @@ __all__ = [
     "typed_cells_as_text",
 ]
 
-# Cells read as text use pandas' own string type, backed by Arrow.
+# Text in the reader's tables uses pandas' own string type, backed by Arrow.
 TEXT_TYPES = {pa.string(): pd.StringDtype("pyarrow", na_value=np.nan),
               pa.large_string(): pd.StringDtype("pyarrow", na_value=np.nan)}
+# The cells Arrow's reader splits are kept in its own arrays while they are cleaned (pandas' string
+# type would copy them into 64-bit offsets); tables shown to people use TEXT_TYPES.
+CELL_TYPES = {pa.string(): pd.ArrowDtype(pa.string())}
+
+
+def text_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """A table of cells with Arrow-kept text columns (:data:`CELL_TYPES`) in pandas' own string type."""
+    kept = [c for c, dtype in frame.dtypes.items() if isinstance(dtype, pd.ArrowDtype)]
+    if not kept:
+        return frame
+    return frame.astype({c: TEXT_TYPES[pa.string()] for c in kept})
 
 
 @dataclass(frozen=True)
@@ -173,7 +184,7 @@ def text_encoding(blocks) -> tuple[str, str | None]:
     order mark, or plainly is UTF-16 without one; else UTF-8 (after an optional byte order
     mark) when the whole file is valid UTF-8; else Windows-1252, else Latin-1 (which reads any
     byte)."""
-    first = next(iter(blocks()), b"")
+    first = bytes(next(iter(blocks()), b"")[:65536])
     if first.startswith((b"\xff\xfe", b"\xfe\xff")):
         return "utf-16", UTF16_NOTE
     unmarked = _utf16_without_mark(first[:65536])
@@ -204,22 +215,6 @@ def _has_damaged_bytes(data: bytes) -> bool:
 
 
 _ORDINARY_BYTES = bytes(b for b in range(256) if b not in rules.DAMAGED_BYTES)
-
-
-def decode(data: bytes, file_name: str, notes: list[str]) -> tuple[str, str]:
-    """The file's text and its encoding (:func:`text_encoding`); binary data is refused."""
-    if looks_binary(data[:65536]):
-        raise OrderDataError("the file is not a text table (it contains binary data)", file=file_name,
-                             fix="Upload a CSV, Excel (.xlsx) or Parquet export")
-    encoding, note = text_encoding(lambda: iter([data]))
-    try:
-        text = data.decode(encoding)
-    except UnicodeDecodeError:
-        raise OrderDataError("the file says it is UTF-16 text but is not", file=file_name,
-                             fix="Export it again as UTF-8 CSV") from None
-    if note:
-        notes.append(note)
-    return text, encoding
 
 
 # ---------------------------------------------------------------------------
@@ -460,45 +455,159 @@ def text_layout(text: str, file_name: str, header_row: int | None) -> TextLayout
     return TextLayout(delimiter, named is not None, at, header, offset + end, notes)
 
 
+# Characters of a UTF-8 file decoded to find its layout (delimiter, title lines, header): the rest of the
+# file goes to Arrow's reader as bytes, never decoded in Python.
+_HEAD_BYTES = 1 << 20
+
+
+def _utf8_head(data: bytes, start: int) -> tuple[str, bool]:
+    """The start of a UTF-8 file as text (up to :data:`_HEAD_BYTES`; a character cut at the end is
+    left out), and whether that is the whole file."""
+    head = data[start:start + _HEAD_BYTES]
+    whole = start + len(head) >= len(data)
+    try:
+        return head.decode("utf-8"), whole
+    except UnicodeDecodeError as problem:
+        if whole or problem.start < len(head) - 3:
+            raise
+        return head[:problem.start].decode("utf-8"), False
+
+
+def _head_holds_layout(head: str, layout: "TextLayout", header_row: int | None) -> bool:
+    """Whether the start of a file holds every record its layout was found from (each ends before the
+    start does): then the layout of the whole file is the same."""
+    needed = max(rules.HEADER_SEARCH_ROWS, header_row or 0) + 2
+    records = _head_records(head, layout.delimiter, needed)
+    return len(records) == needed and records[-1][1] < len(head)
+
+
+def _text_blocks(data: bytes, size: int = 1 << 24):
+    view = memoryview(data)
+    for start in range(0, len(data), size):
+        yield view[start:start + size]
+
+
 def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | None) -> RawTable:
-    """Split CSV text into cells: Arrow's fast reader, or the careful one for rows that do not fit."""
-    text, encoding = decode(data, file_name, notes)
-    if not text.strip():
+    """Split CSV text into cells: Arrow's fast reader, rows that do not fit set aside, or the careful
+    reader when a quote may have run on over several lines.
+
+    A UTF-8 file goes to Arrow's multi-threaded reader as the bytes it is (only its start is
+    decoded here, to find the delimiter and the header). A record with another number of fields
+    than the header (or a blank line) is handed back by Arrow and set aside with its row number
+    (blank lines stay as rows of empty cells, for the blank-row rule), unless the file has quotes
+    and a cell or such a record holds a line break or a quote: a quote opened and never closed
+    may then have run on over later rows, and the careful record-by-record reader
+    (:func:`split_records`) reads the file."""
+    if looks_binary(data[:65536]):
+        raise OrderDataError("the file is not a text table (it contains binary data)", file=file_name,
+                             fix="Upload a CSV, Excel (.xlsx) or Parquet export")
+    if data.isascii() and not _utf16_without_mark(data[:65536]):
+        encoding, note = "utf-8", None
+    else:
+        encoding, note = text_encoding(lambda: _text_blocks(data))
+    if note:
+        notes.append(note)
+    start = len(_BOM) if encoding == "utf-8-sig" else 0
+    text = None
+    if encoding in ("utf-8", "utf-8-sig"):
+        head, whole = _utf8_head(data, start)
+        if not whole and not head.strip():
+            head, whole = data[start:].decode("utf-8"), True
+    else:
+        try:
+            text = data.decode(encoding)
+        except UnicodeDecodeError:
+            raise OrderDataError("the file says it is UTF-16 text but is not", file=file_name,
+                                 fix="Export it again as UTF-8 CSV") from None
+        head, whole = text, True
+    if whole and not head.strip():
         raise OrderDataError("the file is empty", file=file_name, fix="Export the orders again")
-    layout = text_layout(text, file_name, header_row)
+    layout = text_layout(head, file_name, header_row)
+    if not whole and not _head_holds_layout(head, layout, header_row):
+        # The layout reads the first records: the start of the file must hold them all.
+        head, whole = data[start:].decode("utf-8"), True
+        layout = text_layout(head, file_name, header_row)
     notes.extend(layout.notes)
     delimiter, at = layout.delimiter, layout.header_index
     columns = unique_headers(layout.header)
-    body = text[layout.skip_chars:]
-    if encoding in ("utf-8", "utf-8-sig"):
+    if text is None:
         # Arrow reads UTF-8 bytes: the file itself after the header, not the text encoded again.
-        skipped = len(text[:layout.skip_chars].encode("utf-8")) + (len(_BOM) if encoding == "utf-8-sig" else 0)
-        encoded = data[skipped:]
+        skipped = start + len(head[:layout.skip_chars].encode("utf-8"))
+        encoded = pa.py_buffer(data).slice(skipped)
+        quoted = data.find(b'"', skipped) >= 0
     else:
-        encoded = body.encode("utf-8")
+        body_text = text[layout.skip_chars:]
+        encoded = pa.py_buffer(body_text.encode("utf-8"))
+        quoted = '"' in body_text
     possibly_damaged = _has_damaged_bytes(data)
+    first_row = at + 2
+
+    def careful() -> RawTable:
+        body = text[layout.skip_chars:] if text is not None else bytes(encoded).decode("utf-8")
+        return _read_records(body, delimiter, columns, first_row=first_row, notes=notes, header_row=at + 1,
+                             possibly_damaged=possibly_damaged)
+
+    rejected: list[str] = []
     try:
-        # Arrow's multi-threaded reader, every cell kept as text; a row that does not fit the header
-        # raises, and the careful record-by-record reader then reports it.
-        table = pa_csv.read_csv(
-            io.BytesIO(encoded),
-            read_options=pa_csv.ReadOptions(column_names=columns, skip_rows=0, use_threads=True),
-            parse_options=pa_csv.ParseOptions(delimiter=delimiter, quote_char='"', double_quote=True,
-                                              escape_char=False, newlines_in_values=True,
-                                              ignore_empty_lines=False),
-            convert_options=pa_csv.ConvertOptions(column_types={c: pa.string() for c in columns},
-                                                  strings_can_be_null=False, quoted_strings_can_be_null=False))
-        careful = '"' in body and _any_line_break(table)
+        table = _arrow_records(encoded, delimiter, columns, rejected, use_threads=True)
     except (pa.ArrowInvalid, csv.Error, ValueError):
-        careful = True
-    if careful:
+        return careful()
+    if quoted and (_any_line_break(table) or any(_runs_on(t) for t in rejected)):
         # A cell with a line break may be an unclosed quote that swallowed rows: the careful reader
         # tells them apart (see split_records).
-        return _read_records(body, delimiter, columns, first_row=at + 2, notes=notes, header_row=at + 1,
-                             possibly_damaged=possibly_damaged)
-    cells = table.to_pandas(types_mapper=TEXT_TYPES.get)
-    return RawTable(cells, np.arange(at + 2, at + 2 + len(cells)), [], notes, header_row=at + 1,
+        return careful()
+    positions = np.arange(table.num_rows, dtype=np.int64)
+    set_aside: list[tuple[int, str, str]] = []
+    if rejected:
+        # Arrow gives the line of each record it hands back when it reads on one thread.
+        numbered: list[tuple[int, str]] = []
+        _arrow_records(encoded, delimiter, columns, numbered, use_threads=False, numbered=True)
+        if len(numbered) != len(rejected) or any(number is None for number, _ in numbered):
+            return careful()
+        # No record runs over several lines here: a file's line n (from 1 below the header) is record n.
+        where = np.array([number - 1 for number, _ in numbered], dtype=np.int64)
+        kept = np.ones(table.num_rows + len(numbered), dtype=bool)
+        kept[where] = False
+        positions = np.flatnonzero(kept)
+        blank = [i for i, (_, t) in enumerate(numbered) if not t.replace(delimiter, "").strip()]
+        set_aside = [(first_row + int(where[i]), "malformed_row", t) for i, (_, t) in enumerate(numbered)
+                     if i not in set(blank)]
+        if blank:
+            # A blank line is a row of empty cells, as the careful reader keeps it (the blank-row rule).
+            empty = pa.table({c: pa.array(np.full(len(blank), "", dtype=object), type=pa.string())
+                              for c in columns})
+            positions = np.concatenate([positions, where[blank]])
+            order = np.argsort(positions, kind="stable")
+            table = pa.concat_tables([table, empty]).take(pa.array(order))
+            positions = positions[order]
+    cells = table.combine_chunks().to_pandas(types_mapper=CELL_TYPES.get)
+    return RawTable(cells, first_row + positions, set_aside, notes, header_row=at + 1,
                     possibly_damaged=possibly_damaged)
+
+
+def _runs_on(text: str) -> bool:
+    """Whether a record Arrow handed back could be part of a quote that ran on over several lines."""
+    return '"' in text or "\n" in text or "\r" in text
+
+
+def _arrow_records(encoded, delimiter: str, columns: list[str], rejected: list, *, use_threads: bool,
+                   numbered: bool = False) -> pa.Table:
+    """Arrow's CSV reader over ``encoded`` (UTF-8 bytes after the header), every cell as text; records
+    with another number of fields than ``columns`` are left out and listed in ``rejected`` (their
+    text, or ``(line, text)`` with ``numbered``)."""
+    def hand_back(row):
+        rejected.append((row.number, row.text) if numbered else row.text)
+        return "skip"
+
+    return pa_csv.read_csv(
+        pa.BufferReader(encoded),
+        read_options=pa_csv.ReadOptions(column_names=columns, skip_rows=0, use_threads=use_threads,
+                                        block_size=1 << 22),
+        parse_options=pa_csv.ParseOptions(delimiter=delimiter, quote_char='"', double_quote=True,
+                                          escape_char=False, newlines_in_values=True,
+                                          ignore_empty_lines=False, invalid_row_handler=hand_back),
+        convert_options=pa_csv.ConvertOptions(column_types={c: pa.string() for c in columns},
+                                              strings_can_be_null=False, quoted_strings_can_be_null=False))
 
 
 def _any_line_break(table: pa.Table) -> bool:
@@ -691,7 +800,7 @@ def read_cells(source, *, file_name: str | None = None, sheet: str | int | None 
     """
     if file_name is None:
         file_name = Path(source).name if isinstance(source, (str, Path)) else "uploaded file"
-    return load_raw(source_bytes(source, file_name), file_name, sheet, header_row).cells
+    return text_frame(load_raw(source_bytes(source, file_name), file_name, sheet, header_row).cells)
 
 
 # ---------------------------------------------------------------------------

@@ -524,8 +524,9 @@ def row_reason(ops, row: dict, *, wanted_currency: str | None, keep_unpaid: bool
     """The reason code (:data:`CODE`, 0 = used so far) of each row, in the order of :data:`RULE_ORDER`.
 
     ``row`` holds ``blank``, ``too_long``, ``damaged`` (booleans), optionally ``duplicate`` and
-    ``formula``, and ``customer``, ``status`` (class), ``currency``, the amount's ``amount_kind``,
-    the date's ``date_kind`` and ``micros``. Reasons that need several rows (copies, order
+    ``formula``, and ``customer`` (or ``no_customer``, whether the id is empty, for an engine that
+    read the ids apart), ``status`` (class), ``currency``, the amount's ``amount_kind``, the
+    date's ``date_kind`` and ``micros``. Reasons that need several rows (copies, order
     verdicts) are given elsewhere; ``duplicate`` is left out by engines that find copies later
     (they overrule every reason after ``damaged_row`` in the same way).
     """
@@ -537,7 +538,8 @@ def row_reason(ops, row: dict, *, wanted_currency: str | None, keep_unpaid: bool
     if "formula" in row:
         rules.append((row["formula"], "formula_without_value"))
     status = row["status"]
-    rules += [(ops.eq(row["customer"], ""), "missing_customer"),
+    no_customer = row["no_customer"] if row.get("no_customer") is not None else ops.eq(row["customer"], "")
+    rules += [(no_customer, "missing_customer"),
               (ops.eq(status, STATUS_TEST), "test_order"),
               (ops.eq(status, STATUS_CANCELLED), "cancelled_order")]
     if not keep_unpaid:
