@@ -439,6 +439,15 @@ class TestAmounts:
                                currency=code)
         assert len(result.orders) == 2
 
+    @pytest.mark.parametrize("amount, chosen, code", [
+        ("C$12.00", None, "CAD"), ("£12.00 inc VAT", None, "GBP"), ("\"12,00 €\"", None, "EUR"), ("USD 12", None, "USD"),
+        ("12.00", None, ""), ("12.00", "eur", "EUR"), ("€12.00", "€", "EUR")])
+    def test_the_result_names_its_currency(self, amount, chosen, code):
+        # The currency of the rows used, as an ISO 4217 code, for the front ends to show amounts with.
+        result, _ = account_of(f"customer,order date,amount\nC1,2025-01-02,{amount}\nC2,2025-01-03,8\n",
+                               currency=chosen)
+        assert result.currency == code
+
     def test_c_dollars_and_dollars_are_two_currencies(self):
         with pytest.raises(OrderDataError, match=r"several currencies \(CAD, USD\)") as raised:
             read_text("customer,order date,amount\nC1,2025-01-02,C$12.00\nC2,2025-01-03,$12.00\n")

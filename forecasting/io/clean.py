@@ -706,6 +706,14 @@ def check_columns(evidence: Evidence, options: ReadOptions, mapping: ColumnMappi
                                           column=getattr(mapping, role), role=role)
 
 
+def currency_of(evidence: Evidence, options: ReadOptions) -> str:
+    """The currency of the rows used, as an ISO code: the one chosen, else the one the rows name
+    (:func:`check_columns` has refused a file whose rows name several); "" when none does."""
+    if options.wanted_currency:
+        return options.wanted_currency
+    return next(iter(evidence.currencies)) if len(evidence.currencies) == 1 else ""
+
+
 def decide_order_total(evidence: Evidence, mapping: ColumnMapping) -> bool:
     multi, fitting, blanks = evidence.order_total
     return rules.decide_order_total(value_header=mapping.value, has_order_ids=mapping.order_id is not None,
@@ -993,6 +1001,7 @@ class ReadResult:
     noted: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
         {"row": pd.Series([], dtype=np.int64), "note_code": [], "note": []}))
     unrecognised_statuses: dict = field(default_factory=dict)
+    currency: str = ""  # the ISO code of the rows used ("" when no row names one)
 
     @property
     def rows_used(self) -> int:
@@ -1065,7 +1074,7 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     noted = noted_table(rows_at, done.notes, done.reason)
     result = ReadResult(orders=table, excluded=excluded, mapping=mapping, rows_read=len(cells) + len(raw.set_aside),
                         file_name=file_name, columns=list(cells.columns), notes=notes, noted=noted,
-                        unrecognised_statuses=done.unrecognised)
+                        unrecognised_statuses=done.unrecognised, currency=currency_of(evidence, options))
     if table.empty:
         raise rules.no_usable_orders(result.audit()["excluded"], file_name=file_name)
     return result
