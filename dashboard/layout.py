@@ -45,10 +45,6 @@ def show_problem(outcome: state.Outcome, here: str, *, prefix: str = "") -> None
     st.error(f"{prefix}{outcome.worded(here)}")
 
 
-def coming(what: str) -> None:
-    st.info(f"{what} is coming: this part of the forecasting library is still being finished.")
-
-
 class Work:
     """The slow steps of a page, named and shown while they run (never hidden in a collapsed box).
 

@@ -20,15 +20,16 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import pandas as pd
 import streamlit as st
 
-from forecasting import OrderDataError, csv_text, customer_statistics, excel_bytes, read_orders
+from forecasting import OrderDataError, csv_text, excel_bytes, read_orders
 from forecasting import reading
 from forecasting.io import rules
 from forecasting.exports import HEADINGS, pseudonymise
 from forecasting.forecasts import MONEY_COLUMNS, forecasts_for_reading
+from forecasting.outlook import assign_tiers, tier_lists, tier_summary
+from forecasting.shop import Shop
 
 from . import words
 
@@ -40,14 +41,6 @@ ROLE_HELP = words.ROLE_HELP
 REQUIRED = ("customer", "date", "value")
 # Shortest secret phrase for pseudonyms (the library's rule, forecasting.exports.pseudonymise).
 SHORTEST_PHRASE = 8
-
-
-def optional_module(name: str):
-    """The library module ``forecasting.<name>``, or None while it is not there yet."""
-    try:
-        return __import__(f"forecasting.{name}", fromlist=["_"])
-    except ImportError:
-        return None
 
 
 @dataclass(frozen=True)
@@ -260,55 +253,19 @@ def guessed_mapping(dataset: Dataset) -> dict[str, str]:
     return {role: chosen.get(role, "") for role in ROLE_LABELS}
 
 
-# Rows left out whose currency says nothing about the rows used: another currency than the one kept,
-# and rows that did not split into the file's columns (they have no cells).
-_NOT_THE_SHOPS_CURRENCY = ("other_currency", "malformed_row")
-
-
 @cached()
 def currency_code(dataset: Dataset) -> str:
     """The currency of the amounts, as the data say ("" when nothing says).
 
-    The reader keeps only the currency chosen under Reading options, when one is; otherwise it
-    refuses a file whose amounts are in several currencies, so the rows it used are all in one
-    currency. :class:`~forecasting.reading.ReadResult` does not carry that currency, so it is
-    read here, once, from what the result holds, with the reader's own rules
-    (:func:`forecasting.io.rules.currency_of_cell` for a currency column, the currency
-    :func:`forecasting.io.rules.read_amount` finds beside an amount otherwise): the cells of the
-    rows left out (a cancelled order is in the shop's currency too). The file is not read again.
-    A file whose every row was used and whose rows left out name no currency gives "": the page
-    then shows amounts without a sign, and *Show amounts in* sets one.
+    The one chosen under Reading options, else the one the reader found on the rows it used
+    (:attr:`forecasting.reading.ReadResult.currency`; it refuses a file whose rows name several).
+    A file whose amounts name no currency gives "": the page then shows amounts without a sign,
+    and *Show amounts in* sets one.
     """
     if dataset.currency:
         return rules.wanted_currency(dataset.currency) or ""
     outcome = read_dataset(dataset)
-    if not outcome.ok:
-        return ""
-    return currency_of_result(outcome.value)
-
-
-def currency_of_result(result) -> str:
-    """The currency most of a read result's rows left out name (see :func:`currency_code`), or ""."""
-    import pyarrow as pa
-
-    from forecasting.io.backends import ArrowOps
-
-    carried = getattr(result, "currency", None)  # a reader that carries the rows' currency answers at once
-    if isinstance(carried, str) and carried:
-        return carried
-    mapping = result.mapping
-    rows = result.excluded[~result.excluded["reason_code"].isin(_NOT_THE_SHOPS_CURRENCY)]
-    column = mapping.currency if mapping.currency in rows.columns else mapping.value
-    if len(rows) == 0 or column not in rows.columns:
-        return ""
-    cells = pa.array(rows[column].fillna("").astype(str).tolist(), type=pa.string())
-    if column == mapping.currency:
-        codes = rules.currency_of_cell(ArrowOps(), cells)
-    else:
-        codes = rules.read_amount(ArrowOps(), cells)["currency"]
-    codes = pd.Series(ArrowOps().full_column(codes, len(rows)).to_pylist(), dtype=object).fillna("")
-    codes = codes[codes.str.fullmatch(r"[A-Z]{3}")]
-    return str(codes.value_counts().index[0]) if len(codes) else ""
+    return outcome.value.currency if outcome.ok else ""
 
 
 def money_symbol(dataset: Dataset) -> str:
@@ -317,42 +274,45 @@ def money_symbol(dataset: Dataset) -> str:
     return words.currency_symbol(shown or currency_code(dataset))
 
 
+@st.cache_resource(show_spinner=False, max_entries=4, hash_funcs=HASH_FUNCS)
+def shop_of(dataset: Dataset) -> Shop:
+    """The library's :class:`~forecasting.shop.Shop` of a dataset that reads (one per dataset and options).
+
+    Every page asks it for its stage, so the statistics, the shared fits and the automatic choice
+    are made once per dataset however many pages and options use them (the command line does the
+    same). Kept as a resource (not copied per call), since it keeps what it has computed.
+    """
+    return Shop.from_read(read_dataset(dataset).value)
+
+
+def _asked(step):
+    """The step's value as an :class:`Outcome`, or the library's problem."""
+    try:
+        return Outcome(step())
+    except OrderDataError as problem:
+        return Outcome(error=problem_fields(problem))
+
+
 @cached()
 def statistics(dataset: Dataset):
     """Per-customer statistics of the cleaned orders."""
-    return customer_statistics(read_dataset(dataset).value.orders)
+    return shop_of(dataset).statistics
 
 
 @cached(max_entries=48)
 def choice(dataset: Dataset, method: str = "auto", variance: str = "auto") -> Outcome:
-    """The method and spread model to use, "auto" settled by the library's rules (the command line's too)."""
-    from forecasting.selection import resolve_choice  # loads the evaluator: only when a choice is settled
-
-    checked = None
-    if method == "auto" and variance == "auto" and evaluation.is_done(dataset):
-        found = evaluation(dataset)  # the accuracy check has made the automatic choice already
-        checked = found.value.chosen if found.ok else None
-    try:
-        return Outcome(resolve_choice(statistics(dataset), read_dataset(dataset).value.orders,
-                                      method=method, variance=variance, checked=checked))
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
+    """The method and spread model to use, "auto" settled by the library's rules (the command line's too;
+    the accuracy check's own choice when it has run)."""
+    return _asked(lambda: shop_of(dataset).choice(method, variance))
 
 
 @cached(max_entries=48)
 def forecasts(dataset: Dataset, method: str = "auto", variance: str = "auto") -> Outcome:
     """One row per customer: the expected next order and its ranges (how "auto" was settled: :func:`choice`)."""
-    module = optional_module("forecasts")
     settled = choice(dataset, method, variance)
     if not settled.ok:
         return settled
-    picked = settled.value  # a forecasting.selection.Choice
-    try:
-        table = module.forecast_customers(statistics(dataset), method=picked.method, variance=picked.variance,
-                                          orders=read_dataset(dataset).value.orders)
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
-    return Outcome(table)
+    return _asked(lambda: shop_of(dataset).forecasts(method, variance))
 
 
 def excel_of(table: pd.DataFrame, *, sheet_name: str, symbol: str, money=(), shares=()) -> bytes:
@@ -385,18 +345,13 @@ def forecast_excel(dataset: Dataset, method: str, variance: str, salt: str = "",
 @cached()
 def tail(dataset: Dataset):
     """How heavy the tail of big orders is (a TailReport)."""
-    module = optional_module("variance")
-    return module.tail_report(read_dataset(dataset).value.orders["order_value"].to_numpy(dtype=np.float64))
+    return shop_of(dataset).tail()
 
 
 @cached(max_entries=6)
 def evaluation(dataset: Dataset, bootstrap: int = 200) -> Outcome:
     """Leave-one-out and next-order backtest of every method against plain averages."""
-    module = optional_module("evaluation")
-    try:
-        return Outcome(module.evaluate_methods(read_dataset(dataset).value.orders, bootstrap=bootstrap, seed=0))
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
+    return _asked(lambda: shop_of(dataset).evaluation(bootstrap=bootstrap, seed=0))
 
 
 def method_in_use(dataset: Dataset) -> tuple[str, str]:
@@ -410,22 +365,10 @@ def method_in_use(dataset: Dataset) -> tuple[str, str]:
     return str(table["method"].iloc[0]), str(table["variance"].iloc[0])
 
 
-def _outlook_variance(variance: str) -> str:
-    # Gamma-Gamma reports its own spread as "gamma-model"; the outlook calls want a model name.
-    return "classic" if variance == "gamma-model" else variance
-
-
 @cached(max_entries=24)
 def outlook(dataset: Dataset, method: str, variance: str, horizon: float, by: str) -> Outcome:
     """Projected revenue per customer and per group over ``horizon`` days, from the forecasts in use."""
-    module = optional_module("outlook")
-    table = forecasts(dataset, method, _outlook_variance(variance))
-    try:
-        return Outcome(module.project_revenue(read_dataset(dataset).value.orders, horizon=horizon, by=by,
-                                              forecasts=table.value if table.ok else None, method=method,
-                                              variance=_outlook_variance(variance)))
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
+    return _asked(lambda: shop_of(dataset).outlook(horizon=horizon, by=by, method=method, variance=variance))
 
 
 @cached(max_entries=12)
@@ -434,12 +377,8 @@ def outlook_rolling(dataset: Dataset, method: str, variance: str, horizon: float
 
     Made when asked for (the Revenue outlook page's button): it is the outlook's work ten times over.
     """
-    module = optional_module("outlook")
-    try:
-        return Outcome(module.rolling_backtest(read_dataset(dataset).value.orders, horizon=horizon, by=by,
-                                               method=method, variance=_outlook_variance(variance)))
-    except OrderDataError as problem:
-        return Outcome(error=problem_fields(problem))
+    return _asked(lambda: shop_of(dataset).rolling_backtest(horizon=horizon, by=by, method=method,
+                                                            variance=variance))
 
 
 @cached(max_entries=24)
@@ -449,7 +388,6 @@ def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: st
     The lists are the library's own (formula-safe when written, rounded), so the downloads match
     the command line's files; nothing touches the disk.
     """
-    module = optional_module("outlook")
     projection = outlook(dataset, method, variance, horizon, "quarter")
     if not projection.ok:
         return projection
@@ -460,9 +398,9 @@ def tiers(dataset: Dataset, method: str, variance: str, horizon: float, rank: st
         note = ("Revenue could not be projected for every customer on this data (the order-frequency model "
                 "did not fit), so customers are ranked by their expected next order instead.")
     try:
-        tiered = module.assign_tiers(customers, rank=rank, shares=shares)
-        summary = module.tier_summary(tiered)
-        lists = module.tier_lists(tiered)
+        tiered = assign_tiers(customers, rank=rank, shares=shares)
+        summary = tier_summary(tiered)
+        lists = tier_lists(tiered)
     except OrderDataError as problem:
         return Outcome(error=problem_fields(problem))
     return Outcome({"customers": tiered, "summary": summary, "lists": lists, "rank": rank}, note=note)

@@ -20,10 +20,6 @@ layout.page_header(
 
 if not layout.dataset_line():
     st.stop()
-judge = state.optional_module("evaluation")
-if judge is None or state.optional_module("forecasts") is None:
-    layout.coming("The accuracy check")
-    st.stop()
 
 dataset = state.current()
 result = state.current_result()

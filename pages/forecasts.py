@@ -11,7 +11,9 @@ import streamlit as st
 
 from dashboard import charts, layout, state, words
 from forecasting.exports import HEADINGS
+from forecasting.forecasts import METHODS
 from forecasting.options import LOW_CONFIDENCE_WEIGHT, low_confidence
+from forecasting.variance import VARIANCE_MODELS
 
 HERE = "forecasts"
 PAGE_ROWS = 50
@@ -22,20 +24,15 @@ layout.page_header(
     "pulled toward what similar customers spend, because a couple of orders say little on their own.",
 )
 
-forecasting_module = state.optional_module("forecasts")
-variance_module = state.optional_module("variance")
 if not layout.dataset_line():
-    st.stop()
-if forecasting_module is None or variance_module is None:
-    layout.coming("The forecasts page")
     st.stop()
 
 dataset = state.current()
 result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
-methods = ["auto", *forecasting_module.METHODS]
-variances = ["auto", *variance_module.VARIANCE_MODELS]
+methods = ["auto", *METHODS]
+variances = ["auto", *VARIANCE_MODELS]
 # The boxes sit in the details section below; their remembered values decide what is computed here.
 method = state.kept("method", "auto")
 method = method if method in methods else "auto"

@@ -12,6 +12,7 @@ from forecasting import OrderDataError, csv_text
 from forecasting.exports import pseudonymise
 from forecasting.frequency import MODEL_NAMES
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE
+from forecasting.outlook import rolling_cutoffs
 
 HERE = "outlook"
 
@@ -22,10 +23,6 @@ layout.page_header(
     "earlier dates against what really came in.",
 )
 if not layout.dataset_line():
-    st.stop()
-outlook_module = state.optional_module("outlook")
-if outlook_module is None or state.optional_module("forecasts") is None:
-    layout.coming("The revenue outlook page")
     st.stop()
 
 dataset = state.current()
@@ -178,7 +175,7 @@ st.caption("Month figures are the expected amounts; the ranges above are for the
 
 st.subheader("Tried on the past")
 try:
-    cutoffs = outlook_module.rolling_cutoffs(result.orders, horizon=horizon)
+    cutoffs = rolling_cutoffs(result.orders, horizon=horizon)
 except OrderDataError as problem:
     cutoffs = []
     reason = state.Outcome(error=state.problem_fields(problem)).worded(HERE)

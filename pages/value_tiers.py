@@ -23,9 +23,6 @@ layout.page_header(
 )
 if not layout.dataset_line():
     st.stop()
-if state.optional_module("outlook") is None or state.optional_module("forecasts") is None:
-    layout.coming("The value tiers page")
-    st.stop()
 
 dataset = state.current()
 symbol = state.money_symbol(dataset)
