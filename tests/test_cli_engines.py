@@ -17,7 +17,6 @@ def run_cli(*args):
                           timeout=300)
 
 
-pytest.importorskip("duckdb", reason="the duckdb engine needs requirements-scale.txt")
 
 
 @pytest.fixture(scope="module")

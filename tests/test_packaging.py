@@ -61,16 +61,39 @@ def test_every_subpackage_folder_is_in_the_wheel(wheel):
     assert shipped == folders
 
 
-def test_the_wheel_asks_for_the_runtime_requirements(wheel):
-    # The library's ranges come from requirements.txt, the one list of them.
-    wanted = set()
-    for line in (ROOT / "requirements.txt").read_text().splitlines():
+def _names_in(requirements: str) -> set[str]:
+    """The package names a requirements file lists (extras and ranges dropped)."""
+    names = set()
+    for line in (ROOT / requirements).read_text().splitlines():
         line = line.split("#", 1)[0].strip()
         if line:
-            wanted.add(line.split(">")[0].split("<")[0].split("=")[0].strip().lower())
+            names.add(line.split(">")[0].split("<")[0].split("=")[0].split("[")[0].strip().lower())
+    return names
+
+
+def _required_by(wheel: Path) -> list[tuple[str, str]]:
+    """``(package name, environment marker)`` of every Requires-Dist line of the wheel's metadata."""
     with zipfile.ZipFile(wheel) as archive:
         (metadata,) = [n for n in archive.namelist() if n.endswith(".dist-info/METADATA")]
         text = archive.read(metadata).decode()
-    required = {line.split(":", 1)[1].strip().split("<")[0].split(">")[0].split("=")[0].split(";")[0].strip().lower()
-                for line in text.splitlines() if line.startswith("Requires-Dist:")}
-    assert wanted and wanted == required
+    found = []
+    for line in text.splitlines():
+        if line.startswith("Requires-Dist:"):
+            spec, _, marker = line.split(":", 1)[1].partition(";")
+            name = spec.strip().split("<")[0].split(">")[0].split("=")[0].split("[")[0].strip().lower()
+            found.append((name, marker.strip()))
+    return found
+
+
+def test_the_wheel_asks_for_the_runtime_requirements(wheel):
+    # The library's ranges come from requirements.txt, the one list of them.
+    required = {name for name, marker in _required_by(wheel) if not marker}
+    assert _names_in("requirements.txt") and required == _names_in("requirements.txt")
+
+
+def test_the_scale_extra_asks_for_the_cluster_engine(wheel):
+    # pip install ".[scale]" brings the dask engine, as requirements-scale.txt lists it; duckdb is a
+    # runtime requirement (every install has --engine duckdb).
+    extra = {name for name, marker in _required_by(wheel) if "extra" in marker and "scale" in marker}
+    assert {"dask", "distributed"} <= extra and "duckdb" in _names_in("requirements.txt")
+    assert extra == _names_in("requirements-scale.txt")

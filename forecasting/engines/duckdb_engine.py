@@ -857,8 +857,8 @@ def customer_statistics_duckdb(source, *, customer=None, date=None, value=None, 
         import duckdb  # noqa: F401
     except ImportError:
         raise OrderDataError("the duckdb engine needs the duckdb package",
-                             fix="Install it with pip install -r requirements-scale.txt, "
-                                 "or read with the pandas engine", option="engine") from None
+                             fix="Install the product's requirements again (pip install -r requirements.txt, "
+                                 "which lists duckdb), or read with the pandas engine", option="engine") from None
     overrides = {"customer": customer, "date": date, "value": value, "order_id": order_id,
                  "status": status, "currency": currency_column, "segment": segment}
     files = open_order_files(source, overrides=overrides, file_name=file_name, scan=False, header_row=header_row)

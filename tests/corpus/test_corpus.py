@@ -30,7 +30,6 @@ EXPORTS = HERE / "exports"
 EXPECTED = sorted((HERE / "expected").glob("*.json"))
 FLAG = re.compile(r"--[a-z]")
 
-HAVE_DUCKDB = importlib.util.find_spec("duckdb") is not None
 HAVE_DASK = importlib.util.find_spec("dask") is not None and importlib.util.find_spec("distributed") is not None
 
 
@@ -112,7 +111,6 @@ def test_pandas_engine(path):
     check("pandas", expectation(path))
 
 
-@pytest.mark.skipif(not HAVE_DUCKDB, reason="the duckdb engine needs requirements-scale.txt")
 @pytest.mark.parametrize("path", EXPECTED, ids=[p.stem for p in EXPECTED])
 def test_duckdb_engine(path):
     expected = expectation(path)
