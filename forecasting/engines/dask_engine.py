@@ -31,7 +31,9 @@ How the work is split (map-reduce), with the pandas reader's own steps
 
 Leave-one-out maps over the partitions of cleaned orders with the shop-wide sums
 broadcast to every worker, and adds up squared errors (see
-:func:`leave_one_out_on_cluster`).
+:func:`leave_one_out_on_cluster`). Forecasts fit the shop-wide numbers once on the
+per-customer table and map that rule over the partitions of per-customer statistics,
+which stay on the workers (see :func:`forecast_on_cluster`).
 """
 
 from __future__ import annotations
