@@ -678,10 +678,16 @@ class ForecastRule:
                 raise ValueError("this rule is for other customers: take for_customers(positions) first")
             return self.estimates.copy(), self.weights.copy()
         orders = np.asarray(orders, dtype=np.float64)
-        where = np.minimum(np.searchsorted(self.counts, orders), len(self.counts) - 1)
-        if not np.array_equal(self.counts[where], orders):
+        where = orders.astype(np.int64)
+        top = int(self.counts[-1])
+        known = np.zeros(top + 2, dtype=bool)
+        known[self.counts] = True
+        # A table indexed by the number of orders (no search); a count outside it reads "unknown".
+        if not np.all(known[np.clip(where, 0, top + 1)] & (where == orders)):
             raise ValueError("a customer has a number of orders that no customer of the fitted shop has")
-        weight = self.weights[where]
+        by_count = np.zeros(top + 1)
+        by_count[self.counts] = self.weights
+        weight = by_count[where]
         return combine(working, weight, self.centre), weight
 
     def money(self, orders, mean, log_mean, *, level, next_level) -> tuple[np.ndarray, MoneyForecast]:
@@ -785,11 +791,17 @@ def _fit_rule(fits: ShopFits, method, variance) -> ForecastRule:
     if np.all(g == 1.0) and np.array_equal(result.estimate, working):
         pull = {"pull": PULL_OWN}
     else:
-        counts, first, where = np.unique(n_float, return_index=True, return_inverse=True)
-        by_count = g[first]
-        if np.array_equal(g, by_count[where]) and np.array_equal(result.estimate,
-                                                                 combine(working, by_count[where], result.centre)):
-            pull = {"pull": PULL_BY_ORDERS, "counts": counts, "weights": by_count}
+        # g as a table indexed by the number of orders (any customer's value; the check below
+        # holds only if every customer with that count has it).
+        n_int = n_float.astype(np.int64)
+        by_count = np.zeros(int(n_int.max()) + 1)
+        by_count[n_int] = g
+        seen = np.zeros(by_count.size, dtype=bool)
+        seen[n_int] = True
+        weight = by_count[n_int]
+        if np.array_equal(g, weight) and np.array_equal(result.estimate, combine(working, weight, result.centre)):
+            counts = np.flatnonzero(seen)
+            pull = {"pull": PULL_BY_ORDERS, "counts": counts, "weights": by_count[counts]}
     return ForecastRule(method, OWN_SPREAD if entry.own_spread else spread_name, spread, between, float(effective),
                         len(stats), float(result.centre), dict(result.params), tuple(notes), **pull)
 
