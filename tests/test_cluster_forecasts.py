@@ -204,6 +204,14 @@ class TestForecastOnCluster:
         assert rows == len(simulated_on_cluster.stats)
         assert max(simulated_on_cluster.statistics_sizes) < rows
 
+    def test_local_workers_keep_the_c_librarys_memory_defaults(self, cluster):
+        # Dask's MALLOC_TRIM_THRESHOLD_ for workers would map every large numpy temporary afresh.
+        import os
+
+        if "MALLOC_TRIM_THRESHOLD_" in os.environ:
+            pytest.skip("this process sets MALLOC_TRIM_THRESHOLD_ itself, and its workers inherit it")
+        assert set(cluster.run(lambda: os.environ.get("MALLOC_TRIM_THRESHOLD_")).values()) == {None}
+
     def test_every_worker_thread_gets_a_partition_by_default(self, cluster):
         from forecasting.engines.dask_engine import read_on_cluster
 
