@@ -14,6 +14,12 @@ The return to money and both ranges are written once (:func:`money_forecast`) an
 fit on all orders and by its leave-one-out twin (:func:`forecast_left_out`), which the
 evaluation calls for every held-out order at once.
 
+The work is split in two: :func:`forecast_rule` fits the shop-wide numbers once on every
+customer (a :class:`ForecastRule`: spread model, spread between customers, the estimator's
+constants and centre), and :meth:`ForecastRule.forecasts` gives the rows of any part of the
+customers from their own statistics -- all of them here, one partition at a time on a cluster
+(:func:`forecasting.engines.dask_engine.forecast_on_cluster`).
+
 The fitted shop-wide numbers (spread, amount of shrinkage, centre, notes, cautions, the tail
 report) are kept in ``result.attrs["fit"]`` as a plain dict of floats and strings, so that a
 front end can explain them.
@@ -24,7 +30,7 @@ from __future__ import annotations
 import contextvars
 from collections import OrderedDict
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from statistics import NormalDist
 
 import numpy as np
@@ -32,7 +38,8 @@ import pandas as pd
 import pyarrow as pa
 
 from forecasting.errors import OrderDataError
-from forecasting.estimators.base import Between, between_left_out, error_variance, fit_between, rows_of
+from forecasting.estimators.base import (Between, between_left_out, combine, error_variance, fit_between,
+                                        rows_of)
 from forecasting.exports import rounded_for_reading
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
 from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, checked_customers, low_confidence
@@ -47,7 +54,8 @@ from forecasting.variance import (
     tail_report,
 )
 
-__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "forecast_customers", "forecasts_for_reading",
+__all__ = ["FORECAST_COLUMNS", "METHODS", "VARIANCE_MODELS", "ForecastRule", "forecast_customers", "forecast_rule",
+           "forecasts_for_reading",
            "money_forecast", "forecast_left_out"]
 
 FORECAST_COLUMNS = [
@@ -492,6 +500,10 @@ class ShopFits:
 
         return self.cached(("held", limit), make)
 
+    def rule(self, method: str, variance: str) -> "ForecastRule":
+        """The method x spread model (never ``"auto"``) fitted on every customer (:class:`ForecastRule`)."""
+        return self.cached(("rule", method, variance), lambda: _fit_rule(self, method, variance))
+
     def parts(self, method: str, variance: str, *, level=0.90, next_level=0.80) -> "ForecastParts":
         """The forecast of a method x spread model (never ``"auto"``), kept for each level."""
         return self.cached(("parts", method, variance, float(level), float(next_level)),
@@ -580,22 +592,173 @@ def shop_fits(stats, orders=None, fits=None) -> ShopFits:
     return fits
 
 
-@dataclass
-class ForecastParts:
-    """A method x spread model's forecast before it becomes a table."""
+#: How a rule gets a customer's estimate from their own statistics (see ForecastRule.pull).
+PULL_OWN, PULL_BY_ORDERS, PULL_BY_CUSTOMER = "own average", "by orders", "by customer"
+
+
+@dataclass(frozen=True)
+class ForecastRule:
+    """A method x spread model fitted on the whole shop, and how it forecasts any of its customers.
+
+    Made once from every customer's statistics (:meth:`ShopFits.rule`): the shop-wide numbers
+    (spread model, the spread between customers, the estimator's constants and centre, the
+    effective spread of the log locations, the number of customers). :meth:`forecasts` then
+    gives the forecast rows of any subset of those customers -- all of them
+    (:func:`forecast_customers`) or one partition of a cluster
+    (:func:`forecasting.engines.dask_engine.forecast_on_cluster`) -- from their own rows
+    only, so the rows of a partition equal those of the whole table.
+
+    Attributes
+    ----------
+    method, variance : str
+        The method and the spread reported (``"gamma-model"`` for gamma-gamma).
+    spread : VarianceFit
+    between : Between
+    effective : float
+        tau2_eff of :func:`effective_between_variance` (0 off the log scale).
+    customers : int
+        The number of customers the rule was fitted on (Morris's allowance).
+    centre : float
+        The shop-wide value estimates are pulled toward, on the spread model's scale.
+    params : dict
+        The estimator's fitted scalars.
+    notes : tuple of str
+    pull : str
+        ``"own average"``: every estimate is the customer's own average (g = 1);
+        ``"by orders"``: g depends on the customer only through their number of orders and the
+        estimate is centre + g (average - centre) -- James-Stein, multi-task averaging, its
+        cautious version, empirical Bayes, the shop-wide average and the Gamma-Gamma posterior
+        mean all have this form, since s_t = f / n_t; ``"by customer"``: anything else (MTA
+        within segments solves the customers of every segment together), the estimates and
+        weights of the whole fit are kept per customer.
+    counts : numpy.ndarray or None
+        The distinct numbers of orders (``"by orders"``), sorted.
+    weights : numpy.ndarray or None
+        The estimator's own-history weight per distinct count (``"by orders"``) or per customer.
+    estimates : numpy.ndarray or None
+        Per customer (``"by customer"``).
+
+    Notes
+    -----
+    The pull is read off the estimator's own result on all customers and kept only when it
+    gives back that result to the last bit (:meth:`ShopFits.rule`), so a forecast made by the
+    rule equals the estimator's.
+    """
 
     method: str
-    variance: str  # the spread reported (``"gamma-model"`` for gamma-gamma)
+    variance: str
     spread: VarianceFit
     between: Between
-    result: object  # the estimator's Shrunk
-    weight: np.ndarray
-    money: MoneyForecast
     effective: float
-    notes: list
+    customers: int
+    centre: float
+    params: dict
+    notes: tuple
+    pull: str
+    counts: np.ndarray | None = None
+    weights: np.ndarray | None = None
+    estimates: np.ndarray | None = None
+
+    def for_customers(self, positions) -> "ForecastRule":
+        """The rule for the customers at ``positions`` of the table it was fitted on, in that order
+        (only a ``"by customer"`` rule keeps anything per customer)."""
+        if self.pull != PULL_BY_CUSTOMER:
+            return self
+        positions = np.asarray(positions, dtype=np.int64)
+        return replace(self, weights=self.weights[positions], estimates=self.estimates[positions])
+
+    def shrunk(self, orders, working):
+        """(estimate, own-history weight before clipping) of customers with these numbers of orders
+        and averages on the spread model's scale."""
+        working = np.asarray(working, dtype=np.float64)
+        if self.pull == PULL_OWN:
+            return working.copy(), np.ones_like(working)
+        if self.pull == PULL_BY_CUSTOMER:
+            if len(self.estimates) != len(working):
+                raise ValueError("this rule is for other customers: take for_customers(positions) first")
+            return self.estimates.copy(), self.weights.copy()
+        orders = np.asarray(orders, dtype=np.float64)
+        where = orders.astype(np.int64)
+        top = int(self.counts[-1])
+        known = np.zeros(top + 2, dtype=bool)
+        known[self.counts] = True
+        # A table indexed by the number of orders (no search); a count outside it reads "unknown".
+        if not np.all(known[np.clip(where, 0, top + 1)] & (where == orders)):
+            raise ValueError("a customer has a number of orders that no customer of the fitted shop has")
+        by_count = np.zeros(top + 1)
+        by_count[self.counts] = self.weights
+        weight = by_count[where]
+        return combine(working, weight, self.centre), weight
+
+    def money(self, orders, mean, log_mean, *, level, next_level) -> tuple[np.ndarray, MoneyForecast]:
+        """(own-history weight in [0, 1], money forecasts) of customers with these numbers of orders,
+        average order values and average log values."""
+        n = np.asarray(orders, dtype=np.float64)
+        money_mean = np.asarray(mean, dtype=np.float64)
+        working = np.asarray(log_mean, dtype=np.float64) if self.spread.scale == "log" else money_mean
+        estimate, weight = self.shrunk(n, working)
+        weight = np.clip(weight, 0.0, 1.0)
+        if self.variance == OWN_SPREAD and "population_mean" in self.params:
+            return weight, _gamma_forecast(self.params, n, money_mean, estimate, level=level, next_level=next_level)
+        return weight, money_forecast(self.spread, self.between, estimate, weight, n, working,
+                                      posterior=self.method == "empirical-bayes", level=level,
+                                      next_level=next_level, effective_tau2=self.effective,
+                                      customers=self.customers)
+
+    def forecasts(self, stats: pd.DataFrame, *, level=0.90, next_level=0.80) -> pd.DataFrame:
+        """The forecast rows (``FORECAST_COLUMNS``) of the customers of ``stats``, in its order."""
+        n = stats["orders"].to_numpy(dtype=np.int64)
+        money_mean = stats["mean"].to_numpy(dtype=np.float64)
+        weight, money = self.money(n, money_mean, stats["log_mean"].to_numpy(dtype=np.float64), level=level,
+                                   next_level=next_level)
+        return pd.DataFrame({
+            # A copy of the index's array (Arrow text is shared until written to): no round trip
+            # through Python objects, and the table can be edited without touching the statistics.
+            "customer": stats.index.array.copy(),
+            "orders": n.copy(),
+            "average_order_value": money_mean.copy(),
+            "expected_next_order": money.expected,
+            "own_history_weight": weight,
+            "expected_low": money.expected_low,
+            "expected_high": money.expected_high,
+            "next_order_low": money.next_low,
+            "next_order_high": money.next_high,
+            "low_confidence": low_confidence(weight),
+            "method": _repeated_text(self.method, len(n)),
+            "variance": _repeated_text(self.variance, len(n)),
+        }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block
+
+    def report(self, *, level, next_level) -> dict:
+        """The fitted scalars a front end explains (``attrs["fit"]`` without the automatic choice, the
+        tail report and the notes)."""
+        spread, on_log = self.spread, self.spread.scale == "log"
+        centre = float(self.centre)
+        fit = {
+            "method": self.method,
+            "variance": self.variance,
+            "customers": float(self.customers),
+            "level": level,
+            "next_level": next_level,
+            "sigma2": float(spread.sigma2),
+            "sigma2_scale": {"classic": "money squared", "log": "log value",
+                             "proportional": "squared coefficient of variation"}[spread.model],
+            "tau2": float(self.between.tau2),
+            "centre": float(np.exp(centre) * spread.details["smearing"]) if on_log else centre,
+            "caution": caution_of(self.method, self.variance),
+        }
+        # The log spread of one order that the next-order range uses (the outlook splits the range with it).
+        fit["sigma2_log"] = float(spread.details["order_spread"] if on_log else spread.details["log_order_spread"])
+        if on_log:
+            fit.update({"centre_log": centre, "smearing": float(spread.details["smearing"]),
+                        "tau2_effective": float(self.effective)})
+        fit.update(_flat("", {key: value for key, value in self.params.items() if key != "tau2"}))
+        fit.update(_flat("variance_", {key: value for key, value in spread.details.items()
+                                       if key not in ("smearing", "log_order_spread")}))
+        return fit
 
 
-def _forecast_parts(fits: ShopFits, method, variance, *, level, next_level) -> ForecastParts:
+def _fit_rule(fits: ShopFits, method, variance) -> ForecastRule:
+    """The estimator named ``method`` run on every customer, kept as a :class:`ForecastRule`."""
     entry = METHOD_REGISTRY[method]
     stats = fits.stats
     if entry.needs_orders and fits.orders is None:
@@ -605,11 +768,10 @@ def _forecast_parts(fits: ShopFits, method, variance, *, level, next_level) -> F
         raise OrderDataError("the 'mta-segments' method needs a segment for every customer", role="segment",
                              fix="Name the column that holds each customer's segment, or choose another method")
     n_float = fits.column("orders")
-    money_mean = fits.column("mean")
     spread_name = "classic" if entry.own_spread else (variance if variance != "auto" else DEFAULT_CHOICE[1])
     spread = fits.spread(spread_name)
     on_log = spread.scale == "log"
-    working = fits.column("log_mean") if on_log else money_mean
+    working = fits.column("log_mean") if on_log else fits.column("mean")
 
     keywords, notes = {}, []
     if entry.needs_orders:
@@ -619,22 +781,45 @@ def _forecast_parts(fits: ShopFits, method, variance, *, level, next_level) -> F
         notes.extend(cv_notes)
     segments = fits.segments() if entry.needs_segments else None
 
-    mean_vars = spread.mean_variance(n_float)
     between = fits.between(spread_name)
-    result = shrink(working, mean_vars, method=method, orders=n_float, segments=segments, between=between,
-                    **keywords)
+    result = shrink(working, spread.mean_variance(n_float), method=method, orders=n_float, segments=segments,
+                    between=between, **keywords)
     notes = list(spread.notes) + list(between.notes) + notes + list(result.notes)
-    weight = np.clip(result.weight, 0.0, 1.0)
     effective = fits.effective_tau2(spread_name) if on_log else 0.0
-    if entry.own_spread and "population_mean" in result.params:
-        money = _gamma_forecast(result.params, n_float, money_mean, result.estimate, level=level,
-                                next_level=next_level)
+    g = np.asarray(result.weight, dtype=np.float64)
+    pull = {"pull": PULL_BY_CUSTOMER, "weights": g, "estimates": np.asarray(result.estimate, dtype=np.float64)}
+    if np.all(g == 1.0) and np.array_equal(result.estimate, working):
+        pull = {"pull": PULL_OWN}
     else:
-        money = money_forecast(spread, between, result.estimate, weight, n_float, working,
-                               posterior=method == "empirical-bayes", level=level, next_level=next_level,
-                               effective_tau2=effective, customers=len(stats))
-    return ForecastParts(method, OWN_SPREAD if entry.own_spread else spread_name, spread, between, result, weight,
-                         money, float(effective), notes)
+        # g as a table indexed by the number of orders (any customer's value; the check below
+        # holds only if every customer with that count has it).
+        n_int = n_float.astype(np.int64)
+        by_count = np.zeros(int(n_int.max()) + 1)
+        by_count[n_int] = g
+        seen = np.zeros(by_count.size, dtype=bool)
+        seen[n_int] = True
+        weight = by_count[n_int]
+        if np.array_equal(g, weight) and np.array_equal(result.estimate, combine(working, weight, result.centre)):
+            counts = np.flatnonzero(seen)
+            pull = {"pull": PULL_BY_ORDERS, "counts": counts, "weights": by_count[counts]}
+    return ForecastRule(method, OWN_SPREAD if entry.own_spread else spread_name, spread, between, float(effective),
+                        len(stats), float(result.centre), dict(result.params), tuple(notes), **pull)
+
+
+@dataclass
+class ForecastParts:
+    """A method x spread model's forecast of every customer before it becomes a table."""
+
+    rule: ForecastRule
+    weight: np.ndarray  # own-history weight in [0, 1]
+    money: MoneyForecast
+
+
+def _forecast_parts(fits: ShopFits, method, variance, *, level, next_level) -> ForecastParts:
+    rule = fits.rule(method, variance)
+    weight, money = rule.money(fits.column("orders"), fits.column("mean"), fits.column("log_mean"), level=level,
+                               next_level=next_level)
+    return ForecastParts(rule, weight, money)
 
 
 def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
@@ -698,6 +883,23 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     1      ivy       3                 72.0               0.981           False
     2     moss       1                 15.0               0.945           False
     """
+    rule, fit = forecast_rule(stats, method=method, variance=variance, orders=orders, level=level,
+                              next_level=next_level, fits=fits)
+    table = rule.forecasts(stats, level=fit["level"], next_level=fit["next_level"])
+    table.attrs["fit"] = fit
+    return table
+
+
+def forecast_rule(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, variance: str = DEFAULT_VARIANCE,
+                  orders: pd.DataFrame | None = None, level: float = 0.90, next_level: float = 0.80,
+                  fits: ShopFits | None = None) -> tuple[ForecastRule, dict]:
+    """The shop-wide half of :func:`forecast_customers`: the rule and the report, no rows.
+
+    Parameters are those of :func:`forecast_customers`. Returns the :class:`ForecastRule` of the
+    method and spread model (``"auto"`` resolved) fitted on every customer of ``stats``, and
+    the dict that :func:`forecast_customers` keeps in ``attrs["fit"]``. ``rule.forecasts(part,
+    level=..., next_level=...)`` then gives the rows of any part of ``stats``.
+    """
     if method != "auto":
         check_method(method)
     if variance != "auto" and variance != OWN_SPREAD:
@@ -713,56 +915,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
     if method == "auto" or (variance == "auto" and not METHOD_REGISTRY[method].own_spread):
         method, variance, reason, checked = _automatic_choice(fits, method, variance)
         fit["auto_choice"] = f"{method} with {variance} variance: {reason}"
-    entry = METHOD_REGISTRY[method]
-    parts = fits.parts(method, variance, level=level, next_level=next_level)
-    spread, between, result, money, weight = parts.spread, parts.between, parts.result, parts.money, parts.weight
-    on_log = spread.scale == "log"
-    notes = parts.notes
-    effective = parts.effective
-    n = stats["orders"].to_numpy(dtype=np.int64)
-    money_mean = fits.column("mean")
-    spread_name = spread.model
-    variance_name = OWN_SPREAD if entry.own_spread else spread_name
-    table = pd.DataFrame({
-        # A copy of the index's array (Arrow text is shared until written to): no round trip
-        # through Python objects, and the table can be edited without touching the statistics.
-        "customer": stats.index.array.copy(),
-        "orders": n.copy(),
-        "average_order_value": money_mean.copy(),
-        # Copies: the parts are kept in the shared fits, and a table may be edited.
-        "expected_next_order": money.expected.copy(),
-        "own_history_weight": weight.copy(),
-        "expected_low": money.expected_low.copy(),
-        "expected_high": money.expected_high.copy(),
-        "next_order_low": money.next_low.copy(),
-        "next_order_high": money.next_high.copy(),
-        "low_confidence": low_confidence(weight),
-        "method": _repeated_text(method, len(n)),
-        "variance": _repeated_text(variance_name, len(n)),
-    }, columns=FORECAST_COLUMNS, copy=False)  # the arrays are the table's own: no copy into one block
-
-    centre = float(result.centre)
-    fit.update({
-        "method": method,
-        "variance": variance_name,
-        "customers": float(len(stats)),
-        "level": level,
-        "next_level": next_level,
-        "sigma2": float(spread.sigma2),
-        "sigma2_scale": {"classic": "money squared", "log": "log value",
-                         "proportional": "squared coefficient of variation"}[spread.model],
-        "tau2": float(between.tau2),
-        "centre": float(np.exp(centre) * spread.details["smearing"]) if on_log else centre,
-        "caution": caution_of(method, variance_name),
-    })
-    # The log spread of one order that the next-order range uses (the outlook splits the range with it).
-    fit["sigma2_log"] = float(spread.details["order_spread"] if on_log else spread.details["log_order_spread"])
-    if on_log:
-        fit.update({"centre_log": centre, "smearing": float(spread.details["smearing"]),
-                    "tau2_effective": float(effective)})
-    fit.update(_flat("", {key: value for key, value in result.params.items() if key != "tau2"}))
-    fit.update(_flat("variance_", {key: value for key, value in spread.details.items()
-                                   if key not in ("smearing", "log_order_spread")}))
+    rule = fits.rule(method, variance)
+    fit.update(rule.report(level=level, next_level=next_level))
     if orders is not None:
         # With the shop's own check at hand, the report suggests only a spread model that passed it.
         tail = fits.tail(checked)
@@ -771,9 +925,8 @@ def forecast_customers(stats: pd.DataFrame, *, method: str = DEFAULT_METHOD, var
                     "tail_suggested_variance": tail.suggested_variance, "tail_summary": tail.summary})
     else:
         fit["tail_summary"] = "Order-level values were not given, so the size of big orders was not described."
-    fit["notes"] = " ".join(dict.fromkeys(notes))
-    table.attrs["fit"] = fit
-    return table
+    fit["notes"] = " ".join(dict.fromkeys(rule.notes))
+    return rule, fit
 
 
 def _with_log_order_spread(spread, fits):
@@ -827,7 +980,7 @@ def forecast_left_out(held, method, variance, *, level=0.90, next_level=0.80, fi
         fits = held.cached("fits", lambda: ShopFits(held.stats, held.orders, codes=held.codes))
     fitted = {}
     if not entry.exact_left_out:
-        fitted = fits.parts(method, "classic" if variance == OWN_SPREAD else variance).result.params
+        fitted = fits.rule(method, "classic" if variance == OWN_SPREAD else variance).params
     if entry.own_spread:
         spread = spread_left_out(held, "classic")
         if "population_mean" in fitted:

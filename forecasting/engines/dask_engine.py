@@ -31,7 +31,9 @@ How the work is split (map-reduce), with the pandas reader's own steps
 
 Leave-one-out maps over the partitions of cleaned orders with the shop-wide sums
 broadcast to every worker, and adds up squared errors (see
-:func:`leave_one_out_on_cluster`).
+:func:`leave_one_out_on_cluster`). Forecasts fit the shop-wide numbers once on the
+per-customer table and map that rule over the partitions of per-customer statistics,
+which stay on the workers (see :func:`forecast_on_cluster`).
 """
 
 from __future__ import annotations
@@ -115,10 +117,17 @@ def cluster_client(scheduler=None, *, workers=None, processes=True):
         finally:
             client.close()
         return
+    import dask
+
     # Worker logs stay quiet: a file the fast CSV reader refuses is read again carefully, and
-    # every problem reaches the caller as an exception anyway.
-    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=processes,
-                           dashboard_address=None, silence_logs=logging.CRITICAL)
+    # every problem reaches the caller as an exception anyway. Dask starts worker processes with
+    # MALLOC_TRIM_THRESHOLD_=65536, which also turns off the C library's adaptive mmap threshold:
+    # every large numpy temporary is then mapped afresh and its pages touched for the first time,
+    # which made the leave-one-out on a worker 2.5 times slower than in this process on the same
+    # partition. The workers of a local cluster keep the C library's defaults.
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=processes,
+                               dashboard_address=None, silence_logs=logging.CRITICAL)
     client = Client(cluster)
     try:
         yield client
@@ -251,6 +260,15 @@ class ShopOnCluster:
         As :func:`forecasting.customers.customer_statistics` of all orders.
     account : dict
         As :meth:`forecasting.reading.ReadResult.audit`.
+    statistics_parts : list of distributed.Future
+        The per-customer statistics of each partition that has orders (one pandas DataFrame
+        each, as :func:`forecasting.customers.customer_statistics`), kept where they were
+        computed: the forecasts are made there (:func:`forecast_on_cluster`).
+    statistics_sizes : list of int
+        Customers in each of ``statistics_parts``.
+    customer_order : numpy.ndarray
+        ``stats`` is the concatenation of ``statistics_parts`` taken in this order (sorted by
+        customer).
     """
 
     client: object
@@ -258,6 +276,9 @@ class ShopOnCluster:
     stats: pd.DataFrame
     account: dict
     notes: list = field(default_factory=list)
+    statistics_parts: list = field(default_factory=list)
+    statistics_sizes: list = field(default_factory=list)
+    customer_order: np.ndarray | None = None
 
 
 def _rows_of_lines(client, raw, files: OrderFiles, lines: np.ndarray) -> tuple[list[str], np.ndarray]:
@@ -317,7 +338,8 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         Bytes of a CSV file per partition; ``None`` reads each file as one partition
         (needed when quoted fields contain line breaks).
     partitions : int, optional
-        Partitions after the shuffle by customer (default: as many as were read).
+        Partitions after the shuffle by customer (default: as many as were read, and at least
+        one per worker thread).
     list_rows : bool, default False
         Also list every row left out and every row noted, in ``account["excluded_rows"]``
         and ``account["noted_rows"]`` (as :func:`forecasting.engines.customer_statistics_from_file`).
@@ -352,6 +374,10 @@ def read_on_cluster(source, *, client, customer=None, date=None, value=None, ord
         shutil.rmtree(directory, ignore_errors=True)
 
 
+def _worker_threads(client) -> int:
+    return max(1, int(sum(client.nthreads().values())))
+
+
 def _read_rows_on_cluster(client, files: OrderFiles, options, blocksize, partitions, decimal, date_order):
     """Steps 1-3: ``(raw, row parts, evidence parts)``, or Nones when the fast CSV reader refused a file
     that has no careful copy yet."""
@@ -364,7 +390,10 @@ def _read_rows_on_cluster(client, files: OrderFiles, options, blocksize, partiti
         meta = pd.DataFrame({**{c: pd.Series([], dtype=object) for c in columns},
                              _LINE_COLUMN: pd.Series([], dtype=np.int64), _KEY_COLUMN: pd.Series([], dtype=object)})
         numbered = raw.map_partitions(_number_lines, columns, files.kind, files.mapping.customer, meta=meta)
-        shuffled = numbered.shuffle(on=_KEY_COLUMN, npartitions=partitions or raw.npartitions)
+        # At least one partition per worker thread, so that every later step (statistics, forecasts,
+        # leave-one-out) has work for every worker.
+        shuffled = numbered.shuffle(on=_KEY_COLUMN,
+                                    npartitions=partitions or max(raw.npartitions, _worker_threads(client)))
         damaged = files.possibly_damaged
         read = [delayed(_read_part, nout=2)(part, columns, files.mapping, options, decimal, date_order, damaged)
                 for part in shuffled.to_delayed()]
@@ -439,13 +468,18 @@ def _read_and_clean(client, files: OrderFiles, directory: str, options, *, block
         counts[code] = counts.get(code, 0) + 1
     statuses = {status: got[0] for status, got in sorted(unrecognised.items(), key=lambda item: item[1][1])}
     stats_parts = client.map(_partition_statistics, order_parts)
-    pieces = [p for p in client.gather(stats_parts) if p is not None]
+    # Partitions without orders have no statistics; the others stay on the cluster for the forecasts.
+    kept = [(future, piece) for future, piece in zip(stats_parts, client.gather(stats_parts)) if piece is not None]
+    del stats_parts
+    pieces = [piece for _, piece in kept]
     excluded = shared.account_counts(counts, shared.REASONS)
     rows_read = int(sum(s.rows for s in summaries)) + len(files.set_aside)
     if not pieces:
         raise shared.no_usable_orders(excluded, file_name=files.display_name)
-    stats = pd.concat(pieces).sort_index(kind="stable")
-    stats = stats[STATISTICS_COLUMNS + (["segment"] if files.mapping.segment else [])]
+    joined = pd.concat(pieces)
+    order = pd.Series(np.arange(len(joined), dtype=np.int64), index=joined.index).sort_index(kind="stable")
+    order = order.to_numpy()
+    stats = joined.take(order)[STATISTICS_COLUMNS + (["segment"] if files.mapping.segment else [])]
     rows_excluded = sum(excluded.values())
     notes = (list(files.notes) + shared.decimal_note(decimal, options.decimal, files.mapping.value) + date_notes
              + (shared.order_total_note(files.mapping.value) if order_total else [])
@@ -465,7 +499,9 @@ def _read_and_clean(client, files: OrderFiles, directory: str, options, *, block
     }
     if list_rows:
         account["excluded_rows"], account["noted_rows"] = _listed_rows(client, raw, files, summaries)
-    return ShopOnCluster(client=client, order_parts=order_parts, stats=stats, account=account)
+    return ShopOnCluster(client=client, order_parts=order_parts, stats=stats, account=account,
+                         statistics_parts=[future for future, _ in kept],
+                         statistics_sizes=[len(piece) for piece in pieces], customer_order=order)
 
 
 def _listed_rows(client, raw, files: OrderFiles, summaries) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -519,7 +555,7 @@ def customer_statistics_dask(source, *, scheduler=None, blocksize="64MB", partit
     rules.check_plain_options("dask", sheet=columns.get("sheet"))
     with cluster_client(scheduler) as client:
         shop = read_on_cluster(source, client=client, blocksize=blocksize, partitions=partitions, **columns)
-        client.cancel(shop.order_parts)
+        client.cancel(shop.order_parts + shop.statistics_parts)
     return shop.stats, shop.account
 
 
@@ -632,8 +668,13 @@ def leave_one_out_on_cluster(shop: ShopOnCluster, *, methods=None, variances=Non
     return _leave_one_out_table(shop, _cluster_pairs(methods, variances, shop.stats), next_level)
 
 
+def _forecast_partition(stats: pd.DataFrame, rule, level, next_level) -> pd.DataFrame:
+    """The forecast rows of one partition's customers (:meth:`forecasting.forecasts.ForecastRule.forecasts`)."""
+    return rule.forecasts(stats, level=level, next_level=next_level)
+
+
 def forecast_on_cluster(shop: ShopOnCluster, *, method="auto", variance="auto", level=0.90, next_level=0.80):
-    """Forecasts for every customer, computed on the cluster from the per-customer statistics.
+    """Forecasts for every customer: the shop-wide fit once, the customers' rows where they are.
 
     Parameters
     ----------
@@ -647,17 +688,28 @@ def forecast_on_cluster(shop: ShopOnCluster, *, method="auto", variance="auto", 
     Returns
     -------
     pandas.DataFrame
-        As :func:`forecasting.forecasts.forecast_customers` (one row per customer).
+        As :func:`forecasting.forecasts.forecast_customers` of ``shop.stats`` (one row per
+        customer, in the order of ``shop.stats``, and the same ``attrs["fit"]``).
 
     Notes
     -----
-    The per-customer table is one row per customer, small next to the orders, and
-    every estimator needs shop-wide numbers fitted on all of it, so the forecast runs
-    as one task on a worker with the whole table. Methods that need order-level values
-    (the cross-validated ones) are refused by
-    :func:`~forecasting.forecasts.forecast_customers` with its own message.
+    Two steps, each written once in :mod:`forecasting.forecasts`:
+
+    1. :func:`~forecasting.forecasts.forecast_rule` fits the shop-wide numbers on the
+       per-customer table (one row per customer, already on the client): the spread model,
+       the spread between customers (REML), the estimator's constants and centre, the
+       effective spread of the log locations;
+    2. that rule goes to the workers and each partition of customer statistics (computed and
+       kept there by :func:`read_on_cluster`) becomes its forecast rows
+       (:meth:`~forecasting.forecasts.ForecastRule.forecasts`), one task per partition; the
+       rows come back and are put in customer order.
+
+    Only MTA within segments, whose customers of a segment are solved together, sends each
+    partition its customers' estimates and weights with the rule. Methods that need
+    order-level values (the cross-validated ones) are refused by
+    :func:`~forecasting.forecasts.forecast_rule` with its own message.
     """
-    from ..forecasts import forecast_customers
+    from ..forecasts import forecast_rule
     from ..options import METHODS
     from ..selection import best_of
 
@@ -668,11 +720,20 @@ def forecast_on_cluster(shop: ShopOnCluster, *, method="auto", variance="auto", 
         table = _leave_one_out_table(shop, pairs, 0.80)
         chosen = best_of(table, list(zip(table["method"], table["variance"])))
         method, variance, reason = chosen["method"], chosen["variance"], chosen["reason"]
+    rule, fit = forecast_rule(shop.stats, method=method, variance=variance, level=level, next_level=next_level)
     client = shop.client
-    stats_future = client.scatter(shop.stats, hash=False)
-    table = client.submit(forecast_customers, stats_future, method=method, variance=variance, level=level,
-                          next_level=next_level, pure=False).result()
+    order = shop.customer_order
+    # Each partition's customers are rows start..end of the concatenation; rank says where each
+    # of those rows is in shop.stats (what a rule that keeps values per customer needs).
+    rank = np.empty(len(order), dtype=np.int64)
+    rank[order] = np.arange(len(order), dtype=np.int64)
+    ends = np.cumsum(shop.statistics_sizes)
+    rules = client.scatter([rule.for_customers(rank[end - size:end]) for size, end in zip(shop.statistics_sizes, ends)],
+                           hash=False)
+    pieces = client.gather(client.map(_forecast_partition, shop.statistics_parts, rules, level=fit["level"],
+                                      next_level=fit["next_level"], pure=False))
+    table = pd.concat(pieces, ignore_index=True).take(order).reset_index(drop=True)
+    table.attrs["fit"] = fit
     if reason is not None:
-        table.attrs.setdefault("fit", {})["auto_choice"] = (
-            f"{method} with {variance} variance, among the exact closed-form methods: {reason}")
+        fit["auto_choice"] = f"{method} with {variance} variance, among the exact closed-form methods: {reason}"
     return table
