@@ -34,10 +34,7 @@ from forecasting.engines.sources import scan_records
 from forecasting.errors import OrderDataError
 from forecasting.reading import read_orders
 
-HAVE_DUCKDB = importlib.util.find_spec("duckdb") is not None
 HAVE_DASK = importlib.util.find_spec("dask") is not None and importlib.util.find_spec("distributed") is not None
-needs_duckdb = pytest.mark.skipif(not HAVE_DUCKDB, reason="the duckdb engine needs duckdb "
-                                  "(pip install -r requirements-scale.txt)")
 needs_dask = pytest.mark.skipif(not HAVE_DASK, reason="the dask engine needs dask and distributed "
                                 "(pip install -r requirements-scale.txt)")
 
@@ -221,7 +218,7 @@ class TestCustomerStatisticsFromFile:
         path = tmp_path / "orders.csv"
         path.write_text("customer,order_date,order_value\nfern,2025-03-01,24.00\nfern,2025-04-02,36.00\n"
                         "ivy,2025-03-05,80.00\n")
-        for engine in [e for e in ENGINES if (e != "duckdb" or HAVE_DUCKDB) and e != "dask"]:
+        for engine in [e for e in ENGINES if e != "dask"]:
             stats, account = customer_statistics_from_file(path, engine=engine)
             assert stats.loc["fern", "mean"] == 30.0
             assert stats.loc["fern", "sum_sq_dev"] == pytest.approx(72.0, rel=1e-12)
@@ -248,7 +245,6 @@ def refusals_of_both_engines(path, match):
     return problems
 
 
-@needs_duckdb
 class TestCustomerStatisticsDuckdb:
     def test_the_demo_shop_as_the_pandas_reader(self):
         assert_demo_shop_read_as_the_pandas_reader("duckdb")
@@ -819,10 +815,9 @@ class TestCustomerStatisticsDask:
         with pytest.raises(OrderDataError, match="several currencies") as raised:
             customer_statistics_dask(path, scheduler=cluster, blocksize="8KB")
         assert (raised.value.row, raised.value.value) == (row, "$1,234.50")
-        if HAVE_DUCKDB:
-            with pytest.raises(OrderDataError, match="several currencies") as raised:
-                customer_statistics_from_file(path, engine="duckdb")
-            assert (raised.value.row, raised.value.value) == (row, "$1,234.50")
+        with pytest.raises(OrderDataError, match="several currencies") as raised:
+            customer_statistics_from_file(path, engine="duckdb")
+        assert (raised.value.row, raised.value.value) == (row, "$1,234.50")
 
     def test_rows_that_do_not_split_are_reported_and_the_rest_used(self, cluster, tmp_path):
         path = write_ragged(tmp_path / "ragged.csv")
@@ -912,7 +907,6 @@ class TestForecastOnCluster:
         assert "among the exact closed-form methods" in table.attrs["fit"]["auto_choice"]
 
 
-@needs_duckdb
 class TestMeasureStatisticsRun:
     def test_reports_what_the_run_found(self, shop_export):
         measured = measure_statistics_run(os.fspath(shop_export), engine="duckdb", memory_limit="200MB")
@@ -977,7 +971,6 @@ def _texts(kind):
     return st.lists(st.lists(st.sampled_from(_PIECES[kind]), max_size=6).map("".join), min_size=1, max_size=40)
 
 
-@needs_duckdb
 class TestOneRuleSetTwoBackends:
     @settings(max_examples=60, deadline=None)
     @given(_texts("amount"), st.sampled_from([".", ","]))
