@@ -221,13 +221,16 @@ def _loopback(url: str) -> bool:
 
 
 def library_steps(path: Path) -> list[tuple[str, str, float]]:
-    """(page, library call, seconds) for the work behind each page, timed one call at a time."""
-    from forecasting import customer_statistics, read_orders
-    from forecasting.evaluation import evaluate_methods
+    """(page, library call, seconds) for the work behind each page, timed one call at a time.
+
+    The calls are the dashboard's (``dashboard/state.py``): one :class:`forecasting.shop.Shop` for
+    the file, asked for each page's stage in the order a user opens the pages, so a stage that an
+    earlier page computed is not computed again (as in the dashboard)."""
+    from forecasting import read_orders
     from forecasting.exports import HEADINGS, csv_text, excel_bytes
-    from forecasting.forecasts import MONEY_COLUMNS, forecast_customers, forecasts_for_reading
-    from forecasting.selection import resolve_choice
-    from forecasting.outlook import assign_tiers, project_revenue, rolling_backtest, tier_lists, tier_summary
+    from forecasting.forecasts import MONEY_COLUMNS, forecasts_for_reading
+    from forecasting.outlook import assign_tiers, tier_lists, tier_summary
+    from forecasting.shop import Shop
 
     data = path.read_bytes()
     timings = []
@@ -241,25 +244,22 @@ def library_steps(path: Path) -> list[tuple[str, str, float]]:
 
     result = timed("Load orders", "read_orders (read, clean, account for every row)", read_orders, data,
                    file_name=path.name)
-    stats = timed("Forecasts", "customer_statistics", customer_statistics, result.orders)
-    choice = timed("Forecasts", "resolve_choice auto/auto (leave-one-out of every candidate)", resolve_choice,
-                   stats, result.orders)
-    table = timed("Forecasts", f"forecast_customers ({choice.method}, {choice.variance})", forecast_customers,
-                  stats, method=choice.method, variance=choice.variance, orders=result.orders)
+    shop = Shop.from_read(result)
+    timed("Forecasts", "per-customer statistics", lambda: shop.statistics)
+    choice = timed("Forecasts", "the automatic choice (leave-one-out of every candidate)", shop.choice)
+    table = timed("Forecasts", f"forecasts ({choice.method}, {choice.variance})", shop.forecasts)
     shared = forecasts_for_reading(table)
     timed("Forecasts", "forecasts as CSV (download)", csv_text, shared)
     timed("Forecasts", "forecasts as Excel (download, made on request)", excel_bytes, shared, headings=HEADINGS,
           money=MONEY_COLUMNS, shares=["own_history_weight"])
-    timed("Accuracy check", "evaluate_methods (leave-one-out, backtest, 200 resamples)", evaluate_methods,
-          result.orders, bootstrap=200, seed=0)
-    variance = "classic" if table.attrs["fit"]["variance"] == "gamma-model" else table.attrs["fit"]["variance"]
-    projection = timed("Value tiers", "project_revenue (180 days, by quarter)", project_revenue, result.orders,
-                       horizon=180.0, by="quarter", forecasts=table, method=choice.method, variance=variance)
-    tiered = timed("Value tiers", "assign_tiers", assign_tiers, projection.customers, rank="revenue",
-                   shares=(0.1, 0.3))
+    timed("Accuracy check", "the accuracy check (leave-one-out, backtest, 200 resamples)", shop.evaluation,
+          bootstrap=200, seed=0)
+    outlook = timed("Value tiers", "the outlook (180 days, by quarter; the Revenue outlook page's too)", shop.outlook,
+                    horizon=180.0, by="quarter")
+    tiered = timed("Value tiers", "assign_tiers", assign_tiers, outlook.customers, rank="revenue", shares=(0.1, 0.3))
     timed("Value tiers", "tier_summary and tier_lists", lambda: (tier_summary(tiered), tier_lists(tiered)))
-    timed("Revenue outlook", "rolling_backtest (180 days, 10 cut-offs, by quarter; on request)", rolling_backtest,
-          result.orders, horizon=180.0, by="quarter", method="auto", variance="auto")
+    timed("Revenue outlook", "the check at ten earlier dates (on request)", shop.rolling_backtest, horizon=180.0,
+          by="quarter")
     return timings
 
 
@@ -272,8 +272,9 @@ def write_markdown(steps: list[Step], facts: dict, out: Path, *, started: str, l
         "",
         f"Written by `python bench/browser_pages.py` on {started} (commit {commit or 'unknown'}); "
         f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, Chromium headless; "
-        f"load average {load:.1f} when it started (above the number of cores, other work shared the machine "
-        "and the times are rough).",
+        f"load average {load:.1f} when it started"
+        + (" (above the number of cores: other work shared the machine and the times are rough)."
+           if load > (os.cpu_count() or 1) else " (a quiet machine)."),
         "",
         f"File: {facts['file']}, {facts['megabytes']:.0f} MB, {facts['rows']:,} rows, {facts['orders']:,} orders, "
         f"{facts['customers']:,} customers (`bench/big_shop.py`: the demo shop's scenario at scale).",
