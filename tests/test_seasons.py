@@ -118,6 +118,19 @@ def one_customer_likelihood(params, dates, as_of, index):
     return math.log(integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-10)[0])
 
 
+def _spring_likelihood(model):
+    """The joint likelihood of a simulated busy shop on a spring clock, and a point to check it at."""
+    orders = simulate_shop(params=BUSY, arrivals_per_day=0.8, days=500, clock_weights=SPRING_WEIGHTS, seed=4)
+    stats = customer_statistics(orders)
+    x = (stats["orders"].to_numpy() - 1).astype(float)
+    repeat = orders.sort_values(["customer", "order_date"])
+    months = repeat.loc[repeat["customer"].duplicated(), "order_date"].dt.month.to_numpy()
+    likelihood = _SeasonalLikelihood(x, stats["first_order"].to_numpy(), stats["last_order"].to_numpy(),
+                                     stats["last_order"].max(), np.bincount(months - 1, minlength=12).astype(float),
+                                     model)
+    return likelihood, np.concatenate([np.log([1.5, 50.0, 0.9, 3.0]), np.linspace(-0.3, 0.4, 11)])
+
+
 class TestJointLikelihood:
     def test_one_customer_against_the_story_integrated_numerically(self):
         # Dates on whole hours so that the hourly walk is exact.
@@ -146,15 +159,7 @@ class TestJointLikelihood:
 
     @pytest.mark.parametrize("model", ["bg-nbd", "mbg-nbd"])
     def test_gradient_matches_finite_differences(self, model):
-        orders = simulate_shop(params=BUSY, arrivals_per_day=0.8, days=500, clock_weights=SPRING_WEIGHTS, seed=4)
-        stats = customer_statistics(orders)
-        x = (stats["orders"].to_numpy() - 1).astype(float)
-        repeat = orders.sort_values(["customer", "order_date"])
-        months = repeat.loc[repeat["customer"].duplicated(), "order_date"].dt.month.to_numpy()
-        likelihood = _SeasonalLikelihood(x, stats["first_order"].to_numpy(), stats["last_order"].to_numpy(),
-                                         stats["last_order"].max(), np.bincount(months - 1, minlength=12).astype(float),
-                                         model)
-        point = np.concatenate([np.log([1.5, 50.0, 0.9, 3.0]), np.linspace(-0.3, 0.4, 11)])
+        likelihood, point = _spring_likelihood(model)
         numeric = optimize.approx_fprime(point, lambda p: likelihood.value_and_gradient(p)[0], 1e-7)
         np.testing.assert_allclose(likelihood.value_and_gradient(point)[1], numeric, rtol=1e-4, atol=1e-7)
 
@@ -164,15 +169,7 @@ class TestJointLikelihood:
         # Slow twin: central differences of the analytic gradient (checked against approx_fprime above).
         from forecasting.frequency import hessian_by_differences
 
-        orders = simulate_shop(params=BUSY, arrivals_per_day=0.8, days=500, clock_weights=SPRING_WEIGHTS, seed=4)
-        stats = customer_statistics(orders)
-        x = (stats["orders"].to_numpy() - 1).astype(float)
-        repeat = orders.sort_values(["customer", "order_date"])
-        months = repeat.loc[repeat["customer"].duplicated(), "order_date"].dt.month.to_numpy()
-        likelihood = _SeasonalLikelihood(x, stats["first_order"].to_numpy(), stats["last_order"].to_numpy(),
-                                         stats["last_order"].max(), np.bincount(months - 1, minlength=12).astype(float),
-                                         model)
-        point = np.concatenate([np.log([1.5, 50.0, 0.9, 3.0]), np.linspace(-0.3, 0.4, 11)])
+        likelihood, point = _spring_likelihood(model)
         numeric = hessian_by_differences(lambda p: likelihood.value_and_gradient(p)[1], point)
         np.testing.assert_allclose(likelihood.hessian(point), numeric, rtol=1e-6, atol=1e-8)
 
