@@ -19,6 +19,18 @@ def page_header(title: str, intro: str) -> None:
     st.caption(CAUTION)
 
 
+def start_page(title: str, intro: str):
+    """A page that works on the loaded orders: its header and which orders are in use.
+
+    Returns ``(dataset, result)`` (the :class:`state.Dataset` and its reading); stops the page,
+    with a note, when no orders are loaded yet.
+    """
+    page_header(title, intro)
+    if not dataset_line():
+        st.stop()
+    return state.current(), state.current_result()
+
+
 def dataset_line() -> bool:
     """Say which orders are in use; False (with a note) when there are none yet."""
     result = state.current_result()

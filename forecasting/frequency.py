@@ -25,8 +25,8 @@ Gamma(r, rate alpha) and p a Beta(a, b) distribution. Because time is in days,
 alpha is in days too (the paper works in weeks: alpha_days = 7 alpha_weeks, r,
 a and b are unchanged).
 
-MBG/NBD (Batislam, Denizel and Filiztekin 2007; the same story is the
-"central variant" CBG/NBD of Hoppe and Wagner 2007): the same, except that the
+MBG/NBD (Batislam, Denizel and Filiztekin 2007; Hoppe and Wagner 2007 tell
+the same story): the same, except that the
 coin is also thrown right after the first order, so a customer may never come
 back at all. In BG/NBD a customer without a repeat order is certain to be
 still active; in MBG/NBD not. Every formula of the variant is BG/NBD's with
@@ -481,9 +481,9 @@ def frequency_log_likelihood(params, repeat_orders, days_to_last_order, days_kno
     validation and comparison of models for customer base analysis.
     International Journal of Research in Marketing 24(3), 201-209.
 
-    Hoppe, D. and Wagner, U. (2007). Customer base analysis: the case for a
-    central variant of the Betageometric/NBD model. Marketing - Journal of
-    Research and Management 3(2), 75-90.
+    Hoppe, D. and Wagner, U. (2007). Marketing - Journal of Research and
+    Management 3(2), 75-90 (the same model, where a customer may stop right
+    after the first order).
     """
     model = _check_model(model)
     return _log_terms(params, repeat_orders, days_to_last_order, days_known, model)

@@ -61,7 +61,7 @@ from .frequency import (
 )
 from .options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
 from .options import low_confidence as rests_on_shop
-from .seasons import SEASONS, RepeatOrderModel, clock_between, fit_repeat_orders, month_edges
+from .seasons import SEASONS, RepeatOrderModel, check_seasons, clock_between, fit_repeat_orders, month_edges
 
 __all__ = [
     "COHORT_PERIODS",
@@ -292,11 +292,9 @@ def _check_by(by, orders):
     )
 
 
-def _check_seasons(seasons):
-    if seasons not in SEASONS:
-        raise OrderDataError("the seasonal adjustment can be auto, month or none", value=seasons,
-                             option="seasons", fix="Choose auto, month or none")
-    return seasons
+def _check_run_options(level, draws, seasons, frequency_model):
+    """The options every outlook run takes, checked: ``(level, draws, seasons, frequency_model)``."""
+    return _check_level(level), _check_draws(draws), check_seasons(seasons), _check_frequency_model(frequency_model)
 
 
 def _check_frequency_model(model):
@@ -1215,10 +1213,7 @@ def project_revenue(orders: pd.DataFrame, *, horizon, by: str = "quarter", as_of
     International Journal of Research in Marketing 24(3), 201-209.
     """
     horizon = _check_horizon(horizon)
-    level = _check_level(level)
-    draws = _check_draws(draws)
-    seasons = _check_seasons(seasons)
-    frequency_model = _check_frequency_model(frequency_model)
+    level, draws, seasons, frequency_model = _check_run_options(level, draws, seasons, frequency_model)
     _check_orders(orders)
     by = _check_by(by, orders)
     book = _OrderBook(orders)
@@ -1386,10 +1381,7 @@ def backtest_outlook(orders: pd.DataFrame, *, horizon=None, cutoff=None, by: str
     cut-off brought in then (scaled to the window when less history exists).
     ``error = projected - actual``; ``error_pct = 100 error / actual``.
     """
-    level = _check_level(level)
-    draws = _check_draws(draws)
-    seasons = _check_seasons(seasons)
-    frequency_model = _check_frequency_model(frequency_model)
+    level, draws, seasons, frequency_model = _check_run_options(level, draws, seasons, frequency_model)
     if horizon is not None:
         horizon = _check_horizon(horizon)
     _check_orders(orders)
@@ -1768,10 +1760,7 @@ def rolling_backtest(orders: pd.DataFrame, *, horizon, cutoffs=DEFAULT_CUTOFFS, 
     closer than the horizon, so the cut-offs are not independent checks.
     """
     horizon = _check_horizon(horizon)
-    level = _check_level(level)
-    draws = _check_draws(draws)
-    seasons = _check_seasons(seasons)
-    frequency_model = _check_frequency_model(frequency_model)
+    level, draws, seasons, frequency_model = _check_run_options(level, draws, seasons, frequency_model)
     _check_orders(orders)
     by = _check_by(by, orders)
     if isinstance(cutoffs, (int, np.integer)) and not isinstance(cutoffs, bool):

@@ -545,7 +545,8 @@ class RepeatOrderModel:
         }
 
 
-def _check_seasons(seasons):
+def check_seasons(seasons):
+    """``seasons`` when it is one of :data:`SEASONS`; a problem naming the option otherwise."""
     if seasons not in SEASONS:
         raise OrderDataError("the seasonal adjustment can be auto, month or none", value=seasons,
                              option="seasons", fix="Choose auto, month or none")
@@ -635,7 +636,7 @@ def fit_repeat_orders(orders: pd.DataFrame, *, as_of=None, model: str = "auto", 
     parameters (the marginal block of the joint inverse Hessian) but the
     clock itself is taken as known in projections.
     """
-    seasons = _check_seasons(seasons)
+    seasons = check_seasons(seasons)
     if model != "auto":
         model = _check_model(model)
     missing = [c for c in ("customer", "order_date") if c not in orders.columns]

@@ -12,17 +12,11 @@ from dashboard import charts, layout, state, words
 HERE = "accuracy"
 TESTS = {"leave-one-out": "hiding one order", "backtest": "next order"}
 
-layout.page_header(
+dataset, result = layout.start_page(
     "Accuracy check",
     "Before trusting a forecast, test it on orders whose value we already know. Two tests, both against the "
     "simplest forecast there is, each customer's own average.",
 )
-
-if not layout.dataset_line():
-    st.stop()
-
-dataset = state.current()
-result = state.current_result()
 method, variance = state.kept("method", "auto"), state.kept("variance", "auto")
 work = layout.Work(2 if (method, variance) != ("auto", "auto") else 1)
 outcome = work.step(f"Testing the forecasts on {result.audit()['orders']:,} past orders: hiding one order at a "

@@ -18,17 +18,11 @@ from forecasting.variance import VARIANCE_MODELS
 HERE = "forecasts"
 PAGE_ROWS = 50
 
-layout.page_header(
+dataset, result = layout.start_page(
     "Forecasts",
     "What each customer will probably spend on their next order. A customer with only a few orders is "
     "pulled toward what similar customers spend, because a couple of orders say little on their own.",
 )
-
-if not layout.dataset_line():
-    st.stop()
-
-dataset = state.current()
-result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
 methods = ["auto", *METHODS]

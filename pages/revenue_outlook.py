@@ -16,17 +16,12 @@ from forecasting.outlook import rolling_cutoffs
 
 HERE = "outlook"
 
-layout.page_header(
+dataset, result = layout.start_page(
     "Revenue outlook",
     "The revenue to expect in the months ahead: from the customers you already have (grouped by when they first "
     "ordered, or by segment) and from new customers still to come. Then, when you ask, the same outlook made at "
     "earlier dates against what really came in.",
 )
-if not layout.dataset_line():
-    st.stop()
-
-dataset = state.current()
-result = state.current_result()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
 work = layout.Work(2)

@@ -16,15 +16,11 @@ from forecasting.options import LOW_CONFIDENCE_WEIGHT
 
 HERE = "tiers"
 
-layout.page_header(
+dataset, _ = layout.start_page(
     "Value tiers",
     "Customers ranked by what they are expected to bring in and split into tiers, so you can see who matters "
     "most, and download each tier as a list (for a thank-you note or an offer, say).",
 )
-if not layout.dataset_line():
-    st.stop()
-
-dataset = state.current()
 symbol = state.money_symbol(dataset)
 money_format = layout.money_format(symbol)
 work = layout.Work(2)

@@ -141,6 +141,17 @@ def open_page(tab, title: str) -> None:
     settle(tab)
 
 
+def open_sections(tab) -> None:
+    """Open the collapsed sections, so that their text (and downloads) are on screen too."""
+    closed = tab.locator('[data-testid="stExpander"] details:not([open]) > summary')
+    for _ in range(20):
+        if closed.count() == 0:
+            break
+        closed.first.click()
+        tab.wait_for_timeout(200)
+    settle(tab)
+
+
 def metric_value(tab, label: str) -> str:
     box = tab.locator('[data-testid="stMetric"]', has_text=label).first
     return box.locator('[data-testid="stMetricValue"]').inner_text().strip()

@@ -28,6 +28,7 @@ import pandas as pd
 import pytest
 
 import browser_support as support
+from browser_support import metric_value, no_exception_shown, open_page, open_sections, settle
 from dashboard import words
 from playwright import sync_api as playwright_sync
 from forecasting import customer_statistics, read_orders
@@ -85,24 +86,6 @@ def page(server, browser):
     context.close()
 
 
-def settle(tab) -> None:
-    """Wait until the app has finished its run and drawn the page."""
-    tab.wait_for_selector('[data-testid="stApp"][data-test-script-state="notRunning"]')
-    tab.wait_for_timeout(300)
-    tab.wait_for_selector('[data-testid="stApp"][data-test-script-state="notRunning"]')
-
-
-def metric_value(tab, label: str) -> str:
-    box = tab.locator('[data-testid="stMetric"]', has_text=label).first
-    return box.locator('[data-testid="stMetricValue"]').inner_text().strip()
-
-
-def open_page(tab, title: str, heading: str) -> None:
-    tab.get_by_role("link", name=title).first.click()
-    tab.get_by_role("heading", name=heading).first.wait_for()
-    settle(tab)
-
-
 def shoot(tab, name: str) -> None:
     """Screenshot the whole page: the window is made as tall as the content, which scrolls inside it."""
     SHOTS.mkdir(parents=True, exist_ok=True)
@@ -112,22 +95,6 @@ def shoot(tab, name: str) -> None:
     tab.wait_for_timeout(800)  # let charts redraw at the new size
     tab.screenshot(path=str(SHOTS / f"{name}.png"), full_page=True)
     tab.set_viewport_size({"width": 1400, "height": 1000})
-
-
-def no_exception_shown(tab) -> None:
-    assert tab.locator('[data-testid="stException"]').count() == 0
-    assert "Traceback" not in tab.content()
-
-
-def open_every_expander(tab) -> None:
-    """Open the collapsed sections, so that their text is on screen too."""
-    closed = tab.locator('[data-testid="stExpander"] details:not([open]) > summary')
-    for _ in range(20):
-        if closed.count() == 0:
-            break
-        closed.first.click()
-        tab.wait_for_timeout(200)
-    settle(tab)
 
 
 def found_on_screen(tab, pattern: re.Pattern) -> list[str]:
@@ -154,20 +121,20 @@ def check_every_page_speaks_plainly(tab) -> None:
     """Page by page: the primary screen (sections closed) shows no flag, no code name and no statistics; with
     every section open there is still no flag and no code name."""
     for title in PAGE_TITLES:
-        open_page(tab, title, title)
+        open_page(tab, title)
         if title == "Revenue outlook":
             ask_for_the_check_of_the_past(tab)
         no_exception_shown(tab)
         assert flags_on_screen(tab) == [], title
         assert found_on_screen(tab, CODE) == [], title
         assert found_on_screen(tab, STATISTICS) == [], title
-        open_every_expander(tab)
+        open_sections(tab)
         assert flags_on_screen(tab) == [], title
         assert found_on_screen(tab, CODE) == [], title
         if title in ("Forecasts", "Revenue outlook"):
             # The details sections are open now and name the methods: the check above sees what they say.
             assert found_on_screen(tab, STATISTICS) != [], title
-    open_page(tab, "Load orders", "Load orders")
+    open_page(tab, "Load orders")
 
 
 class TestInTheBrowser:
@@ -205,7 +172,7 @@ class TestInTheBrowser:
         no_exception_shown(page)
 
     def test_forecasts_page_and_csv_download(self, page, tmp_path):
-        open_page(page, "Forecasts", "Forecasts")
+        open_page(page, "Forecasts")
         page.locator(".js-plotly-plot").first.wait_for()
         no_exception_shown(page)
         shoot(page, "forecasts")
@@ -222,21 +189,21 @@ class TestInTheBrowser:
         assert all(float(r[3]) > 0 for r in rows[1:])  # expected_next_order, a positive amount
 
     def test_accuracy_page(self, page):
-        open_page(page, "Accuracy check", "Accuracy check")
+        open_page(page, "Accuracy check")
         page.get_by_text("On your data").first.wait_for()
         page.locator(".js-plotly-plot").first.wait_for()
         no_exception_shown(page)
         shoot(page, "accuracy")
 
     def test_value_tiers_page(self, page):
-        open_page(page, "Value tiers", "Value tiers")
+        open_page(page, "Value tiers")
         page.get_by_text("are expected to bring in").first.wait_for()
         page.locator(".js-plotly-plot").first.wait_for()
         no_exception_shown(page)
         shoot(page, "value_tiers")
 
     def test_revenue_outlook_page(self, page):
-        open_page(page, "Revenue outlook", "Revenue outlook")
+        open_page(page, "Revenue outlook")
         page.locator(".js-plotly-plot").nth(1).wait_for()
         ask_for_the_check_of_the_past(page)
         page.get_by_text("they actually spent").first.wait_for()
@@ -298,7 +265,7 @@ class TestSixtyThousandCustomers:
 
     def test_forecasts_page_draws_a_fixed_number_of_shapes(self, big_page):
         tab, _ = big_page
-        open_page(tab, "Forecasts", "Forecasts")
+        open_page(tab, "Forecasts")
         tab.locator(".js-plotly-plot").first.wait_for()
         no_exception_shown(tab)
         assert metric_value(tab, "Customers") == f"{BIG_CUSTOMERS:,}"

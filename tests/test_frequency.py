@@ -301,6 +301,22 @@ class TestFitOrderFrequency:
             fit_order_frequency(history)
 
 
+def mixed_over_rates_and_stop_chances(params, per_customer):
+    """``per_customer(lambda, p)`` integrated over the Gamma(r, alpha) order rates and the Beta(a, b)
+    stop chances (scipy.integrate.dblquad)."""
+    r, alpha, a, b = params
+    log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
+
+    def integrand(p, lam):
+        if lam <= 0 or p <= 0 or p >= 1:
+            return 0.0
+        return per_customer(lam, p) * math.exp(
+            log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
+
+    value, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
+    return value
+
+
 class TestExpectedNewCustomerOrders:
     @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
     @pytest.mark.parametrize("t", [0.5, 30.0, 365.0, 5000.0])
@@ -313,18 +329,8 @@ class TestExpectedNewCustomerOrders:
         # the Gamma and Beta mixing distributions with scipy.integrate.dblquad.
         # a = 1 exactly is included: eq. 7 is 0/0 there.
         for params in (PARAMS_A, (0.8, 40.0, 1.0, 4.0)):
-            r, alpha, a, b = params
-            t = 200.0
-            log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
-
-            def integrand(p, lam):
-                if lam <= 0 or p <= 0 or p >= 1:
-                    return 0.0
-                return (-math.expm1(-lam * p * t) / p) * math.exp(
-                    log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
-
-            expected, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
-            assert expected_new_customer_orders(params, t) == pytest.approx(expected, rel=1e-7)
+            expected = mixed_over_rates_and_stop_chances(params, lambda lam, p: -math.expm1(-lam * p * 200.0) / p)
+            assert expected_new_customer_orders(params, 200.0) == pytest.approx(expected, rel=1e-7)
 
     def test_matches_monte_carlo(self):
         # Reference: seeded simulation of 400,000 new customers; tolerance 4 standard errors.
@@ -864,18 +870,9 @@ class TestDropOutAfterFirstOrder:
         # Reference: E[X(t) | lambda, p] = (1 - p)(1 - exp(-lambda p t)) / p (the first coin, then
         # BG/NBD's count), integrated over the Gamma and Beta mixing distributions with dblquad.
         for params in (PARAMS_A, (0.8, 40.0, 1.0, 4.0)):
-            r, alpha, a, b = params
-            t = 200.0
-            log_norm = r * math.log(alpha) - math.lgamma(r) + math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
-
-            def integrand(p, lam):
-                if lam <= 0 or p <= 0 or p >= 1:
-                    return 0.0
-                return ((1 - p) * -math.expm1(-lam * p * t) / p) * math.exp(
-                    log_norm + (r - 1) * math.log(lam) - alpha * lam + (a - 1) * math.log(p) + (b - 1) * math.log1p(-p))
-
-            expected, _ = integrate.dblquad(integrand, 0, np.inf, 0, 1, epsabs=0, epsrel=1e-9)
-            assert expected_new_customer_orders(params, t, model="mbg-nbd") == pytest.approx(expected, rel=1e-7)
+            expected = mixed_over_rates_and_stop_chances(
+                params, lambda lam, p: (1 - p) * -math.expm1(-lam * p * 200.0) / p)
+            assert expected_new_customer_orders(params, 200.0, model="mbg-nbd") == pytest.approx(expected, rel=1e-7)
 
     @pytest.mark.parametrize("params", [PARAMS_A, PARAMS_B, CDNOW_WEEKS])
     @pytest.mark.parametrize("x, t_x, age, h",

@@ -632,16 +632,6 @@ def downloaded_text(download) -> str:
     return data.decode("utf-8-sig")
 
 
-def open_sections(tab) -> None:
-    closed = tab.locator('[data-testid="stExpander"] details:not([open]) > summary')
-    for _ in range(20):
-        if closed.count() == 0:
-            break
-        closed.first.click()
-        tab.wait_for_timeout(200)
-    support.settle(tab)
-
-
 def every_download(tab) -> list[tuple[str, str]]:
     """(what, content) of every download button and every table's toolbar download on the page."""
     found = []
@@ -689,7 +679,7 @@ class TestPseudonymsInTheBrowser:
                 support.settle(tab)
                 for title in ALL_PAGES:
                     support.open_page(tab, title)
-                    open_sections(tab)
+                    support.open_sections(tab)
                     support.no_exception_shown(tab)
                     for what, text in every_download(tab):
                         checked.append(f"{title}: {what}")

@@ -218,14 +218,8 @@ def mta_cv(means, mean_vars, *, codes=None, values=None, multiplier=None) -> Shr
     if m.size == 1:
         return plain_result(m, s, (ONE_CUSTOMER,))
 
-    if multiplier is None:
-        lam, notes = cross_validated_multiplier("mta-cv", codes, values, m.size)
-    else:
-        lam, notes = float(multiplier), ()
-    result = mta_constant(m, s, multiplier=lam)
-    params = dict(result.params)
-    params["lambda"] = lam
-    return Shrunk(result.estimate, result.weight, result.centre, result.estimate_var, notes + result.notes, params)
+    lam, notes = _multiplier("mta-cv", codes, values, m.size, multiplier)
+    return _tuned(mta_constant(m, s, multiplier=lam), lam, notes)
 
 
 def james_stein_cv(means, mean_vars, *, codes=None, values=None, multiplier=None) -> Shrunk:
@@ -239,11 +233,19 @@ def james_stein_cv(means, mean_vars, *, codes=None, values=None, multiplier=None
     """
     m, s = as_arrays(means, mean_vars)
 
+    lam, notes = _multiplier("james-stein-cv", codes, values, m.size, multiplier)
+    return _tuned(james_stein(m, s, amount_scale=lam), lam, notes)
+
+
+def _multiplier(method, codes, values, size, multiplier):
+    """``(lambda, notes)``: the given multiplier, else the cross-validated one."""
     if multiplier is None:
-        lam, notes = cross_validated_multiplier("james-stein-cv", codes, values, m.size)
-    else:
-        lam, notes = float(multiplier), ()
-    result = james_stein(m, s, amount_scale=lam)
+        return cross_validated_multiplier(method, codes, values, size)
+    return float(multiplier), ()
+
+
+def _tuned(result: Shrunk, lam: float, notes) -> Shrunk:
+    """``result`` with the multiplier in its parameters and the multiplier's notes first."""
     params = dict(result.params)
     params["lambda"] = lam
     return Shrunk(result.estimate, result.weight, result.centre, result.estimate_var, notes + result.notes, params)
