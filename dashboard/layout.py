@@ -26,17 +26,18 @@ def start_page(title: str, intro: str):
     with a note, when no orders are loaded yet.
     """
     page_header(title, intro)
-    if not dataset_line():
+    result = dataset_line()
+    if result is None:
         st.stop()
-    return state.current(), state.current_result()
+    return state.current(), result
 
 
-def dataset_line() -> bool:
-    """Say which orders are in use; False (with a note) when there are none yet."""
+def dataset_line():
+    """Say which orders are in use and return their reading; None (with a note) when there are none yet."""
     result = state.current_result()
     if result is None:
         st.warning("No orders are loaded yet. Open **Load orders** and upload your shop's order export.")
-        return False
+        return None
     dataset = state.current()
     audit = result.audit()
     where = f"the demo shop ({state.DEMO_SHOP})" if dataset.demo else f"**{dataset.name}**"
@@ -49,7 +50,7 @@ def dataset_line() -> bool:
     if st.session_state.get("pending") is not None:
         st.warning(f"Your file {st.session_state['pending'].name} could not be used yet; "
                    "the numbers here are still from the data loaded before. See **Load orders**.")
-    return True
+    return result
 
 
 def show_problem(outcome: state.Outcome, here: str, *, prefix: str = "") -> None:
@@ -77,7 +78,7 @@ class Work:
         self.shown = False
 
     def step(self, label: str, function, *args, **kwargs):
-        if getattr(function, "is_done", None) is not None and function.is_done(*args, **kwargs):
+        if function.is_done(*args, **kwargs):  # a state.cached function
             self.done.append(label)
             return function(*args, **kwargs)
         self.shown = True

@@ -26,7 +26,7 @@ import streamlit as st
 from forecasting import OrderDataError, csv_text, excel_bytes, read_orders
 from forecasting import reading
 from forecasting.io import rules
-from forecasting.exports import HEADINGS, pseudonymise
+from forecasting.exports import HEADINGS, SHORTEST_SALT, pseudonymise
 from forecasting.forecasts import MONEY_COLUMNS, forecasts_for_reading
 from forecasting.outlook import assign_tiers, tier_lists, tier_summary
 from forecasting.shop import Shop
@@ -40,7 +40,7 @@ ROLE_LABELS = words.ROLE_LABELS
 ROLE_HELP = words.ROLE_HELP
 REQUIRED = ("customer", "date", "value")
 # Shortest secret phrase for pseudonyms (the library's rule, forecasting.exports.pseudonymise).
-SHORTEST_PHRASE = 8
+SHORTEST_PHRASE = SHORTEST_SALT
 
 
 @dataclass(frozen=True)
@@ -177,7 +177,6 @@ def cached(*, max_entries: int = 12):
             return value
 
         call.is_done = lambda *args, **kwargs: _call_key(function, args, kwargs) in _DONE
-        call.clear = inner.clear
         return call
     return wrap
 
@@ -474,11 +473,6 @@ def left_out_rows(dataset: Dataset) -> pd.DataFrame:
             codes[filled] = shown_ids(table.loc[filled, [customer]], dataset, column=customer)[customer].to_numpy()
         table = table.assign(**{customer: codes})
     return table
-
-
-def shown_id(customer: str, dataset: Dataset) -> str:
-    """One customer id as the page shows it."""
-    return str(shown_ids(pd.DataFrame({"customer": [customer]}), dataset)["customer"].iloc[0])
 
 
 # ---------------------------------------------------------------------------

@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 
 from forecasting.options import METHOD_LABELS, METHOD_WORDS, VARIANCE_LABELS, VARIANCE_WORDS  # noqa: F401
+from forecasting.seasons import MONTH_NAMES
 
 # How amounts are shown for each currency (which mark in a file means which currency is the reader's rule:
 # forecasting.io.rules.CURRENCY_SYMBOLS).
@@ -381,8 +382,7 @@ FIT_WORDS = {
 # ---------------------------------------------------------------------------
 # The revenue outlook in a shop owner's words (model names only in the details section)
 
-MONTHS = ("January", "February", "March", "April", "May", "June", "July", "August", "September", "October",
-          "November", "December")
+MONTHS = MONTH_NAMES
 
 # One line on each model and number the details section names.
 OUTLOOK_WORDS = {

@@ -35,7 +35,7 @@ import pandas as pd
 from scipy import special
 
 from .errors import OrderDataError
-from .seasons import p_value_words
+from .seasons import MONTH_NAMES, MONTH_DAYS, p_value_words
 
 __all__ = ["ARRIVAL_TEST_LEVEL", "ArrivalFit", "fit_arrivals", "daily_steps"]
 
@@ -47,10 +47,6 @@ _MONTH_DAYS_NEEDED = 365
 _BOTH_DAYS = 548
 _NS_PER_DAY = 86400e9
 _YEAR = 365.25
-_MONTH_NAMES = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
-                "October", "November", "December")
-# Average Gregorian month lengths (February 28.2425), for the day-weighted average of the month pattern.
-_MONTH_LENGTHS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 31.0, 30.0, 31.0])
 
 
 def daily_steps(start, end):
@@ -158,7 +154,7 @@ class ArrivalFit:
             return np.ones(12)
         start = 2 if "trend" in self.terms else 1
         raw = np.exp(np.append(self.coefficients[start:start + 11], 0.0))
-        return raw / (raw @ _MONTH_LENGTHS / _MONTH_LENGTHS.sum())
+        return raw / (raw @ MONTH_DAYS / MONTH_DAYS.sum())
 
     def _rates(self, coefficients, middles, months):
         years = (pd.DatetimeIndex(middles) - self.as_of) / pd.Timedelta(days=_YEAR)
@@ -304,8 +300,8 @@ def fit_arrivals(first_orders, *, as_of, start=None) -> ArrivalFit:
 def _with_words(fit: ArrivalFit) -> ArrivalFit:
     per_month = float(np.exp(fit.coefficients[0])) * _YEAR / 12
     if "month" in fit.terms:
-        per_month = per_month * float(np.exp(np.append(fit.coefficients[-11:], 0.0)) @ _MONTH_LENGTHS
-                                      / _MONTH_LENGTHS.sum())
+        per_month = per_month * float(np.exp(np.append(fit.coefficients[-11:], 0.0)) @ MONTH_DAYS
+                                      / MONTH_DAYS.sum())
     parts = [f"New customers: about {per_month:,.0f} a month at the current rate"]
     if "trend" in fit.terms:
         parts.append(f"{'growing' if fit.growth_per_year >= 0 else 'shrinking'} by "
@@ -315,7 +311,7 @@ def _with_words(fit: ArrivalFit) -> ArrivalFit:
     if "month" in fit.terms:
         index = fit.month_index
         parts.append(f"a month-of-year pattern ({p_value_words(fit.tests['month']['p_value'])}; most in "
-                     f"{_MONTH_NAMES[int(np.argmax(index))]}, fewest in {_MONTH_NAMES[int(np.argmin(index))]})")
+                     f"{MONTH_NAMES[int(np.argmax(index))]}, fewest in {MONTH_NAMES[int(np.argmin(index))]})")
     elif "month" in fit.tests:
         parts.append(f"no clear month-of-year pattern ({p_value_words(fit.tests['month']['p_value'])})")
     else:

@@ -61,7 +61,6 @@ RESULT_COLUMNS = ["method", "variance", "sse", "error_reduction_pct", "ci_low", 
                   "error_reduction_per_customer_pct", "money_bias_pct", "money_bias_se", "coverage_se",
                   "expected_coverage", "expected_coverage_se", "calibrated", "calibration_note", "exact",
                   "in_auto", "caution"]
-_RESULT_COLUMNS = RESULT_COLUMNS
 
 
 # ---------------------------------------------------------------------------
@@ -1003,11 +1002,3 @@ def choose_method(orders, stats=None, *, methods=None, variances=None, fits=None
     from forecasting.selection import choose_method as choose
 
     return choose(orders, stats, methods=methods, variances=variances, fits=fits)
-
-
-def best_of(results, allowed=None) -> dict:
-    """The automatic choice from a results table computed elsewhere, such as on a cluster (see
-    :func:`forecasting.selection.best_of`)."""
-    from forecasting.selection import best_of as best
-
-    return best(results, allowed)

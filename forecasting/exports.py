@@ -391,6 +391,10 @@ def _write_column(sheet, position: int, series: pd.Series, cell_format) -> None:
             write(row, position, str(value))
 
 
+#: The shortest secret phrase (salt) pseudonyms are made with.
+SHORTEST_SALT = 8
+
+
 def pseudonymise(table: pd.DataFrame, *, salt: str, column: str = "customer") -> pd.DataFrame:
     """A copy of ``table`` with ``column`` replaced by salted pseudonyms.
 
@@ -410,8 +414,9 @@ def pseudonymise(table: pd.DataFrame, *, salt: str, column: str = "customer") ->
     >>> bool(out["customer"].str.startswith("cust-").all()), out["customer"].nunique()
     (True, 2)
     """
-    if not isinstance(salt, str) or len(salt) < 8:
-        raise ValueError(f"the pseudonym salt must be a text of at least 8 characters (got {len(str(salt))})")
+    if not isinstance(salt, str) or len(salt) < SHORTEST_SALT:
+        raise ValueError(f"the pseudonym salt must be a text of at least {SHORTEST_SALT} characters "
+                         f"(got {len(str(salt))})")
     key = salt.encode("utf-8")
 
     def pseudonym(value) -> str:

@@ -361,6 +361,13 @@ def _segment_codes(stats):
     return pd.factorize(stats["segment"].astype("string").fillna(""), sort=True)[0]
 
 
+def _own_spread_key(method: str, variance: str) -> str:
+    """The spread model a method's fits are kept under: a method with its own model of spread
+    (Gamma-Gamma) ignores the one it is given, so it is kept once, under ``OWN_SPREAD``."""
+    entry = METHOD_REGISTRY.get(method)
+    return OWN_SPREAD if entry is not None and entry.own_spread else variance
+
+
 class ShopFits:
     """What every forecast of one table of per-customer statistics shares, each computed once.
 
@@ -502,10 +509,12 @@ class ShopFits:
 
     def rule(self, method: str, variance: str) -> "ForecastRule":
         """The method x spread model (never ``"auto"``) fitted on every customer (:class:`ForecastRule`)."""
+        variance = _own_spread_key(method, variance)
         return self.cached(("rule", method, variance), lambda: _fit_rule(self, method, variance))
 
     def parts(self, method: str, variance: str, *, level=0.90, next_level=0.80) -> "ForecastParts":
         """The forecast of a method x spread model (never ``"auto"``), kept for each level."""
+        variance = _own_spread_key(method, variance)
         return self.cached(("parts", method, variance, float(level), float(next_level)),
                            lambda: _forecast_parts(self, method, variance, level=level, next_level=next_level))
 

@@ -420,11 +420,6 @@ class _OrderBook:
                 "repeat_se": repeat_se, "first_values": first, "repeat_values": later}
 
 
-def _new_customer_values(orders: pd.DataFrame) -> dict:
-    """What a new customer's orders are worth, from the shop's customers so far (:meth:`_OrderBook.new_customer_values`)."""
-    return _OrderBook(orders).new_customer_values(len(orders))
-
-
 # --------------------------------------------------------------------------- #
 # Grouping customers
 # --------------------------------------------------------------------------- #

@@ -79,8 +79,9 @@ MONTH_DAYS = np.array([31.0, 28.2425, 31.0, 30.0, 31.0, 30.0, 31.0, 31.0, 30.0, 
 #: Columns of RepeatOrderModel.season_table().
 SEASON_COLUMNS = ["month", "repeat_orders", "index", "index_low", "index_high"]
 
-_MONTH_NAMES = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
-                "October", "November", "December")
+#: Month names, January first.
+MONTH_NAMES = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
+               "October", "November", "December")
 # Bounds of the fit: log-parameters as in frequency.py; log month weights within e^-6..e^6.
 _LOG_BOUND = 18.0
 _INDEX_BOUND = 6.0
@@ -411,7 +412,7 @@ def _fit_with_index(likelihood: _SeasonalLikelihood, flat: FrequencyFit, start=N
     scaled[4:] *= _LOG_BOUND / _INDEX_BOUND
     scaled_gradient = gradient.copy()
     scaled_gradient[4:] *= _INDEX_BOUND / _LOG_BOUND
-    names = ("r", "alpha", "a", "b") + tuple(f"the {name} weight" for name in _MONTH_NAMES[:11])
+    names = ("r", "alpha", "a", "b") + tuple(f"the {name} weight" for name in MONTH_NAMES[:11])
     scale_matrix = np.ones(15)
     scale_matrix[4:] = _INDEX_BOUND / _LOG_BOUND
     verdict = judge_optimum(scaled, scaled_gradient, hessian * np.outer(scale_matrix, scale_matrix),
@@ -713,8 +714,8 @@ def fit_repeat_orders(orders: pd.DataFrame, *, as_of=None, model: str = "auto", 
     quietest = int(np.argmin(weights))
     words = (f"Adjusted for the time of year: repeat orders follow a month-of-year pattern (likelihood-ratio "
              f"test {p_value_words(p_value)}{'' if kept else ', kept because it was asked for'}); "
-             f"busiest {_MONTH_NAMES[busiest]} ({weights[busiest]:.2f} x an average month), quietest "
-             f"{_MONTH_NAMES[quietest]} ({weights[quietest]:.2f} x).")
+             f"busiest {MONTH_NAMES[busiest]} ({weights[busiest]:.2f} x an average month), quietest "
+             f"{MONTH_NAMES[quietest]} ({weights[quietest]:.2f} x).")
     to_last, known = likelihood.histories(weights)
     clock_history = pd.DataFrame({"repeat_orders": history["repeat_orders"].to_numpy(),
                                   "days_to_last_order": to_last, "days_known": known},

@@ -175,7 +175,7 @@ def choose_from_scores(scored, results, *, restricted=False, seed=0) -> dict:
         allowed = list(zip(results["method"], results["variance"]))
     elif "in_auto" not in results.columns:
         allowed = [(m, v) for m, v in zip(results["method"], results["variance"])
-                   if m in AUTO_METHODS and (v in AUTO_VARIANCES or v == "gamma-model")]
+                   if m in AUTO_METHODS and (v in AUTO_VARIANCES or v == OWN_SPREAD)]
     chosen = best_of(results, allowed)
     chosen["spread_checked"] = {str(spread): bool(part["calibrated"].any())
                                 for spread, part in results.groupby("variance", sort=False)}

@@ -241,7 +241,7 @@ class Shop:
 
             table = self.forecasts(method, self._outlook_variance(variance))
             return project_revenue(self.orders, horizon=horizon, by=by, forecasts=table, method=method,
-                                   variance=self._outlook_variance(variance), **options)
+                                   variance=self._outlook_variance(variance), stats=self.statistics, **options)
 
         return self._once(("outlook", horizon, by, method, variance, _key(options)), run)
 

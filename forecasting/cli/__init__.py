@@ -160,7 +160,7 @@ def shop_from_args(args: argparse.Namespace):
     scale engine (which never holds every order in this process)."""
     from ..shop import Shop
 
-    if getattr(args, "engine", "pandas") == "pandas":
+    if args.engine == "pandas":
         return Shop.from_read(load_from_args(args))
     stats, account, _ = load_statistics_from_args(args)
     return Shop(statistics=stats, account=account)

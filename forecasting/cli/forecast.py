@@ -9,7 +9,7 @@ from __future__ import annotations
 from . import (EXIT_OK, Progress, column_options, add_column_options, add_engine_options, add_method_options,
                json_number, print_json, shop_from_args)
 from ..errors import OrderDataError
-from ..exports import pseudonymise, write_csv
+from ..exports import SHORTEST_SALT, pseudonymise, write_csv
 from ..forecasts import forecasts_for_reading
 
 
@@ -53,8 +53,8 @@ def run(args) -> int:
     progress.step(f"writing {args.out}")
     loaded_notes = account.get("notes", [])
     if args.pseudonym_salt is not None:
-        if len(args.pseudonym_salt) < 8:
-            raise OrderDataError("--pseudonym-salt must be at least 8 characters",
+        if len(args.pseudonym_salt) < SHORTEST_SALT:
+            raise OrderDataError(f"--pseudonym-salt must be at least {SHORTEST_SALT} characters",
                                  value=f"{len(args.pseudonym_salt)} characters",
                                  fix="Choose a longer secret phrase and keep it")
         table = pseudonymise(table, salt=args.pseudonym_salt)

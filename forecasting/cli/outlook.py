@@ -12,7 +12,7 @@ import math
 from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
 from ..errors import OrderDataError
 from ..exports import rounded_for_reading, write_csv
-from ..options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
+from ..options import DEFAULT_SEASONS
 from ..outlook import (
     COHORT_PERIODS,
     DEFAULT_CUTOFFS,
@@ -54,8 +54,6 @@ def add_arguments(parser) -> None:
                         help="how often customers come back: auto (default: the model your orders support "
                              "better), bg-nbd, or mbg-nbd (customers may stop right after the first order)")
     add_method_options(parser)
-    # One set of defaults for the command line and the dashboard (forecasting.options).
-    parser.set_defaults(method=DEFAULT_METHOD, variance=DEFAULT_VARIANCE)
     parser.add_argument("--level", default="0.9", help="range level (default 0.9)")
     parser.add_argument("--draws", default=str(DEFAULT_DRAWS),
                         help=f"simulation draws for the ranges (default {DEFAULT_DRAWS})")

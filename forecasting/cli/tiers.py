@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 
 from . import EXIT_OK, add_column_options, add_method_options, load_from_args, print_json
-from ..options import DEFAULT_METHOD, DEFAULT_SEASONS, DEFAULT_VARIANCE
+from ..options import DEFAULT_SEASONS
 from ..outlook import RANK_BY, SEASONS, _check_horizon, _check_tier_options, _records, export_tiers, tier_summary
 from ..shop import Shop
 
@@ -33,8 +33,6 @@ def add_arguments(parser) -> None:
                         help=f"month-of-year clock for repeat orders: auto (default {DEFAULT_SEASONS!r}: when a full "
                              "year of orders exists and a test finds the pattern), month or none")
     add_method_options(parser)
-    # One set of defaults for the command line and the dashboard (forecasting.options).
-    parser.set_defaults(method=DEFAULT_METHOD, variance=DEFAULT_VARIANCE)
     parser.add_argument("--out", required=True, metavar="CSV",
                         help="CSV list of all customers; each tier also gets <name>-<tier>.csv beside it")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")

@@ -570,8 +570,9 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
         kept[where] = False
         positions = np.flatnonzero(kept)
         blank = [i for i, (_, t) in enumerate(numbered) if not t.replace(delimiter, "").strip()]
+        blank_at = set(blank)
         set_aside = [(first_row + int(where[i]), "malformed_row", t) for i, (_, t) in enumerate(numbered)
-                     if i not in set(blank)]
+                     if i not in blank_at]
         if blank:
             # A blank line is a row of empty cells, as the careful reader keeps it (the blank-row rule).
             empty = pa.table({c: pa.array(np.full(len(blank), "", dtype=object), type=pa.string())
