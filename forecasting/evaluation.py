@@ -40,8 +40,7 @@ from forecasting.customers import customer_statistics
 from forecasting.errors import OrderDataError
 from forecasting.forecasts import ShopFits, forecast_left_out, shop_fits
 from forecasting.holdout import held_out_orders, thread_pool
-from forecasting.options import (AUTO_TOLERANCE, CHECK_CUSTOMERS, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of,
-                                 checked_customers)
+from forecasting.options import AUTO_TOLERANCE, CHECK_CUSTOMERS, METHODS, OWN_SPREAD, SPREAD_MODELS, caution_of
 
 #: Methods whose leave-one-out refits everything exactly, and the spread models (all exact).
 EXACT_METHODS = tuple(name for name, m in METHODS.items() if m.exact_left_out)
@@ -176,11 +175,13 @@ def left_out_scores(fits: ShopFits, pairs, *, level=0.90, next_level=0.80, limit
 
     The held-out bookkeeping (:meth:`forecasting.forecasts.ShopFits.held`) and each pair's sums
     are kept with the shared fits, so the automatic choice, the evaluation and the forecasts of
-    one shop never compute a pair twice. The orders of at most ``limit`` customers are scored
-    (:data:`forecasting.options.CHECK_CUSTOMERS`; None: all), each forecast refitted on all the
-    shop's other orders.
+    one shop never compute a pair twice. The orders held out are those of at most ``limit``
+    repeat customers: of the whole shop, or of the sample shop the check runs on
+    (:meth:`forecasting.forecasts.ShopFits.checked`), each forecast refitted on all the other
+    orders of that shop.
     """
-    held = fits.held(limit)
+    fits = fits.checked(limit)
+    held = fits.held()
 
     def base():
         first, codes = _scored_customers(held.customer)
@@ -765,7 +766,7 @@ def backtest_split(fits: ShopFits, cutoff):
     if "order_date" not in orders.columns or orders["order_date"].isna().all():
         return cutoff, {"note": "no order dates, so no backtest"}
     if cutoff is None:
-        cutoff = fits.cached("default cutoff", lambda: default_cutoff(orders["order_date"]))
+        cutoff = _default_cutoff(fits)
     else:
         cutoff = _cutoff_of(orders, cutoff)
 
@@ -798,15 +799,20 @@ def backtest_split(fits: ShopFits, cutoff):
     return cutoff, fits.cached(("backtest split", cutoff), split)
 
 
+def _default_cutoff(fits: ShopFits):
+    return fits.cached("default cutoff", lambda: default_cutoff(fits.orders["order_date"]))
+
+
 def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS):
-    """Fit on orders before the cut-off; score each customer's first order after it (of at most
-    ``limit`` customers, :func:`forecasting.options.checked_customers`)."""
-    cutoff, split = backtest_split(fits, cutoff)
+    """Fit on orders before the cut-off; score each customer's first order after it (on the shop
+    the shop's own check runs on, :meth:`forecasting.forecasts.ShopFits.checked`)."""
+    checked = fits.checked(limit)
+    if cutoff is None and checked is not fits and "order_date" in fits.orders.columns:
+        cutoff = _default_cutoff(fits)  # the whole shop's, whichever customers are checked
+    cutoff, split = backtest_split(checked, cutoff)
     if "note" in split:
         return None, cutoff, [split["note"]]
     before, position, x = split["fits"], split["position"], split["value"]
-    scored = checked_customers(np.ones(position.size, dtype=bool), limit)
-    position, x = position[scored], x[scored]
     stats_before = before.stats
     plain = before.column("mean")[position]
     notes, forecasts, kept = [], [], []
@@ -903,9 +909,9 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         what this evaluation computes is kept for the next (see :class:`forecasting.shop.Shop`).
     check_customers : int or None
         Score the orders of at most this many customers, in the leave-one-out and in the
-        backtest, drawn at random (seeded) when there are more
-        (:data:`forecasting.options.CHECK_CUSTOMERS`); None scores every customer. Every
-        forecast is still refitted on all the shop's other orders.
+        backtest: a shop with more repeat customers is checked on a sample shop of that many
+        (:data:`forecasting.options.CHECK_CUSTOMERS`, :meth:`forecasting.forecasts.ShopFits.checked`);
+        None checks the whole shop.
 
     Returns
     -------
@@ -957,9 +963,10 @@ def evaluate_methods(orders, *, methods=None, variances=None, cutoff=None, boots
         notes.append("no customer has two or more orders, so there is nothing to hold out")
     repeat = int(np.count_nonzero(stats["orders"].to_numpy() >= 2)) if len(stats) else 0
     if scored is not None and len(scored.count) < repeat:
-        notes.append(f"the orders of {len(scored.count):,} of the {repeat:,} customers with two or more orders, "
-                     "drawn at random, were held out (each forecast refitted on all other orders); more would "
-                     "move the figures by less than their stated uncertainty")
+        notes.append(f"the check ran on {len(scored.count):,} of the {repeat:,} customers with two or more orders, "
+                     "drawn at random with the same share of one-time customers, as a shop of its own (each "
+                     "forecast refitted on all its other orders); a larger check would move the figures by less "
+                     "than their stated uncertainty")
     if scored is None:
         scored = customer_scores(leave_one_out(orders, stats, pairs, level=level, next_level=next_level))
     loo = summarise(scored, resamples=bootstrap, seed=seed)

@@ -42,7 +42,7 @@ from forecasting.estimators.base import (Between, between_left_out, combine, err
                                         rows_of)
 from forecasting.exports import rounded_for_reading
 from forecasting.options import DEFAULT_METHOD, DEFAULT_VARIANCE, OWN_SPREAD, caution_of, load
-from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, checked_customers, low_confidence
+from forecasting.options import CHECK_CUSTOMERS, DEFAULT_CHOICE, check_sample, low_confidence
 from forecasting.options import METHODS as METHOD_REGISTRY
 from forecasting.shrinkage import METHODS, check_method, shrink
 from forecasting.variance import (
@@ -492,20 +492,30 @@ class ShopFits:
         return self.cached(key, lambda: tail_report(self.orders["order_value"].to_numpy(dtype=np.float64),
                                                     checked=checked))
 
-    def held(self, limit=CHECK_CUSTOMERS):
-        """Every order of every repeat customer held out in turn (:func:`forecasting.holdout.held_out_orders`),
-        of at most ``limit`` customers (:func:`forecasting.options.checked_customers`; None: all)."""
+    def checked(self, limit=CHECK_CUSTOMERS) -> "ShopFits":
+        """The shared fits of the shop the shop's own check runs on: these, or those of a sample
+        shop of at most ``limit`` repeat customers (:func:`forecasting.options.check_sample`;
+        None: always these). The sample's statistics are the rows of its customers, unchanged."""
+        def make():
+            kept = check_sample(self.column("orders"), limit) if self.orders is not None else None
+            if kept is None:
+                return self
+            codes = self.codes()
+            kept_orders = kept[codes]
+            position = np.cumsum(kept) - 1
+            return ShopFits(self.stats.iloc[np.flatnonzero(kept)], self.orders[kept_orders],
+                            codes=position[codes[kept_orders]])
+
+        return self.cached(("checked shop", limit), make)
+
+    def held(self):
+        """Every order of every repeat customer held out in turn (:func:`forecasting.holdout.held_out_orders`)."""
         from forecasting.holdout import held_out_orders
 
         if self.orders is None:
             raise OrderDataError("the leave-one-out needs the order-level table", option="method",
                                  fix="Give the cleaned orders, or choose a method")
-
-        def make():
-            customers = checked_customers(self.column("orders") >= 2, limit)
-            return held_out_orders(self.orders, self.stats, codes=self.codes(), customers=customers)
-
-        return self.cached(("held", limit), make)
+        return self.cached("held", lambda: held_out_orders(self.orders, self.stats, codes=self.codes()))
 
     def rule(self, method: str, variance: str) -> "ForecastRule":
         """The method x spread model (never ``"auto"``) fitted on every customer (:class:`ForecastRule`)."""

@@ -200,37 +200,70 @@ class TestSharedFits:
         assert (again["expected_next_order"] > 0).all()
 
 
-class TestCheckedCustomers:
-    """The shop's own check scores the orders of at most CHECK_CUSTOMERS customers, drawn at random."""
+class TestCheckOnASampleShop:
+    """A shop with more than CHECK_CUSTOMERS repeat customers is checked on a sample shop of its own."""
 
-    def test_a_sample_scores_exactly_the_forecasts_of_the_whole(self):
-        # Sampling chooses which held-out orders are scored, nothing else: each sampled customer's
-        # sums are those of the check over every customer.
+    def test_the_sample_is_checked_exactly_as_a_shop_of_its_own(self):
+        # The slow obvious twin: cut the sample's orders out, compute their statistics afresh, and
+        # check that shop whole.
+        from forecasting.options import check_sample
+
         orders = spend_orders(customers=400, seed=13)
-        fits = ShopFits(customer_statistics(orders), orders)
+        stats = customer_statistics(orders)
+        fits = ShopFits(stats, orders)
         pairs = [("mta", "log"), ("empirical-bayes", "classic"), ("gamma-gamma", "gamma-model")]
-        every = evaluation.left_out_scores(fits, pairs, limit=None)
         some = evaluation.left_out_scores(fits, pairs, limit=60)
-        assert len(some.count) == 60 < len(every.count)
-        where = np.searchsorted(every.customer, some.customer)
-        np.testing.assert_array_equal(every.customer[where], some.customer)
+        kept = check_sample(stats["orders"].to_numpy(), 60)
+        alone = orders[orders["customer"].isin(stats.index[kept])]
+        twin = evaluation.left_out_scores(ShopFits(customer_statistics(alone), alone), pairs, limit=None)
+        assert len(some.count) == len(twin.count) == 60
+        np.testing.assert_array_equal(some.count, twin.count)
         for i in range(len(pairs)):
-            np.testing.assert_allclose(some.sq[i], every.sq[i][where], rtol=1e-12)
-            np.testing.assert_allclose(some.inside[i], every.inside[i][where], rtol=1e-12)
+            np.testing.assert_allclose(some.sq[i], twin.sq[i], rtol=1e-9)
+            np.testing.assert_allclose(some.inside[i], twin.inside[i], rtol=1e-12)
+
+    def test_the_sample_keeps_the_shops_mix_of_one_time_customers(self):
+        from forecasting.options import check_sample
+
+        orders = np.array([1] * 3000 + [2] * 1500 + [7] * 500)
+        kept = check_sample(orders, 400)
+        assert int(kept[orders >= 2].sum()) == 400
+        assert int(kept[orders == 1].sum()) == 600  # 3,000 one-time for 2,000 repeat: 1.5 per repeat
+        # the repeat customers drawn at random: both kinds of repeat customer are there
+        assert 0 < int(kept[orders == 7].sum()) < 400
+        np.testing.assert_array_equal(check_sample(orders, 400), kept)  # seeded
+        assert check_sample(orders, 2000) is None and check_sample(orders, None) is None
 
     def test_the_draw_is_seeded_and_stated(self):
-        from forecasting.options import checked_customers
-
         orders = spend_orders(customers=400, seed=14)
         found = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=50)
         again = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=50)
         pd.testing.assert_frame_equal(found.leave_one_out, again.leave_one_out)
         assert found.customers_checked == 50 and found.backtest_scored <= 50
+        assert found.customers == 400  # the whole shop is still counted
         assert any("drawn at random" in note for note in found.notes)
         whole = evaluate_methods(orders, methods="mta", variances="log", bootstrap=0, check_customers=None)
         assert whole.customers_checked == int((customer_statistics(orders)["orders"] >= 2).sum())
         assert not any("drawn at random" in note for note in whole.notes)
-        eligible = np.array([True, False] * 10)
-        assert checked_customers(eligible, None) is eligible
-        chosen = checked_customers(eligible, 4)
-        assert chosen.sum() == 4 and not chosen[~eligible].any()
+        # the backtest keeps the whole shop's cut-off
+        assert found.cutoff == whole.cutoff
+
+    @pytest.mark.parametrize("seed", [21, 22, 23])
+    def test_a_sample_measures_what_the_whole_check_measures(self, seed):
+        # Against the whole check on simulated shops: a quarter of the repeat customers must give
+        # each pair's error cut within its own 95% bootstrap interval (widened by the whole check's
+        # interval, which has its own noise), and the money bias within three standard errors.
+        orders = spend_orders(customers=2400, seed=seed)
+        pairs = dict(methods="plain,mta,empirical-bayes", variances="log,classic", bootstrap=200)
+        repeat = int((customer_statistics(orders)["orders"] >= 2).sum())
+        whole = evaluate_methods(orders, check_customers=None, **pairs).leave_one_out.set_index(["method", "variance"])
+        some = evaluate_methods(orders, check_customers=repeat // 4, **pairs).leave_one_out.set_index(
+            ["method", "variance"])
+        for pair in whole.index:
+            if pair[0] == "plain":
+                continue
+            a, b = whole.loc[pair], some.loc[pair]
+            half = (b["ci_high"] - b["ci_low"]) / 2 + (a["ci_high"] - a["ci_low"]) / 2
+            assert abs(b["error_reduction_pct"] - a["error_reduction_pct"]) <= half, pair
+            spread = 3 * np.hypot(a["money_bias_se"], b["money_bias_se"])
+            assert abs(b["money_bias_pct"] - a["money_bias_pct"]) <= spread, pair
