@@ -49,6 +49,8 @@ import pandas as pd
 from scipy import special
 
 from .errors import OrderDataError
+from .newton import log_scale as _log_scale
+from .newton import minimise as _minimise
 
 __all__ = [
     "FREQUENCY_MODELS",
@@ -413,13 +415,6 @@ class _Terms:
         cross_t = tuple(direct_t[j] - mix * diffs[j] * a_age for j in range(4))
         cross_l = tuple(direct_l[j] + mix * diffs[j] * s_last for j in range(4))
         return d_tt, d_tl, d_ll, cross_t, cross_l
-
-
-def _log_scale(params, gradient, hessian):
-    """Gradient and Hessian in the log-parameters u = log p: g_u = p g_p, H_u = P H_p P + diag(p g_p)."""
-    p = np.asarray(params, dtype=np.float64)
-    g_u = p * gradient
-    return g_u, hessian * np.outer(p, p) + np.diag(g_u)
 
 
 def _log_terms(params, x, t_x, age, model="bg-nbd"):
@@ -1353,132 +1348,6 @@ class FrequencyFit:
             "chance_gone_after_first_order": self.a / (self.a + self.b) if self.model == "mbg-nbd" else 0.0,
             "notes": " ".join(self.notes),
         }
-
-
-@dataclass(frozen=True)
-class _Descent:
-    """Where a minimisation ended: the point, the value, gradient and Hessian there, and how it went."""
-
-    point: np.ndarray
-    value: float
-    gradient: np.ndarray
-    hessian: np.ndarray
-    steps: int
-    message: str
-
-
-# Largest move of any (log-)parameter in one step of the minimisation.
-_MAX_MOVE = 2.0
-# A full Newton step smaller than this in every coordinate ends the minimisation (the next would be
-# below rounding: Newton steps shrink quadratically near the optimum).
-_SETTLED = 1e-11
-# A slope this small relative to the value (a mean over customers of terms of order one) is rounding
-# noise in the sums: the minimisation ends there.
-_ROUNDING_SLOPE = 1e-13
-
-
-def _minimise(objective, start, lower, upper, *, max_steps=200) -> _Descent:
-    """Minimise a smooth function inside a box by Newton steps with its exact Hessian.
-
-    Parameters
-    ----------
-    objective : callable
-        ``objective(point) -> (value, derivatives)`` with ``derivatives() -> (gradient,
-        hessian)`` (worked out only for points the minimisation moves to); ``derivatives`` is
-        None at a point outside the function's domain (a non-finite value).
-    start : array of float
-        Starting point (moved into the box).
-    lower, upper : array of float
-        The box.
-
-    Returns
-    -------
-    _Descent
-
-    Notes
-    -----
-    Each step solves H d = -g on the coordinates not held at a bound (a
-    coordinate at a bound whose slope points out of the box stays there),
-    with the Hessian's eigenvalues replaced by their absolute values (at
-    least a millionth of the largest) where it is not positive definite, so
-    every step goes downhill; the step is capped at ``_MAX_MOVE`` per
-    coordinate and halved until the value falls by a share of what the slope
-    promises (Armijo's rule). Near the optimum, where the Hessian is positive
-    definite and the step small, the full Newton step is taken and converges
-    quadratically; the minimisation ends when such a step moves no
-    coordinate by more than ``_SETTLED`` or the slope is down to rounding
-    noise (``_ROUNDING_SLOPE``), so fits started from different points agree
-    to rounding. Whether the end point is an optimum is judged
-    by the caller (:func:`judge_optimum`), not by this function's message.
-    Moré and Sorensen (1984), "Newton's method", in Studies in Numerical
-    Analysis, MAA, describe the modified Newton step (from memory).
-    """
-    lower = np.asarray(lower, dtype=np.float64)
-    upper = np.asarray(upper, dtype=np.float64)
-    point = np.clip(np.asarray(start, dtype=np.float64), lower, upper)
-    value, derivatives = objective(point)
-    if derivatives is None:
-        size = len(point)
-        return _Descent(point, float(value), np.full(size, np.nan), np.full((size, size), np.nan), 0,
-                        "the starting point is outside the model's domain")
-    gradient, hessian = derivatives()
-    message = "the step limit was reached"
-    steps = 0
-    for steps in range(1, max_steps + 1):
-        held = ((point <= lower) & (gradient > 0)) | ((point >= upper) & (gradient < 0))
-        free = ~held
-        if not np.any(free):
-            message = "every parameter is held at a bound"
-            break
-        sub = hessian[np.ix_(free, free)]
-        sub_gradient = gradient[free]
-        if not (np.all(np.isfinite(sub)) and np.all(np.isfinite(sub_gradient))):
-            message = "the slope or the curvature is not finite"
-            break
-        if np.max(np.abs(sub_gradient)) <= _ROUNDING_SLOPE * max(1.0, abs(value)):
-            # The slope left is rounding noise: where the value is nearly flat in one direction, a
-            # step on it would only wander.
-            message = "settled"
-            break
-        eigenvalues, vectors = np.linalg.eigh(0.5 * (sub + sub.T))
-        largest = float(np.max(np.abs(eigenvalues))) if eigenvalues.size else 0.0
-        floor = max(1e-6 * largest, 1e-300)
-        newton = bool(np.all(eigenvalues > floor))
-        direction = np.zeros_like(point)
-        direction[free] = -vectors @ ((vectors.T @ sub_gradient) / np.maximum(np.abs(eigenvalues), floor))
-        move = float(np.max(np.abs(direction)))
-        if move > _MAX_MOVE:
-            direction *= _MAX_MOVE / move
-            newton = False
-        slope = float(gradient @ direction)
-        if newton and move < 1e-3:
-            # Close to the optimum: the full Newton step (its value change is at the level of rounding).
-            trial = np.clip(point + direction, lower, upper)
-            t_value, t_derivatives = objective(trial)
-            if t_derivatives is None or t_value > value + 1e-12 * max(1.0, abs(value)):
-                message = "the full step close to the optimum did not lower the value"
-                break
-            point, value = trial, t_value
-            gradient, hessian = t_derivatives()
-            if move < _SETTLED:
-                message = "settled"
-                break
-            continue
-        scale = 1.0
-        accepted = False
-        for _ in range(60):
-            trial = np.clip(point + scale * direction, lower, upper)
-            t_value, t_derivatives = objective(trial)
-            if t_derivatives is not None and t_value <= value + 1e-4 * scale * slope:
-                accepted = True
-                break
-            scale *= 0.5
-        if not accepted:
-            message = "no step lowered the value"
-            break
-        point, value = trial, t_value
-        gradient, hessian = t_derivatives()
-    return _Descent(point, float(value), gradient, hessian, steps, message)
 
 
 @dataclass(frozen=True)

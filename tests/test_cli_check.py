@@ -132,3 +132,17 @@ class TestStartUp:
         done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=120)
         assert done.returncode == 0, done.stderr
         assert done.stdout.strip() == "[]"
+
+    def test_the_automatic_choice_loads_neither_scipy_optimize_nor_scipy_stats(self, tmp_path):
+        # The whole forecast command on the demo shop, the method chosen by the shop's own check
+        # (Gamma-Gamma among the candidates): its fits take Newton steps of forecasting.newton.
+        code = ("import sys, runpy; sys.argv = ['forecasting', 'forecast', 'demo_data/plant_shop_orders.csv', "
+                f"'--out', {str(tmp_path / 'out.csv')!r}]\n"
+                "try:\n    runpy.run_module('forecasting', run_name='__main__')\nexcept SystemExit:\n    pass\n"
+                "print(sorted({'.'.join(m.split('.')[:2]) for m in sys.modules if m.split('.')[0] == 'scipy'}), "
+                "file=sys.stderr)")
+        done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=300)
+        assert (tmp_path / "out.csv").exists(), done.stderr
+        loaded = done.stderr.strip().splitlines()[-1]
+        assert "scipy.special" in loaded  # the candidates' fits do use it
+        assert "scipy.optimize" not in loaded and "scipy.stats" not in loaded

@@ -527,6 +527,36 @@ class TestGammaGammaSpend:
         # the fitted point is the maximum of that independent likelihood
         assert np.max(np.abs(optimize.approx_fprime(theta, negloglik, 1e-7))) < 1e-2 * len(m)
 
+    def test_newton_fit_matches_a_general_optimiser(self):
+        # Reference: scipy.optimize.minimize (Nelder-Mead, no derivatives) on the likelihood written
+        # out directly; and the fit's analytic Hessian against scipy's finite differences of its gradient.
+        from forecasting.estimators.gamma_gamma import _gamma_gamma_objective
+
+        m, n = self.simulate(23, 3000)
+        p, q, gam, converged = sh.fit_gamma_gamma(m, n)
+        assert converged
+
+        def negloglik(theta):
+            pp, qq, gg = np.exp(theta)
+            return -np.mean(special.gammaln(pp * n + qq) - special.gammaln(pp * n) - special.gammaln(qq)
+                            + qq * np.log(gg) + (pp * n - 1) * np.log(m) + pp * n * np.log(n)
+                            - (pp * n + qq) * np.log(gg + n * m))
+        reference = optimize.minimize(negloglik, np.log([2.0, 3.0, 10.0]), method="Nelder-Mead",
+                                      options={"xatol": 1e-9, "fatol": 1e-13, "maxiter": 20000, "maxfev": 20000})
+        np.testing.assert_allclose(np.log([p, q, gam]), reference.x, atol=2e-5)
+        assert negloglik(np.log([p, q, gam])) <= reference.fun + 1e-12
+        unit = m.mean()
+        tally = np.bincount(n)
+        objective = _gamma_gamma_objective(np.nonzero(tally)[0].astype(float), tally[tally > 0].astype(float),
+                                           n.astype(float), m / unit, float(np.dot(n, np.log(n * m / unit))),
+                                           float(np.sum(np.log(m / unit))))
+        point = np.log([p * 1.1, q * 0.9, gam / unit])
+        gradient, hessian = objective(point)[1]()
+        numeric = optimize.approx_fprime(point, lambda t: objective(t)[1]()[0], 1e-7)
+        np.testing.assert_allclose(hessian, numeric, rtol=1e-5, atol=1e-7)
+        np.testing.assert_allclose(gradient, optimize.approx_fprime(point, lambda t: objective(t)[0], 1e-8),
+                                   rtol=1e-5, atol=1e-7)
+
     def test_conditional_expectation_equals_numerical_integration(self):
         # posterior mean of p / nu for one customer by scipy.integrate.quad over nu, with the
         # likelihood of the customer's individual orders written with scipy.stats.gamma

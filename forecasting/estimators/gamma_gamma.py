@@ -10,27 +10,53 @@ from __future__ import annotations
 import numpy as np
 
 from forecasting.estimators.base import Shrunk, as_arrays, combine, plain_result
+from forecasting.newton import log_scale, minimise
 
 
-def _gamma_gamma_negloglik(theta, counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
-    """Negative log-likelihood of the customers' averages and its gradient in log-parameters."""
-    from scipy import special  # slow to import: only the gamma-gamma fit needs it
-    p, q, gam = np.exp(theta)
+def _gamma_gamma_objective(counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
+    """The negative mean log-likelihood of the customers' averages in log-parameters, with its
+    gradient and Hessian on request, as :func:`forecasting.newton.minimise` wants it."""
+    from scipy import special  # slow to import: only the gamma-gamma model needs it
+
     T = float(m.size)
-    u = gam + n * m
-    log_u = np.log(u)
-    inv_u = 1.0 / u
-    pn = p * counts_n
-    ll = (np.sum(counts * (special.gammaln(pn + q) - special.gammaln(pn)))
-          - T * special.gammaln(q) + T * q * np.log(gam)
-          + p * sum_n_log_nm - sum_log_m
-          - p * np.dot(n, log_u) - q * np.sum(log_u))
-    d_p = (np.sum(counts * counts_n * (special.digamma(pn + q) - special.digamma(pn)))
-           + sum_n_log_nm - np.dot(n, log_u))
-    d_q = np.sum(counts * special.digamma(pn + q)) - T * special.digamma(q) + T * np.log(gam) - np.sum(log_u)
-    d_g = T * q / gam - p * np.dot(n, inv_u) - q * np.sum(inv_u)
-    grad = np.array([d_p * p, d_q * q, d_g * gam])
-    return -ll / T, -grad / T
+
+    def objective(theta):
+        p, q, gam = np.exp(theta)
+        u = gam + n * m
+        log_u = np.log(u)
+        pn = p * counts_n
+        ll = (np.sum(counts * (special.gammaln(pn + q) - special.gammaln(pn)))
+              - T * special.gammaln(q) + T * q * np.log(gam)
+              + p * sum_n_log_nm - sum_log_m
+              - p * np.dot(n, log_u) - q * np.sum(log_u))
+        if not np.isfinite(ll):
+            return np.inf, None
+
+        def derivatives():
+            inv_u = 1.0 / u
+            shape = p * n + q  # each customer's p n + q
+            psi_sum, psi_n = special.digamma(pn + q), special.digamma(pn)
+            tri_sum, tri_n = special.polygamma(1, pn + q), special.polygamma(1, pn)
+            gradient = np.array([
+                np.sum(counts * counts_n * (psi_sum - psi_n)) + sum_n_log_nm - np.dot(n, log_u),
+                np.sum(counts * psi_sum) - T * special.digamma(q) + T * np.log(gam) - np.sum(log_u),
+                T * q / gam - np.dot(shape, inv_u)])
+            h_pg = -np.dot(n, inv_u)
+            h_qg = T / gam - np.sum(inv_u)
+            hessian = np.array([
+                [np.sum(counts * counts_n ** 2 * (tri_sum - tri_n)), np.sum(counts * counts_n * tri_sum), h_pg],
+                [np.sum(counts * counts_n * tri_sum), np.sum(counts * tri_sum) - T * special.polygamma(1, q), h_qg],
+                [h_pg, h_qg, -T * q / gam ** 2 + np.dot(shape, inv_u ** 2)]])
+            g_theta, h_theta = log_scale((p, q, gam), gradient, hessian)
+            return -g_theta / T, -h_theta / T
+
+        return -ll / T, derivatives
+
+    return objective
+
+
+#: Bound of the log-parameters of the fit (p, q and gamma between e^-15 and e^15).
+_LOG_BOUND = 15.0
 
 
 def fit_gamma_gamma(means, orders):
@@ -52,10 +78,12 @@ def fit_gamma_gamma(means, orders):
     q, rate gamma). The average of n_t orders is Gamma(p n_t, n_t nu_t), so the
     marginal density of m_t is
     Gamma(p n + q) / (Gamma(p n) Gamma(q)) gamma^q m^(p n - 1) n^(p n) / (gamma + n m)^(p n + q).
-    Maximised over log p, log q, log gamma with L-BFGS-B and the analytic
-    gradient; values are divided by their mean first (gamma scales with the
-    money unit, p and q do not), and the gammaln terms are summed once per
-    distinct order count.
+    Maximised over log p, log q, log gamma by Newton steps with the analytic
+    gradient and Hessian (:func:`forecasting.newton.minimise`); values are divided
+    by their mean first (gamma scales with the money unit, p and q do not), and
+    the gammaln terms are summed once per distinct order count. The fit is
+    judged converged where the slope is below 1e-5 and no parameter sits at its
+    bound.
     """
     m = np.asarray(means, dtype=np.float64)
     n = np.asarray(orders, dtype=np.float64)
@@ -69,17 +97,13 @@ def fit_gamma_gamma(means, orders):
     # Start at p = 2, q = 3 and the gamma that makes the population mean
     # p gamma / (q - 1) equal the mean of the (rescaled) averages, 1.
     start = np.log([2.0, 3.0, 1.0])
-    args = (counts_n, counts, n, x, sum_n_log_nm, sum_log_m)
-    from scipy import optimize
-
-    found = optimize.minimize(_gamma_gamma_negloglik, start, args=args, jac=True, method="L-BFGS-B",
-                              bounds=[(-15.0, 15.0)] * 3, options={"maxiter": 500, "ftol": 1e-14, "gtol": 1e-9})
-    p, q, gam = np.exp(found.x)
-    at_bound = np.any(np.abs(found.x) >= 15.0 - 1e-6)
-    # Judge convergence by the gradient itself: L-BFGS-B may stop on a line search that
-    # cannot improve the last digits, which is not a failure.
-    _, gradient = _gamma_gamma_negloglik(found.x, *args)
-    settled = bool(np.all(np.isfinite(found.x)) and np.max(np.abs(gradient)) < 1e-5)
+    objective = _gamma_gamma_objective(counts_n, counts, n, x, sum_n_log_nm, sum_log_m)
+    bound = np.full(3, _LOG_BOUND)
+    found = minimise(objective, start, -bound, bound)
+    p, q, gam = np.exp(found.point)
+    at_bound = np.any(np.abs(found.point) >= _LOG_BOUND - 1e-6)
+    settled = bool(np.all(np.isfinite(found.point)) and np.all(np.isfinite(found.gradient))
+                   and np.max(np.abs(found.gradient)) < 1e-5)
     return float(p), float(q), float(gam * unit), settled and not at_bound
 
 
