@@ -73,8 +73,8 @@ DRAWN = """() => {
   if (!app || app.getAttribute('data-test-script-state') !== 'notRunning') return false;
   if (document.querySelector('[data-stale="true"]')) return false;
   if (document.querySelector('[data-testid="stSpinner"]')) return false;
-  const charts = [...document.querySelectorAll('[data-testid="stPlotlyChart"]')];
-  return charts.every((chart) => chart.querySelector('.main-svg'));
+  const charts = [...document.querySelectorAll('[data-testid="stVegaLiteChart"]')];
+  return charts.every((chart) => chart.querySelector('svg.marks, canvas.marks'));
 }"""
 
 TWO_FRAMES = """() => new Promise((done) => requestAnimationFrame(() => requestAnimationFrame(
