@@ -273,10 +273,11 @@ def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str
                                   "legend": {"title": "customers", "values": ticks, "format": ",",
                                              "orient": "right", "direction": "vertical", "gradientLength": 160}},
                          "tooltip": {"field": "tip"}}})
+    ring_name = None
     if highlight is not None:
         row = data[data["customer"].astype(str) == str(highlight)]
         if len(row):
-            name = str(label or highlight)
+            name = ring_name = str(label or highlight)
             names.append(name)
             colours.append(PALETTE["black"])
             layers.append({
@@ -284,7 +285,16 @@ def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str
                                      "forecast": float(row["expected_next_order"].iloc[0])}]},
                 "mark": {"type": "point", "filled": False, "size": 256, "strokeWidth": 2.5},
                 "encoding": {**position, "color": {"datum": name}}})
-    _share_colours(layers, _series(names, colours))
+    legend = _series(names, colours)
+    # Each legend entry looks as drawn: the diagonal a dashed stroke, the ringed customer a ring, the dots discs.
+    is_diagonal = f"datum.label === {json.dumps(DIAGONAL_NAME, ensure_ascii=False)}"
+    is_ring = "false" if ring_name is None else f"datum.label === {json.dumps(ring_name, ensure_ascii=False)}"
+    legend["legend"]["encode"] = {"symbols": {"update": {
+        "shape": {"signal": f"{is_diagonal} ? 'stroke' : 'circle'"},
+        "strokeDash": {"signal": f"{is_diagonal} ? [4, 3] : [1, 0]"},
+        "fillOpacity": {"signal": f"{is_ring} ? 0 : 1"},
+        "strokeWidth": {"signal": f"{is_ring} ? 2 : 1.5"}}}}
+    _share_colours(layers, legend)
     return _layout({"layer": layers}, height=460, renderer="svg" if small else "canvas")
 
 
