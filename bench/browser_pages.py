@@ -9,7 +9,7 @@ For each step it records, in the browser's own clock (``performance.now()``):
 
 * **ready**: seconds from the click until the page is drawn and the browser is free: the app's
   run has finished (``data-test-script-state="notRunning"``), nothing is marked stale, every
-  chart has drawn its SVG, two animation frames have passed, and the last long task is over
+  chart has drawn (its SVG or canvas), two animation frames have passed, and the last long task is over
   (the main thread then stays free of them for half a second);
 * **longest task**: the longest main-thread task (``PerformanceObserver`` entry type
   ``longtask``, which reports every task over 50 ms) that began between the click and ready;
@@ -73,8 +73,8 @@ DRAWN = """() => {
   if (!app || app.getAttribute('data-test-script-state') !== 'notRunning') return false;
   if (document.querySelector('[data-stale="true"]')) return false;
   if (document.querySelector('[data-testid="stSpinner"]')) return false;
-  const charts = [...document.querySelectorAll('[data-testid="stPlotlyChart"]')];
-  return charts.every((chart) => chart.querySelector('.main-svg'));
+  const charts = [...document.querySelectorAll('[data-testid="stVegaLiteChart"]')];
+  return charts.every((chart) => chart.querySelector('svg.marks, canvas.marks'));
 }"""
 
 TWO_FRAMES = """() => new Promise((done) => requestAnimationFrame(() => requestAnimationFrame(

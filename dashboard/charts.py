@@ -1,4 +1,9 @@
-"""Plotly figures for the dashboard, in one colour-blind-safe palette and one layout.
+"""Vega-Lite charts for the dashboard, in one colour-blind-safe palette and one layout.
+
+Every function returns a Vega-Lite specification: a plain dict, its data inline as
+``{"values": [...]}`` records, drawn by the Vega-Lite that Streamlit carries
+(``st.vega_lite_chart``). Money is formatted here, in Python, into the tooltips' text, so a
+tooltip reads as the rest of the page does; axes format their ticks with the same symbol.
 
 Palette: the eight colours of Okabe and Ito (2008), "Color Universal Design",
 re-ordered here so the first pair (blue, vermilion) differs most in both hue and
@@ -7,11 +12,11 @@ lightness. They stay distinguishable under the common forms of colour blindness.
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
 import pandas as pd
-import plotly.graph_objects as go
 
 from forecasting.options import low_confidence
 
@@ -31,26 +36,70 @@ PALETTE = {
 SEQUENCE = list(PALETTE.values())
 GRID = "#E6E6E6"
 INK = "#2B2B2B"
+FONT = "Source Sans Pro, Helvetica, Arial, sans-serif"
+#: The grey of the dashed line where the forecast equals the customer's own average.
+DIAGONAL = "#888888"
 
 
-def _layout(fig: go.Figure, *, title: str | None = None, height: int = 420) -> go.Figure:
-    """The product's own chart layout: white ground, light grid, legend above the plot."""
-    fig.update_layout(
-        title={"text": title, "x": 0.0, "xanchor": "left", "font": {"size": 15}} if title else None,
-        height=height,
-        margin={"l": 60, "r": 20, "t": 60 if title else 30, "b": 55},
-        paper_bgcolor="white",
-        plot_bgcolor="white",
-        font={"family": "Source Sans Pro, Helvetica, Arial, sans-serif", "size": 13, "color": INK},
-        colorway=SEQUENCE,
-        legend={"orientation": "h", "yanchor": "bottom", "y": 1.02, "xanchor": "right", "x": 1.0},
-        hoverlabel={"bgcolor": "white"},
-    )
-    fig.update_xaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside",
-                     automargin=True, title_standoff=10)
-    fig.update_yaxes(showgrid=True, gridcolor=GRID, zeroline=False, linecolor="#BBBBBB", ticks="outside",
-                     automargin=True, title_standoff=10)
-    return fig
+def _layout(spec: dict, *, title: str | None = None, height: int = 420, renderer: str = "svg") -> dict:
+    """The product's own chart layout: white ground, light grid, legend above the plot.
+
+    ``renderer`` is "svg" for charts of a few hundred marks (each mark stays a shape the page
+    can read) and "canvas" for the density grid, whose thousands of cells would be as many
+    SVG elements.
+    """
+    laid = {"width": "container", "height": height, "background": "white"}
+    if title:
+        laid["title"] = {"text": title, "anchor": "start", "fontSize": 15, "fontWeight": 600, "color": INK,
+                         "offset": 12}
+    laid.update(spec)
+    laid["config"] = {
+        "font": FONT,
+        "view": {"stroke": None},
+        "axis": {"grid": True, "gridColor": GRID, "domainColor": "#BBBBBB", "tickColor": "#BBBBBB",
+                 "labelColor": INK, "titleColor": INK, "labelFontSize": 12, "titleFontSize": 13,
+                 "titleFontWeight": "normal", "titlePadding": 10, "labelLimit": 220},
+        "legend": {"orient": "top", "direction": "horizontal", "labelFontSize": 13, "labelColor": INK,
+                   "labelLimit": 320, "symbolStrokeWidth": 1.5, "columnPadding": 16},
+        "range": {"category": SEQUENCE},
+    }
+    laid["usermeta"] = {"embedOptions": {"renderer": renderer}}
+    return laid
+
+
+def _records(frame: pd.DataFrame) -> list[dict]:
+    """Rows as JSON records: numpy numbers as Python numbers, a missing or infinite number as null."""
+    rows = []
+    for row in frame.to_dict("records"):
+        clean = {}
+        for key, value in row.items():
+            if isinstance(value, np.generic):
+                value = value.item()
+            if isinstance(value, float) and not math.isfinite(value):
+                value = None
+            clean[key] = value
+        rows.append(clean)
+    return rows
+
+
+def _cash(amount: float, symbol: str, places: int = 0) -> str:
+    """Money for a tooltip, at a fixed number of decimals: '$1,234', '€52.46', '-£3'."""
+    if amount is None or not math.isfinite(amount):
+        return "unknown"
+    return f"{'-' if amount < 0 else ''}{symbol}{abs(amount):,.{places}f}"
+
+
+def _money_labels(symbol: str) -> str:
+    """A Vega expression labelling an axis's ticks as whole money: '$1,200'."""
+    return f"{json.dumps(symbol, ensure_ascii=False)} + format(datum.value, ',.0f')"
+
+
+PERCENT_LABELS = "format(datum.value, '~g') + '%'"
+
+
+def _series(names: list[str], colours: list[str], *, title: str | None = None) -> dict:
+    """One colour scale (and legend) that every layer of a chart shares: these names in these colours."""
+    return {"scale": {"domain": list(names), "range": list(colours)}, "legend": {"title": title}}
 
 
 def money_ticks(low: float, high: float, symbol: str) -> tuple[list[float], list[str]]:
@@ -72,6 +121,49 @@ def money_ticks(low: float, high: float, symbol: str) -> tuple[list[float], list
     return values, labels
 
 
+def _tick_labels(values: list[float], labels: list[str]) -> str:
+    """A Vega expression that names each of ``values`` by its label (an axis given those values)."""
+    expression = json.dumps("")
+    for value, label in zip(reversed(values), reversed(labels)):
+        expression = f"datum.value == {value!r} ? {json.dumps(label, ensure_ascii=False)} : {expression}"
+    return expression
+
+
+def _whiskers(position: dict, low: str, high: str, *, along: str = "y", width: int = 8,
+              scale_axis: dict | None = None) -> list[dict]:
+    """An interval drawn as a thin line from ``low`` to ``high`` with short caps at both ends.
+
+    ``position`` is the encoding of the category the whisker belongs to; ``along`` the axis of the value;
+    ``scale_axis`` the value axis's ``scale`` and ``axis``, repeated here so the layers share one axis.
+    Rows whose ends are missing draw nothing.
+    """
+    shared = dict(scale_axis or {})
+    present = {"filter": f"isValid(datum.{low}) && isValid(datum.{high})"}
+    line = {"mark": {"type": "rule", "strokeWidth": 1.2, "color": INK},
+            "encoding": {**position, along: {"field": low, "type": "quantitative", **shared},
+                         f"{along}2": {"field": high}}}
+    caps = [{"mark": {"type": "tick", "thickness": 1.2, "size": width, "color": INK,
+                      "orient": "horizontal" if along == "y" else "vertical"},
+             "encoding": {**position, along: {"field": end, "type": "quantitative", **shared}}}
+            for end in (low, high)]
+    return [{"transform": [present], **layer} for layer in (line, *caps)]
+
+
+def _zero_line(along: str, scale_axis: dict | None = None) -> dict:
+    """The line at zero on a chart of gains and losses."""
+    return {"data": {"values": [{"zero": 0}]}, "mark": {"type": "rule", "color": INK, "strokeWidth": 1},
+            "encoding": {along: {"field": "zero", "type": "quantitative", **(scale_axis or {})}}}
+
+
+def _share_colours(layers: list[dict], colours: dict) -> None:
+    """Give every colour encoding of the layers (nested ones too) the chart's one colour scale and legend."""
+    for layer in layers:
+        _share_colours(layer.get("layer", []), colours)
+        colour = layer.get("encoding", {}).get("color")
+        if colour is not None and colour.get("scale", "") is not None:
+            colour |= colours
+
+
 #: Up to this many customers the chart draws one dot each (SVG); above it, how many customers fall in
 #: each cell of a grid (a fixed number of cells whatever the shop's size), so the page stays light. A browser
 #: spends about a third of a millisecond of its main thread per SVG dot (59,493 dots froze one for 21 s), so
@@ -79,18 +171,26 @@ def money_ticks(low: float, high: float, symbol: str) -> tuple[list[float], list
 DOTS_AT_MOST = 1000
 #: Cells of the density grid along each axis.
 GRID_CELLS = 60
+#: Names in the pull chart's legend.
+DIAGONAL_NAME = "forecast = own average"
+DOT_NAMES = ("forecast", "mostly from similar customers")
 
 
 def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str | None = None,
-                       label: str | None = None, shown_ids: pd.Series | None = None) -> go.Figure:
+                       label: str | None = None, shown_ids: pd.Series | None = None) -> dict:
     """Each customer's plain average against their forecast, on money scales that grow by factors.
 
     Points on the diagonal kept their own average; points off it were pulled toward what
     similar customers spend. Up to :data:`DOTS_AT_MOST` customers, each is a dot whose area
     grows with the number of orders, coloured where the forecast rests mostly on similar
     customers (:func:`forecasting.options.low_confidence`). Above that, the chart shows how
-    many customers fall in each of ``GRID_CELLS`` x ``GRID_CELLS`` cells: the browser then
-    draws the same few thousand shapes for 2,000 customers or 2 million.
+    many customers fall in each of ``GRID_CELLS`` x ``GRID_CELLS`` cells (counted here, in
+    numpy; the chart carries one record per non-empty cell, never one per customer), drawn
+    on a canvas: the browser then draws the same few thousand cells for 2,000 customers or
+    2 million.
+
+    Both axes are Vega-Lite log scales over the same money range; their ticks are
+    :func:`money_ticks` (1, 2, 5, 10, ... labelled with the currency symbol).
 
     Parameters
     ----------
@@ -101,67 +201,101 @@ def pull_toward_centre(table: pd.DataFrame, *, symbol: str = "$", highlight: str
     label : str, optional
         What to call the ringed customer in the legend (default: ``highlight``).
     shown_ids : pandas.Series, optional
-        The ids to show in the dots' hover text, aligned with ``table`` (pseudonyms while
+        The ids to show in the dots' tooltips, aligned with ``table`` (pseudonyms while
         they are on); default the table's own.
     """
     keep = ((table["average_order_value"] > 0) & (table["expected_next_order"] > 0)).to_numpy()
     data = table[keep]
-    x = np.log10(data["average_order_value"].to_numpy(dtype=float))
-    y = np.log10(data["expected_next_order"].to_numpy(dtype=float))
-    fig = go.Figure()
+    average = data["average_order_value"].to_numpy(dtype=float)
+    forecast = data["expected_next_order"].to_numpy(dtype=float)
     if len(data) == 0:
-        return _layout(fig, height=460)
+        return _layout({"data": {"values": []}, "mark": "point"}, height=460)
+    x, y = np.log10(average), np.log10(forecast)
     low, high = float(min(x.min(), y.min())), float(max(x.max(), y.max()))
     pad = 0.02 * max(high - low, 0.1)
     low, high = low - pad, high + pad
-    fig.add_trace(go.Scatter(x=[low, high], y=[low, high], mode="lines", name="forecast = own average",
-                             line={"color": "#888888", "dash": "dash", "width": 1}, hoverinfo="skip"))
-    if len(data) <= DOTS_AT_MOST:
+    values, labels = money_ticks(10 ** low, 10 ** high, symbol)
+
+    def money_axis(title: str) -> dict:
+        return {"title": title, "values": values, "labelExpr": _tick_labels(values, labels)}
+
+    scale = {"type": "log", "domain": [10 ** low, 10 ** high], "nice": False}
+    position = {"x": {"field": "average", "type": "quantitative", "scale": scale,
+                      "axis": money_axis("Customer's own average order")},
+                "y": {"field": "forecast", "type": "quantitative", "scale": scale,
+                      "axis": money_axis("Expected next order")}}
+    names, colours = [DIAGONAL_NAME], [DIAGONAL]
+    layers = [{"data": {"values": [{"average": 10 ** low, "forecast": 10 ** low},
+                                   {"average": 10 ** high, "forecast": 10 ** high}]},
+               "mark": {"type": "line", "strokeDash": [5, 4], "strokeWidth": 1, "clip": True},
+               "encoding": {**position, "color": {"datum": DIAGONAL_NAME}}}]
+    small = len(data) <= DOTS_AT_MOST
+    if small:
         ids = (shown_ids[keep] if shown_ids is not None else data["customer"]).astype(str).to_numpy()
         orders = data["orders"].to_numpy(dtype=float)
-        size = 5 + 16 * np.sqrt(orders / max(orders.max(), 1.0))
-        leaning = low_confidence(data["own_history_weight"].to_numpy(dtype=float))
-        for mask, name, colour in ((~leaning, "forecast", PALETTE["blue"]),
-                                   (leaning, "mostly from similar customers", PALETTE["vermilion"])):
-            if not mask.any():
-                continue
-            fig.add_trace(go.Scatter(
-                x=x[mask], y=y[mask], mode="markers", name=name,
-                marker={"size": size[mask], "color": colour, "opacity": 0.55,
-                        "line": {"width": 0.5, "color": "white"}},
-                customdata=np.stack([ids[mask], orders[mask].astype(int),
-                                     data["average_order_value"].to_numpy()[mask],
-                                     data["expected_next_order"].to_numpy()[mask]], axis=1),
-                hovertemplate=(f"%{{customdata[0]}}<br>%{{customdata[1]}} orders<br>average {symbol}"
-                               f"%{{customdata[2]:,.2f}}<br>forecast {symbol}%{{customdata[3]:,.2f}}<extra></extra>"),
-            ))
+        diameter = 5 + 16 * np.sqrt(orders / max(orders.max(), 1.0))
+        group = np.where(low_confidence(data["own_history_weight"].to_numpy(dtype=float)),
+                         DOT_NAMES[1], DOT_NAMES[0])
+        dots = pd.DataFrame({"customer": ids, "orders": orders.astype(int), "average": average,
+                             "forecast": forecast, "group": group, "area": diameter ** 2,
+                             "average_text": [_cash(v, symbol, 2) for v in average],
+                             "forecast_text": [_cash(v, symbol, 2) for v in forecast]})
+        present = [name for name in DOT_NAMES if (group == name).any()]
+        names += present
+        colours += [PALETTE["blue"] if name == DOT_NAMES[0] else PALETTE["vermilion"] for name in present]
+        layers.append({
+            "data": {"values": _records(dots)},
+            "mark": {"type": "circle", "opacity": 0.55, "stroke": "white", "strokeWidth": 0.5},
+            "encoding": {**position, "color": {"field": "group", "type": "nominal"},
+                         "size": {"field": "area", "type": "quantitative", "scale": None},
+                         "tooltip": [{"field": "customer", "title": "customer"},
+                                     {"field": "orders", "type": "quantitative", "title": "orders", "format": ","},
+                                     {"field": "average_text", "title": "average"},
+                                     {"field": "forecast_text", "title": "forecast"}]}})
     else:
         edges = np.linspace(low, high, GRID_CELLS + 1)
         counts, _, _ = np.histogram2d(x, y, bins=[edges, edges])
-        centres = (edges[:-1] + edges[1:]) / 2
-        shade = np.where(counts > 0, np.log10(np.maximum(counts, 1)), np.nan).T  # rows are y
+        column, row = np.nonzero(counts)  # x index, y index of every cell with a customer in it
+        money = 10 ** edges
+        cells = pd.DataFrame({"average": money[column], "average_end": money[column + 1],
+                              "forecast": money[row], "forecast_end": money[row + 1],
+                              "customers": counts[column, row].astype(int)})
+        cells["tip"] = [f"{c:,} customers here" for c in cells["customers"]]
         ticks = [t for t in (1, 10, 100, 1000, 10_000, 100_000) if t <= max(counts.max(), 1)]
-        fig.add_trace(go.Heatmap(
-            x=centres, y=centres, z=shade, customdata=counts.T, name="customers",
-            colorscale=[[0.0, "#DCEBF5"], [0.5, PALETTE["sky"]], [1.0, PALETTE["blue"]]],
-            zmin=0, zmax=max(float(np.nanmax(shade)), 1.0), hoverongaps=False,
-            colorbar={"title": {"text": "customers"}, "tickvals": np.log10(ticks).tolist(),
-                      "ticktext": [f"{t:,}" for t in ticks], "thickness": 12},
-            hovertemplate="%{customdata:,.0f} customers here<extra></extra>"))
+        layers.insert(0, {
+            "data": {"values": _records(cells)},
+            "mark": {"type": "rect"},
+            "encoding": {**position,
+                         "x2": {"field": "average_end"}, "y2": {"field": "forecast_end"},
+                         "fill": {"field": "customers", "type": "quantitative",
+                                  "scale": {"type": "log", "domain": [1, max(float(counts.max()), 10.0)],
+                                            "range": ["#DCEBF5", PALETTE["sky"], PALETTE["blue"]]},
+                                  "legend": {"title": "customers", "values": ticks, "format": ",",
+                                             "orient": "right", "direction": "vertical", "gradientLength": 160}},
+                         "tooltip": {"field": "tip"}}})
+    ring_name = None
     if highlight is not None:
         row = data[data["customer"].astype(str) == str(highlight)]
         if len(row):
-            fig.add_trace(go.Scatter(
-                x=np.log10(row["average_order_value"].to_numpy(dtype=float)[:1]),
-                y=np.log10(row["expected_next_order"].to_numpy(dtype=float)[:1]),
-                mode="markers", name=str(label or highlight),
-                marker={"size": 16, "color": "rgba(0,0,0,0)", "line": {"width": 2.5, "color": PALETTE["black"]}},
-                hoverinfo="skip"))
-    values, labels = money_ticks(10 ** low, 10 ** high, symbol)
-    ticks = np.log10(values).tolist()
-    fig.update_xaxes(title="Customer's own average order", tickvals=ticks, ticktext=labels, range=[low, high])
-    fig.update_yaxes(title="Expected next order", tickvals=ticks, ticktext=labels, range=[low, high])
-    return _layout(fig, height=460)
+            name = ring_name = str(label or highlight)
+            names.append(name)
+            colours.append(PALETTE["black"])
+            layers.append({
+                "data": {"values": [{"average": float(row["average_order_value"].iloc[0]),
+                                     "forecast": float(row["expected_next_order"].iloc[0])}]},
+                "mark": {"type": "point", "filled": False, "size": 256, "strokeWidth": 2.5},
+                "encoding": {**position, "color": {"datum": name}}})
+    legend = _series(names, colours)
+    # Each legend entry looks as drawn: the diagonal a dashed stroke, the ringed customer a ring, the dots discs.
+    is_diagonal = f"datum.label === {json.dumps(DIAGONAL_NAME, ensure_ascii=False)}"
+    is_ring = "false" if ring_name is None else f"datum.label === {json.dumps(ring_name, ensure_ascii=False)}"
+    legend["legend"]["encode"] = {"symbols": {"update": {
+        "shape": {"signal": f"{is_diagonal} ? 'stroke' : 'circle'"},
+        "strokeDash": {"signal": f"{is_diagonal} ? [4, 3] : [1, 0]"},
+        "fillOpacity": {"signal": f"{is_ring} ? 0 : 1"},
+        "strokeWidth": {"signal": f"{is_ring} ? 2 : 1.5"}}}}
+    _share_colours(layers, legend)
+    return _layout({"layer": layers}, height=460, renderer="svg" if small else "canvas")
 
 
 def shared_range(*tables: pd.DataFrame) -> list[float]:
@@ -177,60 +311,85 @@ def shared_range(*tables: pd.DataFrame) -> list[float]:
 
 
 def method_comparison(results: pd.DataFrame, *, title: str, highlight: str | None = None,
-                      x_range: list[float] | None = None) -> go.Figure:
+                      x_range: list[float] | None = None) -> dict:
     """Error reduction against own averages, one bar per row of ``results``, with 95% intervals.
 
     Horizontal bars, so the methods' names can be read without turning the head; the
     method in use (``highlight``) is drawn in the second colour. Charts that are compared
     take the same ``x_range`` (:func:`shared_range`).
     """
-    value = results["error_reduction_pct"].to_numpy(dtype=float)
-    upper = results["ci_high"].to_numpy(dtype=float) - value
-    lower = value - results["ci_low"].to_numpy(dtype=float)
-    names = results["method"].map(method_label)
-    colours = [PALETTE["vermilion"] if m == highlight else PALETTE["blue"] for m in results["method"]]
     spread = results["variance"].map(lambda v: "its own spread" if v == "gamma-model"
                                      else f"{variance_label(v)} spread model")
-    fig = go.Figure(go.Bar(
-        y=names, x=value, orientation="h", marker_color=colours, customdata=np.stack([spread], axis=1),
-        error_x={"type": "data", "array": np.nan_to_num(upper), "arrayminus": np.nan_to_num(lower),
-                 "color": INK, "thickness": 1.2, "width": 3},
-        hovertemplate="%{y} (%{customdata[0]}): %{x:.1f}%<extra></extra>",
-    ))
-    fig.add_vline(x=0, line={"color": INK, "width": 1})
-    fig.update_layout(showlegend=False, bargap=0.35)
-    fig.update_xaxes(title="Smaller error than own averages (%)", ticksuffix="%", range=x_range)
-    fig.update_yaxes(categoryorder="array", categoryarray=list(reversed(list(names))), showgrid=False)
-    return _layout(fig, title=title, height=int(130 + 34 * len(results)))
+    bars = pd.DataFrame({
+        "method": results["method"].map(method_label).to_numpy(),
+        "reduction": results["error_reduction_pct"].to_numpy(dtype=float),
+        "low": results["ci_low"].to_numpy(dtype=float), "high": results["ci_high"].to_numpy(dtype=float),
+        "colour": [PALETTE["vermilion"] if m == highlight else PALETTE["blue"] for m in results["method"]]})
+    bars["tip"] = [f"{name} ({words}): {value:.1f}%"
+                   for name, words, value in zip(bars["method"], spread, bars["reduction"])]
+    scale = {"zero": True} if x_range is None else {"domain": list(x_range), "nice": False, "zero": False}
+    category = {"y": {"field": "method", "type": "nominal", "sort": list(bars["method"]), "title": None,
+                      "axis": {"grid": False, "labelFontSize": 13}}}
+    scale_axis = {"scale": scale, "axis": {"title": "Smaller error than own averages (%)",
+                                           "labelExpr": PERCENT_LABELS}}
+    layers = [{"mark": {"type": "bar", "height": {"band": 0.65}},
+               "encoding": {**category, "x": {"field": "reduction", "type": "quantitative", **scale_axis},
+                            "color": {"field": "colour", "type": "nominal", "scale": None},
+                            "tooltip": {"field": "tip"}}},
+              *_whiskers(category, "low", "high", along="x", width=7, scale_axis=scale_axis),
+              _zero_line("x", scale_axis)]
+    return _layout({"data": {"values": _records(bars)}, "layer": layers},
+                   title=title, height=int(130 + 34 * len(results)))
 
 
-def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> go.Figure:
+#: What the two evaluations are called on the charts.
+EVALUATION_NAMES = {"leave-one-out": "hiding one order", "backtest": "next order"}
+
+
+def gain_by_past_orders(table: pd.DataFrame, *, title: str) -> dict:
     """Error reduction by how many orders were known before the forecast, one bar per evaluation."""
-    fig = go.Figure()
-    names = {"leave-one-out": "hiding one order", "backtest": "next order"}
-    for i, (kind, part) in enumerate(table.groupby("evaluation", sort=False)):
-        kind = names.get(kind, kind)
-        fig.add_trace(go.Bar(
-            x=part["past_orders"].astype(str), y=part["error_reduction_pct"], name=kind,
-            marker_color=(PALETTE["green"], PALETTE["purple"])[i % 2], customdata=part["held_out"].to_numpy(),
-            hovertemplate="%{x} past orders: %{y:.1f}% (%{customdata:,} orders scored)<extra>" + kind + "</extra>"))
-    fig.add_hline(y=0, line={"color": INK, "width": 1})
-    fig.update_layout(barmode="group")
-    fig.update_yaxes(title="Smaller error than own averages (%)", ticksuffix="%")
-    fig.update_xaxes(title="Orders known before the forecast", type="category")
-    return _layout(fig, title=title, height=380)
+    kinds = [EVALUATION_NAMES.get(kind, kind) for kind in table["evaluation"].drop_duplicates()]
+    bars = pd.DataFrame({"past_orders": table["past_orders"].astype(str).to_numpy(),
+                         "kind": table["evaluation"].map(lambda k: EVALUATION_NAMES.get(k, k)).to_numpy(),
+                         "reduction": table["error_reduction_pct"].to_numpy(dtype=float),
+                         "held_out": table["held_out"].to_numpy()})
+    bars["tip"] = [f"{past} past orders: {value:.1f}% ({int(held):,} orders scored), {kind}"
+                   for past, value, held, kind in zip(bars["past_orders"], bars["reduction"], bars["held_out"],
+                                                      bars["kind"])]
+    colours = [(PALETTE["green"], PALETTE["purple"])[i % 2] for i in range(len(kinds))]
+    scale_axis = {"axis": {"title": "Smaller error than own averages (%)", "labelExpr": PERCENT_LABELS}}
+    layers = [{"mark": {"type": "bar", "width": {"band": 0.8}},
+               "encoding": {"x": {"field": "past_orders", "type": "nominal",
+                                  "sort": list(pd.unique(bars["past_orders"])),
+                                  "axis": {"title": "Orders known before the forecast", "labelAngle": 0,
+                                           "grid": False}},
+                            "xOffset": {"field": "kind", "type": "nominal", "sort": kinds},
+                            "y": {"field": "reduction", "type": "quantitative", **scale_axis},
+                            "color": {"field": "kind", "type": "nominal", **_series(kinds, colours)},
+                            "tooltip": {"field": "tip"}}},
+              _zero_line("y", scale_axis)]
+    return _layout({"data": {"values": _records(bars)}, "layer": layers}, title=title, height=380)
 
 
-def tier_shares(summary: pd.DataFrame, *, title: str) -> go.Figure:
+def tier_shares(summary: pd.DataFrame, *, title: str) -> dict:
     """Each tier's share of customers next to its share of the money."""
-    fig = go.Figure()
-    fig.add_trace(go.Bar(x=summary["tier"], y=100 * summary["share_of_customers"], name="share of customers",
-                         marker_color=PALETTE["sky"], hovertemplate="%{x}: %{y:.0f}% of customers<extra></extra>"))
+    parts = [("share_of_customers", "share of customers", PALETTE["sky"], "of customers")]
     if summary["share_of_projected_revenue"].notna().any():
-        fig.add_trace(go.Bar(x=summary["tier"], y=100 * summary["share_of_projected_revenue"],
-                             name="share of projected revenue", marker_color=PALETTE["blue"],
-                             hovertemplate="%{x}: %{y:.0f}% of projected revenue<extra></extra>"))
-    fig.update_layout(barmode="group", bargap=0.3)
-    fig.update_yaxes(title="Share (%)", ticksuffix="%", rangemode="tozero")
-    fig.update_xaxes(title=None, type="category")
-    return _layout(fig, title=title, height=340)
+        parts.append(("share_of_projected_revenue", "share of projected revenue", PALETTE["blue"],
+                      "of projected revenue"))
+    rows = []
+    for column, name, _, words in parts:
+        for tier, share in zip(summary["tier"].astype(str), 100 * summary[column].to_numpy(dtype=float)):
+            rows.append({"tier": tier, "share": share, "part": name,
+                         "tip": f"{tier}: {share:.0f}% {words}" if math.isfinite(share) else f"{tier}: unknown"})
+    names = [name for _, name, _, _ in parts]
+    return _layout({
+        "data": {"values": _records(pd.DataFrame(rows))},
+        "mark": {"type": "bar", "width": {"band": 0.7}},
+        "encoding": {"x": {"field": "tier", "type": "nominal", "sort": list(summary["tier"].astype(str)),
+                           "axis": {"title": None, "labelAngle": 0, "grid": False, "labelFontSize": 13}},
+                     "xOffset": {"field": "part", "type": "nominal", "sort": names},
+                     "y": {"field": "share", "type": "quantitative", "scale": {"zero": True},
+                           "axis": {"title": "Share (%)", "labelExpr": PERCENT_LABELS}},
+                     "color": {"field": "part", "type": "nominal", **_series(names, [c for _, _, c, _ in parts])},
+                     "tooltip": {"field": "tip"}}}, title=title, height=340)

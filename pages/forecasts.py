@@ -176,9 +176,9 @@ if table is not None:
         chart_col, orders_col = st.columns([3, 2])
         with chart_col:
             small = len(table) <= charts.DOTS_AT_MOST
-            figure = charts.pull_toward_centre(table, symbol=symbol, highlight=picked, label=name,
+            chart = charts.pull_toward_centre(table, symbol=symbol, highlight=picked, label=name,
                                                shown_ids=shown_all["customer"] if small else None)
-            st.plotly_chart(figure, key="pull_chart", theme=None, config={"displaylogo": False})
+            st.vega_lite_chart(chart, key="pull_chart", theme=None, width="stretch")
             if small:
                 st.caption("Each dot is a customer; bigger dots have more orders. Dots on the dashed line kept their "
                            "own average; dots off it were pulled toward what similar customers spend. Orange-red "

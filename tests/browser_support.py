@@ -13,6 +13,7 @@ import subprocess
 import sys
 import threading
 import time
+import urllib.parse
 import urllib.request
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -27,6 +28,14 @@ CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-
                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 LOOPBACK_HOSTS = frozenset({"127.0.0.1", "localhost", "::1", "[::1]"})
 READY = '[data-testid="stApp"][data-test-script-state="notRunning"]'
+# A Vega-Lite chart, and one that has drawn: Vega-Embed puts an <svg class="marks"> or a <canvas class="marks">
+# into the chart's element once the view has rendered.
+CHART = '[data-testid="stVegaLiteChart"]'
+DRAWN_CHART = f"{CHART} :is(svg.marks, canvas.marks)"
+# What Vega-Embed's action menu offers that would send a chart (and its data) off the machine or show its
+# source: the online editor, the source views. Matched against the words of every button, link and menu item
+# around a chart, case apart.
+OFF_MACHINE_ACTIONS = ("vega editor", "view source", "view compiled", "open in")
 
 
 def require_browser() -> None:
@@ -150,6 +159,47 @@ def open_sections(tab) -> None:
         closed.first.click()
         tab.wait_for_timeout(200)
     settle(tab)
+
+
+def drawn_chart(tab, index: int = 0):
+    """Wait until the page's chart number ``index`` (counted from 0) has drawn, and return it."""
+    tab.locator(DRAWN_CHART).nth(index).wait_for()
+    return tab.locator(CHART).nth(index)
+
+
+def chart_actions(tab) -> list[dict]:
+    """Everything a person can click around each chart of the page: its words and the address it leads to.
+
+    The chart's frame holds Vega-Embed's own output (an action menu would be a ``details.vega-actions``
+    with links) and Streamlit's toolbar, which shows on hover, so each chart is hovered first.
+    """
+    found = []
+    charts = tab.locator(CHART)
+    for i in range(charts.count()):
+        charts.nth(i).scroll_into_view_if_needed()
+        charts.nth(i).hover()
+        tab.wait_for_timeout(150)
+        found += charts.nth(i).evaluate("""(chart) => {
+          const frame = chart.closest('[data-testid="stFullScreenFrame"]') || chart.parentElement;
+          return [...frame.querySelectorAll('a, button, summary, [role="menuitem"], .vega-actions')].map((e) => ({
+            words: [e.textContent, e.getAttribute('aria-label'), e.getAttribute('title')].filter(Boolean).join(' '),
+            href: e.getAttribute('href') || '', menu: e.classList.contains('vega-actions')}));
+        }""")
+    tab.mouse.move(0, 0)
+    return found
+
+
+def charts_offer_nothing_off_machine(tab) -> int:
+    """Assert no chart of the page offers a link or an action that leaves the machine; the number of charts."""
+    actions, charts = chart_actions(tab), tab.locator(CHART).count()
+    if charts:  # what was looked at: Streamlit's toolbar of the chart (fullscreen, show data, ...)
+        assert any("fullscreen" in action["words"].lower() for action in actions), actions
+    for action in actions:
+        assert not action["menu"], action
+        assert not any(words in action["words"].lower() for words in OFF_MACHINE_ACTIONS), action
+        host = urllib.parse.urlsplit(action["href"]).hostname
+        assert not action["href"] or host is None or host in LOOPBACK_HOSTS, action
+    return charts
 
 
 def metric_value(tab, label: str) -> str:

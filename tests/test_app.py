@@ -8,6 +8,7 @@ Excel download is read back with openpyxl (ECMA-376: frozen panes, number format
 
 from __future__ import annotations
 
+import csv
 import doctest
 import io
 import json
@@ -20,7 +21,7 @@ import pandas as pd
 import pytest
 from streamlit.testing.v1 import AppTest
 
-from dashboard import charts, layout, state, words
+from dashboard import charts, layout, outlook_charts, state, words
 from forecasting import OrderDataError, customer_statistics, read_orders
 from forecasting import evaluation as evaluation_module
 from forecasting import forecasts as forecasts_module
@@ -46,6 +47,8 @@ WIDGET_KEYS = {"currency": "opt_currency", "date_order": "opt_date_order", "deci
 # A command-line flag: two dashes and a letter (as in --decimal); plain dashes in prose do not match.
 FLAG = re.compile(r"--[a-z]")
 SECRET = "fernhollow-secret"
+# Every customer id of the demo export: "C-" and five digits, and the shop's test account.
+REAL_ID = re.compile(r"C-\d{5}|C-TEST")
 
 
 def new_app() -> AppTest:
@@ -125,6 +128,42 @@ def turn_pseudonyms_on(at: AppTest, page: str, phrase: str = SECRET) -> AppTest:
     at.button(key=f"pseudonyms_on_{page}").click().run()
     assert not at.exception, at.exception
     return at
+
+
+def chart_specs(at: AppTest) -> list[dict]:
+    """Every Vega-Lite chart on the page, as the spec the browser draws.
+
+    Streamlit sends a spec's top-level ``data.values`` apart from the spec, as an Arrow table;
+    they are put back inline here, so a test sees everything the chart carries.
+    """
+    from streamlit.dataframe_util import convert_arrow_bytes_to_pandas_df
+
+    specs = []
+    for chart in at.get("vega_lite_chart"):
+        spec = json.loads(chart.proto.spec)
+        if chart.proto.data.data:
+            spec["data"] = {"values": convert_arrow_bytes_to_pandas_df(chart.proto.data.data).to_dict("records")}
+        specs.append(spec)
+    return specs
+
+
+def layers_of(spec: dict) -> list[dict]:
+    """A chart's layers, nested ones too, each with the data it draws (its own or its parent's)."""
+    found = []
+
+    def walk(node: dict, data: dict | None) -> None:
+        data = node.get("data", data)
+        if "mark" in node:
+            found.append({**node, "data": data})
+        for child in node.get("layer", []):
+            walk(child, data)
+
+    walk(spec, None)
+    return found
+
+
+def mark_of(layer: dict) -> str:
+    return layer["mark"] if isinstance(layer["mark"], str) else layer["mark"]["type"]
 
 
 def sentence_of(at: AppTest, name: str) -> str:
@@ -633,6 +672,11 @@ class TestForecasts:
         assert set(shown["customer"]) <= set(codes)
         picked = at.selectbox(key="customer")
         assert sentence_of(at, picked.format_func(picked.value)).startswith("**cust-")
+        # The chart too: the ringed customer is named by code, and no real id is anywhere in its spec.
+        (pull,) = chart_specs(at)
+        assert not REAL_ID.search(json.dumps(pull))
+        ring = [layer for layer in layers_of(pull) if mark_of(layer) == "point"]
+        assert [layer["encoding"]["color"]["datum"] for layer in ring] == [picked.format_func(picked.value)]
         shared = pd.read_csv(io.StringIO(state.forecast_csv(demo_dataset, "auto", "auto", SECRET)))
         plain = state.forecasts(demo_dataset, "auto", "auto").value
         assert shared["customer"].tolist() == pseudonymise(plain, salt=SECRET)["customer"].tolist()
@@ -648,6 +692,25 @@ class TestForecasts:
             pseudonymise(pd.DataFrame({"customer": [real]}), salt=SECRET)["customer"].iloc[0]]
         at.button(key="pseudonyms_off_forecasts").click().run()
         assert table_with(at, "expected_next_order")["customer"].tolist() == [real]
+
+    def test_pseudonyms_in_the_dots_of_a_small_shop(self):
+        # A shop small enough for one dot per customer: the demo export's orders of its first 300 customers.
+        kept = {f"C-{number:05d}" for number in range(1, 301)}
+        rows = list(csv.reader(io.StringIO(DEMO.read_text(encoding="utf-8"), newline="")))
+        out = io.StringIO()
+        csv.writer(out).writerows([rows[0], *(row for row in rows[1:] if len(row) > 2 and row[2] in kept)])
+        small = out.getvalue().encode()
+        at = open_forecasts(upload(new_app(), "small_shop.csv", small))
+        (pull,) = chart_specs(at)
+        (dots,) = [layer for layer in layers_of(pull) if mark_of(layer) == "circle"]
+        real = [row["customer"] for row in dots["data"]["values"]]
+        assert set(real) <= set(kept) and len(real) > 250  # real ids while the codes are off
+        turn_pseudonyms_on(at, "forecasts")
+        (pull,) = chart_specs(at)
+        (dots,) = [layer for layer in layers_of(pull) if mark_of(layer) == "circle"]
+        codes = pseudonymise(pd.DataFrame({"customer": real}), salt=SECRET)["customer"]
+        assert sorted(row["customer"] for row in dots["data"]["values"]) == sorted(codes)
+        assert not REAL_ID.search(json.dumps(pull))
 
     def test_excel_download_has_headings_formats_and_a_frozen_header(self, demo_dataset, automatic):
         book = openpyxl.load_workbook(io.BytesIO(state.forecast_excel(demo_dataset, "auto", "auto", "", "$")))
@@ -709,9 +772,8 @@ class TestAccuracy:
     def test_compared_charts_share_one_scale(self):
         at = new_app()
         at.switch_page("pages/accuracy.py").run()
-        figures = {chart.proto.id: json.loads(chart.proto.spec) for chart in at.get("plotly_chart")}
-        ranges = [figure["layout"]["xaxis"]["range"] for figure in figures.values()
-                  if figure["layout"].get("xaxis", {}).get("range") is not None]
+        ranges = [layer["encoding"]["x"]["scale"]["domain"] for spec in chart_specs(at)
+                  for layer in layers_of(spec)[:1] if "domain" in layer["encoding"]["x"].get("scale", {})]
         assert len(ranges) == 2 and ranges[0] == ranges[1]
 
     def test_follows_the_method_in_use(self, demo):
@@ -910,20 +972,35 @@ class TestRevenueOutlook:
 
 
 class TestCharts:
+    """The Vega-Lite specs: what each chart draws is the library's numbers, and a spec is strict JSON."""
+
+    @staticmethod
+    def layers(spec: dict, mark: str) -> list[dict]:
+        return [layer for layer in layers_of(spec) if mark_of(layer) == mark]
+
     def test_pull_chart_dots_are_every_customer_at_average_and_forecast(self, automatic):
         table = automatic[0].head(charts.DOTS_AT_MOST)  # a small shop: one dot per customer
-        figure = charts.pull_toward_centre(table, highlight=table["customer"].iloc[0])
-        dots = [trace for trace in figure.data if trace.mode == "markers" and trace.customdata is not None]
-        amounts = np.concatenate([np.asarray(trace.customdata[:, 2:4], dtype=float) for trace in dots])
-        assert len(amounts) == len(table)
-        assert sorted(map(tuple, amounts)) == sorted(zip(table["average_order_value"], table["expected_next_order"]))
-        x = np.concatenate([np.asarray(trace.x, dtype=float) for trace in dots])
-        np.testing.assert_allclose(np.sort(x), np.sort(np.log10(table["average_order_value"])))
-        diagonal = figure.data[0]
-        assert list(diagonal.x) == list(diagonal.y)
+        spec = charts.pull_toward_centre(table, highlight=table["customer"].iloc[0])
+        json.dumps(spec, allow_nan=False)  # strict JSON: no NaN reaches the browser
+        (dots,) = self.layers(spec, "circle")
+        rows = dots["data"]["values"]
+        assert len(rows) == len(table)
+        assert sorted((r["average"], r["forecast"]) for r in rows) == sorted(
+            zip(table["average_order_value"], table["expected_next_order"]))
+        assert sorted(r["customer"] for r in rows) == sorted(table["customer"].astype(str))
+        # The tooltip's money, to the cent with the currency symbol, as on the rest of the page.
+        first = next(r for r in rows if r["customer"] == str(table["customer"].iloc[0]))
+        assert first["average_text"] == f"${table['average_order_value'].iloc[0]:,.2f}"
+        # Both axes are log scales over one money range, ticked where money_ticks puts them.
+        x, y = dots["encoding"]["x"], dots["encoding"]["y"]
+        assert x["scale"]["type"] == y["scale"]["type"] == "log" and x["scale"]["domain"] == y["scale"]["domain"]
+        assert x["axis"]["values"] == charts.money_ticks(*x["scale"]["domain"], "$")[0]
+        (diagonal,) = self.layers(spec, "line")
+        assert [r["average"] for r in diagonal["data"]["values"]] == [r["forecast"] for r in diagonal["data"]["values"]]
         # Coloured as the one definition of low confidence.
-        leaning = [trace for trace in dots if trace.name == "mostly from similar customers"]
-        assert sum(len(trace.x) for trace in leaning) == int(low_confidence(table["own_history_weight"]).sum())
+        leaning = [r for r in rows if r["group"] == "mostly from similar customers"]
+        assert len(leaning) == int(low_confidence(table["own_history_weight"]).sum())
+        assert spec["usermeta"]["embedOptions"]["renderer"] == "svg"
 
     def test_pull_chart_stays_light_for_a_big_shop(self):
         rng = np.random.default_rng(7)
@@ -934,28 +1011,86 @@ class TestCharts:
                               "average_order_value": average,
                               "expected_next_order": weight * average + (1 - weight) * 52.0,
                               "own_history_weight": weight})
-        figure = charts.pull_toward_centre(table, highlight="K123", label="K123")
-        points = sum(len(trace.x) for trace in figure.data if getattr(trace, "mode", None))
-        assert points <= 3  # the diagonal's two ends and the ringed customer
-        cells = next(trace for trace in figure.data if trace.type == "heatmap")
-        assert np.asarray(cells.z).shape == (charts.GRID_CELLS, charts.GRID_CELLS)
-        assert float(np.nansum(np.asarray(cells.customdata, dtype=float))) == n
-        ring = figure.data[-1]
-        assert ring.name == "K123"
-        assert ring.x[0] == pytest.approx(np.log10(average[123]))
+        spec = charts.pull_toward_centre(table, highlight="K123", label="K123")
+        json.dumps(spec, allow_nan=False)
+        assert not self.layers(spec, "circle")  # no dot per customer
+        (cells,) = self.layers(spec, "rect")
+        rows = cells["data"]["values"]
+        assert len(rows) <= charts.GRID_CELLS ** 2
+        assert sum(r["customers"] for r in rows) == n
+        # Each cell's count, counted again the slow obvious way: customers whose point lies inside the cell.
+        # (The grid's last row and column are closed on the upper side, as numpy.histogram2d's are.)
+        for r in rows[:: max(len(rows) // 25, 1)]:
+            top_x = r["average_end"] >= cells["encoding"]["x"]["scale"]["domain"][1] * (1 - 1e-12)
+            top_y = r["forecast_end"] >= cells["encoding"]["y"]["scale"]["domain"][1] * (1 - 1e-12)
+            inside_x = (average >= r["average"] * (1 - 1e-12)) & (
+                (average <= r["average_end"]) if top_x else (average < r["average_end"] * (1 - 1e-12)))
+            forecast = table["expected_next_order"].to_numpy()
+            inside_y = (forecast >= r["forecast"] * (1 - 1e-12)) & (
+                (forecast <= r["forecast_end"]) if top_y else (forecast < r["forecast_end"] * (1 - 1e-12)))
+            assert int((inside_x & inside_y).sum()) == r["customers"]
+        assert spec["usermeta"]["embedOptions"]["renderer"] == "canvas"
+        (ring,) = self.layers(spec, "point")
+        assert ring["encoding"]["color"]["datum"] == "K123"
+        assert ring["data"]["values"][0]["average"] == pytest.approx(average[123])
 
     def test_method_bars_and_intervals_are_the_evaluations(self, demo):
         found = evaluation_module.evaluate_methods(demo[0].orders, bootstrap=50, seed=1)
         part = found.leave_one_out[found.leave_one_out["variance"] == "classic"]
-        figure = charts.method_comparison(part, title="t", highlight="mta", x_range=charts.shared_range(part))
-        bar = figure.data[0]
-        np.testing.assert_allclose(bar.x, part["error_reduction_pct"])
-        np.testing.assert_allclose(np.asarray(bar.x) + np.asarray(bar.error_x.array), part["ci_high"])
-        np.testing.assert_allclose(np.asarray(bar.x) - np.asarray(bar.error_x.arrayminus), part["ci_low"])
-        assert list(bar.y) == [words.method_label(m) for m in part["method"]]
-        assert [c == charts.PALETTE["vermilion"] for c in bar.marker.color] == list(part["method"] == "mta")
-        low, high = figure.layout.xaxis.range
+        spec = charts.method_comparison(part, title="t", highlight="mta", x_range=charts.shared_range(part))
+        json.dumps(spec, allow_nan=False)
+        rows = spec["data"]["values"]
+        np.testing.assert_allclose([r["reduction"] for r in rows], part["error_reduction_pct"])
+        np.testing.assert_allclose([r["high"] for r in rows], part["ci_high"])
+        np.testing.assert_allclose([r["low"] for r in rows], part["ci_low"])
+        (bars,) = self.layers(spec, "bar")
+        assert bars["encoding"]["y"]["sort"] == [words.method_label(m) for m in part["method"]]
+        assert [r["colour"] == charts.PALETTE["vermilion"] for r in rows] == list(part["method"] == "mta")
+        low, high = bars["encoding"]["x"]["scale"]["domain"]
         assert low <= min(0, part["ci_low"].min()) and high >= part["ci_high"].max()
+        assert len(self.layers(spec, "rule")) == 2 and len(self.layers(spec, "tick")) == 2  # whiskers, zero line
+
+    def test_a_missing_interval_draws_no_whisker_and_stays_json(self, demo):
+        found = evaluation_module.evaluate_methods(demo[0].orders, bootstrap=50, seed=1)
+        part = found.leave_one_out[found.leave_one_out["variance"] == "classic"].copy()
+        part.loc[part.index[0], ["ci_low", "ci_high"]] = np.nan
+        spec = charts.method_comparison(part, title="t")
+        text = json.dumps(spec, allow_nan=False)
+        assert spec["data"]["values"][0]["low"] is None and "isValid(datum.low)" in text
+
+    def test_schedule_stacks_both_parts_under_a_running_total_on_its_own_scale(self, demo, automatic):
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(demo[0].orders, horizon=180, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        schedule = projection.schedule
+        spec = outlook_charts.monthly_schedule(schedule, symbol="€", title="t")
+        json.dumps(spec, allow_nan=False)
+        assert spec["resolve"]["scale"]["y"] == "independent"
+        (bars,) = self.layers(spec, "bar")
+        stacked = pd.DataFrame(bars["data"]["values"]).groupby("month", sort=False)["revenue"].sum()
+        np.testing.assert_allclose(stacked.to_numpy(), (schedule["projected_revenue_existing"]
+                                                        + schedule["projected_revenue_new"]).to_numpy())
+        (line,) = self.layers(spec, "line")
+        np.testing.assert_allclose([r["total"] for r in line["data"]["values"]], schedule["cumulative_revenue"])
+        assert line["data"]["values"][0]["tip"].startswith(f"{schedule['month'].iloc[0]}: €")
+        assert line["encoding"]["y"]["axis"]["orient"] == "right"
+        assert '"€" + format(datum.value' in line["encoding"]["y"]["axis"]["labelExpr"]
+
+    def test_every_chart_keeps_to_the_palette_and_offers_no_outside_link(self, demo, automatic):
+        table, method, variance = automatic
+        projection = outlook_module.project_revenue(demo[0].orders, horizon=180, by="quarter", forecasts=table,
+                                                    method=method, variance=variance)
+        specs = [charts.pull_toward_centre(table), charts.tier_shares(outlook_module.tier_summary(
+                     outlook_module.assign_tiers(projection.customers, rank="revenue", shares=(0.1, 0.3))), title="t"),
+                 outlook_charts.group_projection(projection.cohorts, symbol="$", title="t", grouped_by="quarter"),
+                 outlook_charts.monthly_schedule(projection.schedule, symbol="$", title="t")]
+        allowed = set(charts.PALETTE.values()) | {charts.INK, charts.DIAGONAL, "white", "#DCEBF5"}
+        for spec in specs:
+            text = json.dumps(spec, allow_nan=False)
+            assert not re.search(r"https?:|//", text)  # nothing for the browser to fetch or open
+            assert spec["config"]["legend"]["orient"] == "top"
+            colours = set(re.findall(r"#[0-9A-Fa-f]{6}\b", text)) - {charts.GRID, "#BBBBBB"}
+            assert colours <= allowed, colours - allowed
 
 
 class TestWords:

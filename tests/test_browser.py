@@ -173,7 +173,7 @@ class TestInTheBrowser:
 
     def test_forecasts_page_and_csv_download(self, page, tmp_path):
         open_page(page, "Forecasts")
-        page.locator(".js-plotly-plot").first.wait_for()
+        support.drawn_chart(page)
         no_exception_shown(page)
         shoot(page, "forecasts")
         with page.expect_download() as waiting:
@@ -191,23 +191,23 @@ class TestInTheBrowser:
     def test_accuracy_page(self, page):
         open_page(page, "Accuracy check")
         page.get_by_text("On your data").first.wait_for()
-        page.locator(".js-plotly-plot").first.wait_for()
+        support.drawn_chart(page)
         no_exception_shown(page)
         shoot(page, "accuracy")
 
     def test_value_tiers_page(self, page):
         open_page(page, "Value tiers")
         page.get_by_text("are expected to bring in").first.wait_for()
-        page.locator(".js-plotly-plot").first.wait_for()
+        support.drawn_chart(page)
         no_exception_shown(page)
         shoot(page, "value_tiers")
 
     def test_revenue_outlook_page(self, page):
         open_page(page, "Revenue outlook")
-        page.locator(".js-plotly-plot").nth(1).wait_for()
+        support.drawn_chart(page, 1)
         ask_for_the_check_of_the_past(page)
         page.get_by_text("they actually spent").first.wait_for()
-        page.locator(".js-plotly-plot").nth(3).wait_for()
+        support.drawn_chart(page, 3)
         no_exception_shown(page)
         shoot(page, "revenue_outlook")
 
@@ -266,13 +266,12 @@ class TestSixtyThousandCustomers:
     def test_forecasts_page_draws_a_fixed_number_of_shapes(self, big_page):
         tab, _ = big_page
         open_page(tab, "Forecasts")
-        tab.locator(".js-plotly-plot").first.wait_for()
+        chart = support.drawn_chart(tab)
         no_exception_shown(tab)
         assert metric_value(tab, "Customers") == f"{BIG_CUSTOMERS:,}"
-        # A heatmap of customers per cell is one image; the only dots are the ringed customer's.
-        chart = tab.locator(".js-plotly-plot").first
-        assert chart.locator("g.heatmaplayer image, g.heatmaplayer").count() >= 1
-        assert chart.locator("path.point").count() <= 3
+        # The grid of customers per cell is drawn on one canvas: no shape per customer in the page.
+        assert chart.locator("canvas.marks").count() == 1
+        assert chart.locator("svg.marks, path, circle").count() == 0
         tab.get_by_text(f"Customers 1 to 50 of {BIG_CUSTOMERS:,}").first.wait_for()
         shoot(tab, "forecasts_60k")
 
