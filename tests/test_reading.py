@@ -719,6 +719,75 @@ class TestFastPathsAgainstTheirTwins:
         assert fast.values.tolist() == careful.cells.values.tolist()
 
 
+    @pytest.mark.parametrize("pool", [
+        ["C1001", "C1002", "f@s.ex", "", " ivy ", "C\u00e91", "x", "12345678"],  # ids of eight bytes or fewer
+        ["2025-03-14", "2025-03-14 10:22:05", "customer-number-0001", "\u00e9t\u00e9", ""],  # longer texts
+    ])
+    def test_numbering_texts_matches_arrows_hash_table(self, pool):
+        # Short texts are numbered through 64-bit numbers made of their bytes; Arrow's dictionary
+        # encoding (a hash table of the texts) is the twin: the same codes and the same values.
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        from forecasting.io.backends import ArrowOps
+
+        rng = np.random.default_rng(7)
+        values = [pool[i] for i in rng.integers(0, len(pool), 20_000)] + [f"C{i}" for i in range(3000)]
+        array = pa.array(values, type=pa.string())
+        codes, distinct = ArrowOps.distinct(array)
+        reference = pc.dictionary_encode(array)
+        assert distinct.to_pylist() == reference.dictionary.to_pylist()
+        assert codes.tolist() == reference.indices.to_pylist()
+
+    @pytest.mark.parametrize("repeats", [True, False])
+    def test_rules_read_each_distinct_cell_as_they_read_every_cell(self, repeats):
+        # The Arrow backend reads amounts and dates once per distinct cell (or every cell, when most
+        # differ); its twin runs the same rules over every row.
+        import pyarrow as pa
+
+        from forecasting.io import rules
+        from forecasting.io.backends import ArrowOps
+
+        class EveryRow(ArrowOps):
+            def per_distinct(self, x, rule):
+                return rule(self, x)
+
+        rng = np.random.default_rng(11)
+        n = 40_000
+        amounts = ["12.50", "$1,234.50", "(12.00)", "", "n/a", "12,5", "USD 12", "1e3", " 7 ", "-3", "\u20ac5"]
+        dates = ["2025-03-14", "14/03/2025", "", "Mon, 14 Mar 2025", "45660", "2025-02-30", "tbd", "2025-03-14T10:22"]
+        if repeats:
+            amount_cells = [amounts[i] for i in rng.integers(0, len(amounts), n)]
+            date_cells = [dates[i] for i in rng.integers(0, len(dates), n)]
+        else:
+            amount_cells = [f"{v:.2f}" for v in rng.uniform(0, 1e6, n)]
+            date_cells = [f"2025-01-01 {h:02d}:{m:02d}:{s:02d}" for h, m, s in rng.integers(0, [24, 60, 60], (n, 3))]
+        for rule, cells, options in ((rules.read_amount, amount_cells, {"decimal": "."}),
+                                     (rules.read_amount, amount_cells, {"decimal": ","}),
+                                     (rules.read_date, date_cells, {"date_order": "month-first"})):
+            array = pa.array(cells, type=pa.string())
+            once = rule(ArrowOps(), array, **options)
+            every = rule(EveryRow(), array, **options)
+            for key in every:
+                full = [ArrowOps.full_column(out[key], n).to_pylist() for out in (once, every)]
+                assert full[0] == full[1], key
+
+    def test_repeated_keys_are_found_as_a_count_finds_them(self):
+        # Keys are narrowed down in buckets before they are sorted; counting every key is the twin.
+        import collections
+
+        from forecasting.io.clean import repeated_keys
+
+        rng = np.random.default_rng(3)
+        for n, spread in ((0, 1), (1, 1), (7, 3), (5000, 20_000), (300_000, 10**18)):
+            keys = rng.integers(0, spread, n).astype(np.uint64)
+            if n > 10:
+                keys[rng.integers(0, n, 5)] = keys[0]
+            count = collections.Counter(keys.tolist())
+            expected = [i for i, key in enumerate(keys.tolist()) if count[key] > 1]
+            assert repeated_keys(keys).tolist() == expected
+
+
 def test_currency_codes_cover_the_c_librarys_locales():
     # Outside reference: the currency codes of the GNU C library's locale definitions
     # (/usr/share/i18n/locales, int_curr_symbol), where installed. Codes withdrawn from

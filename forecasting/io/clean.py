@@ -48,7 +48,7 @@ import pyarrow.compute as pc
 
 from ..errors import OrderDataError
 from . import rules
-from .backends import ArrowOps
+from .backends import ArrowOps, short_text_keys
 from .read import TEXT_TYPES, ColumnMapping, RawTable, text_frame
 
 __all__ = ["Orders", "ReadOptions", "ReadResult", "Rows", "build_orders", "clean_orders", "finish_orders",
@@ -124,66 +124,19 @@ def pandas_text(array) -> pd.Series:
 
 def encode_text(array) -> tuple[np.ndarray, pa.Array]:
     """``(codes, values)``: each text's number (int32) among the distinct ``values``, in the order
-    they first appear (one pass of Arrow's hash table)."""
-    encoded = _one_chunk(pc.dictionary_encode(_one_chunk(array)))
-    return encoded.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False), encoded.dictionary
+    they first appear (:meth:`~forecasting.io.backends.ArrowOps.distinct`)."""
+    return _OPS.distinct(array)
 
 
 def sorted_order(values: pa.Array) -> np.ndarray:
     """Positions that put Arrow text in order (by code point, as Python sorts text).
 
     Texts of at most eight bytes without a NUL byte (most customer numbers) are sorted as the
-    64-bit numbers their bytes make, padded with zero bytes (UTF-8 sorts by code point byte by
-    byte, and a shorter text sorts before any longer one it begins)."""
-    keys = _short_text_keys(values)
+    64-bit numbers their bytes make (:func:`~forecasting.io.backends.short_text_keys`)."""
+    keys = short_text_keys(values)
     if keys is None:
         return pc.sort_indices(values).to_numpy(zero_copy_only=False)
     return np.argsort(keys, kind="stable")
-
-
-# The bytes of a text of k bytes that count in its eight-byte number (big-endian, so the first
-# byte is the highest).
-_KEPT_BYTES = np.array([0] + [((1 << (8 * k)) - 1) << (8 * (8 - k)) for k in range(1, 9)], dtype=np.uint64)
-
-
-def _text_bytes(values: pa.Array):
-    """``(starts, lengths, padded)``: where each text's bytes start in ``padded`` (the array's bytes
-    followed by eight zero bytes), and how many they are."""
-    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
-    data = values.buffers()[2]
-    raw = np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8)
-    raw = raw[offsets[0]:offsets[-1]]
-    padded = np.concatenate([raw, np.zeros(8, dtype=np.uint8)])
-    return (offsets[:-1] - offsets[0]).astype(np.int64), offsets[1:] - offsets[:-1], padded
-
-
-def _first_eight(starts: np.ndarray, lengths: np.ndarray, padded: np.ndarray) -> np.ndarray:
-    """Each text's first eight bytes (fewer when it is shorter, then zero bytes) as a big-endian
-    64-bit number."""
-    windows = np.lib.stride_tricks.sliding_window_view(padded, 8)[starts]
-    return windows.view(">u8").ravel().astype(np.uint64) & _KEPT_BYTES[np.minimum(lengths, 8)]
-
-
-def _short_text_keys(values: pa.Array) -> np.ndarray | None:
-    """Each text as a 64-bit number with the same order, or None when some text is longer than eight
-    bytes or holds a NUL byte."""
-    values = _one_chunk(values)
-    if len(values) < 2 or values.type != pa.string() or values.null_count:
-        return None
-    starts, lengths, padded = _text_bytes(values)
-    if lengths.max() > 8 or (padded[:-8] == 0).any():
-        return None
-    return _first_eight(starts, lengths, padded)
-
-
-def _text_fingerprint(values: pa.Array) -> np.ndarray:
-    """A 64-bit number per text from its first eight bytes and its length (equal texts, equal
-    numbers; different texts mostly differ)."""
-    values = _one_chunk(values)
-    if len(values) == 0 or values.type != pa.string():
-        return np.zeros(len(values), dtype=np.uint64)
-    starts, lengths, padded = _text_bytes(values)
-    return _mixed([_first_eight(starts, lengths, padded), lengths.astype(np.int64)])
 
 
 def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | None = None) -> pd.Categorical:
@@ -197,7 +150,13 @@ def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | Non
     rank = np.zeros(len(values), dtype=np.int32)
     rank[picked] = np.arange(len(picked), dtype=np.int32)
     categories = pd.Index(pandas_text(values.take(pa.array(picked))))
-    return pd.Categorical.from_codes(rank[codes], dtype=pd.CategoricalDtype(categories), validate=False)
+    return pd.Categorical.from_codes(rank[codes], dtype=_distinct_categories(categories), validate=False)
+
+
+def _distinct_categories(categories: pd.Index) -> pd.CategoricalDtype:
+    """The categorical type of values known to be distinct (pandas' own check hashes them all again)."""
+    trusted = getattr(pd.CategoricalDtype, "_from_fastpath", None)
+    return trusted(categories, False) if trusted is not None else pd.CategoricalDtype(categories)
 
 
 # From this many rows the reader runs independent steps side by side, in threads of its own
@@ -313,26 +272,40 @@ def _mixed(parts: list[np.ndarray]) -> np.ndarray:
 
 
 def repeated_keys(keys: np.ndarray) -> np.ndarray:
-    """The rows whose key occurs more than once, in row order (the keys sorted once; the repeated
-    ones looked up by bisection)."""
-    ordered = np.sort(keys)
+    """The rows whose key occurs more than once, in row order.
+
+    Rows are first counted in buckets by three ranges of their key's bits (each round counting
+    only the rows that shared a bucket in the round before): a key that occurs twice shares its
+    bucket in every round, so a row alone in a bucket holds a key that occurs once. The few rows
+    left are sorted by key."""
+    n = len(keys)
+    bits = min(23, max(16, n.bit_length() + 1))
+    mask = np.uint64((1 << bits) - 1)
+    rows = None
+    for shift in (0, (64 - bits) // 2, 64 - bits):
+        part = keys if rows is None else keys[rows]
+        if len(part) < 1 << 12:
+            break
+        bucket = ((part >> np.uint64(shift)) & mask).astype(np.intp)
+        crowded = np.bincount(bucket, minlength=1 << bits)[bucket] > 1
+        rows = np.flatnonzero(crowded) if rows is None else rows[crowded]
+    if rows is None:
+        rows = np.arange(n)
+    part = keys[rows]
+    order = np.argsort(part, kind="stable")
+    ordered = part[order]
     same = ordered[1:] == ordered[:-1]
-    if not same.any():
-        return np.zeros(0, dtype=np.int64)
-    repeated = np.unique(ordered[1:][same])
-    # Rows whose key's low 16 bits are those of a repeated key (a table of 65,536 flags), then the
-    # key itself among the repeated ones.
-    table = np.zeros(1 << 16, dtype=bool)
-    table[(repeated & np.uint64(0xFFFF)).astype(np.intp)] = True
-    maybe = np.flatnonzero(table[(keys & np.uint64(0xFFFF)).astype(np.intp)])
-    return maybe[np.isin(keys[maybe], repeated)]
+    repeated = np.zeros(len(rows), dtype=bool)
+    repeated[order[1:][same]] = True
+    repeated[order[:-1][same]] = True
+    return rows[repeated]
 
 
 def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndarray:
     """Exact copies of an earlier record (every cell equal), blank records left aside.
 
-    ``keys`` mixes each record's readings and the start of its customer cell (:func:`_row_keys`):
-    copies have equal keys, so only records whose key repeats (:func:`repeated_keys`) are
+    ``keys`` mixes each record's readings and the number of its customer cell: copies have equal
+    keys, so only records whose key repeats (:func:`repeated_keys`) are
     compared cell by cell."""
     n = len(blank)
     out = np.zeros(n, dtype=bool)
@@ -347,18 +320,6 @@ def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndar
     return out
 
 
-def _per_distinct_text(cells: pa.Array, rule) -> tuple[np.ndarray, pa.Array, pa.Array]:
-    """``(codes, values, raw_codes)``: ``rule`` (text -> text) read once for each distinct cell, the
-    results numbered (cells that read the same share a number), and each cell's own number among
-    the distinct cells."""
-    raw_codes, raw = encode_text(cells)
-    read = rule(raw)
-    if read is raw:
-        return raw_codes, raw, raw_codes  # the rule kept every text as it is
-    merged, values = encode_text(read)
-    return merged[raw_codes] if len(raw_codes) else raw_codes, values, raw_codes
-
-
 @dataclass
 class _Ids:
     """The columns read as whole columns (their values numbered): customer ids, order ids, segments."""
@@ -368,36 +329,51 @@ class _Ids:
     customer_order: np.ndarray
     changed: np.ndarray
     no_customer: np.ndarray
+    cell_code: np.ndarray  # int32: the customer cell as written, numbered (equal cells, equal numbers)
     order_code: np.ndarray | None = None
     order_ids: pa.Array | None = None
     segment_code: np.ndarray | None = None
     segments: pa.Array | None = None
 
 
+def _per_row(flags: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """A flag per distinct value as a flag per row (no row looked up when no value is flagged)."""
+    if not flags.any():
+        return np.zeros(len(codes), dtype=bool)
+    return flags[codes]
+
+
+def _stripped_codes(cells: pa.Array) -> tuple[np.ndarray, pa.Array]:
+    """Cells stripped and numbered (cells that read the same share a number): each distinct cell
+    stripped once."""
+    raw_codes, raw = _OPS.distinct(cells)
+    read = _OPS.strip(raw, rules.WHITESPACE)
+    if read is raw:
+        return raw_codes, raw  # no cell had spaces to strip
+    merged, values = _OPS.distinct(read)
+    return merged[raw_codes], values
+
+
 def _read_ids(customer: pa.Array, order: pa.Array | None, segment: pa.Array | None) -> _Ids:
     """:func:`forecasting.io.rules.read_customer` once per distinct customer cell (a few hundred
     thousand, not millions), the ids numbered and their sorting order; order ids and segments
     stripped and numbered likewise."""
-    changed_of: list = []
-
-    def read_customer(values):
-        found = rules.read_customer(_OPS, values)
-        changed_of.append(_full(found["changed"], len(values), bool))
-        return found["customer"]
-
-    code, ids, raw_codes = _per_distinct_text(customer, read_customer)
-    found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
-                 changed=changed_of[0][raw_codes] if len(raw_codes) else np.zeros(0, dtype=bool),
-                 no_customer=_numpy(pc.equal(ids, ""), bool)[code] if len(code) else np.zeros(0, dtype=bool))
-
-    def strip(values):
-        return _OPS.strip(values, rules.WHITESPACE)
-
+    cell_code, cells = _OPS.distinct(customer)
+    found = rules.read_customer(_OPS, cells)
+    read = found["customer"]
+    if read is cells:
+        code, ids = cell_code, cells  # every cell is its id as written
+    else:
+        merged, ids = _OPS.distinct(read)
+        code = merged[cell_code]
+    ids_found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
+                     changed=_per_row(_full(found["changed"], len(cells), bool), cell_code),
+                     no_customer=_per_row(_numpy(pc.equal(ids, ""), bool), code), cell_code=cell_code)
     if order is not None:
-        found.order_code, found.order_ids, _ = _per_distinct_text(order, strip)
+        ids_found.order_code, ids_found.order_ids = _stripped_codes(order)
     if segment is not None:
-        found.segment_code, found.segments, _ = _per_distinct_text(segment, strip)
-    return found
+        ids_found.segment_code, ids_found.segments = _stripped_codes(segment)
+    return ids_found
 
 
 @dataclass
@@ -414,7 +390,6 @@ class _Readings:
     micros: np.ndarray
     date_kind: np.ndarray
     hints: np.ndarray
-    key: np.ndarray  # uint64: the readings and the customer cell's start mixed (see _copies)
 
     @staticmethod
     def join(parts: list["_Readings"]) -> "_Readings":
@@ -453,11 +428,10 @@ def _read_block(columns: dict, mapping: ColumnMapping, *, decimal: str, date_ord
     amount_kind = _full(amount["kind"], n, np.int8)
     micros = _numpy(when["micros"], np.int64, fill=0)
     date_kind = _full(when["kind"], n, np.int8)
-    key = _mixed([_text_fingerprint(cell("customer")), amounts, micros, amount_kind, date_kind, status])
     return _Readings(blank=blank, too_long=too_long, damaged=damaged, status=status, amount=amounts,
                      amount_kind=amount_kind, currency=_OPS.full_column(currency, n), micros=micros,
                      date_kind=date_kind,
-                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16), key=key)
+                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16))
 
 
 def _blocks(n: int) -> list[tuple[int, int]]:
@@ -488,9 +462,10 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
                    mapping, decimal=decimal, date_order=date_order, possibly_damaged=possibly_damaged)
             for start, stop in _blocks(n)]
     read = _Readings.join([job.result() for job in jobs])
-    # Copies are found while the ids are still being read.
-    duplicate = _copies(cells, read.blank, read.key)
     ids = ids_job.result()
+    # Copies have equal readings and the same customer cell.
+    duplicate = _copies(cells, read.blank, _mixed([ids.cell_code, read.amount, read.micros, read.amount_kind,
+                                                   read.date_kind, read.status]))
     row = {"blank": pa.array(read.blank), "too_long": pa.array(read.too_long), "damaged": pa.array(read.damaged),
            "no_customer": pa.array(ids.no_customer), "customer": None, "status": pa.array(read.status),
            "currency": read.currency, "amount_kind": pa.array(read.amount_kind),
@@ -893,36 +868,50 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     else:
         verdict[outside] = _CODE["implausible_amount"]
         kept_anyway = np.zeros_like(outside)
+    # Without order ids each line is an order of its own (order k is line k); when every record is
+    # a line, line k is record k. Those look-ups are left out.
+    own_orders = rows.order_code is None
+    every_record = len(orders.position) == len(rows.reason)
+
+    def records(at):
+        return at if every_record else orders.position[at]
+
     reason = rows.reason.copy()
     reason[orders.inherited[0]] = orders.inherited[1]
-    line_verdict = verdict[orders.order]
+    line_verdict = verdict if own_orders else verdict[orders.order]
     real = line_verdict >= 0
-    position = orders.position[real]
-    reason[position] = line_verdict[real]
+    if every_record and real.all():
+        reason = line_verdict.astype(reason.dtype)
+    else:
+        reason[orders.position[real]] = line_verdict[real]
     used_lines = real & (line_verdict == 0)
     further = used_lines & ~orders.counted & ~orders.carrier
-    notes[orders.position[further]] |= rules.NOTE_BITS["continuation_line"]
-    notes[orders.position[used_lines & kept_anyway[orders.order]]] |= rules.NOTE_BITS["implausible_kept"]
+    if further.any():
+        notes[records(np.flatnonzero(further))] |= rules.NOTE_BITS["continuation_line"]
+    if kept_anyway.any():
+        kept_lines = used_lines & (kept_anyway if own_orders else kept_anyway[orders.order])
+        notes[records(np.flatnonzero(kept_lines))] |= rules.NOTE_BITS["implausible_kept"]
     _note_merged_ids(rows, reason, notes)
 
     kept = np.flatnonzero(verdict == 0)
     # Orders by date, then by place in the file (an order's number follows its first line): the order
     # in which every engine adds them up.
     kept = kept[date_order(orders.order_micros[kept])]
-    first_line = orders.position[orders.first[kept]]
+    first_line = records(kept if own_orders else orders.first[kept])
     if rows.order_code is not None:
         # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
         order_ids = pandas_text(rows.order_ids.cast(pa.large_string()).take(
             pa.array(rows.order_code[first_line]))).array
     else:
-        order_ids = pandas_text(pa.array(np.full(len(kept), "", dtype=object), type=pa.string())).array
+        order_ids = pandas_text(_empty_texts(len(kept))).array
     table = pd.DataFrame({
         "customer": text_categories(rows.customer_code[first_line], rows.customer_ids, rows.customer_order),
         "order_id": order_ids,
-        "order_date": orders.order_micros[kept].astype("datetime64[us]").astype("datetime64[ns]"),
-        "order_value": orders.value[kept].astype(np.float64),
+        # Microseconds to nanoseconds: the readable years (1900-2199) fit.
+        "order_date": (orders.order_micros[kept] * 1000).view("datetime64[ns]"),
+        "order_value": orders.value[kept].astype(np.float64, copy=False),
         "line": lines[first_line],
-    })
+    }, copy=False)
     if rows.segment_code is not None:
         table["segment"] = _order_segments(rows, orders, kept)
     used = reason == 0
@@ -957,8 +946,15 @@ def _order_segments(rows: Rows, orders: Orders, kept: np.ndarray) -> pd.Categori
     return text_categories(codes.astype(np.int32), values)
 
 
+def _empty_texts(n: int) -> pa.Array:
+    """``n`` empty texts (Arrow, 64-bit offsets), built without a Python object per text."""
+    return pa.LargeStringArray.from_buffers(n, pa.py_buffer(np.zeros(n + 1, dtype=np.int64)), pa.py_buffer(b""))
+
+
 def _note_merged_ids(rows: Rows, reason: np.ndarray, notes: np.ndarray) -> None:
     """Rows used whose e-mail id is written otherwise than on the customer's first row used."""
+    if not rows.changed.any():
+        return
     used = np.flatnonzero(reason == 0)
     if not len(used) or not rows.changed[used].any():
         return
@@ -1062,10 +1058,10 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
         notes += rules.order_total_note(mapping.value)
     orders = build_orders(rows, order_total=order_total)
     usual = usual_range_of(kept_log_values(orders))
-    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=lines)
+    # The orders' lines as spreadsheet rows (the column after the amount).
+    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=rows_at)
     notes += rules.unrecognised_status_note(done.unrecognised)
-    table = done.orders
-    table.insert(4, "row", rows_at[table.pop("line").to_numpy()])
+    table = done.orders.rename(columns={"line": "row"})
     if rows.order_code is None:
         # Each row is an order: its id is its row ("row-17").
         table["order_id"] = pandas_text(pc.utf8_replace_slice(
