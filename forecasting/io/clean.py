@@ -226,6 +226,8 @@ class Rows:
     has_order_id: np.ndarray | None  # bool: the order id is not empty
     segment_code: np.ndarray | None  # int32 code of the segment, stripped, into segments
     segments: pa.Array | None
+    order_group: np.ndarray | None = None  # int64: the (customer, order id) pair's number (order_groups)
+    order_group_count: int = 0
 
     def reached(self, rule: str) -> np.ndarray:
         """Rows that no rule before ``rule`` left out."""
@@ -463,9 +465,9 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
             for start, stop in _blocks(n)]
     read = _Readings.join([job.result() for job in jobs])
     ids = ids_job.result()
-    # Copies have equal readings and the same customer cell.
-    duplicate = _copies(cells, read.blank, _mixed([ids.cell_code, read.amount, read.micros, read.amount_kind,
-                                                   read.date_kind, read.status]))
+    # Copies have equal readings and the same customer cell; they are found while the reasons are given.
+    copies_job = beside(n, _copies, cells, read.blank, _mixed([ids.cell_code, read.amount, read.micros,
+                                                               read.amount_kind, read.date_kind, read.status]))
     row = {"blank": pa.array(read.blank), "too_long": pa.array(read.too_long), "damaged": pa.array(read.damaged),
            "no_customer": pa.array(ids.no_customer), "customer": None, "status": pa.array(read.status),
            "currency": read.currency, "amount_kind": pa.array(read.amount_kind),
@@ -481,10 +483,14 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
     notes = _full(rules.row_notes(_OPS, row, keep_unpaid=options.keep_unpaid,
                                   keep_implausible=options.keep_implausible, dates=dates), n, np.int16)
     # Copies of an earlier record overrule every reason after a damaged row (as in rules.row_reason).
+    duplicate = copies_job.result()
     reason[duplicate & ((reason == 0) | (reason > _CODE["duplicate_row"]))] = _CODE["duplicate_row"]
-    has_order_id = None
+    has_order_id = group = None
+    count = 0
     if ids.order_ids is not None:
         has_order_id = _numpy(pc.not_equal(ids.order_ids, ""), bool)[ids.order_code] if n else np.zeros(0, bool)
+        # The pairs of customer and order id numbered once, for every step that groups lines into orders.
+        group, count = order_groups(ids.customer_code, ids.order_code)
     return Rows(
         reason=reason,
         notes=notes,
@@ -504,6 +510,8 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
         order_code=ids.order_code,
         order_ids=ids.order_ids,
         has_order_id=has_order_id,
+        order_group=group,
+        order_group_count=count,
         segment_code=ids.segment_code,
         segments=ids.segments,
     )
@@ -600,7 +608,7 @@ def order_total_evidence(rows: Rows) -> tuple[int, int, int]:
     if not candidate.any():
         return 0, 0, 0
     at = np.flatnonzero(candidate)
-    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    group, groups = rows.order_group[at], rows.order_group_count
     amount = rows.amount[at]
     blank = rows.reason[at] != 0
     lines = np.bincount(group, minlength=groups)
@@ -726,7 +734,7 @@ def inherited_reasons(rows: Rows) -> tuple[np.ndarray, np.ndarray]:
     at = np.flatnonzero(lines)
     if not len(at):
         return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int8)
-    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    group, groups = rows.order_group[at], rows.order_group_count
     first = np.full(groups, len(at), dtype=np.int64)
     np.minimum.at(first, group, np.arange(len(at)))
     first_reason = rows.reason[at][first][group]
@@ -757,7 +765,7 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     signed = np.where(is_refund, -np.abs(amount), amount)
     if rows.order_code is not None:
         has_id = rows.has_order_id[position]
-        group, groups = order_groups(rows.customer_code[position], rows.order_code[position])
+        group, groups = rows.order_group[position], rows.order_group_count
         # A line without an order id is an order of its own.
         key = np.where(has_id, group, groups + np.arange(len(position)))
         order, _ = pd.factorize(key)
@@ -898,6 +906,8 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     # in which every engine adds them up.
     kept = kept[date_order(orders.order_micros[kept])]
     first_line = records(kept if own_orders else orders.first[kept])
+    customers = beside(len(kept), text_categories, rows.customer_code[first_line], rows.customer_ids,
+                       rows.customer_order)
     if rows.order_code is not None:
         # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
         order_ids = pandas_text(rows.order_ids.cast(pa.large_string()).take(
@@ -905,13 +915,13 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     else:
         order_ids = pandas_text(_empty_texts(len(kept))).array
     table = pd.DataFrame({
-        "customer": text_categories(rows.customer_code[first_line], rows.customer_ids, rows.customer_order),
         "order_id": order_ids,
         # Microseconds to nanoseconds: the readable years (1900-2199) fit.
         "order_date": (orders.order_micros[kept] * 1000).view("datetime64[ns]"),
         "order_value": orders.value[kept].astype(np.float64, copy=False),
         "line": lines[first_line],
     }, copy=False)
+    table.insert(0, "customer", customers.result())
     if rows.segment_code is not None:
         table["segment"] = _order_segments(rows, orders, kept)
     used = reason == 0
@@ -1064,8 +1074,7 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     table = done.orders.rename(columns={"line": "row"})
     if rows.order_code is None:
         # Each row is an order: its id is its row ("row-17").
-        table["order_id"] = pandas_text(pc.utf8_replace_slice(
-            pc.cast(pa.array(table["row"].to_numpy()), pa.large_string()), 0, 0, "row-")).array
+        table["order_id"] = pandas_text(row_labels(table["row"].to_numpy())).array
     excluded = excluded_table(cells, rows_at, done.reason, raw.set_aside)
     noted = noted_table(rows_at, done.notes, done.reason)
     result = ReadResult(orders=table, excluded=excluded, mapping=mapping, rows_read=len(cells) + len(raw.set_aside),
@@ -1074,6 +1083,19 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     if table.empty:
         raise rules.no_usable_orders(result.audit()["excluded"], file_name=file_name)
     return result
+
+
+def _labels(rows: np.ndarray) -> pa.Array:
+    return pc.utf8_replace_slice(pc.cast(pa.array(rows), pa.large_string()), 0, 0, "row-")
+
+
+def row_labels(rows: np.ndarray) -> pa.Array:
+    """``row-17`` for row 17: the id of an order that is one row (in halves side by side when there
+    are many)."""
+    if len(rows) < SIDE_BY_SIDE_ROWS:
+        return _labels(rows)
+    jobs = [beside(len(rows), _labels, half) for half in np.array_split(rows, 2)]
+    return pa.concat_arrays([job.result() for job in jobs])
 
 
 def excluded_table(cells: pd.DataFrame, rows_at: np.ndarray, reason: np.ndarray,
