@@ -734,10 +734,11 @@ class TestFastPathsAgainstTheirTwins:
         rng = np.random.default_rng(7)
         values = [pool[i] for i in rng.integers(0, len(pool), 20_000)] + [f"C{i}" for i in range(3000)]
         array = pa.array(values, type=pa.string())
-        codes, distinct = ArrowOps.distinct(array)
         reference = pc.dictionary_encode(array)
-        assert distinct.to_pylist() == reference.dictionary.to_pylist()
-        assert codes.tolist() == reference.indices.to_pylist()
+        for many in (True, False):
+            codes, distinct = ArrowOps.distinct(array, many=many)
+            assert distinct.to_pylist() == reference.dictionary.to_pylist()
+            assert codes.tolist() == reference.indices.to_pylist()
 
     @pytest.mark.parametrize("repeats", [True, False])
     def test_rules_read_each_distinct_cell_as_they_read_every_cell(self, repeats):

@@ -277,15 +277,16 @@ class ArrowOps:
         return x
 
     @staticmethod
-    def distinct(x) -> tuple[np.ndarray, pa.Array]:
+    def distinct(x, *, many: bool = False) -> tuple[np.ndarray, pa.Array]:
         """``(codes, values)``: each text's number (int32) among the distinct ``values``, numbered in
         the order they first appear.
 
-        Texts of at most eight bytes without a NUL byte (customer numbers, amounts) are hashed as
-        the 64-bit numbers their bytes make (:func:`short_text_keys`), which is about twice as
-        fast as hashing the texts; other columns go through Arrow's hash table of texts."""
+        Arrow's hash table of texts is quickest while the distinct values are few (prices, days,
+        statuses: the table stays in the processor's cache). With ``many`` (customer ids: hundreds
+        of thousands), texts of at most eight bytes without a NUL byte are hashed as the 64-bit
+        numbers their bytes make (:func:`short_text_keys`), about twice as fast as hashing texts."""
         x = _one_chunk(x)
-        keys = short_text_keys(x) if len(x) >= _HASHED_AS_NUMBERS_FROM else None
+        keys = short_text_keys(x) if many and len(x) >= _HASHED_AS_NUMBERS_FROM else None
         if keys is None:
             encoded = _one_chunk(pc.dictionary_encode(x))
             return encoded.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False), encoded.dictionary
@@ -456,6 +457,16 @@ def _no_edges(x: pa.Array, characters: str) -> bool:
     first = raw[starts[filled]]
     last = raw[ends[filled] - 1]
     return bool(_PLAIN_BYTES[first].all() and _PLAIN_BYTES[last].all())
+
+
+def may_be_blank(x) -> np.ndarray:
+    """Cells that are empty or start with a byte other than a printable ASCII character (only those
+    can be nothing but spaces); read from the first byte of each cell."""
+    x = _one_chunk(x)
+    if x.type != pa.string() or x.null_count:
+        return np.ones(len(x), dtype=bool)
+    starts, lengths, padded = text_bytes(x)
+    return (lengths == 0) | ~_PLAIN_BYTES[padded[starts]]
 
 
 # Printable ASCII characters other than the space.

@@ -48,7 +48,7 @@ import pyarrow.compute as pc
 
 from ..errors import OrderDataError
 from . import rules
-from .backends import ArrowOps, short_text_keys
+from .backends import ArrowOps, may_be_blank, short_text_keys
 from .read import TEXT_TYPES, ColumnMapping, RawTable, text_frame
 
 __all__ = ["Orders", "ReadOptions", "ReadResult", "Rows", "build_orders", "clean_orders", "finish_orders",
@@ -237,6 +237,8 @@ class Rows:
 def _blank_rows(columns: list, n: int) -> np.ndarray:
     """Records whose every cell is empty or spaces (the cells stop being read at the first column
     with no blank cell)."""
+    if columns and not may_be_blank(columns[0]).any():
+        return np.zeros(n, dtype=bool)
     blank = np.ones(n, dtype=bool)
     for array in columns:
         blank &= _numpy(pc.equal(pc.utf8_trim(array, characters=rules.WHITESPACE), ""), bool)
@@ -360,13 +362,13 @@ def _read_ids(customer: pa.Array, order: pa.Array | None, segment: pa.Array | No
     """:func:`forecasting.io.rules.read_customer` once per distinct customer cell (a few hundred
     thousand, not millions), the ids numbered and their sorting order; order ids and segments
     stripped and numbered likewise."""
-    cell_code, cells = _OPS.distinct(customer)
+    cell_code, cells = _OPS.distinct(customer, many=True)
     found = rules.read_customer(_OPS, cells)
     read = found["customer"]
     if read is cells:
         code, ids = cell_code, cells  # every cell is its id as written
     else:
-        merged, ids = _OPS.distinct(read)
+        merged, ids = _OPS.distinct(read, many=True)
         code = merged[cell_code]
     ids_found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
                      changed=_per_row(_full(found["changed"], len(cells), bool), cell_code),
