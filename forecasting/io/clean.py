@@ -451,9 +451,10 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
               possibly_damaged: bool = True) -> Rows:
     """The rules of :mod:`forecasting.io.rules` on every record (see the module docstring, step 1).
 
-    The rules that read one cell run over blocks of records side by side; the customer ids (and
-    order ids and segments) are read once per distinct cell, beside them; then the reason of
-    each record, its notes and the copies of earlier records, over the whole table."""
+    The rules that read one cell run over blocks of records side by side (amounts and dates once
+    per distinct cell of a block); the customer ids (and order ids and segments) are read once per
+    distinct cell, beside them; then the reason of each record and its notes over the whole
+    table, with the copies of earlier records found beside them."""
     n = len(cells)
     columns = {name: arrow_text(cells[name]) for name in cells.columns}
 
