@@ -376,6 +376,16 @@ class TestOrderTotals:
         assert result.noted[["row", "note_code"]].values.tolist() == [[3, "continuation_line"]]
         assert result.audit()["noted"] == {"continuation_line": 1}
 
+    def test_an_order_with_lines_left_out_before_it_is_grouped_is_still_accounted(self):
+        # The pairs of customer and order id are numbered over every row; the row without a customer
+        # (no line of any order) names a pair that no line of an order has.
+        text = ("order,customer,date,amount,status\n" + "A1,C1,2025-01-02,10,paid\n" * 7
+                + "A1,C1,2025-01-02,,paid\nA1,,2025-01-02,10,paid\n")
+        result, reasons = account_of(text)
+        assert reasons == {3: "duplicate_row", 4: "duplicate_row", 5: "duplicate_row", 6: "duplicate_row",
+                           7: "duplicate_row", 8: "duplicate_row", 10: "missing_customer"}
+        assert result.orders["order_value"].tolist() == [10.0]
+
 
 class TestStatuses:
     @pytest.mark.parametrize("status, reason", [

@@ -740,7 +740,8 @@ def inherited_reasons(rows: Rows) -> tuple[np.ndarray, np.ndarray]:
     group, groups = rows.order_group[at], rows.order_group_count
     first = np.full(groups, len(at), dtype=np.int64)
     np.minimum.at(first, group, np.arange(len(at)))
-    first_reason = rows.reason[at][first][group]
+    # Pairs without a line here keep len(at) as their first: only the pairs of these lines are looked up.
+    first_reason = rows.reason[at][first[group]]
     take = (rows.reason[at] == _CODE["missing_amount"]) & np.isin(first_reason,
                                                                    [_CODE[c] for c in rules.INHERITED_REASONS])
     return at[take], first_reason[take].astype(np.int8)
@@ -862,9 +863,12 @@ def date_order(micros: np.ndarray) -> np.ndarray:
     return np.argsort(micros, kind="stable")
 
 
-def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, lines: np.ndarray) -> Finished:
+def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, lines: np.ndarray,
+                  named_by_line: bool = False) -> Finished:
     """Orders outside the usual range, every record's final reason and notes, merged e-mail ids, and
-    the table of kept orders (``lines``: each record's place, kept as the order's ``line``).
+    the table of kept orders (``lines``: each record's place, kept as the order's ``line``). With
+    ``named_by_line`` (``lines`` are spreadsheet rows), an order without an order id is named by
+    its row (``row-17``); else its id is empty.
 
     The table is compact: ``customer`` (and ``segment``) as pandas Categoricals of the values used
     (sorted), the order id as Arrow-backed text, dates and amounts as numpy arrays."""
@@ -909,28 +913,34 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     # in which every engine adds them up.
     kept = kept[date_order(orders.order_micros[kept])]
     first_line = records(kept if own_orders else orders.first[kept])
+    line = lines[first_line]
+    # The customers' categories and the orders' names are made beside the other columns.
     customers = beside(len(kept), text_categories, rows.customer_code[first_line], rows.customer_ids,
                        rows.customer_order)
-    if rows.order_code is not None:
-        # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
-        order_ids = pandas_text(rows.order_ids.cast(pa.large_string()).take(
-            pa.array(rows.order_code[first_line]))).array
-    else:
-        order_ids = pandas_text(_empty_texts(len(kept))).array
-    table = pd.DataFrame({
-        "order_id": order_ids,
+    names = [beside(len(kept), row_labels, half) for half in np.array_split(line, 2)] \
+        if rows.order_code is None and named_by_line else []
+    columns = {
         # Microseconds to nanoseconds: the readable years (1900-2199) fit.
         "order_date": (orders.order_micros[kept] * 1000).view("datetime64[ns]"),
         "order_value": orders.value[kept].astype(np.float64, copy=False),
-        "line": lines[first_line],
-    }, copy=False)
-    table.insert(0, "customer", customers.result())
+        "line": line,
+    }
+    if rows.order_code is not None:
+        # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
+        order_ids = rows.order_ids.cast(pa.large_string()).take(pa.array(rows.order_code[first_line]))
+    elif names:
+        order_ids = pa.concat_arrays([job.result() for job in names])
+    else:
+        order_ids = _empty_texts(len(kept))
+    table = pd.DataFrame({"customer": customers.result(), "order_id": pandas_text(order_ids).array, **columns},
+                         copy=False)
     if rows.segment_code is not None:
         table["segment"] = _order_segments(rows, orders, kept)
-    used = reason == 0
-    unknown = used & (rows.status == rules.STATUS_UNKNOWN)
     first_seen = {}
-    if unknown.any() and rows.status_cell is not None:
+    unknown = None
+    if rows.status_cell is not None:
+        unknown = (reason == 0) & (rows.status == rules.STATUS_UNKNOWN)
+    if unknown is not None and unknown.any():
         # In the order each status first appears, as every engine lists them.
         at = np.flatnonzero(unknown)
         code, statuses = encode_text(pc.utf8_trim(rows.status_cell.take(pa.array(at)), characters=rules.WHITESPACE))
@@ -957,6 +967,11 @@ def _order_segments(rows: Rows, orders: Orders, kept: np.ndarray) -> pd.Categori
         values, unknown = pa.concat_arrays([values, pa.array(["unknown"], type=pa.string())]), len(values)
     codes = np.where(found, segment[np.minimum(chosen, max(len(segment) - 1, 0))], unknown)
     return text_categories(codes.astype(np.int32), values)
+
+
+def row_labels(rows: np.ndarray) -> pa.Array:
+    """``row-17`` for row 17 (Arrow text, 64-bit offsets): the id of an order that is one row."""
+    return pc.utf8_replace_slice(pc.cast(pa.array(rows), pa.large_string()), 0, 0, "row-")
 
 
 def _empty_texts(n: int) -> pa.Array:
@@ -1072,12 +1087,10 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     orders = build_orders(rows, order_total=order_total)
     usual = usual_range_of(kept_log_values(orders))
     # The orders' lines as spreadsheet rows (the column after the amount).
-    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=rows_at)
+    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=rows_at,
+                         named_by_line=True)
     notes += rules.unrecognised_status_note(done.unrecognised)
     table = done.orders.rename(columns={"line": "row"})
-    if rows.order_code is None:
-        # Each row is an order: its id is its row ("row-17").
-        table["order_id"] = pandas_text(row_labels(table["row"].to_numpy())).array
     excluded = excluded_table(cells, rows_at, done.reason, raw.set_aside)
     noted = noted_table(rows_at, done.notes, done.reason)
     result = ReadResult(orders=table, excluded=excluded, mapping=mapping, rows_read=len(cells) + len(raw.set_aside),
@@ -1086,19 +1099,6 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
     if table.empty:
         raise rules.no_usable_orders(result.audit()["excluded"], file_name=file_name)
     return result
-
-
-def _labels(rows: np.ndarray) -> pa.Array:
-    return pc.utf8_replace_slice(pc.cast(pa.array(rows), pa.large_string()), 0, 0, "row-")
-
-
-def row_labels(rows: np.ndarray) -> pa.Array:
-    """``row-17`` for row 17: the id of an order that is one row (in halves side by side when there
-    are many)."""
-    if len(rows) < SIDE_BY_SIDE_ROWS:
-        return _labels(rows)
-    jobs = [beside(len(rows), _labels, half) for half in np.array_split(rows, 2)]
-    return pa.concat_arrays([job.result() for job in jobs])
 
 
 def excluded_table(cells: pd.DataFrame, rows_at: np.ndarray, reason: np.ndarray,
