@@ -783,6 +783,20 @@ class TestFastPathsAgainstTheirTwins:
                 full = [ArrowOps.full_column(out[key], n).to_pylist() for out in (once, every)]
                 assert full[0] == full[1], key
 
+    @settings(max_examples=100, deadline=None)
+    @given(st.lists(st.lists(st.text(alphabet="ab,\"\r\n\u00e9\u2028", max_size=4), min_size=2, max_size=2),
+                    max_size=6), st.integers(0, 3))
+    def test_line_breaks_in_cells_are_found_as_python_finds_them(self, rows, skip):
+        # The reader looks at the cells' bytes for a line break; Python's own search of each cell is
+        # the twin (the table is sliced so that its cells do not start at the first byte).
+        import pyarrow as pa
+
+        from forecasting.io.read import _any_line_break
+
+        table = pa.table({"a": [r[0] for r in rows], "b": [r[1] for r in rows]}).slice(min(skip, len(rows)))
+        expected = any("\n" in cell or "\r" in cell for column in table.columns for cell in column.to_pylist())
+        assert _any_line_break(table) == expected
+
     def test_repeated_keys_are_found_as_a_count_finds_them(self):
         # Keys are narrowed down in buckets before they are sorted; counting every key is the twin.
         import collections
