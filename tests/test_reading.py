@@ -797,6 +797,34 @@ class TestFastPathsAgainstTheirTwins:
         expected = any("\n" in cell or "\r" in cell for column in table.columns for cell in column.to_pylist())
         assert _any_line_break(table) == expected
 
+    @settings(max_examples=150, deadline=None)
+    @given(st.lists(st.sampled_from(["C1,2025-01-02,10", "C2,2025-01-03,12.5", "C1,2025-01-02", "", "  ",
+                                     "a,b,c,d", "C1,2025-01-02,10,", "\u00e9,x", "C3,,"]), max_size=12),
+           st.booleans())
+    def test_rows_handed_back_are_numbered_as_arrows_own_count_numbers_them(self, lines, final_break):
+        # The records Arrow hands back are found among the text's lines; Arrow's own numbering (its
+        # reader on one thread) is the twin.
+        import pyarrow as pa
+
+        from forecasting.io.read import _arrow_records, rejected_lines
+
+        body = "\n".join(["C0,2025-01-01,1"] + lines) + ("\n" if final_break else "")
+        encoded = pa.py_buffer(body.encode())
+        columns = ["customer", "date", "amount"]
+        rejected: list = []
+        numbered: list = []
+        _arrow_records(encoded, ",", columns, rejected, use_threads=True)
+        _arrow_records(encoded, ",", columns, numbered, use_threads=False, numbered=True)
+        found = rejected_lines(encoded, rejected)
+        assert found == numbered
+
+    def test_a_carriage_return_leaves_the_numbering_to_arrow(self):
+        import pyarrow as pa
+
+        from forecasting.io.read import rejected_lines
+
+        assert rejected_lines(pa.py_buffer(b"C1,2025-01-02,10\r\nbad\r\n"), ["bad"]) is None
+
     def test_repeated_keys_are_found_as_a_count_finds_them(self):
         # Keys are narrowed down in buckets before they are sorted; counting every key is the twin.
         import collections
