@@ -826,7 +826,7 @@ class TestFastPathsAgainstTheirTwins:
         assert rejected_lines(pa.py_buffer(b"C1,2025-01-02,10\r\nbad\r\n"), ["bad"]) is None
 
     def test_repeated_keys_are_found_as_a_count_finds_them(self):
-        # Keys are narrowed down in buckets before they are sorted; counting every key is the twin.
+        # Keys are sorted once and the repeated ones looked up; counting every key is the twin.
         import collections
 
         from forecasting.io.clean import repeated_keys

@@ -265,44 +265,37 @@ def _mixed(parts: list[np.ndarray]) -> np.ndarray:
     """One 64-bit number per row from several columns of readings (equal readings give equal numbers;
     a column with one value throughout tells no rows apart and is left out)."""
     key = np.zeros(len(parts[0]), dtype=np.uint64)
+    # One working array for every step (a fresh array per step is memory the system must hand over
+    # again and again).
+    scratch = np.empty_like(key)
     for k, part in enumerate(parts):
         if len(part) and part.dtype.itemsize == 1 and part.min() == part.max():
             continue
-        bits = part.view(np.uint64) if part.dtype.itemsize == 8 else part.astype(np.uint64)
-        key ^= bits
+        if part.dtype.itemsize == 8:
+            key ^= part.view(np.uint64)
+        else:
+            np.copyto(scratch, part, casting="unsafe")
+            key ^= scratch
         key *= _MIX[k % 3]
-        key ^= key >> np.uint64(31)
+        np.right_shift(key, np.uint64(31), out=scratch)
+        key ^= scratch
     return key
 
 
 def repeated_keys(keys: np.ndarray) -> np.ndarray:
-    """The rows whose key occurs more than once, in row order.
-
-    Rows are first counted in buckets by three ranges of their key's bits (each round counting
-    only the rows that shared a bucket in the round before): a key that occurs twice shares its
-    bucket in every round, so a row alone in a bucket holds a key that occurs once. The few rows
-    left are sorted by key."""
-    n = len(keys)
-    bits = min(23, max(16, n.bit_length() + 1))
-    mask = np.uint64((1 << bits) - 1)
-    rows = None
-    for shift in (0, (64 - bits) // 2, 64 - bits):
-        part = keys if rows is None else keys[rows]
-        if len(part) < 1 << 12:
-            break
-        bucket = ((part >> np.uint64(shift)) & mask).astype(np.intp)
-        crowded = np.bincount(bucket, minlength=1 << bits)[bucket] > 1
-        rows = np.flatnonzero(crowded) if rows is None else rows[crowded]
-    if rows is None:
-        rows = np.arange(n)
-    part = keys[rows]
-    order = np.argsort(part, kind="stable")
-    ordered = part[order]
+    """The rows whose key occurs more than once, in row order (the keys sorted once; the repeated
+    ones looked up by bisection)."""
+    ordered = np.sort(keys)
     same = ordered[1:] == ordered[:-1]
-    repeated = np.zeros(len(rows), dtype=bool)
-    repeated[order[1:][same]] = True
-    repeated[order[:-1][same]] = True
-    return rows[repeated]
+    if not same.any():
+        return np.zeros(0, dtype=np.int64)
+    repeated = np.unique(ordered[1:][same])
+    # Rows whose key's low 16 bits are those of a repeated key (a table of 65,536 flags), then the
+    # key itself among the repeated ones.
+    table = np.zeros(1 << 16, dtype=bool)
+    table[(repeated & np.uint64(0xFFFF)).astype(np.intp)] = True
+    maybe = np.flatnonzero(table[(keys & np.uint64(0xFFFF)).astype(np.intp)])
+    return maybe[np.isin(keys[maybe], repeated)]
 
 
 def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndarray:
