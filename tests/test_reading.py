@@ -825,6 +825,17 @@ class TestFastPathsAgainstTheirTwins:
 
         assert rejected_lines(pa.py_buffer(b"C1,2025-01-02,10\r\nbad\r\n"), ["bad"]) is None
 
+    @pytest.mark.parametrize("step", [86_400_000_000, 1_000_000, 1])
+    def test_orders_sorted_by_date_as_a_stable_sort_sorts_them(self, step):
+        # Whole days and whole seconds are sorted as small numbers (numpy's radix sort); numpy's
+        # stable sort of the microseconds is the twin.
+        from forecasting.io.clean import date_order
+
+        rng = np.random.default_rng(5)
+        micros = rng.integers(19_000, 19_800, 50_000) * step
+        assert date_order(micros).tolist() == np.argsort(micros, kind="stable").tolist()
+        assert date_order(np.sort(micros)).tolist() == list(range(len(micros)))
+
     def test_repeated_keys_are_found_as_a_count_finds_them(self):
         # Keys are sorted once and the repeated ones looked up; counting every key is the twin.
         import collections

@@ -844,9 +844,12 @@ def date_order(micros: np.ndarray) -> np.ndarray:
     low, high = int(micros.min()), int(micros.max())
     day, second = 86_400_000_000, 1_000_000
     if (high - low) // day < 1 << 16:
-        days, rest = np.divmod(micros - low, day)
+        # Two working arrays in all (a fresh array is memory the system must hand over again).
+        shifted = np.subtract(micros, low)
+        rest = np.remainder(shifted, day)
         if not rest.any():
-            return np.argsort(days.astype(np.uint16), kind="stable")
+            np.floor_divide(shifted, day, out=shifted)
+            return np.argsort(shifted.astype(np.uint16), kind="stable")
     if (high - low) // second < 1 << 32:
         seconds, rest = np.divmod(micros - low, second)
         if not rest.any():
@@ -922,11 +925,13 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
         # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
         order_ids = rows.order_ids.cast(pa.large_string()).take(pa.array(rows.order_code[first_line]))
     elif names:
-        order_ids = pa.concat_arrays([job.result() for job in names])
+        # The halves stay two pieces of one column (joining them would copy every name).
+        order_ids = pa.chunked_array([job.result() for job in names], type=pa.large_string())
     else:
         order_ids = _empty_texts(len(kept))
-    table = pd.DataFrame({"customer": customers.result(), "order_id": pandas_text(order_ids).array, **columns},
-                         copy=False)
+    order_ids = (pd.Series(order_ids.to_pandas(types_mapper=TEXT_TYPES.get)) if isinstance(order_ids, pa.ChunkedArray)
+                 else pandas_text(order_ids))
+    table = pd.DataFrame({"customer": customers.result(), "order_id": order_ids.array, **columns}, copy=False)
     if rows.segment_code is not None:
         table["segment"] = _order_segments(rows, orders, kept)
     first_seen = {}
