@@ -376,6 +376,16 @@ class TestOrderTotals:
         assert result.noted[["row", "note_code"]].values.tolist() == [[3, "continuation_line"]]
         assert result.audit()["noted"] == {"continuation_line": 1}
 
+    def test_an_order_with_lines_left_out_before_it_is_grouped_is_still_accounted(self):
+        # The pairs of customer and order id are numbered over every row; the row without a customer
+        # (no line of any order) names a pair that no line of an order has.
+        text = ("order,customer,date,amount,status\n" + "A1,C1,2025-01-02,10,paid\n" * 7
+                + "A1,C1,2025-01-02,,paid\nA1,,2025-01-02,10,paid\n")
+        result, reasons = account_of(text)
+        assert reasons == {3: "duplicate_row", 4: "duplicate_row", 5: "duplicate_row", 6: "duplicate_row",
+                           7: "duplicate_row", 8: "duplicate_row", 10: "missing_customer"}
+        assert result.orders["order_value"].tolist() == [10.0]
+
 
 class TestStatuses:
     @pytest.mark.parametrize("status, reason", [
@@ -717,6 +727,129 @@ class TestFastPathsAgainstTheirTwins:
         fast = table.to_pandas().fillna("")
         # A line of nothing but spaces is a blank row to the careful reader.
         assert fast.values.tolist() == careful.cells.values.tolist()
+
+
+    @pytest.mark.parametrize("pool", [
+        ["C1001", "C1002", "f@s.ex", "", " ivy ", "C\u00e91", "x", "12345678"],  # ids of eight bytes or fewer
+        ["2025-03-14", "2025-03-14 10:22:05", "customer-number-0001", "\u00e9t\u00e9", ""],  # longer texts
+    ])
+    def test_numbering_texts_matches_arrows_hash_table(self, pool):
+        # Short texts are numbered through 64-bit numbers made of their bytes; Arrow's dictionary
+        # encoding (a hash table of the texts) is the twin: the same codes and the same values.
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        from forecasting.io.backends import ArrowOps
+
+        rng = np.random.default_rng(7)
+        values = [pool[i] for i in rng.integers(0, len(pool), 20_000)] + [f"C{i}" for i in range(3000)]
+        array = pa.array(values, type=pa.string())
+        reference = pc.dictionary_encode(array)
+        for many in (True, False):
+            codes, distinct = ArrowOps.distinct(array, many=many)
+            assert distinct.to_pylist() == reference.dictionary.to_pylist()
+            assert codes.tolist() == reference.indices.to_pylist()
+
+    @pytest.mark.parametrize("repeats", [True, False])
+    def test_rules_read_each_distinct_cell_as_they_read_every_cell(self, repeats):
+        # The Arrow backend reads amounts and dates once per distinct cell (or every cell, when most
+        # differ); its twin runs the same rules over every row.
+        import pyarrow as pa
+
+        from forecasting.io import rules
+        from forecasting.io.backends import ArrowOps
+
+        class EveryRow(ArrowOps):
+            def per_distinct(self, x, rule):
+                return rule(self, x)
+
+        rng = np.random.default_rng(11)
+        n = 40_000
+        amounts = ["12.50", "$1,234.50", "(12.00)", "", "n/a", "12,5", "USD 12", "1e3", " 7 ", "-3", "\u20ac5"]
+        dates = ["2025-03-14", "14/03/2025", "", "Mon, 14 Mar 2025", "45660", "2025-02-30", "tbd", "2025-03-14T10:22"]
+        if repeats:
+            amount_cells = [amounts[i] for i in rng.integers(0, len(amounts), n)]
+            date_cells = [dates[i] for i in rng.integers(0, len(dates), n)]
+        else:
+            amount_cells = [f"{v:.2f}" for v in rng.uniform(0, 1e6, n)]
+            date_cells = [f"2025-01-01 {h:02d}:{m:02d}:{s:02d}" for h, m, s in rng.integers(0, [24, 60, 60], (n, 3))]
+        for rule, cells, options in ((rules.read_amount, amount_cells, {"decimal": "."}),
+                                     (rules.read_amount, amount_cells, {"decimal": ","}),
+                                     (rules.read_date, date_cells, {"date_order": "month-first"})):
+            array = pa.array(cells, type=pa.string())
+            once = rule(ArrowOps(), array, **options)
+            every = rule(EveryRow(), array, **options)
+            for key in every:
+                full = [ArrowOps.full_column(out[key], n).to_pylist() for out in (once, every)]
+                assert full[0] == full[1], key
+
+    @settings(max_examples=100, deadline=None)
+    @given(st.lists(st.lists(st.text(alphabet="ab,\"\r\n\u00e9\u2028", max_size=4), min_size=2, max_size=2),
+                    max_size=6), st.integers(0, 3))
+    def test_line_breaks_in_cells_are_found_as_python_finds_them(self, rows, skip):
+        # The reader looks at the cells' bytes for a line break; Python's own search of each cell is
+        # the twin (the table is sliced so that its cells do not start at the first byte).
+        import pyarrow as pa
+
+        from forecasting.io.read import _any_line_break
+
+        table = pa.table({"a": [r[0] for r in rows], "b": [r[1] for r in rows]}).slice(min(skip, len(rows)))
+        expected = any("\n" in cell or "\r" in cell for column in table.columns for cell in column.to_pylist())
+        assert _any_line_break(table) == expected
+
+    @settings(max_examples=150, deadline=None)
+    @given(st.lists(st.sampled_from(["C1,2025-01-02,10", "C2,2025-01-03,12.5", "C1,2025-01-02", "", "  ",
+                                     "a,b,c,d", "C1,2025-01-02,10,", "\u00e9,x", "C3,,"]), max_size=12),
+           st.booleans())
+    def test_rows_handed_back_are_numbered_as_arrows_own_count_numbers_them(self, lines, final_break):
+        # The records Arrow hands back are found among the text's lines; Arrow's own numbering (its
+        # reader on one thread) is the twin.
+        import pyarrow as pa
+
+        from forecasting.io.read import _arrow_records, rejected_lines
+
+        body = "\n".join(["C0,2025-01-01,1"] + lines) + ("\n" if final_break else "")
+        encoded = pa.py_buffer(body.encode())
+        columns = ["customer", "date", "amount"]
+        rejected: list = []
+        numbered: list = []
+        _arrow_records(encoded, ",", columns, rejected, use_threads=True)
+        _arrow_records(encoded, ",", columns, numbered, use_threads=False, numbered=True)
+        found = rejected_lines(encoded, rejected)
+        assert found == numbered
+
+    def test_a_carriage_return_leaves_the_numbering_to_arrow(self):
+        import pyarrow as pa
+
+        from forecasting.io.read import rejected_lines
+
+        assert rejected_lines(pa.py_buffer(b"C1,2025-01-02,10\r\nbad\r\n"), ["bad"]) is None
+
+    @pytest.mark.parametrize("step", [86_400_000_000, 1_000_000, 1])
+    def test_orders_sorted_by_date_as_a_stable_sort_sorts_them(self, step):
+        # Whole days and whole seconds are sorted as small numbers (numpy's radix sort); numpy's
+        # stable sort of the microseconds is the twin.
+        from forecasting.io.clean import date_order
+
+        rng = np.random.default_rng(5)
+        micros = rng.integers(19_000, 19_800, 50_000) * step
+        assert date_order(micros).tolist() == np.argsort(micros, kind="stable").tolist()
+        assert date_order(np.sort(micros)).tolist() == list(range(len(micros)))
+
+    def test_repeated_keys_are_found_as_a_count_finds_them(self):
+        # Keys are sorted once and the repeated ones looked up; counting every key is the twin.
+        import collections
+
+        from forecasting.io.clean import repeated_keys
+
+        rng = np.random.default_rng(3)
+        for n, spread in ((0, 1), (1, 1), (7, 3), (5000, 20_000), (300_000, 10**18)):
+            keys = rng.integers(0, spread, n).astype(np.uint64)
+            if n > 10:
+                keys[rng.integers(0, n, 5)] = keys[0]
+            count = collections.Counter(keys.tolist())
+            expected = [i for i, key in enumerate(keys.tolist()) if count[key] > 1]
+            assert repeated_keys(keys).tolist() == expected
 
 
 def test_currency_codes_cover_the_c_librarys_locales():

@@ -48,7 +48,7 @@ import pyarrow.compute as pc
 
 from ..errors import OrderDataError
 from . import rules
-from .backends import ArrowOps
+from .backends import ArrowOps, may_be_blank, short_text_keys
 from .read import TEXT_TYPES, ColumnMapping, RawTable, text_frame
 
 __all__ = ["Orders", "ReadOptions", "ReadResult", "Rows", "build_orders", "clean_orders", "finish_orders",
@@ -124,66 +124,19 @@ def pandas_text(array) -> pd.Series:
 
 def encode_text(array) -> tuple[np.ndarray, pa.Array]:
     """``(codes, values)``: each text's number (int32) among the distinct ``values``, in the order
-    they first appear (one pass of Arrow's hash table)."""
-    encoded = _one_chunk(pc.dictionary_encode(_one_chunk(array)))
-    return encoded.indices.to_numpy(zero_copy_only=False).astype(np.int32, copy=False), encoded.dictionary
+    they first appear (:meth:`~forecasting.io.backends.ArrowOps.distinct`)."""
+    return _OPS.distinct(array)
 
 
 def sorted_order(values: pa.Array) -> np.ndarray:
     """Positions that put Arrow text in order (by code point, as Python sorts text).
 
     Texts of at most eight bytes without a NUL byte (most customer numbers) are sorted as the
-    64-bit numbers their bytes make, padded with zero bytes (UTF-8 sorts by code point byte by
-    byte, and a shorter text sorts before any longer one it begins)."""
-    keys = _short_text_keys(values)
+    64-bit numbers their bytes make (:func:`~forecasting.io.backends.short_text_keys`)."""
+    keys = short_text_keys(values)
     if keys is None:
         return pc.sort_indices(values).to_numpy(zero_copy_only=False)
     return np.argsort(keys, kind="stable")
-
-
-# The bytes of a text of k bytes that count in its eight-byte number (big-endian, so the first
-# byte is the highest).
-_KEPT_BYTES = np.array([0] + [((1 << (8 * k)) - 1) << (8 * (8 - k)) for k in range(1, 9)], dtype=np.uint64)
-
-
-def _text_bytes(values: pa.Array):
-    """``(starts, lengths, padded)``: where each text's bytes start in ``padded`` (the array's bytes
-    followed by eight zero bytes), and how many they are."""
-    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
-    data = values.buffers()[2]
-    raw = np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8)
-    raw = raw[offsets[0]:offsets[-1]]
-    padded = np.concatenate([raw, np.zeros(8, dtype=np.uint8)])
-    return (offsets[:-1] - offsets[0]).astype(np.int64), offsets[1:] - offsets[:-1], padded
-
-
-def _first_eight(starts: np.ndarray, lengths: np.ndarray, padded: np.ndarray) -> np.ndarray:
-    """Each text's first eight bytes (fewer when it is shorter, then zero bytes) as a big-endian
-    64-bit number."""
-    windows = np.lib.stride_tricks.sliding_window_view(padded, 8)[starts]
-    return windows.view(">u8").ravel().astype(np.uint64) & _KEPT_BYTES[np.minimum(lengths, 8)]
-
-
-def _short_text_keys(values: pa.Array) -> np.ndarray | None:
-    """Each text as a 64-bit number with the same order, or None when some text is longer than eight
-    bytes or holds a NUL byte."""
-    values = _one_chunk(values)
-    if len(values) < 2 or values.type != pa.string() or values.null_count:
-        return None
-    starts, lengths, padded = _text_bytes(values)
-    if lengths.max() > 8 or (padded[:-8] == 0).any():
-        return None
-    return _first_eight(starts, lengths, padded)
-
-
-def _text_fingerprint(values: pa.Array) -> np.ndarray:
-    """A 64-bit number per text from its first eight bytes and its length (equal texts, equal
-    numbers; different texts mostly differ)."""
-    values = _one_chunk(values)
-    if len(values) == 0 or values.type != pa.string():
-        return np.zeros(len(values), dtype=np.uint64)
-    starts, lengths, padded = _text_bytes(values)
-    return _mixed([_first_eight(starts, lengths, padded), lengths.astype(np.int64)])
 
 
 def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | None = None) -> pd.Categorical:
@@ -197,7 +150,13 @@ def text_categories(codes: np.ndarray, values: pa.Array, order: np.ndarray | Non
     rank = np.zeros(len(values), dtype=np.int32)
     rank[picked] = np.arange(len(picked), dtype=np.int32)
     categories = pd.Index(pandas_text(values.take(pa.array(picked))))
-    return pd.Categorical.from_codes(rank[codes], dtype=pd.CategoricalDtype(categories), validate=False)
+    return pd.Categorical.from_codes(rank[codes], dtype=_distinct_categories(categories), validate=False)
+
+
+def _distinct_categories(categories: pd.Index) -> pd.CategoricalDtype:
+    """The categorical type of values known to be distinct (pandas' own check hashes them all again)."""
+    trusted = getattr(pd.CategoricalDtype, "_from_fastpath", None)
+    return trusted(categories, False) if trusted is not None else pd.CategoricalDtype(categories)
 
 
 # From this many rows the reader runs independent steps side by side, in threads of its own
@@ -267,6 +226,8 @@ class Rows:
     has_order_id: np.ndarray | None  # bool: the order id is not empty
     segment_code: np.ndarray | None  # int32 code of the segment, stripped, into segments
     segments: pa.Array | None
+    order_group: np.ndarray | None = None  # int64: the (customer, order id) pair's number (order_groups)
+    order_group_count: int = 0
 
     def reached(self, rule: str) -> np.ndarray:
         """Rows that no rule before ``rule`` left out."""
@@ -276,6 +237,8 @@ class Rows:
 def _blank_rows(columns: list, n: int) -> np.ndarray:
     """Records whose every cell is empty or spaces (the cells stop being read at the first column
     with no blank cell)."""
+    if columns and not may_be_blank(columns[0]).any():
+        return np.zeros(n, dtype=bool)
     blank = np.ones(n, dtype=bool)
     for array in columns:
         blank &= _numpy(pc.equal(pc.utf8_trim(array, characters=rules.WHITESPACE), ""), bool)
@@ -302,13 +265,20 @@ def _mixed(parts: list[np.ndarray]) -> np.ndarray:
     """One 64-bit number per row from several columns of readings (equal readings give equal numbers;
     a column with one value throughout tells no rows apart and is left out)."""
     key = np.zeros(len(parts[0]), dtype=np.uint64)
+    # One working array for every step (a fresh array per step is memory the system must hand over
+    # again and again).
+    scratch = np.empty_like(key)
     for k, part in enumerate(parts):
         if len(part) and part.dtype.itemsize == 1 and part.min() == part.max():
             continue
-        bits = part.view(np.uint64) if part.dtype.itemsize == 8 else part.astype(np.uint64)
-        key ^= bits
+        if part.dtype.itemsize == 8:
+            key ^= part.view(np.uint64)
+        else:
+            np.copyto(scratch, part, casting="unsafe")
+            key ^= scratch
         key *= _MIX[k % 3]
-        key ^= key >> np.uint64(31)
+        np.right_shift(key, np.uint64(31), out=scratch)
+        key ^= scratch
     return key
 
 
@@ -331,8 +301,8 @@ def repeated_keys(keys: np.ndarray) -> np.ndarray:
 def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndarray:
     """Exact copies of an earlier record (every cell equal), blank records left aside.
 
-    ``keys`` mixes each record's readings and the start of its customer cell (:func:`_row_keys`):
-    copies have equal keys, so only records whose key repeats (:func:`repeated_keys`) are
+    ``keys`` mixes each record's readings and the number of its customer cell: copies have equal
+    keys, so only records whose key repeats (:func:`repeated_keys`) are
     compared cell by cell."""
     n = len(blank)
     out = np.zeros(n, dtype=bool)
@@ -347,18 +317,6 @@ def _copies(cells: pd.DataFrame, blank: np.ndarray, keys: np.ndarray) -> np.ndar
     return out
 
 
-def _per_distinct_text(cells: pa.Array, rule) -> tuple[np.ndarray, pa.Array, pa.Array]:
-    """``(codes, values, raw_codes)``: ``rule`` (text -> text) read once for each distinct cell, the
-    results numbered (cells that read the same share a number), and each cell's own number among
-    the distinct cells."""
-    raw_codes, raw = encode_text(cells)
-    read = rule(raw)
-    if read is raw:
-        return raw_codes, raw, raw_codes  # the rule kept every text as it is
-    merged, values = encode_text(read)
-    return merged[raw_codes] if len(raw_codes) else raw_codes, values, raw_codes
-
-
 @dataclass
 class _Ids:
     """The columns read as whole columns (their values numbered): customer ids, order ids, segments."""
@@ -368,36 +326,51 @@ class _Ids:
     customer_order: np.ndarray
     changed: np.ndarray
     no_customer: np.ndarray
+    cell_code: np.ndarray  # int32: the customer cell as written, numbered (equal cells, equal numbers)
     order_code: np.ndarray | None = None
     order_ids: pa.Array | None = None
     segment_code: np.ndarray | None = None
     segments: pa.Array | None = None
 
 
+def _per_row(flags: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """A flag per distinct value as a flag per row (no row looked up when no value is flagged)."""
+    if not flags.any():
+        return np.zeros(len(codes), dtype=bool)
+    return flags[codes]
+
+
+def _stripped_codes(cells: pa.Array) -> tuple[np.ndarray, pa.Array]:
+    """Cells stripped and numbered (cells that read the same share a number): each distinct cell
+    stripped once."""
+    raw_codes, raw = _OPS.distinct(cells)
+    read = _OPS.strip(raw, rules.WHITESPACE)
+    if read is raw:
+        return raw_codes, raw  # no cell had spaces to strip
+    merged, values = _OPS.distinct(read)
+    return merged[raw_codes], values
+
+
 def _read_ids(customer: pa.Array, order: pa.Array | None, segment: pa.Array | None) -> _Ids:
     """:func:`forecasting.io.rules.read_customer` once per distinct customer cell (a few hundred
     thousand, not millions), the ids numbered and their sorting order; order ids and segments
     stripped and numbered likewise."""
-    changed_of: list = []
-
-    def read_customer(values):
-        found = rules.read_customer(_OPS, values)
-        changed_of.append(_full(found["changed"], len(values), bool))
-        return found["customer"]
-
-    code, ids, raw_codes = _per_distinct_text(customer, read_customer)
-    found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
-                 changed=changed_of[0][raw_codes] if len(raw_codes) else np.zeros(0, dtype=bool),
-                 no_customer=_numpy(pc.equal(ids, ""), bool)[code] if len(code) else np.zeros(0, dtype=bool))
-
-    def strip(values):
-        return _OPS.strip(values, rules.WHITESPACE)
-
+    cell_code, cells = _OPS.distinct(customer, many=True)
+    found = rules.read_customer(_OPS, cells)
+    read = found["customer"]
+    if read is cells:
+        code, ids = cell_code, cells  # every cell is its id as written
+    else:
+        merged, ids = _OPS.distinct(read, many=True)
+        code = merged[cell_code]
+    ids_found = _Ids(customer_code=code, customer_ids=ids, customer_order=sorted_order(ids),
+                     changed=_per_row(_full(found["changed"], len(cells), bool), cell_code),
+                     no_customer=_per_row(_numpy(pc.equal(ids, ""), bool), code), cell_code=cell_code)
     if order is not None:
-        found.order_code, found.order_ids, _ = _per_distinct_text(order, strip)
+        ids_found.order_code, ids_found.order_ids = _stripped_codes(order)
     if segment is not None:
-        found.segment_code, found.segments, _ = _per_distinct_text(segment, strip)
-    return found
+        ids_found.segment_code, ids_found.segments = _stripped_codes(segment)
+    return ids_found
 
 
 @dataclass
@@ -414,7 +387,6 @@ class _Readings:
     micros: np.ndarray
     date_kind: np.ndarray
     hints: np.ndarray
-    key: np.ndarray  # uint64: the readings and the customer cell's start mixed (see _copies)
 
     @staticmethod
     def join(parts: list["_Readings"]) -> "_Readings":
@@ -453,11 +425,10 @@ def _read_block(columns: dict, mapping: ColumnMapping, *, decimal: str, date_ord
     amount_kind = _full(amount["kind"], n, np.int8)
     micros = _numpy(when["micros"], np.int64, fill=0)
     date_kind = _full(when["kind"], n, np.int8)
-    key = _mixed([_text_fingerprint(cell("customer")), amounts, micros, amount_kind, date_kind, status])
     return _Readings(blank=blank, too_long=too_long, damaged=damaged, status=status, amount=amounts,
                      amount_kind=amount_kind, currency=_OPS.full_column(currency, n), micros=micros,
                      date_kind=date_kind,
-                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16), key=key)
+                     hints=_full(amount["hints"], n, np.int16) | _full(when["hints"], n, np.int16))
 
 
 def _blocks(n: int) -> list[tuple[int, int]]:
@@ -473,9 +444,10 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
               possibly_damaged: bool = True) -> Rows:
     """The rules of :mod:`forecasting.io.rules` on every record (see the module docstring, step 1).
 
-    The rules that read one cell run over blocks of records side by side; the customer ids (and
-    order ids and segments) are read once per distinct cell, beside them; then the reason of
-    each record, its notes and the copies of earlier records, over the whole table."""
+    The rules that read one cell run over blocks of records side by side (amounts and dates once
+    per distinct cell of a block); the customer ids (and order ids and segments) are read once per
+    distinct cell, beside them; then the reason of each record and its notes over the whole
+    table, with the copies of earlier records found beside them."""
     n = len(cells)
     columns = {name: arrow_text(cells[name]) for name in cells.columns}
 
@@ -488,9 +460,10 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
                    mapping, decimal=decimal, date_order=date_order, possibly_damaged=possibly_damaged)
             for start, stop in _blocks(n)]
     read = _Readings.join([job.result() for job in jobs])
-    # Copies are found while the ids are still being read.
-    duplicate = _copies(cells, read.blank, read.key)
     ids = ids_job.result()
+    # Copies have equal readings and the same customer cell; they are found while the reasons are given.
+    copies_job = beside(n, _copies, cells, read.blank, _mixed([ids.cell_code, read.amount, read.micros,
+                                                               read.amount_kind, read.date_kind, read.status]))
     row = {"blank": pa.array(read.blank), "too_long": pa.array(read.too_long), "damaged": pa.array(read.damaged),
            "no_customer": pa.array(ids.no_customer), "customer": None, "status": pa.array(read.status),
            "currency": read.currency, "amount_kind": pa.array(read.amount_kind),
@@ -506,10 +479,14 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
     notes = _full(rules.row_notes(_OPS, row, keep_unpaid=options.keep_unpaid,
                                   keep_implausible=options.keep_implausible, dates=dates), n, np.int16)
     # Copies of an earlier record overrule every reason after a damaged row (as in rules.row_reason).
+    duplicate = copies_job.result()
     reason[duplicate & ((reason == 0) | (reason > _CODE["duplicate_row"]))] = _CODE["duplicate_row"]
-    has_order_id = None
+    has_order_id = group = None
+    count = 0
     if ids.order_ids is not None:
         has_order_id = _numpy(pc.not_equal(ids.order_ids, ""), bool)[ids.order_code] if n else np.zeros(0, bool)
+        # The pairs of customer and order id numbered once, for every step that groups lines into orders.
+        group, count = order_groups(ids.customer_code, ids.order_code)
     return Rows(
         reason=reason,
         notes=notes,
@@ -529,6 +506,8 @@ def read_rows(cells: pd.DataFrame, mapping: ColumnMapping, options: ReadOptions,
         order_code=ids.order_code,
         order_ids=ids.order_ids,
         has_order_id=has_order_id,
+        order_group=group,
+        order_group_count=count,
         segment_code=ids.segment_code,
         segments=ids.segments,
     )
@@ -625,7 +604,7 @@ def order_total_evidence(rows: Rows) -> tuple[int, int, int]:
     if not candidate.any():
         return 0, 0, 0
     at = np.flatnonzero(candidate)
-    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    group, groups = rows.order_group[at], rows.order_group_count
     amount = rows.amount[at]
     blank = rows.reason[at] != 0
     lines = np.bincount(group, minlength=groups)
@@ -751,10 +730,11 @@ def inherited_reasons(rows: Rows) -> tuple[np.ndarray, np.ndarray]:
     at = np.flatnonzero(lines)
     if not len(at):
         return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int8)
-    group, groups = order_groups(rows.customer_code[at], rows.order_code[at])
+    group, groups = rows.order_group[at], rows.order_group_count
     first = np.full(groups, len(at), dtype=np.int64)
     np.minimum.at(first, group, np.arange(len(at)))
-    first_reason = rows.reason[at][first][group]
+    # Pairs without a line here keep len(at) as their first: only the pairs of these lines are looked up.
+    first_reason = rows.reason[at][first[group]]
     take = (rows.reason[at] == _CODE["missing_amount"]) & np.isin(first_reason,
                                                                    [_CODE[c] for c in rules.INHERITED_REASONS])
     return at[take], first_reason[take].astype(np.int8)
@@ -782,7 +762,7 @@ def build_orders(rows: Rows, *, order_total: bool) -> Orders:
     signed = np.where(is_refund, -np.abs(amount), amount)
     if rows.order_code is not None:
         has_id = rows.has_order_id[position]
-        group, groups = order_groups(rows.customer_code[position], rows.order_code[position])
+        group, groups = rows.order_group[position], rows.order_group_count
         # A line without an order id is an order of its own.
         key = np.where(has_id, group, groups + np.arange(len(position)))
         order, _ = pd.factorize(key)
@@ -864,9 +844,12 @@ def date_order(micros: np.ndarray) -> np.ndarray:
     low, high = int(micros.min()), int(micros.max())
     day, second = 86_400_000_000, 1_000_000
     if (high - low) // day < 1 << 16:
-        days, rest = np.divmod(micros - low, day)
+        # Two working arrays in all (a fresh array is memory the system must hand over again).
+        shifted = np.subtract(micros, low)
+        rest = np.remainder(shifted, day)
         if not rest.any():
-            return np.argsort(days.astype(np.uint16), kind="stable")
+            np.floor_divide(shifted, day, out=shifted)
+            return np.argsort(shifted.astype(np.uint16), kind="stable")
     if (high - low) // second < 1 << 32:
         seconds, rest = np.divmod(micros - low, second)
         if not rest.any():
@@ -876,9 +859,12 @@ def date_order(micros: np.ndarray) -> np.ndarray:
     return np.argsort(micros, kind="stable")
 
 
-def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, lines: np.ndarray) -> Finished:
+def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, lines: np.ndarray,
+                  named_by_line: bool = False) -> Finished:
     """Orders outside the usual range, every record's final reason and notes, merged e-mail ids, and
-    the table of kept orders (``lines``: each record's place, kept as the order's ``line``).
+    the table of kept orders (``lines``: each record's place, kept as the order's ``line``). With
+    ``named_by_line`` (``lines`` are spreadsheet rows), an order without an order id is named by
+    its row (``row-17``); else its id is empty.
 
     The table is compact: ``customer`` (and ``segment``) as pandas Categoricals of the values used
     (sorted), the order id as Arrow-backed text, dates and amounts as numpy arrays."""
@@ -893,42 +879,66 @@ def finish_orders(rows: Rows, orders: Orders, usual, *, keep_implausible: bool, 
     else:
         verdict[outside] = _CODE["implausible_amount"]
         kept_anyway = np.zeros_like(outside)
+    # Without order ids each line is an order of its own (order k is line k); when every record is
+    # a line, line k is record k. Those look-ups are left out.
+    own_orders = rows.order_code is None
+    every_record = len(orders.position) == len(rows.reason)
+
+    def records(at):
+        return at if every_record else orders.position[at]
+
     reason = rows.reason.copy()
     reason[orders.inherited[0]] = orders.inherited[1]
-    line_verdict = verdict[orders.order]
+    line_verdict = verdict if own_orders else verdict[orders.order]
     real = line_verdict >= 0
-    position = orders.position[real]
-    reason[position] = line_verdict[real]
+    if every_record and real.all():
+        reason = line_verdict.astype(reason.dtype)
+    else:
+        reason[orders.position[real]] = line_verdict[real]
     used_lines = real & (line_verdict == 0)
     further = used_lines & ~orders.counted & ~orders.carrier
-    notes[orders.position[further]] |= rules.NOTE_BITS["continuation_line"]
-    notes[orders.position[used_lines & kept_anyway[orders.order]]] |= rules.NOTE_BITS["implausible_kept"]
+    if further.any():
+        notes[records(np.flatnonzero(further))] |= rules.NOTE_BITS["continuation_line"]
+    if kept_anyway.any():
+        kept_lines = used_lines & (kept_anyway if own_orders else kept_anyway[orders.order])
+        notes[records(np.flatnonzero(kept_lines))] |= rules.NOTE_BITS["implausible_kept"]
     _note_merged_ids(rows, reason, notes)
 
     kept = np.flatnonzero(verdict == 0)
     # Orders by date, then by place in the file (an order's number follows its first line): the order
     # in which every engine adds them up.
     kept = kept[date_order(orders.order_micros[kept])]
-    first_line = orders.position[orders.first[kept]]
+    first_line = records(kept if own_orders else orders.first[kept])
+    line = lines[first_line]
+    # The customers' categories and the orders' names are made beside the other columns.
+    customers = beside(len(kept), text_categories, rows.customer_code[first_line], rows.customer_ids,
+                       rows.customer_order)
+    names = [beside(len(kept), row_labels, half) for half in np.array_split(line, 2)] \
+        if rows.order_code is None and named_by_line else []
+    columns = {
+        # Microseconds to nanoseconds: the readable years (1900-2199) fit.
+        "order_date": (orders.order_micros[kept] * 1000).view("datetime64[ns]"),
+        "order_value": orders.value[kept].astype(np.float64, copy=False),
+        "line": line,
+    }
     if rows.order_code is not None:
         # pandas keeps text with 64-bit offsets: the distinct ids are widened once, not every order's.
-        order_ids = pandas_text(rows.order_ids.cast(pa.large_string()).take(
-            pa.array(rows.order_code[first_line]))).array
+        order_ids = rows.order_ids.cast(pa.large_string()).take(pa.array(rows.order_code[first_line]))
+    elif names:
+        # The halves stay two pieces of one column (joining them would copy every name).
+        order_ids = pa.chunked_array([job.result() for job in names], type=pa.large_string())
     else:
-        order_ids = pandas_text(pa.array(np.full(len(kept), "", dtype=object), type=pa.string())).array
-    table = pd.DataFrame({
-        "customer": text_categories(rows.customer_code[first_line], rows.customer_ids, rows.customer_order),
-        "order_id": order_ids,
-        "order_date": orders.order_micros[kept].astype("datetime64[us]").astype("datetime64[ns]"),
-        "order_value": orders.value[kept].astype(np.float64),
-        "line": lines[first_line],
-    })
+        order_ids = _empty_texts(len(kept))
+    order_ids = (pd.Series(order_ids.to_pandas(types_mapper=TEXT_TYPES.get)) if isinstance(order_ids, pa.ChunkedArray)
+                 else pandas_text(order_ids))
+    table = pd.DataFrame({"customer": customers.result(), "order_id": order_ids.array, **columns}, copy=False)
     if rows.segment_code is not None:
         table["segment"] = _order_segments(rows, orders, kept)
-    used = reason == 0
-    unknown = used & (rows.status == rules.STATUS_UNKNOWN)
     first_seen = {}
-    if unknown.any() and rows.status_cell is not None:
+    unknown = None
+    if rows.status_cell is not None:
+        unknown = (reason == 0) & (rows.status == rules.STATUS_UNKNOWN)
+    if unknown is not None and unknown.any():
         # In the order each status first appears, as every engine lists them.
         at = np.flatnonzero(unknown)
         code, statuses = encode_text(pc.utf8_trim(rows.status_cell.take(pa.array(at)), characters=rules.WHITESPACE))
@@ -957,8 +967,20 @@ def _order_segments(rows: Rows, orders: Orders, kept: np.ndarray) -> pd.Categori
     return text_categories(codes.astype(np.int32), values)
 
 
+def row_labels(rows: np.ndarray) -> pa.Array:
+    """``row-17`` for row 17 (Arrow text, 64-bit offsets): the id of an order that is one row."""
+    return pc.utf8_replace_slice(pc.cast(pa.array(rows), pa.large_string()), 0, 0, "row-")
+
+
+def _empty_texts(n: int) -> pa.Array:
+    """``n`` empty texts (Arrow, 64-bit offsets), built without a Python object per text."""
+    return pa.LargeStringArray.from_buffers(n, pa.py_buffer(np.zeros(n + 1, dtype=np.int64)), pa.py_buffer(b""))
+
+
 def _note_merged_ids(rows: Rows, reason: np.ndarray, notes: np.ndarray) -> None:
     """Rows used whose e-mail id is written otherwise than on the customer's first row used."""
+    if not rows.changed.any():
+        return
     used = np.flatnonzero(reason == 0)
     if not len(used) or not rows.changed[used].any():
         return
@@ -1062,14 +1084,11 @@ def clean_orders(raw: RawTable, mapping: ColumnMapping, *, file_name: str,
         notes += rules.order_total_note(mapping.value)
     orders = build_orders(rows, order_total=order_total)
     usual = usual_range_of(kept_log_values(orders))
-    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=lines)
+    # The orders' lines as spreadsheet rows (the column after the amount).
+    done = finish_orders(rows, orders, usual, keep_implausible=options.keep_implausible, lines=rows_at,
+                         named_by_line=True)
     notes += rules.unrecognised_status_note(done.unrecognised)
-    table = done.orders
-    table.insert(4, "row", rows_at[table.pop("line").to_numpy()])
-    if rows.order_code is None:
-        # Each row is an order: its id is its row ("row-17").
-        table["order_id"] = pandas_text(pc.utf8_replace_slice(
-            pc.cast(pa.array(table["row"].to_numpy()), pa.large_string()), 0, 0, "row-")).array
+    table = done.orders.rename(columns={"line": "row"})
     excluded = excluded_table(cells, rows_at, done.reason, raw.set_aside)
     noted = noted_table(rows_at, done.notes, done.reason)
     result = ReadResult(orders=table, excluded=excluded, mapping=mapping, rows_read=len(cells) + len(raw.set_aside),

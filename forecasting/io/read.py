@@ -559,9 +559,11 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
     positions = np.arange(table.num_rows, dtype=np.int64)
     set_aside: list[tuple[int, str, str]] = []
     if rejected:
-        # Arrow gives the line of each record it hands back when it reads on one thread.
-        numbered: list[tuple[int, str]] = []
-        _arrow_records(encoded, delimiter, columns, numbered, use_threads=False, numbered=True)
+        numbered = rejected_lines(encoded, rejected)
+        if numbered is None:
+            # Arrow gives the line of each record it hands back when it reads on one thread.
+            numbered = []
+            _arrow_records(encoded, delimiter, columns, numbered, use_threads=False, numbered=True)
         if len(numbered) != len(rejected) or any(number is None for number, _ in numbered):
             return careful()
         # No record runs over several lines here: a file's line n (from 1 below the header) is record n.
@@ -584,6 +586,35 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
     cells = table.combine_chunks().to_pandas(types_mapper=CELL_TYPES.get)
     return RawTable(cells, first_row + positions, set_aside, notes, header_row=at + 1,
                     possibly_damaged=possibly_damaged)
+
+
+def rejected_lines(encoded, rejected: list[str]) -> list[tuple[int, str]] | None:
+    """``(line, text)`` of each record Arrow handed back (``rejected``: their texts), in file order,
+    found among the lines of the UTF-8 text ``encoded`` (lines counted from 1); None when they
+    cannot be told this way (a carriage return in the text, or not every text found once).
+
+    Only for text in which no record runs over several lines: a line is then a record, and lines
+    that read the same are all handed back, so the lines whose text is one of ``rejected`` are
+    the records handed back (the file is not read a second time)."""
+    data = np.frombuffer(encoded, dtype=np.uint8)
+    block = 1 << 24
+    if any((data[start:start + block] == 13).any() for start in range(0, len(data), block)):
+        return None
+    ends = np.concatenate([np.flatnonzero(data[start:start + block] == 10) + start
+                           for start in range(0, len(data), block)] + [np.zeros(0, dtype=np.int64)])
+    # Line k runs from starts[k] up to the next start, its line feed included (the last line may
+    # have none; a text that ends with a line feed has no line after it).
+    starts = np.concatenate([[0], ends + 1]).astype(np.int64)
+    if starts[-1] == len(data):
+        starts = starts[:-1]
+    offsets = np.concatenate([starts, [len(data)]]).astype(np.int64)
+    lines = pa.LargeStringArray.from_buffers(len(starts), pa.py_buffer(offsets), encoded)
+    texts = sorted(set(rejected))
+    wanted = pa.array(texts + [t + "\n" for t in texts], type=pa.large_string())
+    found = np.flatnonzero(pc.is_in(lines, value_set=wanted).to_numpy(zero_copy_only=False))
+    if len(found) != len(rejected):
+        return None
+    return [(int(k) + 1, text.removesuffix("\n")) for k, text in zip(found, lines.take(pa.array(found)).to_pylist())]
 
 
 def _runs_on(text: str) -> bool:
@@ -612,7 +643,20 @@ def _arrow_records(encoded, delimiter: str, columns: list[str], rejected: list, 
 
 
 def _any_line_break(table: pa.Table) -> bool:
-    return any(pc.any(pc.match_substring_regex(column, "[\r\n]")).as_py() for column in table.columns)
+    """Whether a cell holds a line break: the bytes of the cells are looked at directly (a line break
+    is one byte in UTF-8, and no other character holds that byte)."""
+    for column in table.columns:
+        for chunk in column.chunks:
+            if chunk.type != pa.string():
+                chunk = chunk.cast(pa.string())
+            data = chunk.buffers()[2]
+            if len(chunk) == 0 or data is None:
+                continue
+            offsets = np.frombuffer(chunk.buffers()[1], dtype=np.int32, count=len(chunk) + 1, offset=chunk.offset * 4)
+            cells = np.frombuffer(data, dtype=np.uint8)[offsets[0]:offsets[-1]]
+            if (cells == 10).any() or (cells == 13).any():
+                return True
+    return False
 
 
 def _read_records(body: str, delimiter: str, columns: list[str], *, first_row: int, notes: list[str],

@@ -353,7 +353,13 @@ def read_amount(ops, cell, *, decimal: str = ".") -> dict:
     ``-$12``, ``$-12`` or with the minus sign U+2212. ``decimal`` is the column's decimal mark
     (see :func:`decide_decimal`): with ``"."`` a comma groups thousands, with ``","`` a point
     does. A grouping that is not in threes (``12,5`` read with a decimal point) is not money.
+
+    Each distinct cell is read once (a shop charges the same prices again and again).
     """
+    return ops.per_distinct(cell, lambda ops, values: _read_amount(ops, values, decimal=decimal))
+
+
+def _read_amount(ops, cell, *, decimal: str) -> dict:
     text = ops.let("amount_text", ops.strip(cell, WHITESPACE))
     plain = ops.full_match(text, PLAIN_NUMBER if decimal == "." else PLAIN_WHOLE_NUMBER)
     number = ops.let("plain_amount", ops.to_float(text, plain))
@@ -447,7 +453,13 @@ def read_date(ops, cell, *, date_order: str = "day-first") -> dict:
     2025``, times with AM/PM, and Excel day numbers. A time-zone offset or name after a time
     (``+01:00``, ``-0500``, ``Z``, ``UTC``) is dropped: the date stays the local date written,
     as the shop saw it. Two-digit years are 2000-2099. Years outside 1900-2199 are not read.
+
+    Each distinct cell is read once (a few years of orders fall on a few hundred days).
     """
+    return ops.per_distinct(cell, lambda ops, values: _read_date(ops, values, date_order=date_order))
+
+
+def _read_date(ops, cell, *, date_order: str) -> dict:
     text = ops.let("date_text", ops.strip(cell, WHITESPACE))
     empty = ops.eq(text, "")
     iso = ops.full_match(text, ISO_DATE)
