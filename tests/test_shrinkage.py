@@ -509,17 +509,24 @@ class TestGammaGammaSpend:
         m = rng.gamma(self.p * n, 1.0 / nu) / n  # sum of n Gamma(p, nu) is Gamma(n p, nu)
         return m, n
 
-    def test_recovers_the_parameters(self):
-        m, n = self.simulate(17, 4000)
-        p, q, gam, converged = sh.fit_gamma_gamma(m, n)
-        assert converged
-        # tolerance: three standard errors from the observed information (numerical Hessian
-        # of the same likelihood written out directly with scipy.stats.gamma and special.gammaln)
+    @staticmethod
+    def written_out(m, n):
+        """The negative log-likelihood of the customers' averages in log-parameters, term by term."""
         def negloglik(theta):
             pp, qq, gg = np.exp(theta)
             return -np.sum(special.gammaln(pp * n + qq) - special.gammaln(pp * n) - special.gammaln(qq)
                            + qq * np.log(gg) + (pp * n - 1) * np.log(m) + pp * n * np.log(n)
                            - (pp * n + qq) * np.log(gg + n * m))
+
+        return negloglik
+
+    def test_recovers_the_parameters(self):
+        m, n = self.simulate(17, 4000)
+        p, q, gam, converged = sh.fit_gamma_gamma(m, n)
+        assert converged
+        # tolerance: three standard errors from the observed information (numerical Hessian
+        # of the same likelihood written out directly with special.gammaln)
+        negloglik = self.written_out(m, n)
         theta = np.log([p, q, gam])
         hess = optimize.approx_fprime(theta, lambda t: optimize.approx_fprime(t, negloglik, 1e-6), 1e-4)
         se = np.sqrt(np.diag(np.linalg.inv((hess + hess.T) / 2)))
@@ -536,11 +543,11 @@ class TestGammaGammaSpend:
         p, q, gam, converged = sh.fit_gamma_gamma(m, n)
         assert converged
 
+        total = self.written_out(m, n)
+
         def negloglik(theta):
-            pp, qq, gg = np.exp(theta)
-            return -np.mean(special.gammaln(pp * n + qq) - special.gammaln(pp * n) - special.gammaln(qq)
-                            + qq * np.log(gg) + (pp * n - 1) * np.log(m) + pp * n * np.log(n)
-                            - (pp * n + qq) * np.log(gg + n * m))
+            return total(theta) / len(m)
+
         reference = optimize.minimize(negloglik, np.log([2.0, 3.0, 10.0]), method="Nelder-Mead",
                                       options={"xatol": 1e-9, "fatol": 1e-13, "maxiter": 20000, "maxfev": 20000})
         np.testing.assert_allclose(np.log([p, q, gam]), reference.x, atol=2e-5)
