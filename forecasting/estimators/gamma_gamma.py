@@ -57,6 +57,8 @@ def _gamma_gamma_objective(counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
 
 #: Bound of the log-parameters of the fit (p, q and gamma between e^-15 and e^15).
 _LOG_BOUND = 15.0
+#: How a minimisation that found the optimum ends (:func:`forecasting.newton.minimise`).
+_ENDS_AT_AN_OPTIMUM = ("settled", "the full step close to the optimum did not lower the value")
 
 
 def fit_gamma_gamma(means, orders):
@@ -82,8 +84,8 @@ def fit_gamma_gamma(means, orders):
     gradient and Hessian (:func:`forecasting.newton.minimise`); values are divided
     by their mean first (gamma scales with the money unit, p and q do not), and
     the gammaln terms are summed once per distinct order count. The fit is
-    judged converged where the slope is below 1e-5 and no parameter sits at its
-    bound.
+    judged converged where the steps settled, the slope is below 1e-5 and no
+    parameter sits at its bound.
     """
     m = np.asarray(means, dtype=np.float64)
     n = np.asarray(orders, dtype=np.float64)
@@ -102,8 +104,10 @@ def fit_gamma_gamma(means, orders):
     found = minimise(objective, start, -bound, bound)
     p, q, gam = np.exp(found.point)
     at_bound = np.any(np.abs(found.point) >= _LOG_BOUND - 1e-6)
-    settled = bool(np.all(np.isfinite(found.point)) and np.all(np.isfinite(found.gradient))
-                   and np.max(np.abs(found.gradient)) < 1e-5)
+    # Where the likelihood keeps rising toward a bound (no spread within customers: p grows without
+    # end) the steps run out on a nearly flat slope: that is no optimum, however small the slope.
+    settled = bool(found.message in _ENDS_AT_AN_OPTIMUM and np.all(np.isfinite(found.point))
+                   and np.all(np.isfinite(found.gradient)) and np.max(np.abs(found.gradient)) < 1e-5)
     return float(p), float(q), float(gam * unit), settled and not at_bound
 
 
