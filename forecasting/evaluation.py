@@ -753,8 +753,11 @@ def _cutoff_of(orders, cutoff):
                              fix="Give the cut-off as YYYY-MM-DD")
 
 
-def backtest_split(fits: ShopFits, cutoff):
+def backtest_split(fits: ShopFits, cutoff, *, whole: ShopFits | None = None):
     """The orders before a cut-off, their shared fits and each customer's first order after it.
+
+    Without a ``cutoff``, :func:`default_cutoff` of the orders of ``whole`` (default: ``fits``;
+    the whole shop when ``fits`` are its check's sample shop).
 
     Returns ``(cutoff, split)`` where ``split`` is None when there is nothing to backtest (no
     dates, or no orders on one side), else a dict with the shared fits of the orders before
@@ -766,7 +769,7 @@ def backtest_split(fits: ShopFits, cutoff):
     if "order_date" not in orders.columns or orders["order_date"].isna().all():
         return cutoff, {"note": "no order dates, so no backtest"}
     if cutoff is None:
-        cutoff = _default_cutoff(fits)
+        cutoff = _default_cutoff(fits if whole is None else whole)
     else:
         cutoff = _cutoff_of(orders, cutoff)
 
@@ -806,10 +809,7 @@ def _default_cutoff(fits: ShopFits):
 def _backtest(fits: ShopFits, pairs, cutoff, *, level=0.90, next_level=0.80, limit=CHECK_CUSTOMERS):
     """Fit on orders before the cut-off; score each customer's first order after it (on the shop
     the shop's own check runs on, :meth:`forecasting.forecasts.ShopFits.checked`)."""
-    checked = fits.checked(limit)
-    if cutoff is None and checked is not fits and "order_date" in fits.orders.columns:
-        cutoff = _default_cutoff(fits)  # the whole shop's, whichever customers are checked
-    cutoff, split = backtest_split(checked, cutoff)
+    cutoff, split = backtest_split(fits.checked(limit), cutoff, whole=fits)
     if "note" in split:
         return None, cutoff, [split["note"]]
     before, position, x = split["fits"], split["position"], split["value"]

@@ -49,8 +49,7 @@ import pandas as pd
 from scipy import special
 
 from .errors import OrderDataError
-from .newton import log_scale as _log_scale
-from .newton import minimise as _minimise
+from .newton import log_scale, minimise
 
 __all__ = [
     "FREQUENCY_MODELS",
@@ -1461,7 +1460,7 @@ def _flat_objective(histories: _Histories, model):
 
         def derivatives():
             terms.prepare(2)
-            gradient, hessian = _log_scale(params, terms.gradient(), terms.hessian())
+            gradient, hessian = log_scale(params, terms.gradient(), terms.hessian())
             return -gradient / n, -hessian / n
 
         return (value, derivatives) if np.isfinite(value) else (np.inf, None)
@@ -1570,7 +1569,7 @@ def fit_order_frequency(history: pd.DataFrame, *, model: str = "bg-nbd", start=N
     -----
     Maximises the summed log-likelihood of :func:`frequency_log_likelihood`
     over the log-parameters (so every parameter stays positive) by Newton
-    steps with the analytic gradient and Hessian (:func:`_minimise`; the
+    steps with the analytic gradient and Hessian (:func:`forecasting.newton.minimise`; the
     special functions are evaluated once per distinct number of repeat
     orders, :class:`_Histories`). Whether the fit reached the optimum is
     judged at the point it returns (:func:`judge_optimum`), not by the
@@ -1602,7 +1601,7 @@ def fit_order_frequency(history: pd.DataFrame, *, model: str = "bg-nbd", start=N
     start = _check_params(default_start(x, age) if start is None else start)
     histories = _Histories(x, t_x, age)
     bound = np.full(4, _LOG_BOUND)
-    descent = _minimise(_flat_objective(histories, model), np.log(start), -bound, bound)
+    descent = minimise(_flat_objective(histories, model), np.log(start), -bound, bound)
     log_params = descent.point
     verdict = judge_optimum(log_params, descent.gradient, descent.hessian * len(x), bound=_LOG_BOUND,
                             names=("r", "alpha", "a", "b"), scale=descent.value)

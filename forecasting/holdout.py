@@ -570,8 +570,7 @@ def customer_positions(orders: pd.DataFrame, stats: pd.DataFrame) -> np.ndarray:
     return codes
 
 
-def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None, codes=None,
-                    customers=None) -> HeldOut:
+def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=None, codes=None) -> HeldOut:
     """Hold out, one at a time, every order of every customer with at least two orders.
 
     Parameters
@@ -585,17 +584,11 @@ def held_out_orders(orders: pd.DataFrame, stats: pd.DataFrame, *, order_sums=Non
         :func:`order_value_sums` over all the shop's orders (default: over ``orders``).
     codes : array of int, optional
         :func:`customer_positions` of ``orders``, when already known.
-    customers : array of bool, optional
-        Only the orders of these customers (one entry per customer of ``stats``) are held out;
-        every shop-wide sum still runs over all of them (default: every customer with at least
-        two orders).
     """
     codes = customer_positions(orders, stats) if codes is None else np.asarray(codes, dtype=np.int64)
     counts = stats["orders"].to_numpy(np.float64)
     values = orders["order_value"].to_numpy(dtype=np.float64)
     keep = counts[codes] >= 2
-    if customers is not None:
-        keep &= np.asarray(customers, dtype=bool)[codes]
     t = codes[keep]
     x = values[keep]
     origins = origins_of(stats) if len(stats) else (0.0, 0.0)

@@ -60,7 +60,7 @@ def minimise(objective, start, lower, upper, *, max_steps=200) -> Descent:
 
     Returns
     -------
-    _Descent
+    Descent
 
     Notes
     -----

@@ -44,8 +44,6 @@ from .frequency import (
     _check_model,
     _data_notes,
     _Histories,
-    _log_scale,
-    _minimise,
     _Terms,
     check_repeat_history,
     fit_order_frequency,
@@ -53,6 +51,7 @@ from .frequency import (
     pick_by_likelihood,
     repeat_history,
 )
+from .newton import log_scale, minimise
 
 __all__ = [
     "SEASONS",
@@ -322,7 +321,7 @@ class _SeasonalLikelihood:
     def objective(self, point):
         """Mean negative log-likelihood per customer at (log params, free log-weights), and its derivatives.
 
-        Returns ``(value, derivatives)`` as :func:`forecasting.frequency._minimise` wants them:
+        Returns ``(value, derivatives)`` as :func:`forecasting.newton.minimise` wants them:
         ``derivatives() -> (gradient, hessian)`` of the same mean, or None off the domain.
         """
         params = np.exp(point[:4])
@@ -344,7 +343,7 @@ class _SeasonalLikelihood:
         cal = self.calendar
         end = self.end_exposure
         parts, d_known, d_last = terms.gradient_parts()
-        grad_params, hess_params = _log_scale(params, np.array([p.sum() for p in parts]), terms.hessian())
+        grad_params, hess_params = log_scale(params, np.array([p.sum() for p in parts]), terms.hessian())
         # Slope in the weights w (12): sum_i (dl/dT D_i + dl/dt_x E_i) + n / w.
         grad_w = (d_known.sum() * end - cal.exposure_sum(self.first, d_known + d_last)
                   + cal.exposure_sum(self.last, d_last) + self.repeat_by_month / weights)
@@ -403,7 +402,7 @@ def _fit_with_index(likelihood: _SeasonalLikelihood, flat: FrequencyFit, start=N
     if start is None:
         start = np.concatenate([np.log(flat.params), np.zeros(11)])
     bound = np.array([_LOG_BOUND] * 4 + [_INDEX_BOUND] * 11)
-    descent = _minimise(likelihood.objective, start, -bound, bound)
+    descent = minimise(likelihood.objective, start, -bound, bound)
     point = descent.point
     hessian = descent.hessian * likelihood.n
     mean_value, gradient = descent.value, descent.gradient

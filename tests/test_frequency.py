@@ -709,12 +709,12 @@ class TestJudgeOptimum:
 
         history = simulate_histories(PARAMS_A, 1500, seed=7)
         sound = fit_order_frequency(history)
-        real_minimise = frequency._minimise
+        real_minimise = frequency.minimise
 
         def complaining(*args, **kwargs):
             return dataclasses.replace(real_minimise(*args, **kwargs), message="no step lowered the value")
 
-        monkeypatch.setattr(frequency, "_minimise", complaining)
+        monkeypatch.setattr(frequency, "minimise", complaining)
         warned = fit_order_frequency(history)
         assert warned.converged and warned.usable
         assert warned.params == sound.params

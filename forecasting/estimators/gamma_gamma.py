@@ -41,11 +41,12 @@ def _gamma_gamma_objective(counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
                 np.sum(counts * counts_n * (psi_sum - psi_n)) + sum_n_log_nm - np.dot(n, log_u),
                 np.sum(counts * psi_sum) - T * special.digamma(q) + T * np.log(gam) - np.sum(log_u),
                 T * q / gam - np.dot(shape, inv_u)])
+            h_pq = np.sum(counts * counts_n * tri_sum)
             h_pg = -np.dot(n, inv_u)
             h_qg = T / gam - np.sum(inv_u)
             hessian = np.array([
-                [np.sum(counts * counts_n ** 2 * (tri_sum - tri_n)), np.sum(counts * counts_n * tri_sum), h_pg],
-                [np.sum(counts * counts_n * tri_sum), np.sum(counts * tri_sum) - T * special.polygamma(1, q), h_qg],
+                [np.sum(counts * counts_n ** 2 * (tri_sum - tri_n)), h_pq, h_pg],
+                [h_pq, np.sum(counts * tri_sum) - T * special.polygamma(1, q), h_qg],
                 [h_pg, h_qg, -T * q / gam ** 2 + np.dot(shape, inv_u ** 2)]])
             g_theta, h_theta = log_scale((p, q, gam), gradient, hessian)
             return -g_theta / T, -h_theta / T

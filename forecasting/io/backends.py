@@ -293,8 +293,7 @@ class ArrowOps:
         # The numbers are mixed first (a one-to-one mixing: an odd multiplier, then the high bits
         # folded into the low ones): a short text's number ends in zero bytes, which pandas' hash
         # of 64-bit numbers would put in few buckets.
-        keys *= np.uint64(0x9E3779B97F4A7C15)
-        keys ^= keys >> np.uint64(29)
+        mix(keys)
         codes = pd.factorize(keys)[0].astype(np.int32, copy=False)
         # Codes number values in the order they first appear: a value's first row is where the
         # running highest code goes up.
@@ -388,13 +387,33 @@ def _mostly_distinct(x) -> bool:
 _KEPT_BYTES = np.array([0] + [((1 << (8 * k)) - 1) << (8 * (8 - k)) for k in range(1, 9)], dtype=np.uint64)
 
 
+# Odd 64-bit constants (the golden ratio's and splitmix64's) that mix numbers one-to-one (:func:`mix`).
+_MIX = (np.uint64(0x9E3779B97F4A7C15), np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB))
+
+
+def mix(key: np.ndarray, step: int = 0, scratch: np.ndarray | None = None) -> None:
+    """Mix 64-bit numbers in place, one-to-one: an odd multiplier (the ``step``-th of three), then
+    the high bits folded into the low ones (equal numbers stay equal, different ones differ).
+    ``scratch``: a working array of the same size, when the caller has one."""
+    key *= _MIX[step % 3]
+    scratch = np.empty_like(key) if scratch is None else scratch
+    np.right_shift(key, np.uint64(31), out=scratch)
+    key ^= scratch
+
+
+def cell_bytes(values: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """``(offsets, data)`` of an Arrow string array (32-bit offsets): cell k's bytes are
+    ``data[offsets[k]:offsets[k + 1]]``; both are views of the array's own buffers (no copy)."""
+    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
+    data = values.buffers()[2]
+    return offsets, (np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8))
+
+
 def text_bytes(values: pa.Array):
     """``(starts, lengths, padded)``: where each text's bytes start in ``padded`` (the array's bytes
     followed by eight zero bytes), and how many they are."""
-    offsets = np.frombuffer(values.buffers()[1], dtype=np.int32, count=len(values) + 1, offset=values.offset * 4)
-    data = values.buffers()[2]
-    raw = np.frombuffer(data, dtype=np.uint8) if data is not None else np.zeros(0, dtype=np.uint8)
-    raw = raw[offsets[0]:offsets[-1]]
+    offsets, data = cell_bytes(values)
+    raw = data[offsets[0]:offsets[-1]]
     padded = np.concatenate([raw, np.zeros(8, dtype=np.uint8)])
     return (offsets[:-1] - offsets[0]).astype(np.int64), offsets[1:] - offsets[:-1], padded
 
@@ -445,15 +464,13 @@ def _no_edges(x: pa.Array, characters: str) -> bool:
     character that strip removes)."""
     if any(ord(c) in _PLAIN for c in characters):
         return False
-    offsets = np.frombuffer(x.buffers()[1], dtype=np.int32, count=len(x) + 1, offset=x.offset * 4)
-    data = x.buffers()[2]
+    offsets, raw = cell_bytes(x)
     starts, ends = offsets[:-1], offsets[1:]
     filled = ends > starts
     if not filled.any():
         return True
-    if data is None:
+    if raw.size == 0:
         return False
-    raw = np.frombuffer(data, dtype=np.uint8)
     first = raw[starts[filled]]
     last = raw[ends[filled] - 1]
     return bool(_PLAIN_BYTES[first].all() and _PLAIN_BYTES[last].all())

@@ -48,7 +48,7 @@ import pyarrow.compute as pc
 
 from ..errors import OrderDataError
 from . import rules
-from .backends import ArrowOps, may_be_blank, short_text_keys
+from .backends import ArrowOps, may_be_blank, mix, short_text_keys
 from .read import TEXT_TYPES, ColumnMapping, RawTable, text_frame
 
 __all__ = ["Orders", "ReadOptions", "ReadResult", "Rows", "build_orders", "clean_orders", "finish_orders",
@@ -257,9 +257,6 @@ def _too_long(columns: list, n: int) -> np.ndarray:
     return too_long
 
 
-# Odd 64-bit constants (the golden ratio's and splitmix64's) that mix readings into one number.
-_MIX = (np.uint64(0x9E3779B97F4A7C15), np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB))
-
 
 def _mixed(parts: list[np.ndarray]) -> np.ndarray:
     """One 64-bit number per row from several columns of readings (equal readings give equal numbers;
@@ -276,9 +273,7 @@ def _mixed(parts: list[np.ndarray]) -> np.ndarray:
         else:
             np.copyto(scratch, part, casting="unsafe")
             key ^= scratch
-        key *= _MIX[k % 3]
-        np.right_shift(key, np.uint64(31), out=scratch)
-        key ^= scratch
+        mix(key, k, scratch)
     return key
 
 

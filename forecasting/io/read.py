@@ -36,6 +36,7 @@ import pyarrow.csv as pa_csv
 
 from ..errors import OrderDataError
 from . import rules
+from .backends import cell_bytes
 
 __all__ = [
     "ColumnMapping",
@@ -649,11 +650,8 @@ def _any_line_break(table: pa.Table) -> bool:
         for chunk in column.chunks:
             if chunk.type != pa.string():
                 chunk = chunk.cast(pa.string())
-            data = chunk.buffers()[2]
-            if len(chunk) == 0 or data is None:
-                continue
-            offsets = np.frombuffer(chunk.buffers()[1], dtype=np.int32, count=len(chunk) + 1, offset=chunk.offset * 4)
-            cells = np.frombuffer(data, dtype=np.uint8)[offsets[0]:offsets[-1]]
+            offsets, data = cell_bytes(chunk)
+            cells = data[offsets[0]:offsets[-1]]
             if (cells == 10).any() or (cells == 13).any():
                 return True
     return False
