@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import streamlit as st
 
+from forecasting.exports import SHORTEST_SALT
+
 from . import state
 
 CAUTION = ("Forecasts are estimates with a stated range of uncertainty, not guarantees. "
@@ -142,7 +144,7 @@ def table_height(rows: int, *, most: int = 420) -> int:
 
 def _turn_on(page: str) -> None:
     phrase = st.session_state.get(f"pseudonym_phrase_{page}", "") or ""
-    if len(phrase) < state.SHORTEST_PHRASE:
+    if len(phrase) < SHORTEST_SALT:
         st.session_state[f"pseudonym_refused_{page}"] = True
         return
     st.session_state[f"pseudonym_refused_{page}"] = False
@@ -168,9 +170,15 @@ def sharing_controls(page: str) -> None:
         st.markdown("**Sharing with someone else?** Turn on pseudonyms: each customer id becomes a code made "
                     "from it and a secret phrase of yours, on every page and in every download. The same phrase "
                     "gives the same codes next time, so you can match answers back; without it nobody can.")
-        st.text_input(f"Secret phrase (at least {state.SHORTEST_PHRASE} characters; keep it to match codes later)",
+        st.text_input(f"Secret phrase (at least {SHORTEST_SALT} characters; keep it to match codes later)",
                       type="password", key=f"pseudonym_phrase_{page}")
         st.form_submit_button("Turn pseudonyms on", on_click=_turn_on, args=(page,), icon=":material/lock:",
                               key=f"pseudonyms_on_{page}")
     if st.session_state.get(f"pseudonym_refused_{page}"):
-        st.warning(f"The secret phrase needs at least {state.SHORTEST_PHRASE} characters; pseudonyms are still off.")
+        st.warning(f"The secret phrase needs at least {SHORTEST_SALT} characters; pseudonyms are still off.")
+
+
+def chart(spec: dict, *, key: str) -> None:
+    """A chart of :mod:`dashboard.charts` on the page, as wide as its column, in the product's own
+    colours (Streamlit's theme would repaint them)."""
+    st.vega_lite_chart(spec, key=key, theme=None, width="stretch")

@@ -39,8 +39,6 @@ DEMO_SHOP = "Fernhollow Plants"
 ROLE_LABELS = words.ROLE_LABELS
 ROLE_HELP = words.ROLE_HELP
 REQUIRED = ("customer", "date", "value")
-# Shortest secret phrase for pseudonyms (the library's rule, forecasting.exports.pseudonymise).
-SHORTEST_PHRASE = SHORTEST_SALT
 
 
 @dataclass(frozen=True)
@@ -421,7 +419,7 @@ def customer_segments(dataset: Dataset) -> pd.Series | None:
 def pseudonym_salt() -> str | None:
     """The secret phrase while pseudonyms are on (for this browser tab), else None."""
     salt = st.session_state.get("pseudonym_salt_in_use")
-    return salt if isinstance(salt, str) and len(salt) >= SHORTEST_PHRASE else None
+    return salt if isinstance(salt, str) and len(salt) >= SHORTEST_SALT else None
 
 
 def use_pseudonyms(salt: str | None) -> None:

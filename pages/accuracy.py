@@ -84,8 +84,8 @@ st.subheader("Where the gain comes from")
 by_past = found.by_past_orders
 if len(by_past):
     mine = by_past[(by_past["method"] == pair[0]) & (by_past["variance"] == pair[1])]
-    st.vega_lite_chart(charts.gain_by_past_orders(mine, title="Smaller error than the own average, by orders known"),
-                    key="past_orders_chart", theme=None, width="stretch")
+    layout.chart(charts.gain_by_past_orders(mine, title="Smaller error than the own average, by orders known"),
+                 key="past_orders_chart")
     loo_part = mine[mine["evaluation"] == "leave-one-out"].dropna(subset=["error_reduction_pct"])
     if len(loo_part):
         best = loo_part.sort_values("error_reduction_pct", ascending=False).iloc[0]
@@ -151,14 +151,14 @@ with st.expander("Compare the ways of forecasting against the own averages (for 
                "thin lines show the range the gain probably lies in. Both charts share one scale.")
     left, right = st.columns(2)
     with left:
-        st.vega_lite_chart(charts.method_comparison(loo_part, title="Hiding one past order at a time",
-                                                 highlight=pair[0], x_range=scale),
-                        key="loo_chart", theme=None, width="stretch")
+        layout.chart(charts.method_comparison(loo_part, title="Hiding one past order at a time",
+                                              highlight=pair[0], x_range=scale),
+                     key="loo_chart")
     with right:
         if len(found.backtest):
-            st.vega_lite_chart(charts.method_comparison(backtest_part, title="Next order after the cut-off date",
-                                                     highlight=pair[0], x_range=scale),
-                            key="backtest_chart", theme=None, width="stretch")
+            layout.chart(charts.method_comparison(backtest_part, title="Next order after the cut-off date",
+                                                  highlight=pair[0], x_range=scale),
+                         key="backtest_chart")
         else:
             st.info("There is no next-order test: it needs customers who ordered both before and after a date.")
 

@@ -178,7 +178,7 @@ if table is not None:
             small = len(table) <= charts.DOTS_AT_MOST
             chart = charts.pull_toward_centre(table, symbol=symbol, highlight=picked, label=name,
                                                shown_ids=shown_all["customer"] if small else None)
-            st.vega_lite_chart(chart, key="pull_chart", theme=None, width="stretch")
+            layout.chart(chart, key="pull_chart")
             if small:
                 st.caption("Each dot is a customer; bigger dots have more orders. Dots on the dashed line kept their "
                            "own average; dots off it were pulled toward what similar customers spend. Orange-red "

@@ -134,17 +134,17 @@ lines.append(words.season_sentence(repeat.seasons, repeat.index, test=repeat.sea
 st.markdown(" ".join(lines))
 how_it_is_worked_out()
 
-st.vega_lite_chart(outlook_charts.group_projection(
+layout.chart(outlook_charts.group_projection(
     projection.cohorts, symbol=symbol, grouped_by=groupings[by],
     title=f"Projected revenue by {groupings[by]} and from new customers "
           f"(whiskers: {projection.level:.0%} range of what may come in)"),
-    key="cohort_chart", theme=None, width="stretch")
+    key="cohort_chart")
 
 st.subheader("Month by month")
 schedule = projection.schedule
-st.vega_lite_chart(outlook_charts.monthly_schedule(schedule, symbol=symbol,
-                                                title="Projected revenue in each month of the period"),
-                key="schedule_chart", theme=None, width="stretch")
+layout.chart(outlook_charts.monthly_schedule(schedule, symbol=symbol,
+                                             title="Projected revenue in each month of the period"),
+             key="schedule_chart")
 st.dataframe(schedule, hide_index=True, key="schedule_table", height=layout.table_height(len(schedule)),
              column_config={
                  "month": st.column_config.TextColumn("Month"),
@@ -207,10 +207,10 @@ elif rolling is not None:
                 f"and how often they ordered by {summary['cell_mean_abs_error_pct']:.0f}%.")
     if summary["warning"]:
         st.warning(summary["warning"])
-    st.vega_lite_chart(outlook_charts.rolling_check(
+    layout.chart(outlook_charts.rolling_check(
         checked.table, symbol=symbol,
         title=f"The {horizon}-day outlook made at each date against all revenue that came in after it"),
-        key="rolling_chart", theme=None, width="stretch")
+        key="rolling_chart")
 
     latest = checked.backtests[-1]
     bt = latest.total
@@ -228,11 +228,11 @@ elif rolling is not None:
                      f"{words.money(bt['actual_revenue_new'], symbol)} (projected "
                      f"{words.money(bt['projected_revenue_new'], symbol)}).")
     st.markdown(" ".join(sentences))
-    st.vega_lite_chart(outlook_charts.group_backtest(
+    layout.chart(outlook_charts.group_backtest(
         latest.cohorts, symbol=symbol, grouped_by=groupings[by],
         title=f"Made on {latest.cutoff:%d %b %Y}: projected (with the range of what may come in) against actual, "
               f"by group"),
-        key="cohort_backtest_chart", theme=None, width="stretch")
+        key="cohort_backtest_chart")
     st.caption(f"The actual amount fell inside the {latest.outlook.level:.0%} range of what may come in (the "
                f"whiskers) for {bt['cohorts_inside_revenue_range']} of {len(latest.cohorts)} groups. When it misses "
                "for most groups on the same side, the projection itself is off, not just unlucky.")

@@ -96,8 +96,8 @@ with left:
                     f"bring in **{float(top['share_of_projected_revenue']):.0%}** of the revenue projected for the "
                     f"next {horizon} days.")
 with right:
-    st.vega_lite_chart(charts.tier_shares(summary, title="Share of customers and of projected revenue"),
-                    key="tier_chart", theme=None, width="stretch")
+    layout.chart(charts.tier_shares(summary, title="Share of customers and of projected revenue"),
+                 key="tier_chart")
 
 st.subheader("Customers in a tier")
 names = list(summary["tier"])
