@@ -334,14 +334,16 @@ class Side:
             w_new = 1.0 / (np.asarray(base(new_n), dtype=np.float64) + shift)
             p_old = np.asarray(scale(old_n), dtype=np.float64) * w_old
             p_new = np.asarray(scale(new_n), dtype=np.float64) * w_new
+            # The held-out customer's own columns before and after the removal, taken once per block.
+            here = [(was[chosen], becomes[chosen]) for was, becomes in columns]
             last = 1
             for slot, power in enumerate(powers):
                 for _ in range(power - last):
                     p_old = p_old * w_old
                     p_new = p_new * w_new
                 last = power
-                for c, (was, becomes) in enumerate(columns):
-                    out[slot, c, block] += p_new * becomes[chosen] - p_old * was[chosen]
+                for c, (was, becomes) in enumerate(here):
+                    out[slot, c, block] += p_new * becomes - p_old * was
         return out
 
     def exp_sums_after(self, weights, exponents, theta, names, subset=None):

@@ -319,12 +319,17 @@ def _grouped_sums(side, tau2, s_factor, subset=None, *, series=True):
     positive = (s_factor > 0) & np.isfinite(tau2)
     if not series or not positive.any():
         return _grouped_sums_directly(side, tau2, s_factor, subset)
-    out = {p: {name: np.empty(rows) for name in ("one", "d", "d2")} for p in (1, 2, 3)}
     every = np.arange(rows) if subset is None else np.asarray(subset)
-    f = s_factor[positive]
-    rho = tau2[positive] / f
+    whole = bool(positive.all())  # the usual case: no row needs the groups
+    f = s_factor if whole else s_factor[positive]
+    rho = tau2 / f if whole else tau2[positive] / f
     parts = side.power_sums_after(lambda k: 1.0, lambda k: 1.0 / k, rho, (1, 2, 3), ("one", "d", "d2"),
-                                  subset=every[positive])
+                                  subset=subset if whole else every[positive])
+    if whole:
+        scales = {p: f ** -float(p) for p in (1, 2, 3)}
+        return {p: {name: parts[slot, c] * scales[p] for c, name in enumerate(("one", "d", "d2"))}
+                for slot, p in enumerate((1, 2, 3))}
+    out = {p: {name: np.empty(rows) for name in ("one", "d", "d2")} for p in (1, 2, 3)}
     for slot, p in enumerate((1, 2, 3)):
         scale = f ** -float(p)
         for c, name in enumerate(("one", "d", "d2")):
