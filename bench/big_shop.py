@@ -11,6 +11,8 @@ Run from the repository root::
 
     python bench/big_shop.py                      # writes bench/data/plant_shop_60k.csv
     python bench/big_shop.py --out /tmp/big.csv
+    python bench/big_shop.py --customers 102000 --out bench/data/plant_shop_lines_1m.csv
+                                                  # about 1.09 million order lines
 
 The output depends only on the seed. Files are cached in ``bench/data/`` (not committed).
 """
@@ -64,8 +66,10 @@ def big_shop_file(path: Path = DEFAULT_OUT) -> Path:
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="where to write the CSV")
+    parser.add_argument("--customers", type=int, default=CUSTOMERS,
+                        help=f"customers arriving over the two years (default {CUSTOMERS:,})")
     args = parser.parse_args(argv)
-    summary = write_big_shop(args.out)
+    summary = write_big_shop(args.out, customers=args.customers)
     print(f"wrote {args.out}: {summary['rows']:,} rows, {summary['orders']:,} orders, "
           f"{summary['customers']:,} customers")
     return 0

@@ -797,33 +797,50 @@ class TestFastPathsAgainstTheirTwins:
         expected = any("\n" in cell or "\r" in cell for column in table.columns for cell in column.to_pylist())
         assert _any_line_break(table) == expected
 
+    @pytest.mark.parametrize("one_at_a_time", [16, 0], ids=["each text searched for", "all lines matched at once"])
     @settings(max_examples=150, deadline=None)
     @given(st.lists(st.sampled_from(["C1,2025-01-02,10", "C2,2025-01-03,12.5", "C1,2025-01-02", "", "  ",
-                                     "a,b,c,d", "C1,2025-01-02,10,", "\u00e9,x", "C3,,"]), max_size=12),
-           st.booleans())
-    def test_rows_handed_back_are_numbered_as_arrows_own_count_numbers_them(self, lines, final_break):
-        # The records Arrow hands back are found among the text's lines; Arrow's own numbering (its
-        # reader on one thread) is the twin.
+                                     "a,b,c,d", "C1,2025-01-02,10,", "\u00e9,x", "C3,,", "1", "C1"]), max_size=12),
+           st.booleans(), st.sampled_from(["", "customer,date,amount\n", "\ufeffcustomer,date,amount\n"]))
+    def test_rows_handed_back_are_numbered_as_arrows_own_count_numbers_them(self, one_at_a_time, lines, final_break,
+                                                                            header):
+        # The records Arrow hands back are found among the text's lines (after the header, as the
+        # reader passes the file's own bytes); Arrow's own numbering (its reader on one thread) is
+        # the twin. Both ways of finding them are checked: a few texts are searched for one at a
+        # time, many are matched against every line at once.
+        from unittest import mock
+
         import pyarrow as pa
 
+        from forecasting.io import read
         from forecasting.io.read import _arrow_records, rejected_lines
 
         body = "\n".join(["C0,2025-01-01,1"] + lines) + ("\n" if final_break else "")
-        encoded = pa.py_buffer(body.encode())
+        data = (header + body).encode()
+        start = len(header.encode())
+        encoded = pa.py_buffer(data).slice(start)
         columns = ["customer", "date", "amount"]
         rejected: list = []
         numbered: list = []
         _arrow_records(encoded, ",", columns, rejected, use_threads=True)
         _arrow_records(encoded, ",", columns, numbered, use_threads=False, numbered=True)
-        found = rejected_lines(encoded, rejected)
+        with mock.patch.object(read, "SEARCHED_ONE_AT_A_TIME", one_at_a_time):
+            found = rejected_lines(data, rejected, start=start)
         assert found == numbered
 
-    def test_a_carriage_return_leaves_the_numbering_to_arrow(self):
-        import pyarrow as pa
+    @pytest.mark.parametrize("one_at_a_time", [16, 0])
+    def test_a_carriage_return_leaves_the_numbering_to_arrow(self, one_at_a_time, monkeypatch):
+        from forecasting.io import read
 
+        monkeypatch.setattr(read, "SEARCHED_ONE_AT_A_TIME", one_at_a_time)
+        assert read.rejected_lines(b"C1,2025-01-02,10\r\nbad\r\n", ["bad"]) is None
+
+    def test_a_text_handed_back_inside_a_longer_line_is_not_that_record(self):
+        # "C1" is part of every line but a whole line only once: only that line is the record.
         from forecasting.io.read import rejected_lines
 
-        assert rejected_lines(pa.py_buffer(b"C1,2025-01-02,10\r\nbad\r\n"), ["bad"]) is None
+        data = b"C1,2025-01-02,10\nC1\nC1,2025-01-03,11\n"
+        assert rejected_lines(data, ["C1"]) == [(2, "C1")]
 
     @pytest.mark.parametrize("step", [86_400_000_000, 1_000_000, 1])
     def test_orders_sorted_by_date_as_a_stable_sort_sorts_them(self, step):

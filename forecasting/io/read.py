@@ -534,11 +534,13 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
     if text is None:
         # Arrow reads UTF-8 bytes: the file itself after the header, not the text encoded again.
         skipped = start + len(head[:layout.skip_chars].encode("utf-8"))
+        body_bytes = data
         encoded = pa.py_buffer(data).slice(skipped)
         quoted = data.find(b'"', skipped) >= 0
     else:
         body_text = text[layout.skip_chars:]
-        encoded = pa.py_buffer(body_text.encode("utf-8"))
+        skipped, body_bytes = 0, body_text.encode("utf-8")
+        encoded = pa.py_buffer(body_bytes)
         quoted = '"' in body_text
     possibly_damaged = _has_damaged_bytes(data)
     first_row = at + 2
@@ -560,7 +562,7 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
     positions = np.arange(table.num_rows, dtype=np.int64)
     set_aside: list[tuple[int, str, str]] = []
     if rejected:
-        numbered = rejected_lines(encoded, rejected)
+        numbered = rejected_lines(body_bytes, rejected, start=skipped)
         if numbered is None:
             # Arrow gives the line of each record it hands back when it reads on one thread.
             numbered = []
@@ -589,18 +591,60 @@ def read_text(data: bytes, file_name: str, notes: list[str], header_row: int | N
                     possibly_damaged=possibly_damaged)
 
 
-def rejected_lines(encoded, rejected: list[str]) -> list[tuple[int, str]] | None:
+#: Up to this many different texts handed back are looked for one at a time in the bytes (a fast
+#: search of the file each); more are found among all the lines at once.
+SEARCHED_ONE_AT_A_TIME = 16
+
+
+def rejected_lines(data: bytes, rejected: list[str], *, start: int = 0) -> list[tuple[int, str]] | None:
     """``(line, text)`` of each record Arrow handed back (``rejected``: their texts), in file order,
-    found among the lines of the UTF-8 text ``encoded`` (lines counted from 1); None when they
+    found among the lines of the UTF-8 text ``data[start:]`` (lines counted from 1); None when they
     cannot be told this way (a carriage return in the text, or not every text found once).
 
     Only for text in which no record runs over several lines: a line is then a record, and lines
     that read the same are all handed back, so the lines whose text is one of ``rejected`` are
-    the records handed back (the file is not read a second time)."""
+    the records handed back (the file is not read a second time). A few different texts are
+    looked for one at a time, each as a whole line; more, among all the lines at once."""
+    if data.find(b"\r", start) >= 0:
+        return None
+    texts = sorted(set(rejected))
+    if len(texts) > SEARCHED_ONE_AT_A_TIME:
+        return _rejected_among_all_lines(pa.py_buffer(data).slice(start), rejected)
+    found = sorted((at, line) for line in {text.removesuffix("\n") for text in texts}
+                   for at in _whole_lines(data, line.encode("utf-8"), start))
+    if len(found) != len(rejected):
+        return None
+    numbered, line, last = [], 1, start
+    for at, text in found:
+        line += data.count(b"\n", last, at)
+        last = at
+        numbered.append((line, text))
+    return numbered
+
+
+def _whole_lines(data: bytes, needle: bytes, start: int) -> list[int]:
+    """Where the lines of ``data[start:]`` that read ``needle`` (without their line feed) begin; a
+    text that ends with a line feed has no line after it."""
+    size, width = len(data), len(needle)
+    found = []
+    if data.startswith(needle, start) and (start + width == size or data[start + width] == 10) and start < size:
+        found.append(start)
+    framed = b"\n" + needle + b"\n"
+    at = data.find(framed, start)
+    while at >= 0:
+        found.append(at + 1)
+        at = data.find(framed, at + 1)
+    tail = size - width
+    if width and tail > start and data[tail - 1] == 10 and data.endswith(needle):
+        found.append(tail)
+    return found
+
+
+def _rejected_among_all_lines(encoded, rejected: list[str]) -> list[tuple[int, str]] | None:
+    """:func:`rejected_lines` for many different texts: every line of ``encoded`` (no carriage
+    return in it) is matched against all of them at once."""
     data = np.frombuffer(encoded, dtype=np.uint8)
     block = 1 << 24
-    if any((data[start:start + block] == 13).any() for start in range(0, len(data), block)):
-        return None
     ends = np.concatenate([np.flatnonzero(data[start:start + block] == 10) + start
                            for start in range(0, len(data), block)] + [np.zeros(0, dtype=np.int64)])
     # Line k runs from starts[k] up to the next start, its line feed included (the last line may
