@@ -752,8 +752,8 @@ class TestFastPathsAgainstTheirTwins:
 
     @pytest.mark.parametrize("repeats", [True, False])
     def test_rules_read_each_distinct_cell_as_they_read_every_cell(self, repeats):
-        # The Arrow backend reads amounts and dates once per distinct cell (or every cell, when most
-        # differ); its twin runs the same rules over every row.
+        # The Arrow backend reads amounts, dates, currencies and statuses once per distinct cell (or
+        # every cell, when most differ); its twin runs the same rules over every row.
         import pyarrow as pa
 
         from forecasting.io import rules
@@ -773,12 +773,24 @@ class TestFastPathsAgainstTheirTwins:
         else:
             amount_cells = [f"{v:.2f}" for v in rng.uniform(0, 1e6, n)]
             date_cells = [f"2025-01-01 {h:02d}:{m:02d}:{s:02d}" for h, m, s in rng.integers(0, [24, 60, 60], (n, 3))]
+        currencies = ["USD", "usd", " EUR ", "$", "€", "£", "", "C$", "dollars", "GBP"]
+        statuses = ["paid", "Cancelled", "", "refunded", "pending payment", "test", "Shipped", "on hold"]
+        if repeats:
+            currency_cells = [currencies[i] for i in rng.integers(0, len(currencies), n)]
+            status_cells = [statuses[i] for i in rng.integers(0, len(statuses), n)]
+        else:
+            currency_cells = [f"X{i:05d}" for i in range(n)]
+            status_cells = [f"paid {i}" for i in range(n)]
         for rule, cells, options in ((rules.read_amount, amount_cells, {"decimal": "."}),
                                      (rules.read_amount, amount_cells, {"decimal": ","}),
-                                     (rules.read_date, date_cells, {"date_order": "month-first"})):
+                                     (rules.read_date, date_cells, {"date_order": "month-first"}),
+                                     (rules.currency_of_cell, currency_cells, {}),
+                                     (rules.classify_status, status_cells, {})):
             array = pa.array(cells, type=pa.string())
             once = rule(ArrowOps(), array, **options)
             every = rule(EveryRow(), array, **options)
+            if not isinstance(every, dict):
+                once, every = {"value": once}, {"value": every}
             for key in every:
                 full = [ArrowOps.full_column(out[key], n).to_pylist() for out in (once, every)]
                 assert full[0] == full[1], key

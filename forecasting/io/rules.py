@@ -327,7 +327,13 @@ def classify_status(ops, cell):
 
 
 def currency_of_cell(ops, cell):
-    """The ISO code a currency column's cell names: a code (any case), a symbol, or the cell as written."""
+    """The ISO code a currency column's cell names: a code (any case), a symbol, or the cell as written.
+
+    Each distinct cell is read once (an export names one currency or a few, on every row)."""
+    return ops.per_distinct(cell, _currency_of_text)
+
+
+def _currency_of_text(ops, cell):
     text = ops.upper(ops.strip(cell, WHITESPACE))
     alias = _pick(ops, ops.index_in(text, tuple(CURRENCY_ALIASES)), tuple(CURRENCY_ALIASES.values()))
     symbol = _pick(ops, ops.index_in(ops.strip(cell, WHITESPACE), tuple(CURRENCY_SYMBOLS)),
