@@ -11,7 +11,7 @@ Run from the repository root::
 
     python bench/big_shop.py                      # writes bench/data/plant_shop_60k.csv
     python bench/big_shop.py --out /tmp/big.csv
-    python bench/big_shop.py --customers 102000 --out bench/data/plant_shop_lines_1m.csv
+    python bench/big_shop.py --customers 102000 --out bench/data/plant_shop_lines_102000.csv
                                                   # about 1.09 million order lines
 
 The output depends only on the seed. Files are cached in ``bench/data/`` (not committed).

@@ -18,7 +18,9 @@ engine, repeated) and the fastest of the repeats is kept. Peak memory of a comma
 the largest resident size summed over its process tree (sampled every 50 ms with
 psutil: dask workers are separate processes) and, beside it, the high-water mark of
 the command's own process (its ``VmHWM``). The duckdb engine is also measured on its
-own (:func:`forecasting.engines.measure_statistics_run`, a fresh process).
+own (:func:`forecasting.engines.measure_statistics_run`, a fresh process), and ``check`` on
+an order-line export of about 1.1 million lines (the demo shop's kind, from
+``bench/big_shop.py``) against pandas reading the same file.
 
 Every time is also shown as a ratio to a pandas baseline measured in the same
 process on the same file (``pd.read_csv`` followed by a groupby mean per
@@ -60,6 +62,7 @@ import pandas as pd
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
+sys.path.insert(0, str(HERE))
 
 from forecasting import evaluation  # noqa: E402
 from forecasting.customers import customer_statistics  # noqa: E402
@@ -332,6 +335,48 @@ def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int
     out.rmdir()
 
 
+#: The order-line export ``check`` is timed on: the demo shop's generator with this many customers
+#: (about 1.1 million lines, 89 MB; see bench/big_shop.py).
+LINE_EXPORT_CUSTOMERS = 102_000
+
+
+def bench_line_export(rows: list, *, repeat: int) -> None:
+    """``check`` on an order-line export with everything a real one holds (money as text, statuses,
+    refunds, a broken row), against pandas reading the same file (skipping the broken row, which
+    it cannot read otherwise), interleaved, fastest of ``repeat`` kept."""
+    import big_shop
+
+    path = HERE / "data" / f"plant_shop_lines_{LINE_EXPORT_CUSTOMERS}.csv"
+    if not path.exists():
+        big_shop.write_big_shop(path, customers=LINE_EXPORT_CUSTOMERS)
+    with open(path, "rb") as handle:
+        lines = sum(block.count(b"\n") for block in iter(lambda: handle.read(1 << 24), b"")) - 1
+    size_mb = path.stat().st_size / 1e6
+    python = sys.executable
+    runs = {"baseline": ("baseline: python -c \"pd.read_csv(F, on_bad_lines='skip')\"",
+                         [python, "-c", "import sys, pandas as pd; pd.read_csv(sys.argv[1], on_bad_lines='skip')",
+                          str(path)]),
+            "check": ("check (read, clean, row account)", [python, "-m", "forecasting", "check", str(path)])}
+    load_before = load_text()
+    print(f"order-line export, {lines:,} lines, {size_mb:.0f} MB (load average before: {load_before})", flush=True)
+    best: dict = {}
+    for attempt in range(repeat):
+        for key, (label, argv) in runs.items():
+            measured = run_command(argv, cwd=HERE.parent)
+            print(f"  [{attempt + 1}/{repeat}] {label:<70} {measured['seconds']:8.2f} s "
+                  f"{measured['tree_mb']:7.0f} MB", flush=True)
+            peak = max(measured["tree_mb"], best.get(key, {}).get("tree_mb", 0.0))
+            if key not in best or measured["seconds"] < best[key]["seconds"]:
+                best[key] = dict(measured)
+            best[key]["tree_mb"] = peak
+    load_after = load_text()
+    for key, (label, _) in runs.items():
+        rows.append({"lines": lines, "size_mb": size_mb, "stage": label, "seconds": best[key]["seconds"],
+                     "ratio": best[key]["seconds"] / best["baseline"]["seconds"], "peak_mb": best[key]["tree_mb"],
+                     "memory_ratio": best[key]["tree_mb"] / best["baseline"]["tree_mb"], "repeat": repeat,
+                     "load": f"{load_before} -> {load_after}"})
+
+
 def growth_rows(rows):
     """Time per stage at each size over the time at the size ten times smaller."""
     by_stage: dict = {}
@@ -346,7 +391,7 @@ def growth_rows(rows):
     return found
 
 
-def write_markdown(rows, command_rows, path: Path, *, started: str) -> None:
+def write_markdown(rows, command_rows, path: Path, *, started: str, line_rows=()) -> None:
     one, five, fifteen = os.getloadavg()
     lines = [
         "# Benchmark results",
@@ -381,6 +426,25 @@ def write_markdown(rows, command_rows, path: Path, *, started: str) -> None:
             lines.append(f"| {row['orders']:,} | {row['stage']} | {row['repeat']} | {row['seconds']:.2f} | "
                          f"{row['ratio']:.2f} | {row['peak_mb']:.0f} | {row['process_mb']:.0f} | {row['load']} |")
         lines += [""] + _growth_table(command_rows) + [""]
+    if line_rows:
+        lines += [
+            "## An order-line export, checked",
+            "",
+            "`python -m forecasting check F` on an order-line export of the demo shop's kind "
+            f"(bench/big_shop.py with {LINE_EXPORT_CUSTOMERS:,} customers: money written as text, statuses, "
+            "refunds, cancelled and test orders, a duplicate and a broken row), against pandas reading the "
+            "same file. Each run is its own process, runs interleaved, fastest of N kept; peak memory is "
+            "the largest of the runs.",
+            "",
+            "| lines | MB | command | best of | seconds | ratio to pandas | peak memory (MB) | memory ratio | "
+            "load average during |",
+            "| ---: | ---: | --- | ---: | ---: | ---: | ---: | ---: | --- |",
+        ]
+        for row in line_rows:
+            lines.append(f"| {row['lines']:,} | {row['size_mb']:.0f} | {row['stage']} | {row['repeat']} | "
+                         f"{row['seconds']:.2f} | {row['ratio']:.2f} | {row['peak_mb']:.0f} | "
+                         f"{row['memory_ratio']:.2f} | {row['load']} |")
+        lines.append("")
     if rows:
         lines += [
             "## Library stages, in one process",
@@ -462,16 +526,19 @@ def main(argv=None) -> int:
     started = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M")
     rows: list = []
     command_rows: list = []
+    line_rows: list = []
+    if args.commands:
+        bench_line_export(line_rows, repeat=args.repeat)
     for size in sizes:
         if args.commands:
             # At 10M orders the slow engines run once; the duckdb one, made for such files, as often as asked.
             bench_commands(size, args.seed, engines, command_rows, repeat=1 if size >= BIG else args.repeat,
                            baseline_repeat=args.repeat, evaluate_up_to=args.evaluate_up_to,
                            repeat_by_engine={"duckdb": args.repeat})
-            write_markdown(rows, command_rows, Path(args.out), started=started)
+            write_markdown(rows, command_rows, Path(args.out), started=started, line_rows=line_rows)
         if not args.no_stages:
             bench_size(size, args.seed, rows, every_pair_at_10m=args.every_pair_at_10m)
-        write_markdown(rows, command_rows, Path(args.out), started=started)  # partial results survive a stop
+        write_markdown(rows, command_rows, Path(args.out), started=started, line_rows=line_rows)  # partial results survive a stop
     loo = [r for r in rows if r["stage"].startswith("exact leave-one-out") and r["orders"] == 1_000_000]
     if loo:
         verdict = "meets" if loo[0]["ratio"] <= TARGET_RATIO else "misses"
