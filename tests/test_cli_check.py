@@ -5,6 +5,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -132,6 +134,19 @@ class TestStartUp:
         done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=120)
         assert done.returncode == 0, done.stderr
         assert done.stdout.strip() == "[]"
+
+    @pytest.mark.parametrize("options", [["--method", "mta"], ["--method", "james-stein", "--variance", "log"]])
+    def test_a_named_method_loads_no_scipy(self, tmp_path, options):
+        # With a method named (its spread model chosen by the shop's own check, or named too) the whole
+        # command reads, checks, fits and writes without scipy: the spread of one order takes the
+        # median of a gamma distribution from forecasting.variance.gamma_median.
+        code = ("import sys, runpy; sys.argv = ['forecasting', 'forecast', 'demo_data/plant_shop_orders.csv', "
+                f"'--out', {str(tmp_path / 'out.csv')!r}] + {options!r}\n"
+                "try:\n    runpy.run_module('forecasting', run_name='__main__')\nexcept SystemExit:\n    pass\n"
+                "print(sorted(m for m in sys.modules if m.split('.')[0] == 'scipy'), file=sys.stderr)")
+        done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=300)
+        assert (tmp_path / "out.csv").exists(), done.stderr
+        assert done.stderr.strip().splitlines()[-1] == "[]"
 
     def test_the_automatic_choice_loads_neither_scipy_optimize_nor_scipy_stats(self, tmp_path):
         # The whole forecast command on the demo shop, the method chosen by the shop's own check

@@ -15,6 +15,7 @@ from forecasting.variance import (
     RETIRED_SPREAD_MODELS,
     VARIANCE_MODELS,
     classic_pooled_variance,
+    gamma_median,
     hill_tail_index,
     order_spread,
     pooled_variance,
@@ -172,6 +173,35 @@ class TestOrderSpread:
         fit = pooled_variance(st, model="log")
         assert fit.sigma2 > 0.45
         assert fit.details["order_spread"] < 0.44
+
+
+class TestGammaMedian:
+    """The median of Gamma(a, 1) behind the spread of one order, written without scipy.special."""
+
+    def test_equals_scipys_inverse_incomplete_gamma(self):
+        # Reference: scipy.special.gammaincinv(a, 0.5), for every number of degrees of freedom k of
+        # a customer with up to 3,001 orders (a = k / 2) and a few far larger.
+        from scipy import special
+
+        k = np.concatenate([np.arange(1, 3001), [5_000, 10_001, 20_000, 100_000, 1_000_000]])
+        ours = gamma_median(k / 2.0)
+        assert ours == pytest.approx(special.gammaincinv(k / 2.0, 0.5), rel=2e-12)
+
+    def test_published_values(self):
+        # Gamma(1, 1) is the exponential distribution: median ln 2. The median of chi2 with one degree of
+        # freedom is 0.454936... (the square of the normal's upper quartile 0.67449, from memory; here
+        # taken from scipy.stats.norm).
+        assert float(gamma_median(1.0)) == pytest.approx(math.log(2.0), rel=1e-15)
+        assert 2.0 * float(gamma_median(0.5)) == pytest.approx(stats.norm.ppf(0.75) ** 2, rel=1e-13)
+
+    def test_keeps_the_shape_of_its_input(self):
+        assert gamma_median(np.array([[1.0, 2.0], [3.0, 4.0]])).shape == (2, 2)
+        assert gamma_median(np.zeros(0)).shape == (0,)
+
+    def test_shapes_below_one_half_are_refused(self):
+        # A customer with two orders has k = 1, a = 1/2: smaller shapes never arise.
+        with pytest.raises(ValueError, match="1/2 or more"):
+            gamma_median(np.array([0.25, 1.0]))
 
 
 class TestLogModel:
