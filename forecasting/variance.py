@@ -300,9 +300,10 @@ def gamma_median(shape):
         P(a, x) = x^a e^-x / Gamma(a) * sum_j x^j / (a (a + 1) ... (a + j))
 
     (Abramowitz and Stegun 1964, 6.5.29), whose terms fall at least as fast as x / (a + j) < 1
-    below x = a, where the median is (Chen and Rubin 1986: a - 1/3 < median < a). Written here
-    because the module that would give it takes a tenth of a second to load, more than a
-    forecast of a small shop; the tests hold it to that module's ``gammaincinv(a, 0.5)``.
+    below x = a, where the median is (Chen and Rubin 1986: a - 1/3 < median < a); no step goes
+    below half of x, so x stays positive. Written here because ``scipy.special``, which has it,
+    takes a tenth of a second to load, more than a forecast of a small shop; the tests hold it to
+    ``scipy.special.gammaincinv(a, 0.5)``.
 
     References
     ----------
@@ -321,8 +322,8 @@ def gamma_median(shape):
         if active.size == 0:
             break
         shape_now, at = a[active], x[active]
-        log_density = (shape_now - 1.0) * np.log(at) - at - log_gamma[active]  # x^(a-1) e^-x / Gamma(a)
-        step = (np.exp(log_density) * at * _series_sum(shape_now, at) - 0.5) / np.exp(log_density)
+        density = np.exp((shape_now - 1.0) * np.log(at) - at - log_gamma[active])  # x^(a-1) e^-x / Gamma(a)
+        step = (density * at * _series_sum(shape_now, at) - 0.5) / density  # (P(a, x) - 1/2) / P'(a, x)
         x[active] = np.maximum(at - step, 0.5 * at)
         # Newton's error after a step below 1e-8 of x is about the step squared: below rounding.
         active = active[np.abs(step) > 1e-8 * at]

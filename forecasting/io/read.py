@@ -627,7 +627,7 @@ def _whole_lines(data: bytes, needle: bytes, start: int) -> list[int]:
     text that ends with a line feed has no line after it."""
     size, width = len(data), len(needle)
     found = []
-    if data.startswith(needle, start) and (start + width == size or data[start + width] == 10) and start < size:
+    if start < size and data.startswith(needle, start) and (start + width == size or data[start + width] == 10):
         found.append(start)
     framed = b"\n" + needle + b"\n"
     at = data.find(framed, start)
