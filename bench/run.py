@@ -255,6 +255,28 @@ def run_command(argv, *, cwd) -> dict:
     return {"seconds": seconds, "tree_mb": max(tree_peak / 2**20, own_peak), "process_mb": own_peak}
 
 
+def fastest_runs(runs: dict, times: dict, *, cwd) -> dict:
+    """Each command of ``runs`` (key -> (label, argv)) run ``times[key]`` times, interleaved; per key,
+    the fastest run's seconds and the largest peak memory of all its runs (memory does not shrink
+    with load)."""
+    best: dict = {}
+    for attempt in range(max(times.values())):
+        for key, (label, argv) in runs.items():
+            if attempt >= times[key]:
+                continue
+            measured = run_command(argv, cwd=cwd)
+            print(f"  [{attempt + 1}/{times[key]}] {label:<70} {measured['seconds']:8.2f} s "
+                  f"{measured['tree_mb']:7.0f} MB", flush=True)
+            if key not in best or measured["seconds"] < best[key]["seconds"]:
+                peak = max(measured["tree_mb"], best.get(key, {}).get("tree_mb", 0.0))
+                own = max(measured["process_mb"], best.get(key, {}).get("process_mb", 0.0))
+                best[key] = dict(measured, tree_mb=peak, process_mb=own)
+            else:
+                best[key]["tree_mb"] = max(best[key]["tree_mb"], measured["tree_mb"])
+                best[key]["process_mb"] = max(best[key]["process_mb"], measured["process_mb"])
+    return best
+
+
 def _as_a_user_runs_it() -> dict:
     """The commands' environment: Python keeps the compiled modules, as on a user's machine (a shell
     that sets PYTHONDONTWRITEBYTECODE would otherwise have every command compile the package again,
@@ -296,24 +318,9 @@ def bench_commands(n_orders: int, seed: int, engines, rows: list, *, repeat: int
     if n_orders <= evaluate_up_to:
         runs["evaluate"] = ("evaluate --engine pandas (all methods, backtest, 500 bootstrap resamples)",
                             [python, "-m", "forecasting", "evaluate", str(path), "--engine", "pandas"])
-    best: dict = {}
     times = {key: (baseline_repeat if key == "baseline" else (repeat_by_engine or {}).get(key, repeat))
              for key in runs}
-    for attempt in range(max(times.values())):
-        for key, (label, argv) in runs.items():
-            if attempt >= times[key]:
-                continue
-            measured = run_command(argv, cwd=root)
-            print(f"  [{attempt + 1}/{times[key]}] {label:<70} {measured['seconds']:8.2f} s "
-                  f"{measured['tree_mb']:7.0f} MB", flush=True)
-            if key not in best or measured["seconds"] < best[key]["seconds"]:
-                # Peak memory: the largest of the repeats (memory does not shrink with load).
-                peak = max(measured["tree_mb"], best.get(key, {}).get("tree_mb", 0.0))
-                own = max(measured["process_mb"], best.get(key, {}).get("process_mb", 0.0))
-                best[key] = dict(measured, tree_mb=peak, process_mb=own)
-            else:
-                best[key]["tree_mb"] = max(best[key]["tree_mb"], measured["tree_mb"])
-                best[key]["process_mb"] = max(best[key]["process_mb"], measured["process_mb"])
+    best = fastest_runs(runs, times, cwd=root)
     base = best["baseline"]["seconds"]
     load_after = load_text()
     for key, (label, _) in runs.items():
@@ -359,16 +366,7 @@ def bench_line_export(rows: list, *, repeat: int) -> None:
             "check": ("check (read, clean, row account)", [python, "-m", "forecasting", "check", str(path)])}
     load_before = load_text()
     print(f"order-line export, {lines:,} lines, {size_mb:.0f} MB (load average before: {load_before})", flush=True)
-    best: dict = {}
-    for attempt in range(repeat):
-        for key, (label, argv) in runs.items():
-            measured = run_command(argv, cwd=HERE.parent)
-            print(f"  [{attempt + 1}/{repeat}] {label:<70} {measured['seconds']:8.2f} s "
-                  f"{measured['tree_mb']:7.0f} MB", flush=True)
-            peak = max(measured["tree_mb"], best.get(key, {}).get("tree_mb", 0.0))
-            if key not in best or measured["seconds"] < best[key]["seconds"]:
-                best[key] = dict(measured)
-            best[key]["tree_mb"] = peak
+    best = fastest_runs(runs, dict.fromkeys(runs, repeat), cwd=HERE.parent)
     load_after = load_text()
     for key, (label, _) in runs.items():
         rows.append({"lines": lines, "size_mb": size_mb, "stage": label, "seconds": best[key]["seconds"],
