@@ -33,6 +33,17 @@ class Descent:
     steps: int
     message: str
 
+    @property
+    def settled(self) -> bool:
+        """Whether the steps came to rest where Newton's own steps no longer move or lower the value
+        (the ends a minimisation reaches at a point where the slope vanishes). Whether that point is
+        an optimum of the model is still for the caller to judge."""
+        return self.message in (_SETTLED_MESSAGE, _FULL_STEP_NO_LOWER)
+
+
+_SETTLED_MESSAGE = "settled"
+_FULL_STEP_NO_LOWER = "the full step close to the optimum did not lower the value"
+
 
 # Largest move of any (log-)parameter in one step of the minimisation.
 _MAX_MOVE = 2.0
@@ -75,8 +86,8 @@ def minimise(objective, start, lower, upper, *, max_steps=200) -> Descent:
     quadratically; the minimisation ends when such a step moves no
     coordinate by more than ``_SETTLED`` or the slope is down to rounding
     noise (``_ROUNDING_SLOPE``), so fits started from different points agree
-    to rounding. Whether the end point is an optimum is judged
-    by the caller (:func:`judge_optimum`), not by this function's message.
+    to rounding (:attr:`Descent.settled`). Whether the end point is an optimum is judged
+    by the caller (:func:`forecasting.frequency.judge_optimum`), not by this function's message.
     Moré and Sorensen (1984), "Newton's method", in Studies in Numerical
     Analysis, MAA, describe the modified Newton step (from memory).
     """
@@ -105,7 +116,7 @@ def minimise(objective, start, lower, upper, *, max_steps=200) -> Descent:
         if np.max(np.abs(sub_gradient)) <= _ROUNDING_SLOPE * max(1.0, abs(value)):
             # The slope left is rounding noise: where the value is nearly flat in one direction, a
             # step on it would only wander.
-            message = "settled"
+            message = _SETTLED_MESSAGE
             break
         eigenvalues, vectors = np.linalg.eigh(0.5 * (sub + sub.T))
         largest = float(np.max(np.abs(eigenvalues))) if eigenvalues.size else 0.0
@@ -123,12 +134,12 @@ def minimise(objective, start, lower, upper, *, max_steps=200) -> Descent:
             trial = np.clip(point + direction, lower, upper)
             t_value, t_derivatives = objective(trial)
             if t_derivatives is None or t_value > value + 1e-12 * max(1.0, abs(value)):
-                message = "the full step close to the optimum did not lower the value"
+                message = _FULL_STEP_NO_LOWER
                 break
             point, value = trial, t_value
             gradient, hessian = t_derivatives()
             if move < _SETTLED:
-                message = "settled"
+                message = _SETTLED_MESSAGE
                 break
             continue
         scale = 1.0

@@ -58,8 +58,6 @@ def _gamma_gamma_objective(counts_n, counts, n, m, sum_n_log_nm, sum_log_m):
 
 #: Bound of the log-parameters of the fit (p, q and gamma between e^-15 and e^15).
 _LOG_BOUND = 15.0
-#: How a minimisation that found the optimum ends (:func:`forecasting.newton.minimise`).
-_ENDS_AT_AN_OPTIMUM = ("settled", "the full step close to the optimum did not lower the value")
 
 
 def fit_gamma_gamma(means, orders):
@@ -107,7 +105,7 @@ def fit_gamma_gamma(means, orders):
     at_bound = np.any(np.abs(found.point) >= _LOG_BOUND - 1e-6)
     # Where the likelihood keeps rising toward a bound (no spread within customers: p grows without
     # end) the steps run out on a nearly flat slope: that is no optimum, however small the slope.
-    settled = bool(found.message in _ENDS_AT_AN_OPTIMUM and np.all(np.isfinite(found.point))
+    settled = bool(found.settled and np.all(np.isfinite(found.point))
                    and np.all(np.isfinite(found.gradient)) and np.max(np.abs(found.gradient)) < 1e-5)
     return float(p), float(q), float(gam * unit), settled and not at_bound
 
