@@ -20,7 +20,7 @@ import pandas as pd
 
 from forecasting.options import low_confidence
 
-from .words import method_label, variance_label
+from .words import method_label, money, variance_label
 
 # Okabe-Ito colours, in the order this product uses them.
 PALETTE = {
@@ -84,9 +84,7 @@ def _records(frame: pd.DataFrame) -> list[dict]:
 
 def _cash(amount: float, symbol: str, places: int = 0) -> str:
     """Money for a tooltip, at a fixed number of decimals: '$1,234', '€52.46', '-£3'."""
-    if amount is None or not math.isfinite(amount):
-        return "unknown"
-    return f"{'-' if amount < 0 else ''}{symbol}{abs(amount):,.{places}f}"
+    return money(amount, symbol, places)
 
 
 def _money_labels(symbol: str) -> str:

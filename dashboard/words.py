@@ -126,21 +126,22 @@ def control_name(role: str | None, option: str | None, *, here: str | None = Non
 # Money and counts
 
 
-def money(amount: float, symbol: str = "$") -> str:
-    """Money for a sentence: whole units from 100 up, cents below.
+def money(amount: float, symbol: str = "$", places: int | None = None) -> str:
+    """Money for a sentence: whole units from 100 up, cents below (or always ``places`` decimals,
+    as a chart's tooltips show them).
 
     Examples
     --------
-    >>> money(310.0), money(52.456), money(1234567.8, "€"), money(-3.5, "£")
-    ('$310', '$52.46', '€1,234,568', '-£3.50')
+    >>> money(310.0), money(52.456), money(1234567.8, "€"), money(-3.5, "£"), money(52.46, "$", 0)
+    ('$310', '$52.46', '€1,234,568', '-£3.50', '$52')
     """
     if amount is None or not math.isfinite(amount):
         return "unknown"
     sign = "-" if amount < 0 else ""
     amount = abs(amount)
-    if amount >= 100:
-        return f"{sign}{symbol}{amount:,.0f}"
-    return f"{sign}{symbol}{amount:,.2f}"
+    if places is None:
+        places = 0 if amount >= 100 else 2
+    return f"{sign}{symbol}{amount:,.{places}f}"
 
 
 def money_range(low: float, high: float, symbol: str = "$") -> str:
