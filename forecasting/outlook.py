@@ -2052,7 +2052,8 @@ def tier_summary(tiered: pd.DataFrame) -> pd.DataFrame:
     if "tier" not in tiered.columns or "tiers" not in tiered.attrs:
         raise OrderDataError("the table has no tiers yet", fix="Make it with assign_tiers")
     column = tiered.attrs["rank_column"]
-    has_revenue = "projected_revenue" in tiered.columns
+    # Revenue that could not be projected (no order-frequency fit) is missing for every customer: no sum.
+    has_revenue = "projected_revenue" in tiered.columns and bool(tiered["projected_revenue"].notna().any())
     total_revenue = float(tiered["projected_revenue"].sum()) if has_revenue else float("nan")
     rows = []
     n = len(tiered)

@@ -61,12 +61,15 @@ summary = outcome.value["summary"]
 lists = outcome.value["lists"]
 
 figure_word = "projected revenue" if rank == "revenue" else "expected next order"
+has_revenue = bool(summary["projected_revenue"].notna().any())
 shown = summary.assign(customers_pct=100 * summary["share_of_customers"],
                        revenue_pct=100 * summary["share_of_projected_revenue"])
 st.dataframe(
     shown, hide_index=True, key="tier_summary", height=layout.table_height(len(summary)),
-    column_order=["tier", "rule", "customers", "customers_pct", "lowest_figure", "highest_figure",
-                  "projected_revenue", "revenue_pct", "average_own_history_weight", "mostly_shop_pattern"],
+    # Without projected revenue (the note above says why) its columns are left out rather than shown empty.
+    column_order=["tier", "rule", "customers", "customers_pct", "lowest_figure", "highest_figure"]
+    + (["projected_revenue", "revenue_pct"] if has_revenue else [])
+    + ["average_own_history_weight", "mostly_shop_pattern"],
     column_config={
         "tier": st.column_config.TextColumn("Tier"),
         "rule": st.column_config.TextColumn("Who"),
@@ -96,7 +99,8 @@ with left:
                     f"bring in **{float(top['share_of_projected_revenue']):.0%}** of the revenue projected for the "
                     f"next {horizon} days.")
 with right:
-    layout.chart(charts.tier_shares(summary, title="Share of customers and of projected revenue"),
+    layout.chart(charts.tier_shares(summary, title="Share of customers and of projected revenue" if has_revenue
+                                    else "Share of customers"),
                  key="tier_chart")
 
 st.subheader("Customers in a tier")

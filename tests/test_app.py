@@ -815,6 +815,17 @@ class TestValueTiers:
         assert shown["customers"].tolist() == expected["customers"].tolist()
         np.testing.assert_allclose(shown["projected_revenue"], expected["projected_revenue"], rtol=1e-12)
 
+    def test_revenue_columns_left_out_when_revenue_cannot_be_projected(self):
+        # The messy export's 9 customers are too few for the order-frequency model: its tiers rank by
+        # the expected next order, and the table shows no revenue column rather than revenue of 0.
+        at = upload(new_app(), MESSY.name, MESSY.read_bytes())
+        at.switch_page("pages/value_tiers.py").run()
+        assert not at.exception
+        element = next(e for e in at.dataframe if "share_of_projected_revenue" in e.value.columns)
+        assert element.value["projected_revenue"].isna().all()
+        shown = list(element.proto.column_order)
+        assert "lowest_figure" in shown and "projected_revenue" not in shown and "revenue_pct" not in shown
+
     def test_rank_and_split_by_key(self, demo, automatic):
         result, _ = demo
         table, method, variance = automatic

@@ -440,10 +440,11 @@ class TestTooLittleHistory:
         assert outlook.fit.notes and not np.isfinite(outlook.fit.covariance).any()
         with pytest.raises(OrderDataError, match="could not be fitted"):
             require_projection(outlook)
-        # Tiers by next-order value still work; revenue shares are unknown.
+        # Tiers by next-order value still work; the revenue and its shares are unknown, not zero.
         summary = tier_summary(assign_tiers(outlook.customers))
         assert summary["customers"].sum() == 9
         assert summary["share_of_projected_revenue"].isna().all()
+        assert summary["projected_revenue"].isna().all()
 
 
 class TestValueDraws:
